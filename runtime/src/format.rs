@@ -1,0 +1,294 @@
+//! The model blob: one versioned, checksummed container for everything the
+//! device needs. Layout (all integers little-endian):
+//!
+//! ```text
+//! offset  size  field
+//! 0       4     magic tag b"KEEL"
+//! 4       2     format version (u16)
+//! 6       4     payload length L (u32)
+//! 10      L     payload: postcard encoding of [`ModelDesc`]
+//! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
+//! ```
+//!
+//! Weight arrays inside the payload are postcard byte strings holding
+//! little-endian `f32` (or raw `i8`) values, so a parsed model borrows them
+//! straight from the blob (flash) with no copy. Enum variants are encoded by
+//! index: new variants are appended, never reordered, and any change a reader
+//! of the current version cannot skip bumps [`FORMAT_VERSION`].
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::BlobError;
+use crate::integrate::Integrator;
+
+/// First four bytes of every blob.
+pub const MAGIC: [u8; 4] = *b"KEEL";
+/// The format version this runtime writes and reads.
+pub const FORMAT_VERSION: u16 = 1;
+/// Bytes before the payload: magic, version, length.
+pub const HEADER_LEN: usize = 10;
+/// Bytes after the payload: the CRC.
+pub const TRAILER_LEN: usize = 4;
+/// Most layers (hidden plus output) in one network.
+pub const MAX_LAYERS: usize = 5;
+
+const CRC32: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+
+/// Little-endian `f32` values stored as bytes (length a multiple of 4).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct F32Bytes<'a>(#[serde(borrow)] pub &'a [u8]);
+
+impl<'a> F32Bytes<'a> {
+    /// Number of whole `f32` values.
+    pub fn len(&self) -> usize {
+        self.0.len() / 4
+    }
+
+    /// True when empty.
+    pub fn is_empty(&self) -> bool {
+        self.0.len() < 4
+    }
+
+    /// Value `i`, or NaN when out of range (callers validate lengths first).
+    #[inline(always)]
+    pub fn get(&self, i: usize) -> f32 {
+        match self.0.get(4 * i..4 * i + 4) {
+            Some(&[a, b, c, d]) => f32::from_le_bytes([a, b, c, d]),
+            _ => f32::NAN,
+        }
+    }
+
+    /// Iterator over the values.
+    pub fn iter(&self) -> impl Iterator<Item = f32> + 'a {
+        self.0
+            .chunks_exact(4)
+            .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
+    }
+}
+
+/// Activation functions of hidden layers. ReLU is representable so that a
+/// blob using it can be refused with an explanation rather than as garbage.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum Activation {
+    /// Hyperbolic tangent (the default).
+    Tanh,
+    /// Softplus ln(1 + e^x).
+    Softplus,
+    /// Rectified linear unit; refused in energy networks.
+    Relu,
+}
+
+/// Weights of one dense layer, row-major `[outputs][inputs]`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum WeightsDesc<'a> {
+    /// Full-precision weights.
+    F32(#[serde(borrow)] F32Bytes<'a>),
+    /// Symmetric int8 weights, `w[j][i] = scales[j] * values[j][i]`.
+    Int8 {
+        /// The `i8` values as raw bytes.
+        values: &'a [u8],
+        /// One scale per output channel.
+        #[serde(borrow)]
+        scales: F32Bytes<'a>,
+    },
+}
+
+/// One dense layer y = W x + b.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct LayerDesc<'a> {
+    /// Input width.
+    pub inputs: u16,
+    /// Output width.
+    pub outputs: u16,
+    /// The weight matrix.
+    #[serde(borrow)]
+    pub weights: WeightsDesc<'a>,
+    /// Biases, always `f32`.
+    #[serde(borrow)]
+    pub bias: F32Bytes<'a>,
+}
+
+/// A multilayer perceptron with a scalar linear output; every layer but the
+/// last is followed by `activation`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct MlpDesc<'a> {
+    /// Hidden-layer activation.
+    pub activation: Activation,
+    /// Layers from input to output.
+    #[serde(borrow)]
+    pub layers: heapless::Vec<LayerDesc<'a>, MAX_LAYERS>,
+}
+
+/// Kinetic energy of a separable model, in normalized momenta z_p.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub enum KineticDesc<'a> {
+    /// T = 1/2 z_p^T L L^T z_p with L lower triangular (positive diagonal),
+    /// stored row by row: L00, L10, L11, L20, ...
+    Quadratic {
+        /// n (n + 1) / 2 entries of the Cholesky factor of M^-1.
+        #[serde(borrow)]
+        cholesky: F32Bytes<'a>,
+    },
+    /// T = MLP(z_p).
+    Network(#[serde(borrow)] MlpDesc<'a>),
+}
+
+/// The energy function, in normalized coordinates z = (x - offset) / scale.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub enum EnergyDesc<'a> {
+    /// H = MLP(z) over all 2n coordinates.
+    General(#[serde(borrow)] MlpDesc<'a>),
+    /// H = T(z_p) + V(z_q).
+    Separable {
+        /// Potential network V over the n coordinates.
+        #[serde(borrow)]
+        potential: MlpDesc<'a>,
+        /// Kinetic term T over the n momenta.
+        #[serde(borrow)]
+        kinetic: KineticDesc<'a>,
+    },
+}
+
+/// Dissipation term; format version 1 only has `None` (reserved for damping).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum DissipationDesc {
+    /// Conservative model.
+    None,
+}
+
+/// Input coupling; format version 1 only has `None` (reserved for actuators).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum InputDesc {
+    /// Autonomous model.
+    None,
+}
+
+/// Everything a blob describes. Physical energy is
+/// `H(x) = energy_scale * E((x - offset) / scale)` with `E` from `energy`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelDesc<'a> {
+    /// Degrees of freedom n; the state is (q1..qn, p1..pn).
+    pub dof: u8,
+    /// Offsets of the 2n coordinates (q first, then p).
+    #[serde(borrow)]
+    pub offset: F32Bytes<'a>,
+    /// Scales of the 2n coordinates, all positive.
+    #[serde(borrow)]
+    pub scale: F32Bytes<'a>,
+    /// Energy scale, positive.
+    pub energy_scale: f32,
+    /// The energy network.
+    #[serde(borrow)]
+    pub energy: EnergyDesc<'a>,
+    /// How to step the model.
+    pub integrator: Integrator,
+    /// Reserved for dissipation.
+    pub dissipation: DissipationDesc,
+    /// Reserved for inputs.
+    pub input: InputDesc,
+}
+
+/// Write `desc` as a complete blob into `out`; returns the bytes used.
+/// Fails with [`BlobError::Truncated`] when `out` is too small.
+pub fn encode(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> {
+    let room = out.len() as u32;
+    if out.len() < HEADER_LEN + TRAILER_LEN {
+        return Err(BlobError::Truncated {
+            needed: (HEADER_LEN + TRAILER_LEN) as u32,
+            found: room,
+        });
+    }
+    let body_room = out.len() - HEADER_LEN - TRAILER_LEN;
+    let (head, rest) = out.split_at_mut(HEADER_LEN);
+    let body_len = postcard::to_slice(desc, &mut rest[..body_room])
+        .map_err(|_| BlobError::Truncated {
+            needed: room.saturating_add(1),
+            found: room,
+        })?
+        .len();
+    head[..4].copy_from_slice(&MAGIC);
+    head[4..6].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
+    head[6..10].copy_from_slice(&(body_len as u32).to_le_bytes());
+    let end = HEADER_LEN + body_len;
+    let crc = CRC32.checksum(&out[4..end]);
+    out[end..end + 4].copy_from_slice(&crc.to_le_bytes());
+    Ok(end + TRAILER_LEN)
+}
+
+/// Facts about a blob's container, readable even when the payload is not.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Envelope {
+    /// Format version.
+    pub version: u16,
+    /// Payload length in bytes.
+    pub payload_len: u32,
+    /// CRC-32 stored in the blob.
+    pub stored_crc: u32,
+    /// CRC-32 computed over the bytes.
+    pub computed_crc: u32,
+}
+
+/// Check magic, version, length and CRC; return the envelope and the payload.
+pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
+    let found = bytes.len() as u32;
+    let (Some(magic), Some(ver), Some(len)) = (bytes.get(0..4), bytes.get(4..6), bytes.get(6..10))
+    else {
+        return Err(BlobError::Truncated {
+            needed: (HEADER_LEN + TRAILER_LEN) as u32,
+            found,
+        });
+    };
+    if magic != MAGIC {
+        return Err(BlobError::BadMagic);
+    }
+    let version = u16::from_le_bytes([ver[0], ver[1]]);
+    if version != FORMAT_VERSION {
+        return Err(BlobError::UnsupportedVersion {
+            found: version,
+            supported: FORMAT_VERSION,
+        });
+    }
+    let payload_len = u32::from_le_bytes([len[0], len[1], len[2], len[3]]);
+    let end = (HEADER_LEN as u64) + payload_len as u64;
+    let total = end + TRAILER_LEN as u64;
+    if (bytes.len() as u64) < total {
+        return Err(BlobError::Truncated {
+            needed: total.min(u32::MAX as u64) as u32,
+            found,
+        });
+    }
+    if (bytes.len() as u64) > total {
+        return Err(BlobError::TrailingBytes);
+    }
+    let end = end as usize;
+    let stored_crc = match bytes.get(end..end + 4) {
+        Some(&[a, b, c, d]) => u32::from_le_bytes([a, b, c, d]),
+        _ => return Err(BlobError::Malformed),
+    };
+    let computed_crc = CRC32.checksum(bytes.get(4..end).unwrap_or(&[]));
+    if stored_crc != computed_crc {
+        return Err(BlobError::CrcMismatch {
+            stored: stored_crc,
+            computed: computed_crc,
+        });
+    }
+    let env = Envelope {
+        version,
+        payload_len,
+        stored_crc,
+        computed_crc,
+    };
+    Ok((env, bytes.get(HEADER_LEN..end).unwrap_or(&[])))
+}
+
+/// Check the container and decode the description (not yet validated).
+pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
+    let (_, payload) = open(bytes)?;
+    let (desc, rest) =
+        postcard::take_from_bytes::<ModelDesc<'_>>(payload).map_err(|_| BlobError::Malformed)?;
+    if !rest.is_empty() {
+        return Err(BlobError::TrailingBytes);
+    }
+    Ok(desc)
+}

@@ -1,0 +1,242 @@
+//! Time steppers: Stormer-Verlet and Yoshida's fourth-order composition for
+//! separable systems, implicit midpoint for general ones, and classical RK4
+//! as a non-symplectic reference. All loops are bounded; a failed step
+//! returns an error and leaves the state as it was.
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::StepError;
+use crate::hamiltonian::Hamiltonian;
+use crate::state::State;
+
+/// Largest number of substeps per step accepted in settings.
+pub const MAX_SUBSTEPS: u16 = 1024;
+/// Largest fixed-point iteration limit accepted for implicit midpoint.
+pub const MAX_ITERATIONS: u16 = 1000;
+
+/// Integration method. The discriminants are part of the blob format:
+/// append new methods, never reorder.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum Method {
+    /// Stormer-Verlet, kick-drift-kick (order 2, symplectic, separable only).
+    StormerVerlet,
+    /// Yoshida's 4th-order triple-jump composition of Stormer-Verlet
+    /// (symplectic, separable only).
+    Yoshida4,
+    /// Implicit midpoint rule (order 2, symplectic, any Hamiltonian), solved by
+    /// bounded fixed-point iteration.
+    ImplicitMidpoint,
+    /// Classical Runge-Kutta 4 (order 4, not symplectic; a reference).
+    Rk4,
+}
+
+impl Method {
+    /// True for methods that need H = T(p) + V(q).
+    pub fn needs_separable(self) -> bool {
+        matches!(self, Self::StormerVerlet | Self::Yoshida4)
+    }
+
+    /// Gradient evaluations per substep: for separable methods, counted as
+    /// (potential, kinetic) gradients; for the others, full gradients (for
+    /// implicit midpoint, one plus the iteration count).
+    pub fn gradient_calls(self, max_iterations: u16) -> (u32, u32) {
+        match self {
+            Self::StormerVerlet => (2, 1),
+            Self::Yoshida4 => (6, 3),
+            Self::ImplicitMidpoint => (1 + max_iterations as u32, 0),
+            Self::Rk4 => (4, 0),
+        }
+    }
+}
+
+/// How a model is stepped: stored in the blob, overridable on the host.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Integrator {
+    /// The method.
+    pub method: Method,
+    /// Time step of one `step` call, in seconds.
+    pub dt: f32,
+    /// Substeps per step (the method runs with dt / substeps).
+    pub substeps: u16,
+    /// Iteration limit for implicit midpoint.
+    pub max_iterations: u16,
+    /// Relative tolerance for implicit midpoint: stop when every component
+    /// changes by at most `tolerance * (1 + |x_i|)`.
+    pub tolerance: f32,
+}
+
+/// Yoshida (1990) triple-jump weights: w1 = 1 / (2 - 2^(1/3)),
+/// w0 = -2^(1/3) / (2 - 2^(1/3)).
+const YOSHIDA_W1: f32 = 1.351_207_2;
+const YOSHIDA_W0: f32 = -1.702_414_4;
+
+impl Integrator {
+    /// Settings with common defaults for `method` and step `dt`: one
+    /// substep, 50 iterations, tolerance 1e-6.
+    pub fn new(method: Method, dt: f32) -> Self {
+        Self {
+            method,
+            dt,
+            substeps: 1,
+            max_iterations: 50,
+            tolerance: 1e-6,
+        }
+    }
+
+    /// Whether the numbers are in range.
+    pub fn is_valid(&self) -> bool {
+        self.dt.is_finite()
+            && self.dt > 0.0
+            && (1..=MAX_SUBSTEPS).contains(&self.substeps)
+            && (1..=MAX_ITERATIONS).contains(&self.max_iterations)
+            && self.tolerance.is_finite()
+            && self.tolerance > 0.0
+    }
+
+    /// Advance `x` by `dt`. On error `x` is unchanged.
+    pub fn step<const D: usize, H: Hamiltonian<D> + ?Sized>(
+        &self,
+        h: &H,
+        x: &mut State<D>,
+    ) -> Result<(), StepError> {
+        if !self.is_valid() {
+            return Err(StepError::BadSettings);
+        }
+        if x.dof() != h.dof() {
+            return Err(StepError::DofMismatch {
+                model: h.dof() as u32,
+                state: x.dof() as u32,
+            });
+        }
+        if !x.is_finite() {
+            return Err(StepError::NonFiniteState);
+        }
+        if self.method.needs_separable() && !h.is_separable() {
+            return Err(StepError::NotSeparable);
+        }
+        let hs = self.dt / self.substeps as f32;
+        let mut y = *x;
+        for _ in 0..self.substeps {
+            match self.method {
+                Method::StormerVerlet => verlet(h, &mut y, hs)?,
+                Method::Yoshida4 => {
+                    verlet(h, &mut y, YOSHIDA_W1 * hs)?;
+                    verlet(h, &mut y, YOSHIDA_W0 * hs)?;
+                    verlet(h, &mut y, YOSHIDA_W1 * hs)?;
+                }
+                Method::ImplicitMidpoint => {
+                    implicit_midpoint(h, &mut y, hs, self.max_iterations, self.tolerance)?
+                }
+                Method::Rk4 => rk4(h, &mut y, hs)?,
+            }
+            if !y.is_finite() {
+                return Err(StepError::Diverged);
+            }
+        }
+        *x = y;
+        Ok(())
+    }
+}
+
+/// One kick-drift-kick Stormer-Verlet step of size `h`.
+fn verlet<const D: usize, H: Hamiltonian<D> + ?Sized>(
+    ham: &H,
+    x: &mut State<D>,
+    h: f32,
+) -> Result<(), StepError> {
+    let n = x.dof();
+    let half = 0.5 * h;
+    let mut g = [0.0f32; D];
+    ham.potential_gradient(&x.q, &mut g)?;
+    for i in 0..n {
+        x.p[i] -= half * g[i];
+    }
+    ham.kinetic_gradient(&x.p, &mut g)?;
+    for i in 0..n {
+        x.q[i] += h * g[i];
+    }
+    ham.potential_gradient(&x.q, &mut g)?;
+    for i in 0..n {
+        x.p[i] -= half * g[i];
+    }
+    Ok(())
+}
+
+/// One implicit midpoint step x1 = x0 + h f((x0 + x1) / 2), by fixed-point
+/// iteration from the explicit Euler guess, at most `max_iter` times.
+fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
+    ham: &H,
+    x: &mut State<D>,
+    h: f32,
+    max_iter: u16,
+    tol: f32,
+) -> Result<(), StepError> {
+    let n = x.dof();
+    let x0 = *x;
+    let mut fq = [0.0f32; D];
+    let mut fp = [0.0f32; D];
+    ham.vector_field(&x0, &mut fq, &mut fp)?;
+    let mut x1 = x0;
+    for i in 0..n {
+        x1.q[i] = x0.q[i] + h * fq[i];
+        x1.p[i] = x0.p[i] + h * fp[i];
+    }
+    let mut mid = x0;
+    for _ in 0..max_iter {
+        for i in 0..n {
+            mid.q[i] = 0.5 * (x0.q[i] + x1.q[i]);
+            mid.p[i] = 0.5 * (x0.p[i] + x1.p[i]);
+        }
+        if !mid.is_finite() {
+            return Err(StepError::Diverged);
+        }
+        ham.vector_field(&mid, &mut fq, &mut fp)?;
+        let mut converged = true;
+        for i in 0..n {
+            let q = x0.q[i] + h * fq[i];
+            let p = x0.p[i] + h * fp[i];
+            converged &= (q - x1.q[i]).abs() <= tol * (1.0 + q.abs());
+            converged &= (p - x1.p[i]).abs() <= tol * (1.0 + p.abs());
+            x1.q[i] = q;
+            x1.p[i] = p;
+        }
+        if converged {
+            *x = x1;
+            return Ok(());
+        }
+    }
+    Err(StepError::NotConverged {
+        iterations: max_iter,
+    })
+}
+
+/// One classical fourth-order Runge-Kutta step.
+fn rk4<const D: usize, H: Hamiltonian<D> + ?Sized>(
+    ham: &H,
+    x: &mut State<D>,
+    h: f32,
+) -> Result<(), StepError> {
+    let n = x.dof();
+    let x0 = *x;
+    let mut k = [([0.0f32; D], [0.0f32; D]); 4];
+    let mut stage = x0;
+    let weights = [0.5 * h, 0.5 * h, h];
+    for s in 0..4 {
+        let (kq, kp) = &mut k[s];
+        ham.vector_field(&stage, kq, kp)?;
+        if s < 3 {
+            for i in 0..n {
+                stage.q[i] = x0.q[i] + weights[s] * kq[i];
+                stage.p[i] = x0.p[i] + weights[s] * kp[i];
+            }
+        }
+    }
+    let sixth = h / 6.0;
+    for i in 0..n {
+        x.q[i] = x0.q[i] + sixth * (k[0].0[i] + 2.0 * k[1].0[i] + 2.0 * k[2].0[i] + k[3].0[i]);
+        x.p[i] = x0.p[i] + sixth * (k[0].1[i] + 2.0 * k[1].1[i] + 2.0 * k[2].1[i] + k[3].1[i]);
+    }
+    Ok(())
+}

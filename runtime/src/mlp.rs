@@ -1,0 +1,280 @@
+//! Validated multilayer perceptrons over borrowed weight bytes: a forward
+//! pass that keeps what the backward pass needs, and the analytic gradient of
+//! the scalar output with respect to the input (reverse mode, no finite
+//! differences). `W` bounds every layer width and sizes the stack buffers.
+
+use crate::error::{BlobError, Section};
+use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
+use crate::math;
+
+/// A validated layer.
+#[derive(Debug, Clone, Copy)]
+struct Layer<'a> {
+    inputs: usize,
+    outputs: usize,
+    weights: WeightsDesc<'a>,
+    bias: F32Bytes<'a>,
+}
+
+/// A validated network with inputs of width `inputs` and one scalar output.
+#[derive(Debug, Clone, Copy)]
+pub struct Mlp<'a, const W: usize> {
+    activation: Activation,
+    layers: [Option<Layer<'a>>; MAX_LAYERS],
+    count: usize,
+    inputs: usize,
+}
+
+fn all_finite(v: F32Bytes<'_>) -> bool {
+    v.iter().all(f32::is_finite)
+}
+
+impl<'a, const W: usize> Mlp<'a, W> {
+    /// Check shapes, byte lengths, finiteness and the activation.
+    pub fn validate(
+        desc: &MlpDesc<'a>,
+        inputs: usize,
+        section: Section,
+    ) -> Result<Self, BlobError> {
+        if desc.activation == Activation::Relu {
+            return Err(BlobError::ReluInEnergyNetwork { section });
+        }
+        let count = desc.layers.len();
+        if count == 0 || count > MAX_LAYERS {
+            return Err(BlobError::LayerCount {
+                section,
+                layers: count as u32,
+            });
+        }
+        let mut layers = [None; MAX_LAYERS];
+        let mut width = inputs;
+        for (i, l) in desc.layers.iter().enumerate() {
+            let li = i as u8;
+            let (ni, no) = (l.inputs as usize, l.outputs as usize);
+            if ni != width || no == 0 {
+                return Err(BlobError::ShapeMismatch { section, layer: li });
+            }
+            if no > W || ni > W {
+                return Err(BlobError::TooWide {
+                    section,
+                    layer: li,
+                    width: no.max(ni) as u32,
+                    max: W as u32,
+                });
+            }
+            let last = i + 1 == count;
+            if last && no != 1 {
+                return Err(BlobError::ShapeMismatch { section, layer: li });
+            }
+            check_layer(l, ni, no, section, li)?;
+            layers[i] = Some(Layer {
+                inputs: ni,
+                outputs: no,
+                weights: l.weights,
+                bias: l.bias,
+            });
+            width = no;
+        }
+        Ok(Self {
+            activation: desc.activation,
+            layers,
+            count,
+            inputs,
+        })
+    }
+
+    /// Input width.
+    pub fn inputs(&self) -> usize {
+        self.inputs
+    }
+
+    /// Multiply-accumulates of one forward pass plus one input gradient.
+    pub fn macs_per_gradient(&self) -> u32 {
+        2 * self.macs_forward()
+    }
+
+    /// Multiply-accumulates of one forward pass.
+    pub fn macs_forward(&self) -> u32 {
+        self.layers
+            .iter()
+            .flatten()
+            .map(|l| (l.inputs * l.outputs) as u32)
+            .sum()
+    }
+
+    /// Number of weights and biases.
+    pub fn parameters(&self) -> u32 {
+        self.layers
+            .iter()
+            .flatten()
+            .map(|l| (l.inputs * l.outputs + l.outputs) as u32)
+            .sum()
+    }
+
+    /// The scalar output for input `x` (first `inputs()` entries used).
+    pub fn value(&self, x: &[f32]) -> f32 {
+        let mut deriv = [[0.0f32; W]; MAX_LAYERS];
+        self.forward(x, &mut deriv)
+    }
+
+    /// The output and its gradient with respect to the input, written to
+    /// `grad[..inputs()]`.
+    pub fn value_and_gradient(&self, x: &[f32], grad: &mut [f32]) -> f32 {
+        let mut deriv = [[0.0f32; W]; MAX_LAYERS];
+        let y = self.forward(x, &mut deriv);
+        self.backward(&deriv, grad);
+        y
+    }
+
+    /// Forward pass; stores each hidden layer's activation derivative.
+    fn forward(&self, x: &[f32], deriv: &mut [[f32; W]; MAX_LAYERS]) -> f32 {
+        let mut cur = [0.0f32; W];
+        let mut next = [0.0f32; W];
+        let mut out = 0.0;
+        for (k, layer) in self.layers.iter().take(self.count).enumerate() {
+            let Some(l) = layer else { break };
+            let input: &[f32] = if k == 0 { x } else { &cur[..l.inputs] };
+            dense(l, input, &mut next[..l.outputs]);
+            if k + 1 == self.count {
+                out = next[0];
+            } else {
+                for j in 0..l.outputs {
+                    let (a, d) = activate(self.activation, next[j]);
+                    cur[j] = a;
+                    deriv[k][j] = d;
+                }
+            }
+        }
+        out
+    }
+
+    /// Reverse pass from d(output) = 1 down to the input.
+    fn backward(&self, deriv: &[[f32; W]; MAX_LAYERS], grad: &mut [f32]) {
+        let mut g = [0.0f32; W];
+        let mut gp = [0.0f32; W];
+        g[0] = 1.0;
+        for k in (0..self.count).rev() {
+            let Some(l) = self.layers[k] else { continue };
+            if k + 1 < self.count {
+                for j in 0..l.outputs {
+                    g[j] *= deriv[k][j];
+                }
+            }
+            let target: &mut [f32] = if k == 0 {
+                &mut grad[..l.inputs]
+            } else {
+                &mut gp[..l.inputs]
+            };
+            dense_transpose(&l, &g[..l.outputs], target);
+            if k > 0 {
+                g[..l.inputs].copy_from_slice(&gp[..l.inputs]);
+            }
+        }
+    }
+}
+
+/// Byte lengths and finiteness of one layer.
+fn check_layer(
+    l: &LayerDesc<'_>,
+    ni: usize,
+    no: usize,
+    section: Section,
+    li: u8,
+) -> Result<(), BlobError> {
+    let shape = BlobError::ShapeMismatch { section, layer: li };
+    if l.bias.0.len() != 4 * no {
+        return Err(shape);
+    }
+    match l.weights {
+        WeightsDesc::F32(w) => {
+            if w.0.len() != 4 * ni * no {
+                return Err(shape);
+            }
+            if !all_finite(w) {
+                return Err(BlobError::NonFinite { section });
+            }
+        }
+        WeightsDesc::Int8 { values, scales } => {
+            if values.len() != ni * no || scales.0.len() != 4 * no {
+                return Err(shape);
+            }
+            if !all_finite(scales) {
+                return Err(BlobError::NonFinite { section });
+            }
+        }
+    }
+    if !all_finite(l.bias) {
+        return Err(BlobError::NonFinite { section });
+    }
+    Ok(())
+}
+
+/// Activation value and derivative at pre-activation `a`.
+#[inline]
+fn activate(act: Activation, a: f32) -> (f32, f32) {
+    match act {
+        Activation::Tanh => {
+            let t = math::tanh(a);
+            (t, 1.0 - t * t)
+        }
+        Activation::Softplus => (math::softplus(a), math::sigmoid(a)),
+        // Refused at validation; kept total so no input can panic.
+        Activation::Relu => {
+            if a > 0.0 {
+                (a, 1.0)
+            } else {
+                (0.0, 0.0)
+            }
+        }
+    }
+}
+
+/// y = W x + b, summing each row in index order.
+#[inline]
+fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
+    let ni = l.inputs;
+    match l.weights {
+        WeightsDesc::F32(w) => {
+            for (j, (yj, row)) in y.iter_mut().zip(w.0.chunks_exact(4 * ni)).enumerate() {
+                let mut acc = 0.0f32;
+                for (c, xi) in row.chunks_exact(4).zip(x) {
+                    acc += f32::from_le_bytes([c[0], c[1], c[2], c[3]]) * xi;
+                }
+                *yj = acc + l.bias.get(j);
+            }
+        }
+        WeightsDesc::Int8 { values, scales } => {
+            for (j, (yj, row)) in y.iter_mut().zip(values.chunks_exact(ni)).enumerate() {
+                let mut acc = 0.0f32;
+                for (v, xi) in row.iter().zip(x) {
+                    acc += (*v as i8) as f32 * xi;
+                }
+                *yj = acc * scales.get(j) + l.bias.get(j);
+            }
+        }
+    }
+}
+
+/// gx = W^T g, accumulated row by row (deterministic order over outputs).
+#[inline]
+fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
+    let ni = l.inputs;
+    gx.iter_mut().for_each(|v| *v = 0.0);
+    match l.weights {
+        WeightsDesc::F32(w) => {
+            for (gj, row) in g.iter().zip(w.0.chunks_exact(4 * ni)) {
+                for (c, o) in row.chunks_exact(4).zip(gx.iter_mut()) {
+                    *o += f32::from_le_bytes([c[0], c[1], c[2], c[3]]) * gj;
+                }
+            }
+        }
+        WeightsDesc::Int8 { values, scales } => {
+            for (j, (gj, row)) in g.iter().zip(values.chunks_exact(ni)).enumerate() {
+                let gs = gj * scales.get(j);
+                for (v, o) in row.iter().zip(gx.iter_mut()) {
+                    *o += (*v as i8) as f32 * gs;
+                }
+            }
+        }
+    }
+}

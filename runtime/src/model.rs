@@ -1,0 +1,267 @@
+//! A parsed, validated model borrowing its weights from the blob bytes, and
+//! its physical-unit energy, gradient and time step.
+//!
+//! `D` bounds the degrees of freedom and `W` the layer width; both are
+//! checked when the blob is parsed, and they size every buffer on the stack.
+
+use crate::energy::Energy;
+use crate::error::{BlobError, Section, StepError};
+use crate::format::{self, DissipationDesc, InputDesc};
+use crate::hamiltonian::Hamiltonian;
+use crate::integrate::Integrator;
+use crate::state::State;
+
+/// Work one model costs, from the shapes in its blob.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Cost {
+    /// Learned parameters (weights, biases, mass factor).
+    pub parameters: u32,
+    /// Multiply-accumulates of one full gradient dH/dx.
+    pub macs_per_gradient: u32,
+    /// Multiply-accumulates of one `step` with the stored integrator (for
+    /// implicit midpoint: the bound at the iteration limit).
+    pub macs_per_step: u32,
+    /// Bytes of the `Model` value itself.
+    pub model_bytes: u32,
+    /// Bytes of network scratch buffers on the stack during a gradient.
+    pub scratch_bytes: u32,
+}
+
+/// A learned Hamiltonian model, ready to evaluate and step.
+#[derive(Debug, Clone, Copy)]
+pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
+    dof: usize,
+    offset: [f32; D],
+    scale_q: [f32; D],
+    scale_p: [f32; D],
+    offset_p: [f32; D],
+    energy_scale: f32,
+    energy: Energy<'a, W>,
+    integrator: Integrator,
+}
+
+impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
+    /// Parse and validate a blob. Never panics; every defect is a
+    /// [`BlobError`]. Weights stay in `bytes` (no copy).
+    pub fn from_bytes(bytes: &'a [u8]) -> Result<Self, BlobError> {
+        let desc = format::decode(bytes)?;
+        let n = desc.dof as usize;
+        let max = D.min(crate::MAX_DOF_SUPPORTED);
+        if n == 0 || n > max {
+            return Err(BlobError::DofOutOfRange {
+                dof: n as u32,
+                max: max as u32,
+            });
+        }
+        let norm = Section::Normalization;
+        if desc.offset.0.len() != 8 * n || desc.scale.0.len() != 8 * n {
+            return Err(BlobError::ShapeMismatch {
+                section: norm,
+                layer: 0,
+            });
+        }
+        if !desc
+            .offset
+            .iter()
+            .chain(desc.scale.iter())
+            .all(f32::is_finite)
+        {
+            return Err(BlobError::NonFinite { section: norm });
+        }
+        if !desc.scale.iter().all(|s| s > 0.0) {
+            return Err(BlobError::NotPositive { section: norm });
+        }
+        let es = desc.energy_scale;
+        if !es.is_finite() {
+            return Err(BlobError::NonFinite {
+                section: Section::EnergyScale,
+            });
+        }
+        if es <= 0.0 {
+            return Err(BlobError::NotPositive {
+                section: Section::EnergyScale,
+            });
+        }
+        let energy = Energy::validate(&desc.energy, n)?;
+        match desc.dissipation {
+            DissipationDesc::None => {}
+        }
+        match desc.input {
+            InputDesc::None => {}
+        }
+        let mut m = Self {
+            dof: n,
+            offset: [0.0; D],
+            offset_p: [0.0; D],
+            scale_q: [1.0; D],
+            scale_p: [1.0; D],
+            energy_scale: es,
+            energy,
+            integrator: desc.integrator,
+        };
+        for i in 0..n {
+            m.offset[i] = desc.offset.get(i);
+            m.offset_p[i] = desc.offset.get(n + i);
+            m.scale_q[i] = desc.scale.get(i);
+            m.scale_p[i] = desc.scale.get(n + i);
+        }
+        m.with_integrator(desc.integrator)
+    }
+
+    /// The same model with other integrator settings, checked as at parse
+    /// time (a separable-only method on a general model is refused).
+    pub fn with_integrator(mut self, integrator: Integrator) -> Result<Self, BlobError> {
+        if !integrator.is_valid() {
+            return Err(BlobError::BadIntegratorSettings);
+        }
+        if integrator.method.needs_separable() && !self.energy.is_separable() {
+            return Err(BlobError::MethodNeedsSeparableModel);
+        }
+        self.integrator = integrator;
+        Ok(self)
+    }
+
+    /// The integrator settings in use.
+    pub fn integrator(&self) -> Integrator {
+        self.integrator
+    }
+
+    /// Advance `x` by one time step with the model's integrator.
+    pub fn step(&self, x: &mut State<D>) -> Result<(), StepError> {
+        self.integrator.step(self, x)
+    }
+
+    /// The learned energy function.
+    pub fn energy_fn(&self) -> &Energy<'a, W> {
+        &self.energy
+    }
+
+    /// Work and memory this model costs.
+    pub fn cost(&self) -> Cost {
+        let n = self.dof;
+        let (v, t) = self.energy.macs(n);
+        let it = self.integrator;
+        let (calls_a, calls_b) = it.method.gradient_calls(it.max_iterations);
+        let per_sub = if self.energy.is_separable() && it.method.needs_separable() {
+            calls_a * v + calls_b * t
+        } else {
+            calls_a * (v + t)
+        };
+        Cost {
+            parameters: self.energy.parameters(n),
+            macs_per_gradient: v + t,
+            macs_per_step: per_sub * it.substeps as u32,
+            model_bytes: core::mem::size_of::<Self>() as u32,
+            scratch_bytes: ((format::MAX_LAYERS + 4) * W * 4) as u32,
+        }
+    }
+
+    fn check(&self, x: &State<D>) -> Result<(), StepError> {
+        if x.dof() != self.dof {
+            return Err(StepError::DofMismatch {
+                model: self.dof as u32,
+                state: x.dof() as u32,
+            });
+        }
+        if !x.is_finite() {
+            return Err(StepError::NonFiniteState);
+        }
+        Ok(())
+    }
+
+    fn normalize(v: &[f32; D], off: &[f32; D], sc: &[f32; D], n: usize, z: &mut [f32]) {
+        for i in 0..n {
+            z[i] = (v[i] - off[i]) / sc[i];
+        }
+    }
+}
+
+impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
+    fn dof(&self) -> usize {
+        self.dof
+    }
+
+    fn is_separable(&self) -> bool {
+        self.energy.is_separable()
+    }
+
+    fn energy(&self, x: &State<D>) -> Result<f32, StepError> {
+        self.check(x)?;
+        let n = self.dof;
+        let mut zq = [0.0f32; D];
+        let mut zp = [0.0f32; D];
+        Self::normalize(&x.q, &self.offset, &self.scale_q, n, &mut zq);
+        Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut zp);
+        let e = match &self.energy {
+            Energy::General(m) => {
+                let mut z = [0.0f32; 32];
+                z[..n].copy_from_slice(&zq[..n]);
+                z[n..2 * n].copy_from_slice(&zp[..n]);
+                m.value(&z[..2 * n])
+            }
+            Energy::Separable { potential, kinetic } => {
+                potential.value(&zq[..n]) + kinetic.eval(&zp[..n], None)
+            }
+        };
+        Ok(self.energy_scale * e)
+    }
+
+    fn gradient(
+        &self,
+        x: &State<D>,
+        dh_dq: &mut [f32; D],
+        dh_dp: &mut [f32; D],
+    ) -> Result<(), StepError> {
+        self.check(x)?;
+        match &self.energy {
+            Energy::General(m) => {
+                let n = self.dof;
+                let mut z = [0.0f32; 32];
+                let mut g = [0.0f32; 32];
+                Self::normalize(&x.q, &self.offset, &self.scale_q, n, &mut z[..n]);
+                Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut z[n..2 * n]);
+                m.value_and_gradient(&z[..2 * n], &mut g[..2 * n]);
+                for i in 0..n {
+                    dh_dq[i] = self.energy_scale * g[i] / self.scale_q[i];
+                    dh_dp[i] = self.energy_scale * g[n + i] / self.scale_p[i];
+                }
+                Ok(())
+            }
+            Energy::Separable { .. } => {
+                self.potential_gradient(&x.q, dh_dq)?;
+                self.kinetic_gradient(&x.p, dh_dp)
+            }
+        }
+    }
+
+    fn potential_gradient(&self, q: &[f32; D], out: &mut [f32; D]) -> Result<(), StepError> {
+        let Energy::Separable { potential, .. } = &self.energy else {
+            return Err(StepError::NotSeparable);
+        };
+        let n = self.dof;
+        let mut z = [0.0f32; D];
+        let mut g = [0.0f32; D];
+        Self::normalize(q, &self.offset, &self.scale_q, n, &mut z);
+        potential.value_and_gradient(&z[..n], &mut g[..n]);
+        for i in 0..n {
+            out[i] = self.energy_scale * g[i] / self.scale_q[i];
+        }
+        Ok(())
+    }
+
+    fn kinetic_gradient(&self, p: &[f32; D], out: &mut [f32; D]) -> Result<(), StepError> {
+        let Energy::Separable { kinetic, .. } = &self.energy else {
+            return Err(StepError::NotSeparable);
+        };
+        let n = self.dof;
+        let mut z = [0.0f32; D];
+        let mut g = [0.0f32; D];
+        Self::normalize(p, &self.offset_p, &self.scale_p, n, &mut z);
+        kinetic.eval(&z[..n], Some(&mut g[..n]));
+        for i in 0..n {
+            out[i] = self.energy_scale * g[i] / self.scale_p[i];
+        }
+        Ok(())
+    }
+}

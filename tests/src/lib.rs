@@ -1,0 +1,1 @@
+//! Cross-crate checks live in `tests/tests/`; this library holds shared helpers.

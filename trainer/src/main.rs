@@ -1,0 +1,4 @@
+//! `keel`: the host command line.
+fn main() {
+    println!("keel: host tools (in progress)");
+}

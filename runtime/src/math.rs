@@ -8,8 +8,10 @@
 //! in a crate that links `std`, `x.floor()` would silently pick std's method.
 //!
 //! Accuracy (measured by `tests/activation_accuracy.rs` against `f64` from
-//! Rust's standard library): `tanh` within 2.5e-7 absolute over [-12, 12];
-//! `exp` within 3 ulp-scale relative error (4e-7) over [-80, 80].
+//! Rust's standard library, 2,000,001 points each): `tanh` within 8.9e-8
+//! absolute over [-12, 12] (about one f32 ulp near 1); `exp` within 9.3e-8
+//! relative over [-80, 80]; `softplus` and `sigmoid` within 2.4e-7 relative
+//! over [-30, 30].
 //! `micromath`'s own `exp` was not used: it truncates its series after four
 //! terms (about 1e-3 relative error) and is discontinuous where the binary
 //! exponent changes, which would make the learned vector field jump.

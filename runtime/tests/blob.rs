@@ -1,0 +1,355 @@
+//! The blob container and its validation: round trip, zero-copy borrowing,
+//! and one test per refusal, each checking the typed error (no panics).
+
+mod common;
+
+use common::*;
+use keel_runtime::format::{self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION};
+use keel_runtime::{BlobError, Integrator, Method, Model, Section, State, StepError};
+
+fn sample() -> OwnedModel {
+    separable(
+        &mut Rng(11),
+        2,
+        &[16, 16],
+        Activation::Tanh,
+        Kind::F32,
+        Method::StormerVerlet,
+        0.01,
+    )
+}
+
+type M<'a> = Model<'a, 8, 128>;
+
+/// Recompute the CRC after editing bytes, so validation past it is reached.
+fn reseal(b: &mut [u8]) {
+    let end = b.len() - 4;
+    let crc = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC).checksum(&b[4..end]);
+    b[end..].copy_from_slice(&crc.to_le_bytes());
+}
+
+#[test]
+fn round_trip_and_zero_copy() {
+    let owned = sample();
+    let blob = owned.blob();
+    let desc = format::decode(&blob).unwrap();
+    assert_eq!(desc, owned.desc());
+    // The weight bytes are borrowed from the blob itself.
+    let EnergyDesc::Separable { potential, .. } = &desc.energy else {
+        panic!()
+    };
+    let format::WeightsDesc::F32(w) = potential.layers[0].weights else {
+        panic!()
+    };
+    let range = blob.as_ptr_range();
+    assert!(range.contains(&w.0.as_ptr()));
+    let m: M = Model::from_bytes(&blob).unwrap();
+    assert_eq!(m.integrator(), owned.integrator);
+}
+
+#[test]
+fn crc_is_the_standard_crc32() {
+    // CRC-32/ISO-HDLC check value for "123456789" is 0xCBF43926
+    // (Greg Cook's CRC catalogue; also zlib's crc32).
+    let c = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+    assert_eq!(c.checksum(b"123456789"), 0xCBF4_3926);
+}
+
+#[test]
+fn refuses_truncated_magic_version_crc_and_trailing() {
+    let blob = sample().blob();
+    for cut in [0, 3, 9, 10, blob.len() / 2, blob.len() - 1] {
+        assert!(
+            matches!(
+                M::from_bytes(&blob[..cut]),
+                Err(BlobError::Truncated { .. })
+            ),
+            "cut {cut}"
+        );
+    }
+    let mut b = blob.clone();
+    b[0] = b'X';
+    assert_eq!(M::from_bytes(&b).unwrap_err(), BlobError::BadMagic);
+
+    let mut b = blob.clone();
+    b[4..6].copy_from_slice(&(FORMAT_VERSION + 1).to_le_bytes());
+    assert_eq!(
+        M::from_bytes(&b).unwrap_err(),
+        BlobError::UnsupportedVersion {
+            found: FORMAT_VERSION + 1,
+            supported: FORMAT_VERSION
+        }
+    );
+
+    let mut b = blob.clone();
+    let mid = b.len() / 2;
+    b[mid] ^= 0x10;
+    assert!(matches!(
+        M::from_bytes(&b),
+        Err(BlobError::CrcMismatch { .. })
+    ));
+
+    let mut b = blob.clone();
+    b.push(0);
+    assert_eq!(M::from_bytes(&b).unwrap_err(), BlobError::TrailingBytes);
+
+    // A payload that passes the CRC but is not a description.
+    let mut b = blob.clone();
+    b[10] = 0xff;
+    b[11] = 0xff;
+    reseal(&mut b);
+    assert_eq!(M::from_bytes(&b).unwrap_err(), BlobError::Malformed);
+}
+
+#[test]
+fn refuses_models_beyond_the_const_bounds() {
+    let mut rng = Rng(3);
+    let big = separable(
+        &mut rng,
+        3,
+        &[16],
+        Activation::Tanh,
+        Kind::F32,
+        Method::StormerVerlet,
+        0.01,
+    );
+    let blob = big.blob();
+    assert_eq!(
+        Model::<2, 128>::from_bytes(&blob).unwrap_err(),
+        BlobError::DofOutOfRange { dof: 3, max: 2 }
+    );
+    let wide = separable(
+        &mut rng,
+        1,
+        &[64],
+        Activation::Tanh,
+        Kind::Int8,
+        Method::StormerVerlet,
+        0.01,
+    );
+    let blob = wide.blob();
+    assert_eq!(
+        Model::<2, 32>::from_bytes(&blob).unwrap_err(),
+        BlobError::TooWide {
+            section: Section::Potential,
+            layer: 0,
+            width: 64,
+            max: 32
+        }
+    );
+    assert!(Model::<2, 64>::from_bytes(&blob).is_ok());
+}
+
+#[test]
+fn refuses_relu_with_an_explanation() {
+    let mut owned = sample();
+    if let OwnedEnergy::Separable { potential, .. } = &mut owned.energy {
+        potential.activation = Activation::Relu;
+    }
+    let err = M::from_bytes(&owned.blob()).unwrap_err();
+    assert_eq!(
+        err,
+        BlobError::ReluInEnergyNetwork {
+            section: Section::Potential
+        }
+    );
+    let text = err.to_string();
+    assert!(
+        text.contains("piecewise constant") && text.contains("discontinuous"),
+        "{text}"
+    );
+}
+
+#[test]
+fn refuses_inconsistent_shapes_and_values() {
+    let owned = sample();
+    // Layer sizes that do not chain.
+    let mut bad = owned.clone();
+    if let OwnedEnergy::Separable { potential, .. } = &mut bad.energy {
+        potential.layers[1].inputs = 15;
+    }
+    assert!(matches!(
+        M::from_bytes(&bad.blob()),
+        Err(BlobError::ShapeMismatch {
+            section: Section::Potential,
+            ..
+        })
+    ));
+
+    // A NaN weight.
+    let mut bad = owned.clone();
+    if let OwnedEnergy::Separable { potential, .. } = &mut bad.energy {
+        potential.layers[0].w_bytes[0..4].copy_from_slice(&f32::NAN.to_le_bytes());
+    }
+    assert_eq!(
+        M::from_bytes(&bad.blob()).unwrap_err(),
+        BlobError::NonFinite {
+            section: Section::Potential
+        }
+    );
+
+    // Zero scale, infinite offset, negative energy scale.
+    let mut bad = owned.clone();
+    bad.scale_bytes[0..4].copy_from_slice(&0.0f32.to_le_bytes());
+    assert_eq!(
+        M::from_bytes(&bad.blob()).unwrap_err(),
+        BlobError::NotPositive {
+            section: Section::Normalization
+        }
+    );
+    let mut bad = owned.clone();
+    bad.offset_bytes[4..8].copy_from_slice(&f32::INFINITY.to_le_bytes());
+    assert_eq!(
+        M::from_bytes(&bad.blob()).unwrap_err(),
+        BlobError::NonFinite {
+            section: Section::Normalization
+        }
+    );
+    let mut bad = owned.clone();
+    bad.energy_scale = -1.0;
+    assert_eq!(
+        M::from_bytes(&bad.blob()).unwrap_err(),
+        BlobError::NotPositive {
+            section: Section::EnergyScale
+        }
+    );
+
+    // A mass factor with a non-positive diagonal is not positive definite.
+    let mut bad = owned.clone();
+    if let OwnedEnergy::Separable {
+        kinetic: OwnedKinetic::Quadratic(_, bytes),
+        ..
+    } = &mut bad.energy
+    {
+        bytes[0..4].copy_from_slice(&(-0.5f32).to_le_bytes());
+    }
+    assert_eq!(
+        M::from_bytes(&bad.blob()).unwrap_err(),
+        BlobError::NotPositive {
+            section: Section::InverseMass
+        }
+    );
+
+    // Wrong factor length.
+    let desc = owned.desc();
+    let mut desc2 = desc.clone();
+    if let EnergyDesc::Separable { kinetic, .. } = &mut desc2.energy {
+        *kinetic = KineticDesc::Quadratic {
+            cholesky: F32Bytes(&[0, 0, 128, 63]),
+        };
+    }
+    let blob = encode(&desc2);
+    assert!(matches!(
+        M::from_bytes(&blob),
+        Err(BlobError::ShapeMismatch {
+            section: Section::InverseMass,
+            ..
+        })
+    ));
+}
+
+#[test]
+fn refuses_bad_integrator_settings_and_explicit_methods_on_general_models() {
+    let mut owned = sample();
+    for it in [
+        Integrator {
+            dt: 0.0,
+            ..owned.integrator
+        },
+        Integrator {
+            dt: f32::NAN,
+            ..owned.integrator
+        },
+        Integrator {
+            substeps: 0,
+            ..owned.integrator
+        },
+        Integrator {
+            max_iterations: 0,
+            ..owned.integrator
+        },
+        Integrator {
+            tolerance: -1.0,
+            ..owned.integrator
+        },
+    ] {
+        owned.integrator = it;
+        assert_eq!(
+            M::from_bytes(&owned.blob()).unwrap_err(),
+            BlobError::BadIntegratorSettings
+        );
+    }
+    let mut rng = Rng(5);
+    for method in [Method::StormerVerlet, Method::Yoshida4] {
+        let g = general(&mut rng, 1, &[8], Activation::Tanh, Kind::F32, method, 0.01);
+        assert_eq!(
+            M::from_bytes(&g.blob()).unwrap_err(),
+            BlobError::MethodNeedsSeparableModel
+        );
+    }
+    let g = general(
+        &mut rng,
+        1,
+        &[8],
+        Activation::Tanh,
+        Kind::F32,
+        Method::ImplicitMidpoint,
+        0.01,
+    );
+    let blob = g.blob();
+    let m = M::from_bytes(&blob).unwrap();
+    assert_eq!(
+        m.with_integrator(Integrator::new(Method::Yoshida4, 0.01))
+            .unwrap_err(),
+        BlobError::MethodNeedsSeparableModel
+    );
+}
+
+#[test]
+fn step_errors_are_typed_and_leave_the_state_alone() {
+    let mut rng = Rng(9);
+    let g = general(
+        &mut rng,
+        2,
+        &[16],
+        Activation::Tanh,
+        Kind::F32,
+        Method::ImplicitMidpoint,
+        0.01,
+    );
+    let blob = g.blob();
+    let m = M::from_bytes(&blob).unwrap();
+    let mut s = State::<8>::new(&[0.1, 0.2], &[0.0, f32::NAN]).unwrap();
+    let before = s;
+    assert_eq!(m.step(&mut s), Err(StepError::NonFiniteState));
+    assert_eq!(s.q, before.q);
+
+    let mut s1 = State::<8>::new(&[0.1], &[0.0]).unwrap();
+    assert_eq!(
+        m.step(&mut s1),
+        Err(StepError::DofMismatch { model: 2, state: 1 })
+    );
+
+    // A huge step with one iteration cannot converge.
+    let m2 = m
+        .with_integrator(Integrator {
+            max_iterations: 1,
+            tolerance: 1e-9,
+            ..Integrator::new(Method::ImplicitMidpoint, 5.0)
+        })
+        .unwrap();
+    let mut s2 = State::<8>::new(&[0.5, -0.5], &[0.3, 0.2]).unwrap();
+    let before = s2;
+    assert_eq!(
+        m2.step(&mut s2),
+        Err(StepError::NotConverged { iterations: 1 })
+    );
+    assert_eq!(s2, before);
+}
+
+#[test]
+fn state_constructor_checks_sizes() {
+    assert!(State::<2>::new(&[1.0, 2.0, 3.0], &[0.0, 0.0, 0.0]).is_err());
+    assert!(State::<2>::new(&[1.0], &[0.0, 0.0]).is_err());
+    assert!(State::<2>::zeros(0).is_err());
+}

@@ -1,0 +1,65 @@
+//! Work counts from blob shapes: a dense layer of i inputs and o outputs
+//! costs i*o multiply-accumulates forward and i*o again for the input
+//! gradient (reverse-mode differentiation of a dense layer; common result).
+
+mod common;
+
+use common::*;
+use keel_runtime::format::Activation;
+use keel_runtime::{Method, Model};
+
+#[test]
+fn macs_and_sizes_of_a_2_64_64_1_model() {
+    let forward = 2 * 64 + 64 * 64 + 64;
+    let mut rng = Rng(1);
+    for kind in [Kind::F32, Kind::Int8] {
+        let owned = general(
+            &mut rng,
+            1,
+            &[64, 64],
+            Activation::Tanh,
+            kind,
+            Method::ImplicitMidpoint,
+            0.01,
+        );
+        let blob = owned.blob();
+        let m: Model<'_, 1, 64> = Model::from_bytes(&blob).unwrap();
+        let c = m.cost();
+        println!(
+            "2-64-64-1 {kind:?}: blob {} bytes, {} MAC/gradient",
+            blob.len(),
+            c.macs_per_gradient
+        );
+        assert_eq!(c.macs_per_gradient, 2 * forward as u32);
+        assert_eq!(c.parameters, (forward + 64 + 64 + 1) as u32);
+        // One explicit Euler predictor plus at most 50 fixed-point iterations.
+        assert_eq!(c.macs_per_step, 51 * 2 * forward as u32);
+        // f32: 4 bytes per weight and bias; int8: 1 byte per weight, 4 per
+        // bias and per-channel scale; the rest is framing and shapes.
+        let weights = forward;
+        let (lo, hi) = match kind {
+            Kind::F32 => (4 * (weights + 129), 4 * (weights + 129) + 200),
+            Kind::Int8 => (weights + 8 * 129, weights + 8 * 129 + 200),
+        };
+        assert!(
+            (lo..hi).contains(&blob.len()),
+            "{kind:?} blob {} bytes",
+            blob.len()
+        );
+    }
+    // Separable Stormer-Verlet: two potential gradients and one kinetic
+    // (quadratic: n(n+1) MAC) per step.
+    let owned = separable(
+        &mut rng,
+        2,
+        &[32],
+        Activation::Tanh,
+        Kind::F32,
+        Method::StormerVerlet,
+        0.01,
+    );
+    let blob = owned.blob();
+    let m: Model<'_, 2, 32> = Model::from_bytes(&blob).unwrap();
+    let v = 2 * (2 * 32 + 32) as u32;
+    assert_eq!(m.cost().macs_per_step, 2 * v + 6);
+}

@@ -1,1 +1,586 @@
-//! (in progress)
+//! Motion logs as CSV: loading with validation (every error names the file,
+//! the 1-based line, header = line 1, and the column), writing, and splitting
+//! into training and validation sets by whole trajectories.
+//!
+//! Columns: `traj`, `t`, `q1..qn`, then either `p1..pn` (momenta) or `v1..vn`
+//! (velocities, converted with p = m v using [`LoadOptions::masses`]), and
+//! optionally derivatives `dq1..dqn`, `dp1..dpn` (with velocities,
+//! `dv1..dvn` in place of `dp*`, converted with dp = m dv). If both `p*`
+//! and `v*` columns exist the momenta are used. Other columns are ignored. Rows of one trajectory must be contiguous; time must increase
+//! strictly and evenly: a step may differ from the trajectory's median step
+//! by at most [`LoadOptions::step_tolerance`] (1 % by default) of that median.
+//! Without derivative columns the derivatives are estimated with a
+//! Savitzky-Golay filter ([`crate::derivative`]), so every trajectory needs at
+//! least the filter's window of samples.
+
+use crate::atomic::write_atomic_with;
+use crate::dataset::{Dataset, DerivativeSource, Trajectory};
+use crate::derivative::SavitzkyGolay;
+use ndarray::Array2;
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use std::collections::HashMap;
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+/// Options for [`load_csv`].
+#[derive(Debug, Clone)]
+pub struct LoadOptions {
+    /// Masses m1..mn for logs with velocity columns (`--mass`).
+    pub masses: Option<Vec<f64>>,
+    /// Filter for estimating missing derivatives.
+    pub filter: SavitzkyGolay,
+    /// Largest allowed deviation of a time step from the trajectory's median
+    /// step, as a fraction of the median.
+    pub step_tolerance: f64,
+}
+
+impl Default for LoadOptions {
+    fn default() -> Self {
+        Self {
+            masses: None,
+            filter: SavitzkyGolay::default(),
+            step_tolerance: 0.01,
+        }
+    }
+}
+
+/// What is wrong with a log.
+#[derive(Debug, Clone, PartialEq)]
+pub enum DataProblem {
+    /// The file cannot be read.
+    Io(String),
+    /// The CSV itself is malformed (e.g. wrong number of fields).
+    Malformed(String),
+    /// No header, or a header but no data rows.
+    Empty,
+    /// A required column is absent.
+    MissingColumn,
+    /// q, p (or v) and derivative column counts disagree.
+    MismatchedDimensions(String),
+    /// Velocity columns but no `--mass`.
+    MissingMasses,
+    /// `--mass` has the wrong number of entries or a bad value.
+    BadMasses(String),
+    /// A field is not a number.
+    NotNumeric(String),
+    /// A field is NaN or infinite.
+    NonFinite(String),
+    /// Time does not increase strictly within a trajectory.
+    TimeNotIncreasing {
+        /// Previous time.
+        previous: f64,
+        /// This row's time.
+        current: f64,
+    },
+    /// A time step differs too much from the trajectory's median step.
+    UnevenSampling {
+        /// This step.
+        step: f64,
+        /// Median step of the trajectory.
+        median: f64,
+        /// Allowed fraction.
+        tolerance: f64,
+    },
+    /// Too few samples to estimate derivatives.
+    TooShort {
+        /// Trajectory id.
+        traj: String,
+        /// Samples present.
+        samples: usize,
+        /// Samples needed.
+        needed: usize,
+    },
+    /// A trajectory id appears again after other trajectories.
+    TrajectoryNotContiguous {
+        /// Trajectory id.
+        traj: String,
+        /// Line where its first block started.
+        first_line: u64,
+    },
+}
+
+/// A log error, located by file, line (1-based, header = 1) and column.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DataError {
+    /// File.
+    pub file: PathBuf,
+    /// 1-based line number (header = 1).
+    pub line: u64,
+    /// Column name, if the problem concerns one column.
+    pub column: Option<String>,
+    /// The problem.
+    pub problem: DataProblem,
+}
+
+impl fmt::Display for DataError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}: line {}", self.file.display(), self.line)?;
+        if let Some(c) = &self.column {
+            write!(f, ", column '{c}'")?;
+        }
+        write!(f, ": ")?;
+        match &self.problem {
+            DataProblem::Io(e) => write!(f, "cannot read file: {e}"),
+            DataProblem::Malformed(e) => write!(f, "malformed CSV: {e}"),
+            DataProblem::Empty => write!(f, "file has no header or no data rows"),
+            DataProblem::MissingColumn => write!(f, "required column is missing"),
+            DataProblem::MismatchedDimensions(e) => write!(f, "mismatched dimensions: {e}"),
+            DataProblem::MissingMasses => write!(
+                f,
+                "velocity columns need the masses (--mass m1,..,mn) to form p = m v"
+            ),
+            DataProblem::BadMasses(e) => write!(f, "bad --mass: {e}"),
+            DataProblem::NotNumeric(v) => write!(f, "'{v}' is not a number"),
+            DataProblem::NonFinite(v) => write!(f, "'{v}' is not finite"),
+            DataProblem::TimeNotIncreasing { previous, current } => write!(
+                f,
+                "time {current} does not increase (previous sample {previous})"
+            ),
+            DataProblem::UnevenSampling {
+                step,
+                median,
+                tolerance,
+            } => write!(
+                f,
+                "uneven sampling: step {step} differs from the median step {median} by more than {}%",
+                tolerance * 100.0
+            ),
+            DataProblem::TooShort {
+                traj,
+                samples,
+                needed,
+            } => write!(
+                f,
+                "trajectory '{traj}' has {samples} samples; at least {needed} are needed to estimate derivatives"
+            ),
+            DataProblem::TrajectoryNotContiguous { traj, first_line } => write!(
+                f,
+                "trajectory '{traj}' reappears; its rows must be contiguous (first block starts at line {first_line})"
+            ),
+        }
+    }
+}
+
+impl std::error::Error for DataError {}
+
+/// Column indices found in a header.
+struct Layout {
+    traj: usize,
+    t: usize,
+    q: Vec<usize>,
+    /// p or v columns.
+    p: Vec<usize>,
+    /// dq and dp (or dv) columns, if present.
+    derivatives: Option<(Vec<usize>, Vec<usize>)>,
+    names: Vec<String>,
+}
+
+/// Indexed columns `prefix1..prefixN` (contiguous from 1).
+fn numbered(names: &[String], prefix: &str) -> Vec<usize> {
+    let mut found = Vec::new();
+    for k in 1.. {
+        match names.iter().position(|n| *n == format!("{prefix}{k}")) {
+            Some(i) => found.push(i),
+            None => break,
+        }
+    }
+    found
+}
+
+fn parse_layout(
+    file: &Path,
+    names: Vec<String>,
+    opts: &LoadOptions,
+) -> Result<(Layout, Option<Vec<f64>>), DataError> {
+    let err = |column: &str, problem| DataError {
+        file: file.to_path_buf(),
+        line: 1,
+        column: Some(column.to_string()),
+        problem,
+    };
+    let find = |name: &str| {
+        names
+            .iter()
+            .position(|n| n == name)
+            .ok_or_else(|| err(name, DataProblem::MissingColumn))
+    };
+    let traj = find("traj")?;
+    let t = find("t")?;
+    let q = numbered(&names, "q");
+    if q.is_empty() {
+        return Err(err("q1", DataProblem::MissingColumn));
+    }
+    let n = q.len();
+    let p_cols = numbered(&names, "p");
+    let v_cols = numbered(&names, "v");
+    let (p, velocity) = match (p_cols.is_empty(), v_cols.is_empty()) {
+        (false, _) => (p_cols, false),
+        (true, false) => (v_cols, true),
+        (true, true) => return Err(err("p1", DataProblem::MissingColumn)),
+    };
+    let pv = if velocity { "v" } else { "p" };
+    if p.len() != n {
+        let column = if p.len() < n {
+            format!("{pv}{}", p.len() + 1)
+        } else {
+            format!("{pv}{}", n + 1)
+        };
+        return Err(err(
+            &column,
+            DataProblem::MismatchedDimensions(format!(
+                "{n} q columns but {} {pv} columns",
+                p.len()
+            )),
+        ));
+    }
+    // Derivatives: all or nothing.
+    let dq = numbered(&names, "dq");
+    let dpv_prefix = if velocity { "dv" } else { "dp" };
+    let dp = numbered(&names, dpv_prefix);
+    let derivatives = if dq.is_empty() && dp.is_empty() {
+        None
+    } else {
+        for (cols, prefix) in [(&dq, "dq"), (&dp, dpv_prefix)] {
+            if cols.len() != n {
+                let column = format!("{prefix}{}", cols.len().min(n) + 1);
+                let problem = if cols.len() < n {
+                    DataProblem::MissingColumn
+                } else {
+                    DataProblem::MismatchedDimensions(format!(
+                        "{n} q columns but {} {prefix} columns",
+                        cols.len()
+                    ))
+                };
+                return Err(err(&column, problem));
+            }
+        }
+        Some((dq, dp))
+    };
+    // A numbered column outside the contiguous runs (e.g. q3 without q2) is
+    // almost certainly a mistake; refuse it rather than ignore it.
+    let used: Vec<usize> = q
+        .iter()
+        .chain(&p)
+        .chain(derivatives.iter().flat_map(|(a, b)| a.iter().chain(b)))
+        .copied()
+        .collect();
+    for (i, name) in names.iter().enumerate() {
+        let stray = ["q", pv, "dq", dpv_prefix].iter().any(|prefix| {
+            name.strip_prefix(prefix)
+                .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
+        });
+        if stray && !used.contains(&i) {
+            return Err(err(
+                name,
+                DataProblem::MismatchedDimensions(format!(
+                    "column does not fit the numbering 1..{n} of the {n} q columns"
+                )),
+            ));
+        }
+    }
+    let masses = if velocity {
+        let masses = opts
+            .masses
+            .clone()
+            .ok_or_else(|| err("v1", DataProblem::MissingMasses))?;
+        if masses.len() != n {
+            return Err(err(
+                "v1",
+                DataProblem::BadMasses(format!(
+                    "{} masses given for {n} velocity columns",
+                    masses.len()
+                )),
+            ));
+        }
+        if let Some(m) = masses.iter().find(|m| !m.is_finite() || **m <= 0.0) {
+            return Err(err(
+                "v1",
+                DataProblem::BadMasses(format!("mass {m} is not a finite positive number")),
+            ));
+        }
+        Some(masses)
+    } else {
+        None
+    };
+    Ok((
+        Layout {
+            traj,
+            t,
+            q,
+            p,
+            derivatives,
+            names,
+        },
+        masses,
+    ))
+}
+
+/// Rows of one trajectory while reading.
+struct Block {
+    id: String,
+    first_line: u64,
+    lines: Vec<u64>,
+    t: Vec<f64>,
+    x: Vec<f64>,
+    dx: Vec<f64>,
+}
+
+/// Load and validate a CSV log.
+pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
+    let file_err = |line: u64, column: Option<String>, problem| DataError {
+        file: path.to_path_buf(),
+        line,
+        column,
+        problem,
+    };
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .trim(csv::Trim::All)
+        .from_path(path)
+        .map_err(|e| file_err(1, None, DataProblem::Io(e.to_string())))?;
+    let headers = reader
+        .headers()
+        .map_err(|e| file_err(1, None, DataProblem::Malformed(e.to_string())))?
+        .clone();
+    if headers.is_empty() || headers.iter().all(|h| h.is_empty()) {
+        return Err(file_err(1, None, DataProblem::Empty));
+    }
+    let names: Vec<String> = headers.iter().map(str::to_string).collect();
+    let (layout, masses) = parse_layout(path, names, opts)?;
+    let n = layout.q.len();
+
+    let mut blocks: Vec<Block> = Vec::new();
+    let mut seen: HashMap<String, u64> = HashMap::new();
+    let mut record = csv::StringRecord::new();
+    loop {
+        let more = reader.read_record(&mut record).map_err(|e| {
+            let line = e.position().map_or(0, |p| p.line());
+            file_err(line, None, DataProblem::Malformed(e.to_string()))
+        })?;
+        if !more {
+            break;
+        }
+        let line = record.position().map_or(0, |p| p.line());
+        let field = |col: usize| -> Result<f64, DataError> {
+            let text = record.get(col).unwrap_or("");
+            let name = Some(layout.names[col].clone());
+            let v: f64 = text
+                .parse()
+                .map_err(|_| file_err(line, name.clone(), DataProblem::NotNumeric(text.into())))?;
+            if !v.is_finite() {
+                return Err(file_err(line, name, DataProblem::NonFinite(text.into())));
+            }
+            Ok(v)
+        };
+        let id = record.get(layout.traj).unwrap_or("").to_string();
+        if blocks.last().is_none_or(|b| b.id != id) {
+            if let Some(first_line) = seen.get(&id) {
+                return Err(file_err(
+                    line,
+                    Some("traj".into()),
+                    DataProblem::TrajectoryNotContiguous {
+                        traj: id,
+                        first_line: *first_line,
+                    },
+                ));
+            }
+            seen.insert(id.clone(), line);
+            blocks.push(Block {
+                id: id.clone(),
+                first_line: line,
+                lines: Vec::new(),
+                t: Vec::new(),
+                x: Vec::new(),
+                dx: Vec::new(),
+            });
+        }
+        let block = blocks.last_mut().expect("pushed above");
+        let t = field(layout.t)?;
+        if let Some(&previous) = block.t.last() {
+            if t <= previous {
+                return Err(file_err(
+                    line,
+                    Some("t".into()),
+                    DataProblem::TimeNotIncreasing {
+                        previous,
+                        current: t,
+                    },
+                ));
+            }
+        }
+        block.t.push(t);
+        block.lines.push(line);
+        for &c in &layout.q {
+            block.x.push(field(c)?);
+        }
+        for (k, &c) in layout.p.iter().enumerate() {
+            let scale = masses.as_ref().map_or(1.0, |m| m[k]);
+            block.x.push(scale * field(c)?);
+        }
+        if let Some((dq, dp)) = &layout.derivatives {
+            for &c in dq {
+                block.dx.push(field(c)?);
+            }
+            for (k, &c) in dp.iter().enumerate() {
+                let scale = masses.as_ref().map_or(1.0, |m| m[k]);
+                block.dx.push(scale * field(c)?);
+            }
+        }
+    }
+    if blocks.is_empty() {
+        return Err(file_err(2, None, DataProblem::Empty));
+    }
+
+    let needed = opts.filter.window();
+    let mut trajectories = Vec::with_capacity(blocks.len());
+    for block in blocks {
+        check_even_steps(path, &block, opts.step_tolerance)?;
+        let samples = block.t.len();
+        let x = Array2::from_shape_vec((samples, 2 * n), block.x).expect("row-major 2n per row");
+        let dx = if layout.derivatives.is_some() {
+            Array2::from_shape_vec((samples, 2 * n), block.dx).expect("row-major 2n per row")
+        } else {
+            if samples < needed {
+                return Err(file_err(
+                    block.first_line,
+                    Some("t".into()),
+                    DataProblem::TooShort {
+                        traj: block.id,
+                        samples,
+                        needed,
+                    },
+                ));
+            }
+            let dt = (block.t[samples - 1] - block.t[0]) / (samples - 1) as f64;
+            let mut dx = Array2::zeros((samples, 2 * n));
+            for c in 0..2 * n {
+                let column: Vec<f64> = x.column(c).to_vec();
+                let d = opts
+                    .filter
+                    .derivative(&column, dt)
+                    .expect("length checked above");
+                dx.column_mut(c).assign(&ndarray::Array1::from(d));
+            }
+            dx
+        };
+        trajectories.push(Trajectory {
+            id: block.id,
+            t: block.t,
+            x,
+            dx,
+        });
+    }
+    Ok(Dataset {
+        dof: n,
+        trajectories,
+        derivatives: if layout.derivatives.is_some() {
+            DerivativeSource::Given
+        } else {
+            DerivativeSource::Estimated
+        },
+    })
+}
+
+fn check_even_steps(path: &Path, block: &Block, tolerance: f64) -> Result<(), DataError> {
+    if block.t.len() < 3 {
+        return Ok(());
+    }
+    let steps: Vec<f64> = block.t.windows(2).map(|w| w[1] - w[0]).collect();
+    let mut sorted = steps.clone();
+    sorted.sort_by(f64::total_cmp);
+    let median = sorted[sorted.len() / 2];
+    for (k, step) in steps.iter().enumerate() {
+        if (step - median).abs() > tolerance * median {
+            return Err(DataError {
+                file: path.to_path_buf(),
+                line: block.lines[k + 1],
+                column: Some("t".into()),
+                problem: DataProblem::UnevenSampling {
+                    step: *step,
+                    median,
+                    tolerance,
+                },
+            });
+        }
+    }
+    Ok(())
+}
+
+/// Column names of a dataset with `dof` degrees of freedom:
+/// `traj,t,q1..qn,p1..pn` and, if `derivatives`, `dq1..dqn,dp1..dpn`.
+pub fn column_names(dof: usize, derivatives: bool) -> Vec<String> {
+    let mut names = vec!["traj".to_string(), "t".to_string()];
+    let prefixes: &[&str] = if derivatives {
+        &["q", "p", "dq", "dp"]
+    } else {
+        &["q", "p"]
+    };
+    for prefix in prefixes {
+        names.extend((1..=dof).map(|k| format!("{prefix}{k}")));
+    }
+    names
+}
+
+/// Write `ds` as CSV (atomically), with momenta; derivative columns only if
+/// `derivatives`. Numbers use Rust's shortest round-trip formatting, so the
+/// output is deterministic and re-reads to the same values.
+pub fn write_csv(path: &Path, ds: &Dataset, derivatives: bool) -> anyhow::Result<()> {
+    write_atomic_with(path, |w| {
+        let mut writer = csv::Writer::from_writer(w);
+        writer.write_record(column_names(ds.dof, derivatives))?;
+        let mut row: Vec<String> = Vec::new();
+        for traj in &ds.trajectories {
+            for (i, t) in traj.t.iter().enumerate() {
+                row.clear();
+                row.push(traj.id.clone());
+                row.push(format!("{t}"));
+                row.extend(traj.x.row(i).iter().map(|v| format!("{v}")));
+                if derivatives {
+                    row.extend(traj.dx.row(i).iter().map(|v| format!("{v}")));
+                }
+                writer.write_record(&row)?;
+            }
+        }
+        writer.flush()?;
+        Ok(())
+    })
+}
+
+/// Split whole trajectories into (training, validation), never single rows.
+/// About `val_fraction` (clamped to [0, 1]) of the trajectories, chosen by a
+/// seeded shuffle, go to validation; with two or more trajectories each side
+/// gets at least one. A single trajectory goes to training. Both sides keep
+/// the original trajectory order.
+pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Dataset, Dataset) {
+    let count = ds.trajectories.len();
+    let fraction = if val_fraction.is_nan() {
+        0.0
+    } else {
+        val_fraction.clamp(0.0, 1.0)
+    };
+    let n_val = if count >= 2 {
+        ((fraction * count as f64).round() as usize).clamp(1, count - 1)
+    } else {
+        0
+    };
+    let mut order: Vec<usize> = (0..count).collect();
+    order.shuffle(&mut ChaCha8Rng::seed_from_u64(seed));
+    let mut is_val = vec![false; count];
+    for &i in &order[..n_val] {
+        is_val[i] = true;
+    }
+    let pick = |want: bool| Dataset {
+        dof: ds.dof,
+        trajectories: ds
+            .trajectories
+            .iter()
+            .zip(&is_val)
+            .filter(|(_, v)| **v == want)
+            .map(|(t, _)| t.clone())
+            .collect(),
+        derivatives: ds.derivatives,
+    };
+    (pick(false), pick(true))
+}

@@ -1,1 +1,291 @@
-//! (in progress)
+//! Reference trajectories from a built-in system: high-accuracy integration
+//! (adaptive Dormand-Prince 5(4) in f64), sampling at a fixed rate, exact
+//! derivatives from the vector field, and optional measurement noise.
+//!
+//! Accuracy: the step-size control keeps each step's local error below
+//! [`RELATIVE_TOLERANCE`] times the largest magnitude each state component
+//! has reached so far; with the integration restarted at every output sample
+//! (no interpolation) the tests measure, with default parameters, agreement
+//! with an independent 8th-order solver to within 3e-11 of each coordinate's
+//! peak over 10 periods, the closed-form mass-spring solution to within 2e-12
+//! of the amplitude, and a relative energy drift below 1e-10 over 50 periods.
+
+use crate::dataset::{Dataset, DerivativeSource, Trajectory};
+use crate::systems::ReferenceSystem;
+use ndarray::Array2;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rand_distr::{Distribution, StandardNormal};
+
+/// Local error per step, relative to each component's running peak magnitude.
+pub const RELATIVE_TOLERANCE: f64 = 1e-13;
+
+/// Step budget per output interval before the integration is declared stuck.
+const MAX_STEPS_PER_SAMPLE: usize = 1_000_000;
+
+/// What to simulate.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SimulationSpec {
+    /// Number of trajectories.
+    pub trajectories: usize,
+    /// Length of each trajectory in seconds.
+    pub duration: f64,
+    /// Sampling rate in Hz.
+    pub rate: f64,
+    /// Seed for the initial states (and, separately, the noise).
+    pub seed: u64,
+}
+
+impl SimulationSpec {
+    /// Sample times 0, 1/rate, ..., up to `duration` (inclusive within
+    /// rounding).
+    pub fn sample_times(&self) -> Vec<f64> {
+        let last = (self.duration * self.rate * (1.0 + 1e-12)).floor() as usize;
+        (0..=last).map(|k| k as f64 / self.rate).collect()
+    }
+
+    fn validate(&self) -> anyhow::Result<()> {
+        anyhow::ensure!(self.trajectories >= 1, "--trajectories must be at least 1");
+        anyhow::ensure!(
+            self.duration.is_finite() && self.duration > 0.0,
+            "--duration must be a finite positive number of seconds"
+        );
+        anyhow::ensure!(
+            self.rate.is_finite() && self.rate > 0.0,
+            "--rate must be a finite positive number of hertz"
+        );
+        anyhow::ensure!(
+            self.duration * self.rate >= 1.0,
+            "--duration times --rate must give at least two samples"
+        );
+        Ok(())
+    }
+}
+
+/// Dormand-Prince 5(4) coefficients (Dormand & Prince, J. Comput. Appl.
+/// Math. 6(1), 1980).
+mod tableau {
+    // The built-in systems are autonomous, so the nodes c_i are not needed.
+    pub const A: [[f64; 6]; 7] = [
+        [0.0; 6],
+        [1.0 / 5.0, 0.0, 0.0, 0.0, 0.0, 0.0],
+        [3.0 / 40.0, 9.0 / 40.0, 0.0, 0.0, 0.0, 0.0],
+        [44.0 / 45.0, -56.0 / 15.0, 32.0 / 9.0, 0.0, 0.0, 0.0],
+        [
+            19372.0 / 6561.0,
+            -25360.0 / 2187.0,
+            64448.0 / 6561.0,
+            -212.0 / 729.0,
+            0.0,
+            0.0,
+        ],
+        [
+            9017.0 / 3168.0,
+            -355.0 / 33.0,
+            46732.0 / 5247.0,
+            49.0 / 176.0,
+            -5103.0 / 18656.0,
+            0.0,
+        ],
+        [
+            35.0 / 384.0,
+            0.0,
+            500.0 / 1113.0,
+            125.0 / 192.0,
+            -2187.0 / 6784.0,
+            11.0 / 84.0,
+        ],
+    ];
+    /// 5th-order weights (equal to the last row of A).
+    pub const B: [f64; 7] = [
+        35.0 / 384.0,
+        0.0,
+        500.0 / 1113.0,
+        125.0 / 192.0,
+        -2187.0 / 6784.0,
+        11.0 / 84.0,
+        0.0,
+    ];
+    /// 4th-order embedded weights.
+    pub const B_HAT: [f64; 7] = [
+        5179.0 / 57600.0,
+        0.0,
+        7571.0 / 16695.0,
+        393.0 / 640.0,
+        -92097.0 / 339200.0,
+        187.0 / 2100.0,
+        1.0 / 40.0,
+    ];
+}
+
+/// Integrate `system` from `x0` at time `times[0]` and return the state at
+/// every time in `times` (row k = state at `times[k]`).
+pub fn integrate(
+    system: &dyn ReferenceSystem,
+    x0: &[f64],
+    times: &[f64],
+) -> anyhow::Result<Array2<f64>> {
+    let dim = x0.len();
+    let mut out = Array2::zeros((times.len(), dim));
+    if times.is_empty() {
+        return Ok(out);
+    }
+    let mut x = x0.to_vec();
+    let mut peak: Vec<f64> = x.iter().map(|v| v.abs()).collect();
+    out.row_mut(0).assign(&ndarray::ArrayView1::from(&x));
+    let mut k: [Vec<f64>; 7] = std::array::from_fn(|_| vec![0.0; dim]);
+    let mut stage = vec![0.0; dim];
+    let mut x_new = vec![0.0; dim];
+    let mut h = (times.get(1).copied().unwrap_or(times[0]) - times[0]) / 16.0;
+    for (row, window) in times.windows(2).enumerate() {
+        let (mut t, t_end) = (window[0], window[1]);
+        let mut steps = 0;
+        while t < t_end {
+            steps += 1;
+            anyhow::ensure!(
+                steps <= MAX_STEPS_PER_SAMPLE,
+                "{}: integration stalled near t = {t} s",
+                system.name()
+            );
+            let last = t + h >= t_end;
+            let step = if last { t_end - t } else { h };
+            system.vector_field(&x, &mut k[0]);
+            for s in 1..7 {
+                for i in 0..dim {
+                    let mut acc = 0.0;
+                    for (j, kj) in k.iter().enumerate().take(s) {
+                        acc += tableau::A[s][j] * kj[i];
+                    }
+                    stage[i] = x[i] + step * acc;
+                }
+                system.vector_field(&stage, &mut k[s]);
+            }
+            let mut err_sq = 0.0;
+            for i in 0..dim {
+                let mut hi = 0.0;
+                let mut diff = 0.0;
+                for (s, ks) in k.iter().enumerate() {
+                    hi += tableau::B[s] * ks[i];
+                    diff += (tableau::B[s] - tableau::B_HAT[s]) * ks[i];
+                }
+                x_new[i] = x[i] + step * hi;
+                let scale = RELATIVE_TOLERANCE * peak[i].max(x_new[i].abs()).max(f64::MIN_POSITIVE)
+                    + f64::MIN_POSITIVE;
+                err_sq += (step * diff / scale).powi(2);
+            }
+            let err = (err_sq / dim as f64).sqrt();
+            anyhow::ensure!(
+                err.is_finite(),
+                "{}: integration blew up near t = {t} s",
+                system.name()
+            );
+            let factor = if err == 0.0 {
+                5.0
+            } else {
+                (0.9 * err.powf(-0.2)).clamp(0.2, 5.0)
+            };
+            if err <= 1.0 {
+                t = if last { t_end } else { t + step };
+                x.copy_from_slice(&x_new);
+                for (p, v) in peak.iter_mut().zip(&x) {
+                    *p = p.max(v.abs());
+                }
+                // Keep the regular step size if this step was only shortened
+                // to land on the sample time.
+                if !last || step >= h {
+                    h = step * factor;
+                }
+            } else {
+                h = step * factor;
+            }
+        }
+        out.row_mut(row + 1).assign(&ndarray::ArrayView1::from(&x));
+    }
+    Ok(out)
+}
+
+/// Generate `spec.trajectories` clean trajectories with exact derivatives.
+/// Initial states come from the system's sampler seeded with `spec.seed`.
+pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
+    spec.validate()?;
+    let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
+    let times = spec.sample_times();
+    let n = system.dof();
+    let mut trajectories = Vec::with_capacity(spec.trajectories);
+    for index in 0..spec.trajectories {
+        let x0 = system.sample_initial_state(&mut rng);
+        let x = integrate(system, &x0, &times)?;
+        let mut dx = Array2::zeros(x.raw_dim());
+        let mut buf = vec![0.0; 2 * n];
+        for (row, mut d) in x.rows().into_iter().zip(dx.rows_mut()) {
+            system.vector_field(row.as_slice().expect("standard layout"), &mut buf);
+            d.assign(&ndarray::ArrayView1::from(&buf));
+        }
+        trajectories.push(Trajectory {
+            id: index.to_string(),
+            t: times.clone(),
+            x,
+            dx,
+        });
+    }
+    Ok(Dataset {
+        dof: n,
+        trajectories,
+        derivatives: DerivativeSource::Given,
+    })
+}
+
+/// Add Gaussian noise to the states (q and p only, never to t or the
+/// derivatives): each coordinate gets N(0, (sigma * rms)^2) noise, where rms
+/// is that coordinate's root-mean-square over the whole clean data set. The
+/// noise stream is seeded from `seed` independently of the initial states.
+pub fn add_noise(ds: &mut Dataset, sigma: f64, seed: u64) -> anyhow::Result<()> {
+    anyhow::ensure!(
+        sigma.is_finite() && sigma >= 0.0,
+        "--noise must be a finite non-negative number"
+    );
+    if sigma == 0.0 {
+        return Ok(());
+    }
+    let dim = 2 * ds.dof;
+    let samples = ds.samples().max(1) as f64;
+    let rms: Vec<f64> = (0..dim)
+        .map(|c| {
+            let sum: f64 = ds
+                .trajectories
+                .iter()
+                .map(|t| t.x.column(c).iter().map(|v| v * v).sum::<f64>())
+                .sum();
+            (sum / samples).sqrt()
+        })
+        .collect();
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    rng.set_stream(1);
+    for traj in &mut ds.trajectories {
+        for mut row in traj.x.rows_mut() {
+            for (v, r) in row.iter_mut().zip(&rms) {
+                let z: f64 = StandardNormal.sample(&mut rng);
+                *v += sigma * r * z;
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Largest relative energy change |H(t) - H(0)| / |H(0)| over all samples.
+pub fn max_relative_energy_drift(system: &dyn ReferenceSystem, ds: &Dataset) -> f64 {
+    ds.trajectories
+        .iter()
+        .map(|traj| {
+            let h0 = system.hamiltonian(traj.x.row(0).as_slice().expect("standard layout"));
+            traj.x
+                .rows()
+                .into_iter()
+                .map(|r| {
+                    let h = system.hamiltonian(r.as_slice().expect("standard layout"));
+                    (h - h0).abs() / h0.abs().max(f64::MIN_POSITIVE)
+                })
+                .fold(0.0, f64::max)
+        })
+        .fold(0.0, f64::max)
+}

@@ -1,10 +1,317 @@
-//! `keel fit` (in progress).
+//! `keel fit`: load a motion log, fit an energy model (and optionally the
+//! plain vector-field baseline), and write the model blob atomically.
+
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use anyhow::{bail, Context, Result};
+use clap::ValueEnum;
+use keel_runtime::{Integrator, Method};
+
+use crate::data::{self, LoadOptions};
+use crate::dataset::Dataset;
+use crate::export::{self, Precision};
+use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::net::Activation;
+
+/// Energy structure.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ArchArg {
+    /// E = V(q) + T(p): explicit symplectic stepping on the device.
+    Separable,
+    /// E(q, p) over all coordinates: needs implicit midpoint on the device.
+    General,
+}
+
+/// Kinetic term of a separable model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum KineticArg {
+    /// T = 1/2 p^T M^-1 p with a learned constant inverse mass matrix.
+    Quadratic,
+    /// T(p) as a network.
+    Network,
+}
+
+/// Hidden-layer activation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ActivationArg {
+    /// Hyperbolic tangent.
+    Tanh,
+    /// Softplus ln(1 + e^x).
+    Softplus,
+    /// Refused: see the error message.
+    Relu,
+}
+
+/// Integration method stored in the blob.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum IntegratorArg {
+    /// Stormer-Verlet (separable models; the default for them).
+    Verlet,
+    /// Yoshida's fourth-order composition (separable models).
+    Yoshida4,
+    /// Implicit midpoint (any model; the default for general ones).
+    Midpoint,
+    /// Classical RK4 (not symplectic; for comparison only).
+    Rk4,
+}
 
 /// Arguments of `keel fit`.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    /// Motion log (CSV) to fit.
+    #[arg(long, value_name = "FILE.csv")]
+    pub data: PathBuf,
+    /// Separate validation log; without it, whole trajectories are held out
+    /// from --data (see --val-fraction).
+    #[arg(long, value_name = "FILE.csv")]
+    pub val: Option<PathBuf>,
+    /// Fraction of trajectories held out for validation when --val is absent
+    /// (0 disables validation; early stopping then watches the training loss).
+    #[arg(long, default_value_t = 0.2, value_name = "F")]
+    pub val_fraction: f64,
+    /// Energy structure.
+    #[arg(long, value_enum, default_value_t = ArchArg::Separable)]
+    pub arch: ArchArg,
+    /// Kinetic term of a separable model.
+    #[arg(long, value_enum, default_value_t = KineticArg::Quadratic)]
+    pub kinetic: KineticArg,
+    /// Hidden-layer widths, comma separated (at most 4 layers, each <= 128).
+    #[arg(
+        long,
+        value_delimiter = ',',
+        default_value = "64,64",
+        value_name = "W,W"
+    )]
+    pub hidden: Vec<usize>,
+    /// Hidden-layer activation.
+    #[arg(long, value_enum, default_value_t = ActivationArg::Tanh)]
+    pub activation: ActivationArg,
+    /// Passes over the training data (ignored with --steps).
+    #[arg(long, default_value_t = 300, value_name = "N")]
+    pub epochs: usize,
+    /// Samples per minibatch.
+    #[arg(long, default_value_t = 256, value_name = "N")]
+    pub batch: usize,
+    /// Peak learning rate (Adam, warm-up then cosine decay).
+    #[arg(long, default_value_t = 3e-3, value_name = "X")]
+    pub lr: f32,
+    /// Total optimizer steps, instead of --epochs.
+    #[arg(long, value_name = "N")]
+    pub steps: Option<usize>,
+    /// Worker threads; results are reproducible for a given count.
+    #[arg(long, default_value_t = 1, value_name = "N")]
+    pub threads: usize,
+    /// Epochs without validation improvement before stopping.
+    #[arg(long, default_value_t = 60, value_name = "N")]
+    pub patience: usize,
+    /// Train for all epochs even when validation stops improving.
+    #[arg(long)]
+    pub no_early_stop: bool,
+    /// Seed for initialization, shuffling and the validation split.
+    #[arg(long, default_value_t = 0, value_name = "N")]
+    pub seed: u64,
+    /// Also fit the plain vector-field baseline and write it to
+    /// OUT with extension `.baseline.json`.
+    #[arg(long)]
+    pub baseline: bool,
+    /// Masses m1,..,mn for logs with velocity columns (p = m v).
+    #[arg(long, value_delimiter = ',', value_name = "M1,..")]
+    pub mass: Option<Vec<f64>>,
+    /// Integration method stored in the model (default: verlet for
+    /// separable, midpoint for general models).
+    #[arg(long, value_enum)]
+    pub integrator: Option<IntegratorArg>,
+    /// Time step stored in the model, in seconds (default: the log's median
+    /// sample interval).
+    #[arg(long, value_name = "S")]
+    pub dt: Option<f32>,
+    /// Write the loss history (JSON) here.
+    #[arg(long, value_name = "FILE.json")]
+    pub history: Option<PathBuf>,
+    /// No progress bar.
+    #[arg(long, short)]
+    pub quiet: bool,
+    /// Output model blob.
+    #[arg(long, value_name = "MODEL.keel")]
+    pub out: PathBuf,
+}
+
+fn activation(a: ActivationArg) -> Result<Activation> {
+    match a {
+        ActivationArg::Tanh => Ok(Activation::Tanh),
+        ActivationArg::Softplus => Ok(Activation::Softplus),
+        ActivationArg::Relu => bail!(
+            "--activation relu is not allowed for energy networks: ReLU's derivative is piecewise \
+             constant, so the vector field dq/dt = dH/dp, dp/dt = -dH/dq would be discontinuous \
+             (and its second derivative, which training needs, is zero almost everywhere); use \
+             tanh or softplus"
+        ),
+    }
+}
+
+fn median_step(ds: &Dataset) -> Option<f64> {
+    let mut steps: Vec<f64> = ds
+        .trajectories
+        .iter()
+        .flat_map(|t| t.t.windows(2).map(|w| w[1] - w[0]))
+        .collect();
+    if steps.is_empty() {
+        return None;
+    }
+    steps.sort_by(f64::total_cmp);
+    Some(steps[steps.len() / 2])
+}
+
+/// Where the baseline goes: the model path with extension `.baseline.json`.
+pub fn baseline_path(out: &Path) -> PathBuf {
+    out.with_extension("baseline.json")
+}
+
+fn stop_text(stop: StopReason) -> String {
+    match stop {
+        StopReason::Completed => "all steps done".into(),
+        StopReason::EarlyStopped => "early stop (validation loss stopped improving)".into(),
+        StopReason::Interrupted => "interrupted; kept the best parameters so far".into(),
+        StopReason::NonFinite { step } => format!(
+            "loss became NaN or infinite at step {step}; kept the last good parameters \
+             (try a smaller --lr)"
+        ),
+    }
+}
+
+fn print_report(label: &str, r: &TrainReport) {
+    println!(
+        "{label}: {} steps x {} samples in {:.2} s = {:.0} samples/s; best validation loss {:.4e} \
+         (epoch {}); {}",
+        r.steps,
+        r.batch,
+        r.seconds,
+        r.samples_per_second(),
+        r.best_val,
+        r.best_epoch.map_or("-".into(), |e| (e + 1).to_string()),
+        stop_text(r.stop)
+    );
+}
 
 /// Run the command.
-pub fn run(_args: Args) -> anyhow::Result<()> {
-    anyhow::bail!("keel fit is not implemented yet")
+pub fn run(args: Args) -> Result<()> {
+    let act = activation(args.activation)?;
+    if !(0.0..1.0).contains(&args.val_fraction) {
+        bail!(
+            "--val-fraction must be in [0, 1), got {}",
+            args.val_fraction
+        );
+    }
+    if let Some(dt) = args.dt {
+        if !(dt.is_finite() && dt > 0.0) {
+            bail!("--dt must be a positive number of seconds, got {dt}");
+        }
+    }
+    let opts = LoadOptions {
+        masses: args.mass.clone(),
+        ..LoadOptions::default()
+    };
+    let all = data::load_csv(&args.data, &opts)?;
+    let (train, val) = match &args.val {
+        Some(path) => {
+            let v = data::load_csv(path, &opts)?;
+            if v.dof != all.dof {
+                bail!(
+                    "{}: {} degrees of freedom, but {} has {}",
+                    path.display(),
+                    v.dof,
+                    args.data.display(),
+                    all.dof
+                );
+            }
+            (all, Some(v))
+        }
+        None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => {
+            let (t, v) = data::split_by_trajectory(&all, args.val_fraction, args.seed);
+            if v.trajectories.is_empty() {
+                (t, None)
+            } else {
+                (t, Some(v))
+            }
+        }
+        None => (all, None),
+    };
+    let choice = ArchChoice {
+        separable: args.arch == ArchArg::Separable,
+        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
+        hidden: args.hidden.clone(),
+        activation: act,
+    };
+    let arch = choice.build(train.dof)?;
+    let method = match (args.integrator, choice.separable) {
+        (None, true) | (Some(IntegratorArg::Verlet), _) => Method::StormerVerlet,
+        (None, false) | (Some(IntegratorArg::Midpoint), _) => Method::ImplicitMidpoint,
+        (Some(IntegratorArg::Yoshida4), _) => Method::Yoshida4,
+        (Some(IntegratorArg::Rk4), _) => Method::Rk4,
+    };
+    if method.needs_separable() && !choice.separable {
+        bail!("--integrator {method:?} needs --arch separable; use --integrator midpoint");
+    }
+    let dt = match args.dt {
+        Some(dt) => dt,
+        None => median_step(&train)
+            .map(|v| v as f32)
+            .context("cannot infer --dt: the log has no two consecutive samples")?,
+    };
+    let integrator = Integrator::new(method, dt);
+    if !integrator.is_valid() {
+        bail!("time step {dt} s is not usable; pass --dt");
+    }
+
+    let interrupt = Arc::new(AtomicBool::new(false));
+    {
+        let flag = interrupt.clone();
+        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
+            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
+        }
+    }
+    let settings = FitSettings {
+        epochs: args.epochs,
+        steps: args.steps,
+        batch: args.batch,
+        lr: args.lr,
+        threads: args.threads.max(1),
+        early_stop: !args.no_early_stop,
+        patience: args.patience,
+        seed: args.seed,
+        quiet: args.quiet,
+        interrupt: Some(interrupt.clone()),
+        ..FitSettings::default()
+    };
+    println!(
+        "fitting {} samples in {} trajectories ({} validation samples), {} parameters",
+        train.samples(),
+        train.trajectories.len(),
+        val.as_ref().map_or(0, Dataset::samples),
+        arch.param_count(train.dof)
+    );
+    let fitted = fit::fit_energy(&train, val.as_ref(), &arch, &settings)?;
+    print_report("energy model", &fitted.report);
+    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, Precision::F32)?;
+    println!(
+        "wrote {} ({bytes} bytes, {method:?}, dt = {dt} s)",
+        args.out.display()
+    );
+    if let Some(path) = &args.history {
+        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
+        crate::atomic::write_atomic(path, &json)
+            .with_context(|| format!("writing history {}", path.display()))?;
+        println!("wrote {}", path.display());
+    }
+    if args.baseline && !interrupt.load(Ordering::SeqCst) {
+        let base = fit::fit_baseline(&train, val.as_ref(), &choice.hidden, act, &settings)?;
+        print_report("baseline", &base.report);
+        let path = baseline_path(&args.out);
+        export::write_baseline(&path, &base.model)?;
+        println!("wrote {}", path.display());
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
 }

@@ -1,1 +1,506 @@
-//! (in progress)
+//! The training loop: seeded minibatches, Adam with warm-up and cosine decay,
+//! gradient clipping, early stopping on the validation loss (best parameters
+//! kept), optional threads with a fixed batch partition and a fixed reduction
+//! order (so a seed gives a bit-identical model for a given thread count),
+//! a progress bar, Ctrl-C and non-finite-loss handling, and the loss history.
+
+use std::io::IsTerminal;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::Instant;
+
+use anyhow::{bail, Result};
+use indicatif::{ProgressBar, ProgressStyle};
+use ndarray::{s, Array2, ArrayView2};
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+use crate::dataset::Dataset;
+use crate::hnn::{
+    BaselineModel, BaselineObjective, EnergyArch, EnergyModel, HnnObjective, KineticArch,
+    Normalization, Objective,
+};
+use crate::net::{Activation, MlpShape};
+
+/// Settings of one training run.
+#[derive(Debug, Clone)]
+pub struct FitSettings {
+    /// Passes over the training data (ignored when `steps` is set).
+    pub epochs: usize,
+    /// Optimizer steps in total; overrides `epochs` when set.
+    pub steps: Option<usize>,
+    /// Samples per minibatch.
+    pub batch: usize,
+    /// Peak learning rate.
+    pub lr: f32,
+    /// Warm-up as a fraction of all steps.
+    pub warmup_fraction: f32,
+    /// Final learning rate as a fraction of the peak.
+    pub lr_floor: f32,
+    /// Gradient global-norm limit.
+    pub clip: f32,
+    /// Worker threads for the loss and gradient (1 = none).
+    pub threads: usize,
+    /// Stop when the validation loss has not improved for `patience` epochs.
+    pub early_stop: bool,
+    /// Epochs without improvement before stopping.
+    pub patience: usize,
+    /// Seed for initialization and shuffling.
+    pub seed: u64,
+    /// Hide the progress bar.
+    pub quiet: bool,
+    /// When set by another thread (Ctrl-C), stop and keep the best so far.
+    pub interrupt: Option<Arc<AtomicBool>>,
+}
+
+impl Default for FitSettings {
+    fn default() -> Self {
+        Self {
+            epochs: 300,
+            steps: None,
+            batch: 256,
+            lr: 3e-3,
+            warmup_fraction: 0.02,
+            lr_floor: 0.01,
+            clip: 10.0,
+            threads: 1,
+            early_stop: true,
+            patience: 60,
+            seed: 0,
+            quiet: false,
+            interrupt: None,
+        }
+    }
+}
+
+/// The structure of an energy model, as chosen on the command line.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ArchChoice {
+    /// Separable E = V(q) + T(p), or general E(q, p).
+    pub separable: bool,
+    /// For separable models: quadratic T (learned inverse mass) or a network.
+    pub quadratic_kinetic: bool,
+    /// Hidden-layer widths.
+    pub hidden: Vec<usize>,
+    /// Hidden-layer activation.
+    pub activation: Activation,
+}
+
+impl Default for ArchChoice {
+    /// Separable with a quadratic kinetic term, 64-64 tanh: the kinetic
+    /// energy of every built-in system is quadratic in p with a constant
+    /// mass matrix, so this structure is exact there, has the fewest
+    /// parameters, and is stepped by explicit Stormer-Verlet on the device.
+    fn default() -> Self {
+        Self {
+            separable: true,
+            quadratic_kinetic: true,
+            hidden: vec![64, 64],
+            activation: Activation::Tanh,
+        }
+    }
+}
+
+impl ArchChoice {
+    /// The network structure for `dof` degrees of freedom.
+    pub fn build(&self, dof: usize) -> Result<EnergyArch> {
+        if self.hidden.len() + 1 > keel_runtime::format::MAX_LAYERS {
+            bail!(
+                "{} hidden layers give {} layers; the runtime allows at most {}",
+                self.hidden.len(),
+                self.hidden.len() + 1,
+                keel_runtime::format::MAX_LAYERS
+            );
+        }
+        if let Some(w) = self.hidden.iter().find(|w| **w == 0 || **w > 128) {
+            bail!("hidden width {w} is outside 1..=128 (the runtime's widest layer)");
+        }
+        if 2 * dof > 128 {
+            bail!("{dof} degrees of freedom is more than the runtime supports");
+        }
+        let a = self.activation;
+        Ok(if self.separable {
+            EnergyArch::Separable {
+                potential: MlpShape::new(dof, &self.hidden, 1, a),
+                kinetic: if self.quadratic_kinetic {
+                    KineticArch::Quadratic
+                } else {
+                    KineticArch::Network(MlpShape::new(dof, &self.hidden, 1, a))
+                },
+            }
+        } else {
+            EnergyArch::General(MlpShape::new(2 * dof, &self.hidden, 1, a))
+        })
+    }
+}
+
+/// Why training ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StopReason {
+    /// All epochs or steps done.
+    Completed,
+    /// No validation improvement for `patience` epochs.
+    EarlyStopped,
+    /// Interrupted (Ctrl-C).
+    Interrupted,
+    /// The loss or gradient became NaN or infinite at this step.
+    NonFinite {
+        /// The 0-based optimizer step.
+        step: usize,
+    },
+}
+
+/// Loss per epoch, for plots.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize)]
+pub struct History {
+    /// Mean minibatch training loss of each epoch.
+    pub train: Vec<f64>,
+    /// Validation loss after each epoch (training loss when there is no
+    /// validation set).
+    pub val: Vec<f64>,
+}
+
+/// What a run did.
+#[derive(Debug, Clone)]
+pub struct TrainReport {
+    /// Loss history.
+    pub history: History,
+    /// Why it ended.
+    pub stop: StopReason,
+    /// Optimizer steps taken.
+    pub steps: usize,
+    /// Samples per step.
+    pub batch: usize,
+    /// Wall time of the loop in seconds.
+    pub seconds: f64,
+    /// Epoch (0-based) whose parameters were kept, if any finished.
+    pub best_epoch: Option<usize>,
+    /// The kept parameters' validation loss.
+    pub best_val: f64,
+}
+
+impl TrainReport {
+    /// Training throughput: steps x batch / wall time.
+    pub fn samples_per_second(&self) -> f64 {
+        (self.steps * self.batch) as f64 / self.seconds.max(1e-9)
+    }
+}
+
+/// A fitted model and how it was fitted.
+#[derive(Debug, Clone)]
+pub struct Fitted<M> {
+    /// The model.
+    pub model: M,
+    /// The run.
+    pub report: TrainReport,
+}
+
+/// Fit an energy model of structure `arch` to `train`, stopping early on
+/// `val` (or on the training loss when `val` is `None`).
+pub fn fit_energy(
+    train: &Dataset,
+    val: Option<&Dataset>,
+    arch: &EnergyArch,
+    settings: &FitSettings,
+) -> Result<Fitted<EnergyModel>> {
+    let quadratic = matches!(
+        arch,
+        EnergyArch::Separable {
+            kinetic: KineticArch::Quadratic,
+            ..
+        }
+    );
+    let norm = Normalization::from_data(train, quadratic)?;
+    let obj = HnnObjective::new(train.dof, arch.clone(), &norm);
+    let init = arch.init(train.dof, settings.seed);
+    let (params, report) = run(&obj, init, &norm, train, val, settings)?;
+    Ok(Fitted {
+        model: EnergyModel {
+            dof: train.dof,
+            arch: arch.clone(),
+            norm,
+            params,
+        },
+        report,
+    })
+}
+
+/// Fit the plain vector-field baseline (same hidden sizes, 2n outputs).
+pub fn fit_baseline(
+    train: &Dataset,
+    val: Option<&Dataset>,
+    hidden: &[usize],
+    activation: Activation,
+    settings: &FitSettings,
+) -> Result<Fitted<BaselineModel>> {
+    let norm = Normalization::from_data(train, false)?;
+    let d = 2 * train.dof;
+    let shape = MlpShape::new(d, hidden, d, activation);
+    let obj = BaselineObjective {
+        shape: shape.clone(),
+    };
+    let mut init = Vec::new();
+    shape.init(&mut ChaCha8Rng::seed_from_u64(settings.seed), &mut init);
+    let (params, report) = run(&obj, init, &norm, train, val, settings)?;
+    Ok(Fitted {
+        model: BaselineModel {
+            dof: train.dof,
+            shape,
+            norm,
+            params,
+        },
+        report,
+    })
+}
+
+/// Per-thread buffers.
+struct Lanes<W> {
+    works: Vec<W>,
+    grads: Vec<Vec<f32>>,
+}
+
+impl<W: Default + Send> Lanes<W> {
+    fn new(threads: usize, params: usize) -> Self {
+        Self {
+            works: (0..threads).map(|_| W::default()).collect(),
+            grads: (0..threads).map(|_| vec![0.0; params]).collect(),
+        }
+    }
+}
+
+/// Sum of per-sample losses over the rows and, with `grad`, the summed
+/// gradient. Rows are split into `threads` contiguous parts at fixed
+/// boundaries and the parts' results are added in part order.
+fn loss_sum_parallel<O: Objective>(
+    obj: &O,
+    p: &[f32],
+    z: ArrayView2<'_, f32>,
+    t: ArrayView2<'_, f32>,
+    lanes: &mut Lanes<O::Work>,
+    grad: Option<&mut [f32]>,
+) -> f64 {
+    let parts = lanes.works.len().min(z.nrows()).max(1);
+    let rows = z.nrows();
+    let want_grad = grad.is_some();
+    let bounds: Vec<(usize, usize)> = (0..parts)
+        .map(|k| (k * rows / parts, (k + 1) * rows / parts))
+        .collect();
+    let mut losses = vec![0.0f64; parts];
+    let run_part = |k: usize, work: &mut O::Work, g: &mut Vec<f32>| -> f64 {
+        let (a, b) = bounds[k];
+        if want_grad {
+            g.iter_mut().for_each(|v| *v = 0.0);
+        }
+        obj.loss_sum(
+            p,
+            z.slice(s![a..b, ..]),
+            t.slice(s![a..b, ..]),
+            work,
+            want_grad.then_some(g.as_mut_slice()),
+        )
+    };
+    if parts == 1 {
+        losses[0] = run_part(0, &mut lanes.works[0], &mut lanes.grads[0]);
+    } else {
+        std::thread::scope(|scope| {
+            let mut handles = Vec::with_capacity(parts - 1);
+            let mut it = lanes
+                .works
+                .iter_mut()
+                .zip(lanes.grads.iter_mut())
+                .take(parts)
+                .enumerate();
+            let (_, (w0, g0)) = it.next().expect("one part");
+            for (k, (w, g)) in it {
+                let f = &run_part;
+                handles.push(scope.spawn(move || f(k, w, g)));
+            }
+            losses[0] = run_part(0, w0, g0);
+            for (k, h) in handles.into_iter().enumerate() {
+                losses[k + 1] = h.join().expect("worker thread panicked");
+            }
+        });
+    }
+    if let Some(grad) = grad {
+        grad.copy_from_slice(&lanes.grads[0]);
+        for g in lanes.grads.iter().take(parts).skip(1) {
+            grad.iter_mut().zip(g).for_each(|(a, b)| *a += b);
+        }
+    }
+    losses.iter().sum()
+}
+
+/// Mean loss over all rows, evaluated in chunks of `chunk` rows.
+fn mean_loss<O: Objective>(
+    obj: &O,
+    p: &[f32],
+    z: &Array2<f32>,
+    t: &Array2<f32>,
+    chunk: usize,
+    lanes: &mut Lanes<O::Work>,
+) -> f64 {
+    let mut total = 0.0;
+    let mut start = 0;
+    while start < z.nrows() {
+        let end = (start + chunk).min(z.nrows());
+        total += loss_sum_parallel(
+            obj,
+            p,
+            z.slice(s![start..end, ..]),
+            t.slice(s![start..end, ..]),
+            lanes,
+            None,
+        );
+        start = end;
+    }
+    total / z.nrows().max(1) as f64
+}
+
+fn progress_bar(total: usize, quiet: bool) -> ProgressBar {
+    if quiet || !std::io::stderr().is_terminal() {
+        return ProgressBar::hidden();
+    }
+    let bar = ProgressBar::new(total as u64);
+    if let Ok(style) = ProgressStyle::with_template("{bar:30} {pos}/{len} steps  {msg}  ETA {eta}")
+    {
+        bar.set_style(style);
+    }
+    bar
+}
+
+/// The loop shared by the energy model and the baseline.
+fn run<O: Objective>(
+    obj: &O,
+    mut params: Vec<f32>,
+    norm: &Normalization,
+    train: &Dataset,
+    val: Option<&Dataset>,
+    s: &FitSettings,
+) -> Result<(Vec<f32>, TrainReport)> {
+    if s.batch == 0 {
+        bail!("batch size must be at least 1");
+    }
+    if !(s.lr.is_finite() && s.lr > 0.0) {
+        bail!("learning rate must be positive, got {}", s.lr);
+    }
+    let threads = s.threads.max(1);
+    let (z, t) = norm.normalize(train);
+    let validation = val.map(|v| norm.normalize(v));
+    let rows = z.nrows();
+    let batch = s.batch.min(rows);
+    let per_epoch = rows.div_ceil(batch);
+    let total = s.steps.unwrap_or(s.epochs * per_epoch).max(1);
+    let epochs = total.div_ceil(per_epoch);
+    let schedule = crate::optim::Schedule {
+        peak: s.lr,
+        warmup: ((total as f32 * s.warmup_fraction) as usize).max(1),
+        total,
+        floor: s.lr_floor,
+    };
+    let np = obj.param_count();
+    let mut adam = crate::optim::Adam::new(np);
+    let mut lanes = Lanes::<O::Work>::new(threads, np);
+    let mut grad = vec![0.0f32; np];
+    let mut zb = Array2::<f32>::zeros((batch, z.ncols()));
+    let mut tb = Array2::<f32>::zeros((batch, t.ncols()));
+    let mut order: Vec<usize> = (0..rows).collect();
+    // A stream apart from the initialization's (which uses `seed` itself).
+    let mut rng = ChaCha8Rng::seed_from_u64(s.seed ^ 0x9e37_79b9_7f4a_7c15);
+    let mut history = History::default();
+    let mut best = params.clone();
+    let mut best_val = f64::INFINITY;
+    let mut best_epoch = None;
+    let mut last_good = params.clone();
+    let mut step = 0usize;
+    let mut stop = StopReason::Completed;
+    let bar = progress_bar(total, s.quiet);
+    let start = Instant::now();
+    'epochs: for epoch in 0..epochs {
+        order.shuffle(&mut rng);
+        let mut epoch_loss = 0.0f64;
+        let mut epoch_batches = 0usize;
+        for idx in order.chunks(batch) {
+            if step >= total {
+                break;
+            }
+            if s.interrupt
+                .as_ref()
+                .is_some_and(|f| f.load(Ordering::SeqCst))
+            {
+                stop = StopReason::Interrupted;
+                break 'epochs;
+            }
+            let b = idx.len();
+            if zb.nrows() != b {
+                zb = Array2::zeros((b, z.ncols()));
+                tb = Array2::zeros((b, t.ncols()));
+            }
+            for (r, &i) in idx.iter().enumerate() {
+                zb.row_mut(r).assign(&z.row(i));
+                tb.row_mut(r).assign(&t.row(i));
+            }
+            let sum = loss_sum_parallel(
+                obj,
+                &params,
+                zb.view(),
+                tb.view(),
+                &mut lanes,
+                Some(&mut grad),
+            );
+            let inv = 1.0 / b as f32;
+            grad.iter_mut().for_each(|g| *g *= inv);
+            let loss = sum / b as f64;
+            let norm = crate::optim::clip_global_norm(&mut grad, s.clip);
+            if !loss.is_finite() || !norm.is_finite() {
+                stop = StopReason::NonFinite { step };
+                params.clone_from(&last_good);
+                break 'epochs;
+            }
+            last_good.clone_from(&params);
+            adam.step(&mut params, &grad, schedule.rate(step));
+            epoch_loss += loss;
+            epoch_batches += 1;
+            step += 1;
+            bar.inc(1);
+        }
+        if epoch_batches == 0 {
+            break;
+        }
+        let train_loss = epoch_loss / epoch_batches as f64;
+        let val_loss = match &validation {
+            Some((zv, tv)) => mean_loss(obj, &params, zv, tv, batch.max(256), &mut lanes),
+            None => train_loss,
+        };
+        history.train.push(train_loss);
+        history.val.push(val_loss);
+        bar.set_message(format!("train {train_loss:.3e}  val {val_loss:.3e}"));
+        if !val_loss.is_finite() {
+            stop = StopReason::NonFinite { step };
+            break;
+        }
+        if val_loss < best_val {
+            best_val = val_loss;
+            best.clone_from(&params);
+            best_epoch = Some(epoch);
+        } else if s.early_stop && best_epoch.is_some_and(|e| epoch - e >= s.patience) {
+            stop = StopReason::EarlyStopped;
+            break;
+        }
+    }
+    bar.finish_and_clear();
+    let seconds = start.elapsed().as_secs_f64();
+    let kept = if best_epoch.is_some() { best } else { params };
+    Ok((
+        kept,
+        TrainReport {
+            history,
+            stop,
+            steps: step,
+            batch,
+            seconds,
+            best_epoch,
+            best_val,
+        },
+    ))
+}

@@ -11,11 +11,21 @@
 //! * [`data`], [`derivative`]: CSV logs in, validated; derivative estimation.
 //! * [`net`], [`hnn`], [`optim`], [`fit`]: the energy network, its loss and
 //!   gradients, the optimizer and the training loop.
-//! * [`export`]: writing runtime blobs.
+//! * [`export`]: writing runtime blobs from fitted models.
+//! * [`blob`]: an owned, editable mirror of a blob (quantization, inspection).
+//! * [`rollout`], [`integrator_args`]: host rollouts through `keel-runtime`.
 //! * `cmd_*`: one module per `keel` subcommand.
 
 pub mod atomic;
+pub mod blob;
+pub mod check;
+pub mod cmd_check;
+pub mod cmd_compare;
+pub mod cmd_export;
 pub mod cmd_fit;
+pub mod cmd_inspect;
+pub mod cmd_rollout;
+pub mod cmd_run;
 pub mod cmd_simulate;
 pub mod data;
 pub mod dataset;
@@ -23,9 +33,14 @@ pub mod derivative;
 pub mod export;
 pub mod fit;
 pub mod hnn;
+pub mod integrator_args;
 pub mod net;
 pub mod optim;
+pub mod project;
+pub mod report;
+pub mod rollout;
 pub mod simulate;
+pub mod svgplot;
 pub mod systems;
 
 /// Printed by every command whose output predicts motion.

@@ -1,0 +1,419 @@
+//! An owned, editable mirror of a `keel-runtime` blob, for the host tools
+//! that read, transform and write blobs (export, quantization, inspection).
+//! Decoding goes through the runtime's own parser and validator, encoding
+//! through its own encoder, so the host never has a second format.
+
+use anyhow::{anyhow, bail, Context, Result};
+use keel_runtime::format::{
+    self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
+    MlpDesc, ModelDesc, WeightsDesc,
+};
+use keel_runtime::{Integrator, Model};
+
+/// Bounds used to validate blobs on the host: the largest the runtime takes.
+pub const HOST_MAX_DOF: usize = keel_runtime::MAX_DOF_SUPPORTED;
+/// Widest layer the host tools accept.
+pub const HOST_MAX_WIDTH: usize = 128;
+/// The model type host tools evaluate.
+pub type HostModel<'a> = Model<'a, HOST_MAX_DOF, HOST_MAX_WIDTH>;
+
+/// Weights of one layer, row-major `[outputs][inputs]`.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Weights {
+    /// Full precision.
+    F32(Vec<f32>),
+    /// Symmetric int8 with one scale per output channel.
+    Int8 {
+        /// Quantized values.
+        values: Vec<i8>,
+        /// Per-output-channel scales.
+        scales: Vec<f32>,
+    },
+}
+
+/// One dense layer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Layer {
+    /// Input width.
+    pub inputs: usize,
+    /// Output width.
+    pub outputs: usize,
+    /// The weights.
+    pub weights: Weights,
+    /// The biases.
+    pub bias: Vec<f32>,
+}
+
+impl Layer {
+    /// The weights as real numbers (dequantized for int8).
+    pub fn real_weights(&self) -> Vec<f32> {
+        match &self.weights {
+            Weights::F32(w) => w.clone(),
+            Weights::Int8 { values, scales } => values
+                .iter()
+                .enumerate()
+                .map(|(k, v)| scales[k / self.inputs] * *v as f32)
+                .collect(),
+        }
+    }
+}
+
+/// A network with a scalar output.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Mlp {
+    /// Hidden activation.
+    pub activation: Activation,
+    /// Layers from input to output.
+    pub layers: Vec<Layer>,
+}
+
+/// The kinetic term of a separable model.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Kinetic {
+    /// Cholesky factor of M^-1, row by row.
+    Quadratic(Vec<f32>),
+    /// A network T(z_p).
+    Network(Mlp),
+}
+
+/// The energy function.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Energy {
+    /// One network over all coordinates.
+    General(Mlp),
+    /// T(p) + V(q).
+    Separable {
+        /// V(z_q).
+        potential: Mlp,
+        /// T(z_p).
+        kinetic: Kinetic,
+    },
+}
+
+/// Everything a blob holds, owned.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BlobModel {
+    /// Degrees of freedom.
+    pub dof: usize,
+    /// Offsets of the 2n coordinates.
+    pub offset: Vec<f32>,
+    /// Scales of the 2n coordinates.
+    pub scale: Vec<f32>,
+    /// Energy scale.
+    pub energy_scale: f32,
+    /// The energy function.
+    pub energy: Energy,
+    /// Integrator settings.
+    pub integrator: Integrator,
+}
+
+/// Precision of stored weight matrices.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, serde::Serialize, serde::Deserialize,
+)]
+#[serde(rename_all = "lowercase")]
+pub enum WeightKind {
+    /// Little-endian f32.
+    F32,
+    /// Symmetric int8 per output channel, f32 scales and biases.
+    Int8,
+}
+
+fn f32s(b: F32Bytes<'_>) -> Vec<f32> {
+    b.iter().collect()
+}
+
+fn le(v: &[f32]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+impl Mlp {
+    fn from_desc(d: &MlpDesc<'_>) -> Self {
+        let layers = d
+            .layers
+            .iter()
+            .map(|l| Layer {
+                inputs: l.inputs as usize,
+                outputs: l.outputs as usize,
+                weights: match l.weights {
+                    WeightsDesc::F32(w) => Weights::F32(f32s(w)),
+                    WeightsDesc::Int8 { values, scales } => Weights::Int8 {
+                        values: values.iter().map(|v| *v as i8).collect(),
+                        scales: f32s(scales),
+                    },
+                },
+                bias: f32s(l.bias),
+            })
+            .collect();
+        Self {
+            activation: d.activation,
+            layers,
+        }
+    }
+
+    /// Weight kind of the first layer (all layers share one in Keel blobs).
+    pub fn weight_kind(&self) -> WeightKind {
+        match self.layers.first().map(|l| &l.weights) {
+            Some(Weights::Int8 { .. }) => WeightKind::Int8,
+            _ => WeightKind::F32,
+        }
+    }
+
+    /// Layer widths `[inputs, hidden.., 1]`.
+    pub fn widths(&self) -> Vec<usize> {
+        let mut w: Vec<usize> = self
+            .layers
+            .first()
+            .map(|l| vec![l.inputs])
+            .unwrap_or_default();
+        w.extend(self.layers.iter().map(|l| l.outputs));
+        w
+    }
+
+    /// This network with every weight matrix stored as `kind`.
+    pub fn converted(&self, kind: WeightKind) -> Self {
+        let layers = self
+            .layers
+            .iter()
+            .map(|l| {
+                let real = l.real_weights();
+                let weights = match kind {
+                    WeightKind::F32 => Weights::F32(real),
+                    WeightKind::Int8 => quantize_rows(&real, l.inputs),
+                };
+                Layer {
+                    weights,
+                    ..l.clone()
+                }
+            })
+            .collect();
+        Self {
+            activation: self.activation,
+            layers,
+        }
+    }
+}
+
+/// Symmetric per-output-channel int8: scale_j = max_i |w_ji| / 127,
+/// q_ji = round(w_ji / scale_j) (common practice for weight quantization).
+pub fn quantize_rows(w: &[f32], inputs: usize) -> Weights {
+    let mut values = Vec::with_capacity(w.len());
+    let mut scales = Vec::new();
+    for row in w.chunks(inputs.max(1)) {
+        let m = row.iter().fold(0.0f32, |a, v| a.max(v.abs()));
+        let s = if m > 0.0 { m / 127.0 } else { 1.0 };
+        scales.push(s);
+        values.extend(
+            row.iter()
+                .map(|v| (v / s).round().clamp(-127.0, 127.0) as i8),
+        );
+    }
+    Weights::Int8 { values, scales }
+}
+
+/// Owned byte buffers a [`ModelDesc`] can borrow from.
+struct Bytes {
+    layers: Vec<(Vec<u8>, Vec<u8>, Vec<u8>)>,
+}
+
+impl Bytes {
+    fn of(m: &Mlp) -> Self {
+        Self {
+            layers: m
+                .layers
+                .iter()
+                .map(|l| match &l.weights {
+                    Weights::F32(w) => (le(w), Vec::new(), le(&l.bias)),
+                    Weights::Int8 { values, scales } => (
+                        values.iter().map(|v| *v as u8).collect(),
+                        le(scales),
+                        le(&l.bias),
+                    ),
+                })
+                .collect(),
+        }
+    }
+
+    fn desc<'a>(&'a self, m: &Mlp) -> Result<MlpDesc<'a>> {
+        let mut layers = heapless::Vec::new();
+        for (l, (w, s, b)) in m.layers.iter().zip(&self.layers) {
+            let weights = match l.weights {
+                Weights::F32(_) => WeightsDesc::F32(F32Bytes(w)),
+                Weights::Int8 { .. } => WeightsDesc::Int8 {
+                    values: w,
+                    scales: F32Bytes(s),
+                },
+            };
+            layers
+                .push(LayerDesc {
+                    inputs: u16::try_from(l.inputs).context("layer too wide")?,
+                    outputs: u16::try_from(l.outputs).context("layer too wide")?,
+                    weights,
+                    bias: F32Bytes(b),
+                })
+                .map_err(|_| anyhow!("more than {} layers", format::MAX_LAYERS))?;
+        }
+        Ok(MlpDesc {
+            activation: m.activation,
+            layers,
+        })
+    }
+}
+
+impl BlobModel {
+    /// Parse and fully validate a blob (with the host's bounds).
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self, keel_runtime::BlobError> {
+        HostModel::from_bytes(bytes)?;
+        let d = format::decode(bytes)?;
+        let energy = match &d.energy {
+            EnergyDesc::General(m) => Energy::General(Mlp::from_desc(m)),
+            EnergyDesc::Separable { potential, kinetic } => Energy::Separable {
+                potential: Mlp::from_desc(potential),
+                kinetic: match kinetic {
+                    KineticDesc::Quadratic { cholesky } => Kinetic::Quadratic(f32s(*cholesky)),
+                    KineticDesc::Network(m) => Kinetic::Network(Mlp::from_desc(m)),
+                },
+            },
+        };
+        Ok(Self {
+            dof: d.dof as usize,
+            offset: f32s(d.offset),
+            scale: f32s(d.scale),
+            energy_scale: d.energy_scale,
+            energy,
+            integrator: d.integrator,
+        })
+    }
+
+    /// Read a blob file, naming the file in errors.
+    pub fn read(path: &std::path::Path) -> Result<Self> {
+        let bytes =
+            std::fs::read(path).with_context(|| format!("{}: cannot read", path.display()))?;
+        Self::from_bytes(&bytes).map_err(|e| anyhow!("{}: {e}", path.display()))
+    }
+
+    /// Encode as a blob; the result is checked by the runtime's parser.
+    pub fn to_bytes(&self) -> Result<Vec<u8>> {
+        let offset = le(&self.offset);
+        let scale = le(&self.scale);
+        let (pb, kb, chol) = match &self.energy {
+            Energy::General(m) => (Bytes::of(m), None, Vec::new()),
+            Energy::Separable { potential, kinetic } => match kinetic {
+                Kinetic::Quadratic(l) => (Bytes::of(potential), None, le(l)),
+                Kinetic::Network(k) => (Bytes::of(potential), Some(Bytes::of(k)), Vec::new()),
+            },
+        };
+        let energy = match &self.energy {
+            Energy::General(m) => EnergyDesc::General(pb.desc(m)?),
+            Energy::Separable { potential, kinetic } => EnergyDesc::Separable {
+                potential: pb.desc(potential)?,
+                kinetic: match (kinetic, &kb) {
+                    (Kinetic::Network(k), Some(kb)) => KineticDesc::Network(kb.desc(k)?),
+                    _ => KineticDesc::Quadratic {
+                        cholesky: F32Bytes(&chol),
+                    },
+                },
+            },
+        };
+        let desc = ModelDesc {
+            dof: u8::try_from(self.dof).context("too many degrees of freedom")?,
+            offset: F32Bytes(&offset),
+            scale: F32Bytes(&scale),
+            energy_scale: self.energy_scale,
+            energy,
+            integrator: self.integrator,
+            dissipation: DissipationDesc::None,
+            input: InputDesc::None,
+        };
+        let room = 64 * 1024 + 16 * (offset.len() + chol.len() + self.parameters());
+        let mut buf = vec![0u8; room];
+        let n = format::encode(&desc, &mut buf).map_err(|e| anyhow!("encoding the blob: {e}"))?;
+        buf.truncate(n);
+        if let Err(e) = HostModel::from_bytes(&buf) {
+            bail!("the encoded blob does not validate: {e}");
+        }
+        Ok(buf)
+    }
+
+    /// The networks, potential (or general) first.
+    pub fn networks(&self) -> Vec<(&'static str, &Mlp)> {
+        match &self.energy {
+            Energy::General(m) => vec![("energy", m)],
+            Energy::Separable { potential, kinetic } => {
+                let mut v = vec![("potential", potential)];
+                if let Kinetic::Network(k) = kinetic {
+                    v.push(("kinetic", k));
+                }
+                v
+            }
+        }
+    }
+
+    /// Number of weights and biases.
+    pub fn parameters(&self) -> usize {
+        let nets: usize = self
+            .networks()
+            .iter()
+            .flat_map(|(_, m)| m.layers.iter())
+            .map(|l| l.inputs * l.outputs + l.outputs)
+            .sum();
+        let chol = match &self.energy {
+            Energy::Separable {
+                kinetic: Kinetic::Quadratic(l),
+                ..
+            } => l.len(),
+            _ => 0,
+        };
+        nets + chol
+    }
+
+    /// Weight storage of the networks.
+    pub fn weight_kind(&self) -> WeightKind {
+        self.networks()
+            .first()
+            .map(|(_, m)| m.weight_kind())
+            .unwrap_or(WeightKind::F32)
+    }
+
+    /// The same model with weights stored as `kind`.
+    pub fn converted(&self, kind: WeightKind) -> Self {
+        let energy = match &self.energy {
+            Energy::General(m) => Energy::General(m.converted(kind)),
+            Energy::Separable { potential, kinetic } => Energy::Separable {
+                potential: potential.converted(kind),
+                kinetic: match kinetic {
+                    Kinetic::Quadratic(l) => Kinetic::Quadratic(l.clone()),
+                    Kinetic::Network(k) => Kinetic::Network(k.converted(kind)),
+                },
+            },
+        };
+        Self {
+            energy,
+            ..self.clone()
+        }
+    }
+
+    /// Short architecture label, e.g. `separable V 1-64-64-1, T quadratic`.
+    pub fn architecture(&self) -> String {
+        let w = |m: &Mlp| {
+            m.widths()
+                .iter()
+                .map(|v| v.to_string())
+                .collect::<Vec<_>>()
+                .join("-")
+        };
+        let act = |m: &Mlp| format!("{:?}", m.activation).to_lowercase();
+        match &self.energy {
+            Energy::General(m) => format!("general H {} {}", w(m), act(m)),
+            Energy::Separable { potential, kinetic } => format!(
+                "separable V {} {}, T {}",
+                w(potential),
+                act(potential),
+                match kinetic {
+                    Kinetic::Quadratic(_) => "quadratic".to_string(),
+                    Kinetic::Network(k) => format!("{} {}", w(k), act(k)),
+                }
+            ),
+        }
+    }
+}

@@ -1,0 +1,179 @@
+//! `keel export`: turn a fitted model into a device blob — choose the weight
+//! storage (f32 or int8) and the integrator — and measure what that costs in
+//! bytes and in accuracy before anything is flashed.
+
+use std::path::PathBuf;
+
+use anyhow::{bail, Result};
+use serde::{Deserialize, Serialize};
+
+use crate::atomic::write_atomic;
+use crate::blob::{BlobModel, HostModel, WeightKind};
+use crate::integrator_args::{method_name, IntegratorArgs};
+use crate::rollout::{roll, sample_states};
+
+/// Arguments of `keel export`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The fitted model (a blob written by `keel fit`).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Weight storage on the device.
+    #[arg(long, value_enum, default_value = "f32")]
+    pub weights: WeightKind,
+    #[command(flatten)]
+    pub integrator: IntegratorArgs,
+    /// Steps of the rollouts that measure the accuracy price.
+    #[arg(long, default_value_t = 10_000)]
+    pub check_steps: usize,
+    /// Number of initial states for those rollouts.
+    #[arg(long, default_value_t = 8)]
+    pub check_states: usize,
+    /// Write the measurements as JSON to this file.
+    #[arg(long)]
+    pub json: Option<PathBuf>,
+    /// Where to write the device blob.
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+/// What an export cost.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct ExportReport {
+    /// Blob size in bytes.
+    pub bytes: usize,
+    /// Learned parameters.
+    pub parameters: usize,
+    /// Bytes per parameter.
+    pub bytes_per_parameter: f64,
+    /// Weight storage.
+    pub weights: WeightKind,
+    /// Integration method.
+    pub integrator: String,
+    /// Time step in seconds.
+    pub dt: f32,
+    /// Substeps per step.
+    pub substeps: u16,
+    /// Multiply-accumulates per gradient.
+    pub macs_per_gradient: u32,
+    /// Multiply-accumulates per step (bound for implicit midpoint).
+    pub macs_per_step: u32,
+    /// Rollout steps used for the accuracy measures.
+    pub check_steps: usize,
+    /// Largest deviation of this blob's rollout from the f32 model's, over
+    /// all states and steps, per coordinate in units of its normalization
+    /// scale (0 when the export is f32 with the same integrator).
+    pub max_state_deviation: f64,
+    /// Largest learned-energy excursion |H(t)-H(0)| / energy scale of the
+    /// f32 model's rollouts.
+    pub energy_drift_reference: f64,
+    /// The same for the exported blob.
+    pub energy_drift_exported: f64,
+    /// Rollouts that stopped with an error (step too large, divergence).
+    pub failed_rollouts: usize,
+}
+
+/// Export `model` as `kind` with `args` overrides, measuring the cost.
+pub fn export(
+    src: &BlobModel,
+    kind: WeightKind,
+    ia: &IntegratorArgs,
+    steps: usize,
+    states: usize,
+) -> Result<(Vec<u8>, ExportReport)> {
+    let mut out = src.converted(kind);
+    out.integrator = ia.apply(src.integrator);
+    let bytes = out.to_bytes()?;
+    let reference_bytes = BlobModel {
+        integrator: out.integrator,
+        ..src.clone()
+    }
+    .to_bytes()?;
+    let exported = HostModel::from_bytes(&bytes).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let reference = HostModel::from_bytes(&reference_bytes).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let mut dev = 0.0f64;
+    let (mut drift_ref, mut drift_exp) = (0.0f64, 0.0f64);
+    let mut failed = 0;
+    for x0 in sample_states(&src.offset, &src.scale, 1.0, states, 0x6b65656c) {
+        let a = roll(&reference, &x0, steps)?;
+        let b = roll(&exported, &x0, steps)?;
+        failed += a.failure.is_some() as usize + b.failure.is_some() as usize;
+        for (sa, sb) in a.states.iter().zip(&b.states) {
+            for ((va, vb), s) in sa.iter().zip(sb).zip(&src.scale) {
+                dev = dev.max(((*va as f64) - (*vb as f64)).abs() / *s as f64);
+            }
+        }
+        drift_ref = drift_ref.max(a.energy_excursion() / src.energy_scale as f64);
+        drift_exp = drift_exp.max(b.energy_excursion() / src.energy_scale as f64);
+    }
+    let cost = exported.cost();
+    let params = out.parameters();
+    let report = ExportReport {
+        bytes: bytes.len(),
+        parameters: params,
+        bytes_per_parameter: bytes.len() as f64 / params.max(1) as f64,
+        weights: kind,
+        integrator: method_name(out.integrator.method).to_string(),
+        dt: out.integrator.dt,
+        substeps: out.integrator.substeps,
+        macs_per_gradient: cost.macs_per_gradient,
+        macs_per_step: cost.macs_per_step,
+        check_steps: steps,
+        max_state_deviation: dev,
+        energy_drift_reference: drift_ref,
+        energy_drift_exported: drift_exp,
+        failed_rollouts: failed,
+    };
+    Ok((bytes, report))
+}
+
+/// Run the command.
+pub fn run(args: Args) -> Result<()> {
+    let src = BlobModel::read(&args.model)?;
+    if args.check_states == 0 {
+        bail!("--check-states must be at least 1");
+    }
+    let (bytes, r) = export(
+        &src,
+        args.weights,
+        &args.integrator,
+        args.check_steps,
+        args.check_states,
+    )?;
+    write_atomic(&args.out, &bytes)?;
+    if let Some(j) = &args.json {
+        write_atomic(j, serde_json::to_string_pretty(&r)?.as_bytes())?;
+    }
+    println!("wrote {} ({} bytes)", args.out.display(), r.bytes);
+    println!(
+        "  weights {:?}, {} parameters, {:.2} bytes/parameter",
+        r.weights, r.parameters, r.bytes_per_parameter
+    );
+    println!(
+        "  integrator {} dt {} s x {} substeps; {} MAC/gradient, {} MAC/step{}",
+        r.integrator,
+        r.dt,
+        r.substeps,
+        r.macs_per_gradient,
+        r.macs_per_step,
+        if r.integrator == "midpoint" {
+            " (at the iteration limit)"
+        } else {
+            ""
+        }
+    );
+    println!(
+        "  accuracy price over {} steps from {} states: max state deviation from the f32 model {:.3e} \
+         (in normalization scales); learned-energy drift {:.3e} (f32) vs {:.3e} (exported), in energy scales",
+        r.check_steps, args.check_states, r.max_state_deviation, r.energy_drift_reference, r.energy_drift_exported
+    );
+    if r.failed_rollouts > 0 {
+        println!(
+            "  warning: {} of {} check rollouts stopped early (step too large or the model left its range)",
+            r.failed_rollouts,
+            2 * args.check_states
+        );
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}

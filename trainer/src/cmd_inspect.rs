@@ -1,0 +1,191 @@
+//! `keel inspect`: what a blob holds and what it costs on a device — format
+//! version, CRC status, architecture, weight storage, bytes per section,
+//! runtime RAM and multiply-accumulates — as a table or JSON.
+
+use std::path::PathBuf;
+
+use anyhow::{anyhow, Context, Result};
+use keel_runtime::format::{self, EnergyDesc, KineticDesc};
+use serde::Serialize;
+
+use crate::blob::{BlobModel, HostModel};
+use crate::integrator_args::method_name;
+
+/// Arguments of `keel inspect`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The blob to inspect.
+    pub file: PathBuf,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Everything `inspect` reports.
+#[derive(Debug, Serialize)]
+pub struct Inspection {
+    /// File size.
+    pub bytes: usize,
+    /// Format version.
+    pub format_version: u16,
+    /// "ok" when the CRC matches.
+    pub crc: String,
+    /// Degrees of freedom.
+    pub dof: usize,
+    /// Architecture label.
+    pub architecture: String,
+    /// Weight storage.
+    pub weights: String,
+    /// Learned parameters.
+    pub parameters: usize,
+    /// Bytes per section, in blob order.
+    pub sections: Vec<(String, usize)>,
+    /// Integrator and its settings.
+    pub integrator: String,
+    /// Time step (s).
+    pub dt: f32,
+    /// Substeps per step.
+    pub substeps: u16,
+    /// Implicit-midpoint iteration limit.
+    pub max_iterations: u16,
+    /// Implicit-midpoint tolerance.
+    pub tolerance: f32,
+    /// Widest layer (sets the runtime's width bound W).
+    pub max_width: usize,
+    /// Runtime RAM estimate in bytes: the `Model` value at the tightest
+    /// bounds (D = dof, W = widest layer) plus network scratch on the stack
+    /// during a gradient. The device check measures the real stack use.
+    pub runtime_ram_bytes: usize,
+    /// Multiply-accumulates of one gradient.
+    pub macs_per_gradient: u32,
+    /// Multiply-accumulates of one step (bound for implicit midpoint).
+    pub macs_per_step: u32,
+}
+
+fn postcard_len<T: Serialize>(v: &T) -> usize {
+    postcard::to_allocvec(v).map(|b| b.len()).unwrap_or(0)
+}
+
+/// Inspect blob bytes.
+pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
+    let (env, _) = format::open(bytes).map_err(|e| anyhow!("{e}"))?;
+    let desc = format::decode(bytes).map_err(|e| anyhow!("{e}"))?;
+    let model = BlobModel::from_bytes(bytes).map_err(|e| anyhow!("{e}"))?;
+    let host = HostModel::from_bytes(bytes).map_err(|e| anyhow!("{e}"))?;
+    let cost = host.cost();
+    let mut sections = vec![("header".to_string(), format::HEADER_LEN)];
+    sections.push((
+        "normalization".into(),
+        1 + postcard_len(&desc.offset) + postcard_len(&desc.scale) + 4,
+    ));
+    match &desc.energy {
+        EnergyDesc::General(m) => sections.push(("energy network".into(), postcard_len(m) + 1)),
+        EnergyDesc::Separable { potential, kinetic } => {
+            sections.push(("potential network".into(), postcard_len(potential) + 1));
+            let name = match kinetic {
+                KineticDesc::Quadratic { .. } => "inverse-mass factor",
+                KineticDesc::Network(_) => "kinetic network",
+            };
+            sections.push((name.into(), postcard_len(kinetic)));
+        }
+    }
+    sections.push(("integrator".into(), postcard_len(&desc.integrator)));
+    sections.push((
+        "reserved terms".into(),
+        postcard_len(&desc.dissipation) + postcard_len(&desc.input),
+    ));
+    sections.push(("crc".into(), format::TRAILER_LEN));
+    let max_width = model
+        .networks()
+        .iter()
+        .flat_map(|(_, m)| m.layers.iter())
+        .map(|l| l.inputs.max(l.outputs))
+        .max()
+        .unwrap_or(1);
+    let n = model.dof;
+    // The host's Model value, less the unused tail of its four [f32; D]
+    // arrays, plus the runtime's stack scratch at this model's width.
+    let model_value =
+        core::mem::size_of::<HostModel<'static>>() - 16 * (crate::blob::HOST_MAX_DOF - n);
+    let scratch = (format::MAX_LAYERS + 4) * max_width * 4;
+    let it = model.integrator;
+    Ok(Inspection {
+        bytes: bytes.len(),
+        format_version: env.version,
+        crc: "ok".into(),
+        dof: n,
+        architecture: model.architecture(),
+        weights: format!("{:?}", model.weight_kind()).to_lowercase(),
+        parameters: model.parameters(),
+        sections,
+        integrator: method_name(it.method).into(),
+        dt: it.dt,
+        substeps: it.substeps,
+        max_iterations: it.max_iterations,
+        tolerance: it.tolerance,
+        max_width,
+        runtime_ram_bytes: model_value + scratch,
+        macs_per_gradient: cost.macs_per_gradient,
+        macs_per_step: cost.macs_per_step,
+    })
+}
+
+/// Run the command.
+pub fn run(args: Args) -> Result<()> {
+    let bytes = std::fs::read(&args.file)
+        .with_context(|| format!("{}: cannot read", args.file.display()))?;
+    let r = inspect(&bytes).map_err(|e| anyhow!("{}: {e}", args.file.display()))?;
+    if args.json {
+        println!("{}", serde_json::to_string_pretty(&r)?);
+        return Ok(());
+    }
+    println!("{}", args.file.display());
+    let row = |k: &str, v: String| println!("  {k:<22} {v}");
+    row("format version", r.format_version.to_string());
+    row("crc-32", r.crc.clone());
+    row("size", format!("{} bytes", r.bytes));
+    row("degrees of freedom", r.dof.to_string());
+    row("architecture", r.architecture.clone());
+    row("weights", r.weights.clone());
+    row(
+        "parameters",
+        format!(
+            "{} ({:.2} bytes each)",
+            r.parameters,
+            r.bytes as f64 / r.parameters.max(1) as f64
+        ),
+    );
+    for (name, b) in &r.sections {
+        row(&format!("  {name}"), format!("{b} bytes"));
+    }
+    let it = if r.integrator == "midpoint" {
+        format!(
+            "{} dt {} s x {} substeps, <= {} iterations, tol {:e}",
+            r.integrator, r.dt, r.substeps, r.max_iterations, r.tolerance
+        )
+    } else {
+        format!("{} dt {} s x {} substeps", r.integrator, r.dt, r.substeps)
+    };
+    row("integrator", it);
+    row(
+        "runtime RAM",
+        format!(
+            "~{} bytes (model value + stack scratch at W = {})",
+            r.runtime_ram_bytes, r.max_width
+        ),
+    );
+    row("MAC per gradient", r.macs_per_gradient.to_string());
+    row(
+        "MAC per step",
+        format!(
+            "{}{}",
+            r.macs_per_step,
+            if r.integrator == "midpoint" {
+                " (at the iteration limit)"
+            } else {
+                ""
+            }
+        ),
+    );
+    Ok(())
+}

@@ -1,0 +1,344 @@
+//! The project file `keel.toml`: a rig described once — data, model, fitting,
+//! export targets and device budget — so `keel run DIR` can redo the whole
+//! path after every new log. Unknown keys are errors with their line; every
+//! key has a default, documented here and in the README.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{anyhow, Context, Result};
+use serde::{Deserialize, Serialize};
+
+use crate::blob::WeightKind;
+use crate::integrator_args::MethodArg;
+
+/// The whole project file.
+#[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct Project {
+    /// Free text shown in the report's title (default: the folder name).
+    pub name: Option<String>,
+    /// Where the motion logs are and how to read them.
+    pub data: DataSection,
+    /// The energy network.
+    pub model: ModelSection,
+    /// Fitting settings.
+    pub fit: FitSection,
+    /// Rollout checks.
+    pub check: CheckSection,
+    /// Device blobs to produce (default: one f32 blob with the model's
+    /// integrator).
+    #[serde(rename = "export")]
+    pub exports: Vec<ExportTarget>,
+    /// The device's resources, to judge the blobs against.
+    pub device: DeviceBudget,
+}
+
+/// `[data]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct DataSection {
+    /// Training log, relative to the project folder (default `data/train.csv`).
+    pub train: PathBuf,
+    /// Separate validation log (default: none; trajectories are held out).
+    pub validation: Option<PathBuf>,
+    /// Fraction of trajectories held out when there is no validation log
+    /// (default 0.2).
+    pub val_fraction: f64,
+    /// Masses m1..mn when the log has velocity columns `v1..vn` (p = m v).
+    pub masses: Option<Vec<f64>>,
+    /// Allowed deviation of a sampling interval from the median, as a
+    /// fraction (default 0.01).
+    pub step_tolerance: f64,
+}
+
+impl Default for DataSection {
+    fn default() -> Self {
+        Self {
+            train: PathBuf::from("data/train.csv"),
+            validation: None,
+            val_fraction: 0.2,
+            masses: None,
+            step_tolerance: 0.01,
+        }
+    }
+}
+
+/// Energy structure.
+#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum Arch {
+    /// H = T(p) + V(q).
+    Separable,
+    /// H(q, p).
+    General,
+}
+
+/// Kinetic term of a separable model.
+#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum KineticKind {
+    /// 1/2 p^T M^-1 p with a learned constant M^-1.
+    Quadratic,
+    /// A network T(p).
+    Network,
+}
+
+/// Hidden activation.
+#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum ActivationName {
+    /// tanh (default).
+    Tanh,
+    /// softplus.
+    Softplus,
+    /// Refused, with the reason.
+    Relu,
+}
+
+/// `[model]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct ModelSection {
+    /// `separable` (default) or `general`.
+    pub arch: Arch,
+    /// `quadratic` (default) or `network`.
+    pub kinetic: KineticKind,
+    /// Hidden widths (default `[64, 64]`).
+    pub hidden: Vec<usize>,
+    /// `tanh` (default) or `softplus`.
+    pub activation: ActivationName,
+    /// Integration method stored in the fitted model (default: `verlet` for
+    /// separable, `midpoint` for general).
+    pub integrator: Option<MethodArg>,
+    /// Time step in seconds (default: the log's median sampling interval).
+    pub dt: Option<f32>,
+}
+
+impl Default for ModelSection {
+    fn default() -> Self {
+        Self {
+            arch: Arch::Separable,
+            kinetic: KineticKind::Quadratic,
+            hidden: vec![64, 64],
+            activation: ActivationName::Tanh,
+            integrator: None,
+            dt: None,
+        }
+    }
+}
+
+/// `[fit]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct FitSection {
+    /// Passes over the data (default 300).
+    pub epochs: usize,
+    /// Minibatch size (default 256).
+    pub batch: usize,
+    /// Peak learning rate (default 0.003).
+    pub lr: f32,
+    /// Early-stopping patience in epochs (default 60).
+    pub patience: usize,
+    /// Seed (default 0).
+    pub seed: u64,
+    /// Worker threads (default 1; results are reproducible per count).
+    pub threads: usize,
+    /// Also fit the plain vector-field baseline (default true).
+    pub baseline: bool,
+}
+
+impl Default for FitSection {
+    fn default() -> Self {
+        Self {
+            epochs: 300,
+            batch: 256,
+            lr: 3e-3,
+            patience: 60,
+            seed: 0,
+            threads: 1,
+            baseline: true,
+        }
+    }
+}
+
+/// `[check]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct CheckSection {
+    /// Steps of the long-horizon rollouts (default 10000).
+    pub horizon_steps: usize,
+    /// Steps of the golden rollouts kept for the device check (default 10000).
+    pub golden_steps: usize,
+    /// Number of golden initial states (default 2).
+    pub golden_states: usize,
+    /// Built-in system the data came from, to report true-energy drift
+    /// (default: none; only for simulated data).
+    pub reference_system: Option<String>,
+    /// Parameters of that system (default: its defaults).
+    pub reference_params: std::collections::BTreeMap<String, f64>,
+}
+
+impl Default for CheckSection {
+    fn default() -> Self {
+        Self {
+            horizon_steps: 10_000,
+            golden_steps: 10_000,
+            golden_states: 2,
+            reference_system: None,
+            reference_params: Default::default(),
+        }
+    }
+}
+
+/// One `[[export]]` table.
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields)]
+pub struct ExportTarget {
+    /// File stem of the blob in `out/` (required).
+    pub name: String,
+    /// `f32` (default) or `int8`.
+    #[serde(default = "default_weights")]
+    pub weights: WeightKind,
+    /// Method (default: the model's).
+    #[serde(default)]
+    pub integrator: Option<MethodArg>,
+    /// Time step in seconds (default: the model's).
+    #[serde(default)]
+    pub dt: Option<f32>,
+    /// Substeps (default: the model's).
+    #[serde(default)]
+    pub substeps: Option<u16>,
+}
+
+fn default_weights() -> WeightKind {
+    WeightKind::F32
+}
+
+/// `[device]`: zero means "not set" (the check is skipped).
+#[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct DeviceBudget {
+    /// Flash available for the blob, bytes.
+    pub flash_bytes: u64,
+    /// RAM available to the runtime, bytes.
+    pub ram_bytes: u64,
+    /// Core clock, Hz.
+    pub clock_hz: u64,
+    /// Control period the step must fit in, seconds.
+    pub control_period_s: f64,
+    /// Cycles per multiply-accumulate assumed for the timing estimate
+    /// (default 0 = use 4, a Cortex-M4F-class figure from the device check's
+    /// instruction counts; measure your board).
+    pub cycles_per_mac: f64,
+}
+
+impl Project {
+    /// Read `dir/keel.toml`. Errors name the file, line and key.
+    pub fn load(dir: &Path) -> Result<Self> {
+        let path = dir.join("keel.toml");
+        let text = std::fs::read_to_string(&path)
+            .with_context(|| format!("{}: cannot read", path.display()))?;
+        Self::parse(&text).map_err(|e| anyhow!("{}: {e}", path.display()))
+    }
+
+    /// Parse project text. The error's first line names line and column.
+    pub fn parse(text: &str) -> Result<Self> {
+        let p: Project = toml::from_str(text).map_err(|e| {
+            let at = e
+                .span()
+                .map(|s| {
+                    let line = text[..s.start.min(text.len())].matches('\n').count() + 1;
+                    format!("line {line}: ")
+                })
+                .unwrap_or_default();
+            anyhow!("{at}{}", e.message())
+        })?;
+        p.validate()?;
+        Ok(p)
+    }
+
+    fn validate(&self) -> Result<()> {
+        let d = &self.data;
+        if !(0.0..1.0).contains(&d.val_fraction) {
+            anyhow::bail!("[data] val_fraction must be in [0, 1)");
+        }
+        if self.model.activation == ActivationName::Relu {
+            anyhow::bail!(
+                "[model] activation = \"relu\" is refused: ReLU's derivative is piecewise constant, so the \
+                 learned vector field would be discontinuous; use \"tanh\" or \"softplus\""
+            );
+        }
+        let mut names = std::collections::HashSet::new();
+        for e in &self.exports {
+            if e.name.is_empty() || e.name.contains(['/', '\\', '.']) {
+                anyhow::bail!("[[export]] name '{}' must be a plain file stem", e.name);
+            }
+            if !names.insert(&e.name) {
+                anyhow::bail!("[[export]] name '{}' is used twice", e.name);
+            }
+        }
+        if self.fit.epochs == 0 || self.fit.batch == 0 || self.fit.threads == 0 {
+            anyhow::bail!("[fit] epochs, batch and threads must be at least 1");
+        }
+        Ok(())
+    }
+
+    /// Export targets, with the default when none are given.
+    pub fn export_targets(&self) -> Vec<ExportTarget> {
+        if self.exports.is_empty() {
+            vec![ExportTarget {
+                name: "device-f32".into(),
+                weights: WeightKind::F32,
+                integrator: None,
+                dt: None,
+                substeps: None,
+            }]
+        } else {
+            self.exports.clone()
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn defaults_and_a_full_file() {
+        let p = Project::parse("").unwrap();
+        assert_eq!(p, Project::default());
+        assert_eq!(p.export_targets().len(), 1);
+        let text = r#"
+name = "rig"
+[data]
+train = "logs/a.csv"
+masses = [2.0]
+[model]
+arch = "general"
+hidden = [32, 32]
+integrator = "midpoint"
+[fit]
+epochs = 10
+[[export]]
+name = "m-int8"
+weights = "int8"
+dt = 0.002
+[device]
+flash_bytes = 65536
+"#;
+        let p = Project::parse(text).unwrap();
+        assert_eq!(p.model.arch, Arch::General);
+        assert_eq!(p.exports[0].weights, WeightKind::Int8);
+        assert_eq!(p.model.integrator, Some(MethodArg::Midpoint));
+    }
+
+    #[test]
+    fn unknown_keys_name_their_line() {
+        let err =
+            Project::parse("[data]\ntrain = \"a.csv\"\n\n[model]\nhiden = [8]\n").unwrap_err();
+        let msg = err.to_string();
+        assert!(msg.starts_with("line 5:") && msg.contains("hiden"), "{msg}");
+        let err = Project::parse("[model]\nactivation = \"relu\"\n").unwrap_err();
+        assert!(err.to_string().contains("piecewise constant"));
+    }
+}

@@ -1,0 +1,418 @@
+//! The practitioner's report of `keel run`: one serializable [`RunReport`]
+//! (written as `report.json`) and its rendering as a self-contained HTML page
+//! with inline SVG charts — no scripts, no network. Every number on the page
+//! is printed through [`Html::num`], tagged with its JSON path, so a test can
+//! prove the page shows exactly what `report.json` holds.
+
+use serde::Serialize;
+use serde_json::Value;
+
+use crate::check::CheckReport;
+use crate::cmd_export::ExportReport;
+use crate::project::DeviceBudget;
+
+/// Per-coordinate data summary.
+#[derive(Debug, Clone, Serialize)]
+pub struct CoordinateSummary {
+    /// Column name (q1, p1, ...).
+    pub name: String,
+    /// Smallest value.
+    pub min: f64,
+    /// Largest value.
+    pub max: f64,
+    /// Root mean square.
+    pub rms: f64,
+    /// Estimated measurement noise (standard deviation).
+    pub noise: f64,
+}
+
+/// What the data looked like.
+#[derive(Debug, Clone, Serialize)]
+pub struct DataSummary {
+    /// Training log path as given in keel.toml.
+    pub train_file: String,
+    /// Degrees of freedom.
+    pub dof: usize,
+    /// Training trajectories.
+    pub train_trajectories: usize,
+    /// Training samples.
+    pub train_samples: usize,
+    /// Validation trajectories.
+    pub validation_trajectories: usize,
+    /// Validation samples.
+    pub validation_samples: usize,
+    /// Median sampling interval (s).
+    pub sample_interval_s: f64,
+    /// "given" or "estimated (Savitzky-Golay)".
+    pub derivatives: String,
+    /// Per coordinate.
+    pub coordinates: Vec<CoordinateSummary>,
+}
+
+/// One fitting run.
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
+pub struct FitSummary {
+    /// Learned parameters.
+    pub parameters: usize,
+    /// Optimizer steps.
+    pub steps: usize,
+    /// Best validation loss.
+    pub best_validation_loss: f64,
+    /// Epoch of the kept parameters (1-based).
+    pub best_epoch: usize,
+    /// Why it stopped.
+    pub stop: String,
+    /// Wall time (s).
+    pub seconds: f64,
+    /// Throughput.
+    pub samples_per_second: f64,
+    /// Training loss per epoch.
+    pub train_loss: Vec<f64>,
+    /// Validation loss per epoch.
+    pub validation_loss: Vec<f64>,
+    /// Whether this run was reused from a previous `keel run`.
+    pub reused: bool,
+}
+
+/// Pass/fail of one blob against the device budget.
+#[derive(Debug, Clone, Serialize)]
+pub struct BudgetVerdict {
+    /// Blob fits the flash budget (None when not set).
+    pub flash_ok: Option<bool>,
+    /// Runtime RAM fits (None when not set).
+    pub ram_ok: Option<bool>,
+    /// Estimated step time (s) from MAC/step x cycles per MAC / clock.
+    pub step_time_s: Option<f64>,
+    /// Step fits the control period (None when not set).
+    pub time_ok: Option<bool>,
+    /// Overall.
+    pub pass: bool,
+    /// What to change when it fails.
+    pub advice: Vec<String>,
+}
+
+/// One device blob.
+#[derive(Debug, Clone, Serialize)]
+pub struct DeviceBlob {
+    /// Target name.
+    pub name: String,
+    /// File in out/.
+    pub file: String,
+    /// Export measurements.
+    pub export: ExportReport,
+    /// Runtime RAM estimate (bytes).
+    pub ram_bytes: usize,
+    /// Emulator instructions per step, from the last device check, if run.
+    pub emulator_instructions_per_step: Option<f64>,
+    /// Golden rollout files for the device check.
+    pub golden: Vec<String>,
+    /// Budget verdict.
+    pub budget: BudgetVerdict,
+}
+
+/// Everything `keel run` found.
+#[derive(Debug, Clone, Serialize)]
+pub struct RunReport {
+    /// Project name.
+    pub project: String,
+    /// Keel version.
+    pub keel_version: String,
+    /// Model architecture.
+    pub architecture: String,
+    /// Data.
+    pub data: DataSummary,
+    /// The energy model's fit.
+    pub fit: FitSummary,
+    /// The baseline's fit.
+    pub baseline_fit: Option<FitSummary>,
+    /// Model vs baseline on the validation trajectories.
+    pub check: CheckReport,
+    /// Device blobs.
+    pub devices: Vec<DeviceBlob>,
+    /// The budget judged against.
+    pub budget: DeviceBudget,
+    /// All blobs pass the budget.
+    pub budget_pass: bool,
+    /// The safety caution.
+    pub caution: String,
+}
+
+/// The one formatting of numbers shared by the page and the consistency test.
+pub fn fmt_num(v: &Value) -> String {
+    match v {
+        Value::Number(n) => {
+            if let Some(i) = n.as_i64() {
+                i.to_string()
+            } else if let Some(u) = n.as_u64() {
+                u.to_string()
+            } else {
+                let f = n.as_f64().unwrap_or(f64::NAN);
+                if f != 0.0 && (f.abs() < 1e-2 || f.abs() >= 1e5) {
+                    format!("{f:.3e}")
+                } else {
+                    format!("{f:.4}")
+                }
+            }
+        }
+        Value::Null => "-".into(),
+        Value::Bool(b) => if *b { "yes" } else { "no" }.into(),
+        Value::String(s) => s.clone(),
+        other => other.to_string(),
+    }
+}
+
+/// Look up a `/`-separated path in JSON.
+pub fn lookup<'v>(root: &'v Value, path: &str) -> Option<&'v Value> {
+    root.pointer(&format!("/{path}"))
+}
+
+/// HTML builder that tags every number with its JSON path.
+pub struct Html<'a> {
+    json: &'a Value,
+    /// The page so far.
+    pub out: String,
+}
+
+fn esc(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+}
+
+impl<'a> Html<'a> {
+    /// A value from the report, tagged with its path.
+    pub fn num(&self, path: &str) -> String {
+        let v = lookup(self.json, path).cloned().unwrap_or(Value::Null);
+        format!(r#"<span data-k="{path}">{}</span>"#, esc(&fmt_num(&v)))
+    }
+
+    fn p(&mut self, s: &str) {
+        self.out.push_str(s);
+        self.out.push('\n');
+    }
+}
+
+const STYLE: &str = "body{font-family:sans-serif;max-width:980px;margin:2em auto;padding:0 1em;color:#111;line-height:1.4}\
+table{border-collapse:collapse;margin:.6em 0}td,th{border:1px solid #bbb;padding:.25em .6em;text-align:right}\
+th{background:#f0f0f0}td:first-child,th:first-child{text-align:left}.caution{border:2px solid #D55E00;padding:.6em 1em;background:#fff6ef}\
+.pass{color:#006b3c;font-weight:bold}.fail{color:#b00020;font-weight:bold}figure{margin:1em 0}figcaption{font-size:.9em;color:#333}\
+.note{font-size:.9em;color:#333}";
+
+/// Render the page. `charts` are (caption, svg) pairs.
+pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
+    let json = serde_json::to_value(report).unwrap_or(Value::Null);
+    let mut h = Html {
+        json: &json,
+        out: String::new(),
+    };
+    h.p("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">");
+    h.p(&format!(
+        "<title>Keel report: {}</title><style>{STYLE}</style></head><body>",
+        esc(&report.project)
+    ));
+    h.p(&format!("<h1>Keel report: {}</h1>", esc(&report.project)));
+    h.p(&format!(
+        "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+        esc(&report.caution)
+    ));
+    let verdict = if report.budget_pass {
+        "<span class=\"pass\">PASS</span>"
+    } else {
+        "<span class=\"fail\">FAIL</span>"
+    };
+    h.p(&format!(
+        "<p>Model: {}. Device budget: {verdict} (details in <a href=\"#device\">Device blobs</a>).</p>",
+        h.num("architecture")
+    ));
+
+    // Data.
+    h.p("<h2>Data</h2>");
+    let rows = [
+        ("training log", "data/train_file"),
+        ("degrees of freedom", "data/dof"),
+        ("training trajectories", "data/train_trajectories"),
+        ("training samples", "data/train_samples"),
+        ("validation trajectories", "data/validation_trajectories"),
+        ("validation samples", "data/validation_samples"),
+        ("sampling interval (s)", "data/sample_interval_s"),
+        ("time derivatives", "data/derivatives"),
+    ];
+    h.p("<table>");
+    for (k, path) in rows {
+        let cell = h.num(path);
+        h.p(&format!("<tr><td>{k}</td><td>{cell}</td></tr>"));
+    }
+    h.p("</table><table><tr><th>coordinate</th><th>min</th><th>max</th><th>RMS</th><th>estimated noise (std)</th></tr>");
+    for i in 0..report.data.coordinates.len() {
+        let c = |f: &str| h.num(&format!("data/coordinates/{i}/{f}"));
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            c("name"),
+            c("min"),
+            c("max"),
+            c("rms"),
+            c("noise")
+        );
+        h.p(&row);
+    }
+    h.p("</table><p class=\"note\">Noise is estimated from second differences of each coordinate (for white noise of standard deviation s, the second difference has variance 6 s<sup>2</sup>; smooth motion adds little when sampled finely).</p>");
+
+    // Fit.
+    h.p("<h2>Fit</h2><table><tr><th></th><th>energy model</th><th>baseline</th></tr>");
+    for (k, f) in [
+        ("parameters", "parameters"),
+        ("optimizer steps", "steps"),
+        ("best validation loss", "best_validation_loss"),
+        ("best epoch", "best_epoch"),
+        ("stopped because", "stop"),
+        ("wall time (s)", "seconds"),
+        ("samples/s", "samples_per_second"),
+        ("reused from the last run", "reused"),
+    ] {
+        let a = h.num(&format!("fit/{f}"));
+        let b = if report.baseline_fit.is_some() {
+            h.num(&format!("baseline_fit/{f}"))
+        } else {
+            "-".into()
+        };
+        h.p(&format!("<tr><td>{k}</td><td>{a}</td><td>{b}</td></tr>"));
+    }
+    h.p("</table>");
+
+    // Check.
+    let energy = if report.check.system.is_some() {
+        "true-energy drift"
+    } else {
+        "learned-energy drift"
+    };
+    let ek = if report.check.system.is_some() {
+        "true_energy_drift"
+    } else {
+        "learned_energy_drift"
+    };
+    h.p("<h2>Energy model versus plain baseline</h2>");
+    h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value). Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon{}.</p>",
+        h.num("check/integrator"),
+        if report.check.system.is_some() { " of the true energy of the reference system" } else { " of the learned energy, over its spread on the data" }));
+    h.p(&format!("<table><tr><th>trajectory</th><th>vector-field error, model</th><th>baseline</th><th>state error, model</th><th>baseline</th><th>{energy}, model</th><th>baseline</th></tr>"));
+    for i in 0..report.check.trajectories.len() {
+        let t = |f: &str| h.num(&format!("check/trajectories/{i}/{f}"));
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            t("id"),
+            t("model/vector_field_rel_rmse"),
+            t("baseline/vector_field_rel_rmse"),
+            t("model/state_rel_rmse"),
+            t("baseline/state_rel_rmse"),
+            t(&format!("model/{ek}")),
+            t(&format!("baseline/{ek}")),
+        );
+        h.p(&row);
+    }
+    let m = |f: &str| h.num(&format!("check/median_model/{f}"));
+    let b = |f: &str| h.num(&format!("check/median_baseline/{f}"));
+    let row = format!(
+        "<tr><th>median</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th></tr></table>",
+        m("vector_field_rel_rmse"),
+        b("vector_field_rel_rmse"),
+        m("state_rel_rmse"),
+        b("state_rel_rmse"),
+        m(ek),
+        b(ek)
+    );
+    h.p(&row);
+    h.p("<p class=\"note\">How to read it: the energy model should match or beat the baseline on vector-field and state error, and its energy drift should stay small and bounded while the baseline's grows. A large state error with a small energy drift usually means a phase error (slightly wrong frequency), which grows linearly with time.</p>");
+    for (caption, svg) in charts {
+        h.p(&format!(
+            "<figure>{svg}<figcaption>{}</figcaption></figure>",
+            esc(caption)
+        ));
+    }
+
+    // Devices.
+    h.p("<h2 id=\"device\">Device blobs</h2><table><tr><th>blob</th><th>weights</th><th>integrator</th><th>dt (s)</th><th>bytes</th><th>bytes/parameter</th><th>runtime RAM (bytes)</th><th>MAC/step</th><th>emulator instructions/step</th><th>est. step time (s)</th><th>budget</th></tr>");
+    for i in 0..report.devices.len() {
+        let d = |f: &str| h.num(&format!("devices/{i}/{f}"));
+        let pass = if report.devices[i].budget.pass {
+            "<span class=\"pass\">pass</span>"
+        } else {
+            "<span class=\"fail\">fail</span>"
+        };
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{pass}</td></tr>",
+            d("name"),
+            d("export/weights"),
+            d("export/integrator"),
+            d("export/dt"),
+            d("export/bytes"),
+            d("export/bytes_per_parameter"),
+            d("ram_bytes"),
+            d("export/macs_per_step"),
+            d("emulator_instructions_per_step"),
+            d("budget/step_time_s"),
+        );
+        h.p(&row);
+    }
+    h.p("</table><h3>Quantization and integrator cost</h3><table><tr><th>blob</th><th>max state deviation from the f32 model (normalization scales)</th><th>learned-energy drift, f32 model</th><th>this blob</th><th>failed check rollouts</th></tr>");
+    for i in 0..report.devices.len() {
+        let d = |f: &str| h.num(&format!("devices/{i}/{f}"));
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            d("name"),
+            d("export/max_state_deviation"),
+            d("export/energy_drift_reference"),
+            d("export/energy_drift_exported"),
+            d("export/failed_rollouts"),
+        );
+        h.p(&row);
+    }
+    h.p("</table>");
+    h.p(&format!(
+        "<p>Budget: flash {} bytes, RAM {} bytes, clock {} Hz, control period {} s, {} cycles per multiply-accumulate assumed (0 = not set). Emulator instructions are counted by QEMU and are not cycles; measure on the board.</p>",
+        h.num("budget/flash_bytes"),
+        h.num("budget/ram_bytes"),
+        h.num("budget/clock_hz"),
+        h.num("budget/control_period_s"),
+        h.num("budget/cycles_per_mac"),
+    ));
+    for d in &report.devices {
+        for a in &d.budget.advice {
+            h.p(&format!(
+                "<p class=\"fail\">{}: {}</p>",
+                esc(&d.name),
+                esc(a)
+            ));
+        }
+    }
+    h.p(&format!(
+        "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+        esc(&report.caution)
+    ));
+    h.p(&format!(
+        "<p class=\"note\">Keel {}.</p></body></html>",
+        h.num("keel_version")
+    ));
+    h.out
+}
+
+/// Every `data-k` tag in a page with the text it shows (for tests).
+pub fn tagged_values(html: &str) -> Vec<(String, String)> {
+    let mut out = Vec::new();
+    let mut rest = html;
+    while let Some(i) = rest.find("<span data-k=\"") {
+        rest = &rest[i + 14..];
+        let Some(q) = rest.find('"') else { break };
+        let key = rest[..q].to_string();
+        let Some(gt) = rest.find('>') else { break };
+        let Some(end) = rest.find("</span>") else {
+            break;
+        };
+        let text = rest[gt + 1..end]
+            .replace("&lt;", "<")
+            .replace("&gt;", ">")
+            .replace("&amp;", "&");
+        out.push((key, text));
+        rest = &rest[end..];
+    }
+    out
+}

@@ -1,0 +1,133 @@
+//! Host rollouts through `keel-runtime`, the very arithmetic the device
+//! runs, plus the helpers around them: parsing initial states, sampling
+//! test states inside a model's normalization range, and drift measures.
+
+use anyhow::{bail, Context, Result};
+use keel_runtime::{Hamiltonian, State, StepError};
+use rand::{Rng, SeedableRng};
+
+use crate::blob::{HostModel, HOST_MAX_DOF};
+
+/// A trajectory computed on the host.
+#[derive(Debug, Clone)]
+pub struct Rollout {
+    /// States (q1..qn, p1..pn), the initial state first.
+    pub states: Vec<Vec<f32>>,
+    /// Learned energy at each state.
+    pub energy: Vec<f32>,
+    /// Step index and error, when the rollout stopped early.
+    pub failure: Option<(usize, StepError)>,
+}
+
+impl Rollout {
+    /// Largest |H(t) - H(0)| of the learned energy.
+    pub fn energy_excursion(&self) -> f64 {
+        let e0 = self.energy.first().copied().unwrap_or(0.0) as f64;
+        self.energy
+            .iter()
+            .map(|e| (*e as f64 - e0).abs())
+            .fold(0.0, f64::max)
+    }
+}
+
+/// A runtime state from a flat (q, p) vector.
+pub fn state_of(x: &[f32]) -> Result<State<HOST_MAX_DOF>> {
+    let n = x.len() / 2;
+    State::new(&x[..n], &x[n..2 * n]).map_err(|e| anyhow::anyhow!("bad state: {e}"))
+}
+
+/// Step `model` `steps` times from `x0`, stopping at the first error.
+pub fn roll(model: &HostModel<'_>, x0: &[f32], steps: usize) -> Result<Rollout> {
+    let mut s = state_of(x0)?;
+    let n = s.dof();
+    let flat = |s: &State<HOST_MAX_DOF>| {
+        let mut v = s.q().to_vec();
+        v.extend_from_slice(s.p());
+        v
+    };
+    let mut out = Rollout {
+        states: vec![flat(&s)],
+        energy: vec![model.energy(&s).map_err(|e| anyhow::anyhow!("{e}"))?],
+        failure: None,
+    };
+    out.states.reserve(steps);
+    for k in 0..steps {
+        if let Err(e) = model.step(&mut s) {
+            out.failure = Some((k, e));
+            break;
+        }
+        debug_assert_eq!(s.dof(), n);
+        out.states.push(flat(&s));
+        out.energy.push(model.energy(&s).unwrap_or(f32::NAN));
+    }
+    Ok(out)
+}
+
+/// Parse `q1=0.1,p1=0` (every coordinate named once) for `dof` degrees of
+/// freedom.
+pub fn parse_init(spec: &str, dof: usize) -> Result<Vec<f32>> {
+    let mut x = vec![None; 2 * dof];
+    for part in spec.split(',').map(str::trim).filter(|s| !s.is_empty()) {
+        let (name, value) = part
+            .split_once('=')
+            .with_context(|| format!("--init: '{part}' is not NAME=VALUE"))?;
+        let name = name.trim();
+        let (kind, idx) = name.split_at(1);
+        let i: usize = idx
+            .parse()
+            .ok()
+            .filter(|i| (1..=dof).contains(i))
+            .with_context(|| {
+                format!("--init: unknown coordinate '{name}' (model has q1..q{dof}, p1..p{dof})")
+            })?;
+        let slot = match kind {
+            "q" => i - 1,
+            "p" => dof + i - 1,
+            _ => bail!("--init: unknown coordinate '{name}' (model has q1..q{dof}, p1..p{dof})"),
+        };
+        let v: f32 = value
+            .trim()
+            .parse()
+            .with_context(|| format!("--init: value of {name} '{value}' is not a number"))?;
+        if !v.is_finite() {
+            bail!("--init: value of {name} is not finite");
+        }
+        if x[slot].replace(v).is_some() {
+            bail!("--init: {name} given twice");
+        }
+    }
+    x.iter()
+        .enumerate()
+        .map(|(k, v)| {
+            v.with_context(|| {
+                let (kind, i) = if k < dof {
+                    ("q", k + 1)
+                } else {
+                    ("p", k - dof + 1)
+                };
+                format!("--init: {kind}{i} missing")
+            })
+        })
+        .collect()
+}
+
+/// `count` seeded states with every coordinate uniform within
+/// `offset ± spread * scale`: inside the region the model was fitted on.
+pub fn sample_states(
+    offset: &[f32],
+    scale: &[f32],
+    spread: f32,
+    count: usize,
+    seed: u64,
+) -> Vec<Vec<f32>> {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    (0..count)
+        .map(|_| {
+            offset
+                .iter()
+                .zip(scale)
+                .map(|(o, s)| o + spread * s * rng.random_range(-1.0f32..=1.0))
+                .collect()
+        })
+        .collect()
+}

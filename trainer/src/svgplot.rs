@@ -1,0 +1,305 @@
+//! Small, dependency-free SVG line charts for reports: axes with round
+//! ticks, axis titles with units, a legend, several series, optional log-y.
+//! Text is left to the viewer's fonts, so the charts need no font files at
+//! build or run time (plotters' SVG backend needs a system font to measure
+//! labels, which a fresh CI machine may lack).
+
+use std::fmt::Write as _;
+
+/// One line or point series.
+#[derive(Debug, Clone)]
+pub struct Series {
+    /// Legend label.
+    pub label: String,
+    /// Points (x, y); non-finite points break the line.
+    pub points: Vec<(f64, f64)>,
+    /// Stroke colour (CSS).
+    pub color: &'static str,
+    /// Dashed stroke.
+    pub dashed: bool,
+    /// Draw dots instead of a line.
+    pub dots: bool,
+}
+
+/// A chart description.
+#[derive(Debug, Clone)]
+pub struct Chart {
+    /// Title above the plot.
+    pub title: String,
+    /// X-axis title with unit.
+    pub x_label: String,
+    /// Y-axis title with unit.
+    pub y_label: String,
+    /// Logarithmic y axis (non-positive values are dropped).
+    pub log_y: bool,
+    /// The series.
+    pub series: Vec<Series>,
+}
+
+/// Series colours that stay apart for common colour-vision deficiencies
+/// (the Okabe-Ito palette, common practice in scientific plotting).
+pub const PALETTE: [&str; 6] = [
+    "#000000", "#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00",
+];
+
+const W: f64 = 640.0;
+const H: f64 = 400.0;
+const L: f64 = 78.0;
+const R: f64 = 20.0;
+const T: f64 = 36.0;
+const B: f64 = 56.0;
+
+fn nice_step(range: f64, target: usize) -> f64 {
+    let raw = range / target.max(1) as f64;
+    let mag = 10f64.powf(raw.log10().floor());
+    let f = raw / mag;
+    let nice = if f < 1.5 {
+        1.0
+    } else if f < 3.0 {
+        2.0
+    } else if f < 7.0 {
+        5.0
+    } else {
+        10.0
+    };
+    nice * mag
+}
+
+fn fmt_tick(v: f64) -> String {
+    if v == 0.0 {
+        "0".into()
+    } else if v.abs() >= 1e4 || v.abs() < 1e-3 {
+        format!("{v:.0e}")
+    } else {
+        let s = format!("{v:.4}");
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    }
+}
+
+fn esc(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+}
+
+impl Chart {
+    /// Render as a standalone `<svg>` element.
+    pub fn to_svg(&self) -> String {
+        let ty = |y: f64| if self.log_y { y.log10() } else { y };
+        let pts: Vec<(f64, f64)> = self
+            .series
+            .iter()
+            .flat_map(|s| s.points.iter().copied())
+            .filter(|(x, y)| x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0))
+            .map(|(x, y)| (x, ty(y)))
+            .collect();
+        let (mut x0, mut x1, mut y0, mut y1) = pts.iter().fold(
+            (
+                f64::INFINITY,
+                f64::NEG_INFINITY,
+                f64::INFINITY,
+                f64::NEG_INFINITY,
+            ),
+            |(a, b, c, d), (x, y)| (a.min(*x), b.max(*x), c.min(*y), d.max(*y)),
+        );
+        if !x0.is_finite() {
+            (x0, x1, y0, y1) = (0.0, 1.0, 0.0, 1.0);
+        }
+        if x1 - x0 <= 0.0 {
+            x1 = x0 + 1.0;
+        }
+        if y1 - y0 <= 0.0 {
+            let pad = if y0 == 0.0 { 1.0 } else { y0.abs() * 0.1 };
+            y0 -= pad;
+            y1 += pad;
+        }
+        let pad = 0.05 * (y1 - y0);
+        if !self.log_y {
+            y0 -= pad;
+            y1 += pad;
+        }
+        let px = |x: f64| L + (x - x0) / (x1 - x0) * (W - L - R);
+        let py = |y: f64| H - B - (y - y0) / (y1 - y0) * (H - T - B);
+        let mut s = String::new();
+        let _ = write!(
+            s,
+            r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {W} {H}" width="{W}" height="{H}" font-family="sans-serif" font-size="12">"#
+        );
+        let _ = write!(s, r##"<rect width="{W}" height="{H}" fill="#ffffff"/>"##);
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="20" text-anchor="middle" font-size="14" font-weight="bold">{}</text>"#,
+            W / 2.0,
+            esc(&self.title)
+        );
+        // Axes box and ticks.
+        let _ = write!(
+            s,
+            r##"<rect x="{L}" y="{T}" width="{}" height="{}" fill="none" stroke="#444"/>"##,
+            W - L - R,
+            H - T - B
+        );
+        let xs = nice_step(x1 - x0, 6);
+        let mut v = (x0 / xs).ceil() * xs;
+        while v <= x1 + 1e-9 * xs {
+            let x = px(v);
+            let _ = write!(
+                s,
+                r##"<line x1="{x:.1}" y1="{}" x2="{x:.1}" y2="{}" stroke="#ddd"/>"##,
+                T,
+                H - B
+            );
+            let _ = write!(
+                s,
+                r#"<text x="{x:.1}" y="{}" text-anchor="middle">{}</text>"#,
+                H - B + 16.0,
+                fmt_tick(v)
+            );
+            v += xs;
+        }
+        let ys = if self.log_y {
+            1.0f64.max(nice_step(y1 - y0, 5).round())
+        } else {
+            nice_step(y1 - y0, 5)
+        };
+        let mut v = (y0 / ys).ceil() * ys;
+        while v <= y1 + 1e-9 * ys {
+            let y = py(v);
+            let label = if self.log_y {
+                format!("1e{}", v.round() as i64)
+            } else {
+                fmt_tick(v)
+            };
+            let _ = write!(
+                s,
+                r##"<line x1="{L}" y1="{y:.1}" x2="{}" y2="{y:.1}" stroke="#ddd"/>"##,
+                W - R
+            );
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{:.1}" text-anchor="end">{label}</text>"#,
+                L - 6.0,
+                y + 4.0
+            );
+            v += ys;
+        }
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" text-anchor="middle">{}</text>"#,
+            (L + W - R) / 2.0,
+            H - 14.0,
+            esc(&self.x_label)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="16" y="{}" text-anchor="middle" transform="rotate(-90 16 {})">{}</text>"#,
+            (T + H - B) / 2.0,
+            (T + H - B) / 2.0,
+            esc(&self.y_label)
+        );
+        // Series.
+        for ser in &self.series {
+            let dash = if ser.dashed {
+                r#" stroke-dasharray="6 4""#
+            } else {
+                ""
+            };
+            if ser.dots {
+                for (x, y) in &ser.points {
+                    if x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0) {
+                        let _ = write!(
+                            s,
+                            r#"<circle cx="{:.1}" cy="{:.1}" r="1.6" fill="{}"/>"#,
+                            px(*x),
+                            py(ty(*y)),
+                            ser.color
+                        );
+                    }
+                }
+                continue;
+            }
+            let mut d = String::new();
+            let mut pen = false;
+            for (x, y) in &ser.points {
+                if x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0) {
+                    let _ = write!(
+                        d,
+                        "{}{:.1},{:.1} ",
+                        if pen { "L" } else { "M" },
+                        px(*x),
+                        py(ty(*y))
+                    );
+                    pen = true;
+                } else {
+                    pen = false;
+                }
+            }
+            let _ = write!(
+                s,
+                r#"<path d="{d}" fill="none" stroke="{}" stroke-width="1.5"{dash}/>"#,
+                ser.color
+            );
+        }
+        // Legend.
+        for (k, ser) in self.series.iter().enumerate() {
+            let y = T + 14.0 + 16.0 * k as f64;
+            let x = L + 10.0;
+            let dash = if ser.dashed {
+                r#" stroke-dasharray="6 4""#
+            } else {
+                ""
+            };
+            let _ = write!(
+                s,
+                r#"<line x1="{x}" y1="{y}" x2="{}" y2="{y}" stroke="{}" stroke-width="2"{dash}/>"#,
+                x + 22.0,
+                ser.color
+            );
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{}">{}</text>"#,
+                x + 28.0,
+                y + 4.0,
+                esc(&ser.label)
+            );
+        }
+        s.push_str("</svg>");
+        s
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn renders_axes_series_and_legend() {
+        let c = Chart {
+            title: "energy <check>".into(),
+            x_label: "time (s)".into(),
+            y_label: "H (J)".into(),
+            log_y: false,
+            series: vec![Series {
+                label: "model".into(),
+                points: (0..50)
+                    .map(|k| (k as f64 * 0.1, (k as f64 * 0.1).sin()))
+                    .collect(),
+                color: PALETTE[1],
+                dashed: false,
+                dots: false,
+            }],
+        };
+        let svg = c.to_svg();
+        assert!(svg.starts_with("<svg") && svg.ends_with("</svg>"));
+        assert!(svg.contains("time (s)") && svg.contains("H (J)") && svg.contains(">model<"));
+        assert!(svg.contains("energy &lt;check&gt;"));
+        assert_eq!(svg.matches("<path").count(), 1);
+    }
+
+    #[test]
+    fn nice_steps_are_round() {
+        assert_eq!(nice_step(10.0, 5), 2.0);
+        assert_eq!(nice_step(0.7, 6), 0.1);
+        assert_eq!(nice_step(3500.0, 6), 500.0);
+    }
+}

@@ -1,0 +1,219 @@
+//! Host deploy tools on fixture blobs (seeded weights, not trained models):
+//! int8 export and its error bound, inspect's counts, rollout through the
+//! runtime, and bit-for-bit comparison of trajectory files.
+
+use std::process::Command;
+
+use keel_runtime::format::Activation;
+use keel_runtime::{Integrator, Method};
+use keel_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, WeightKind, Weights};
+use keel_trainer::cmd_compare::{compare, Verdict};
+use keel_trainer::integrator_args::IntegratorArgs;
+use rand::{Rng, SeedableRng};
+
+fn mlp(rng: &mut rand_chacha::ChaCha8Rng, sizes: &[usize]) -> Mlp {
+    let layers = sizes
+        .windows(2)
+        .map(|w| {
+            let lim = (6.0 / (w[0] + w[1]) as f32).sqrt();
+            Layer {
+                inputs: w[0],
+                outputs: w[1],
+                weights: Weights::F32(
+                    (0..w[0] * w[1])
+                        .map(|_| rng.random_range(-lim..lim))
+                        .collect(),
+                ),
+                bias: (0..w[1]).map(|_| rng.random_range(-0.1..0.1)).collect(),
+            }
+        })
+        .collect();
+    Mlp {
+        activation: Activation::Tanh,
+        layers,
+    }
+}
+
+/// A separable fixture with a convex-ish potential: V = MLP + quadratic
+/// is not expressible, so keep weights small and steps short.
+fn fixture(general: bool) -> BlobModel {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(42);
+    let energy = if general {
+        Energy::General(mlp(&mut rng, &[2, 32, 32, 1]))
+    } else {
+        Energy::Separable {
+            potential: mlp(&mut rng, &[1, 32, 32, 1]),
+            kinetic: Kinetic::Quadratic(vec![1.0]),
+        }
+    };
+    BlobModel {
+        dof: 1,
+        offset: vec![0.0, 0.0],
+        scale: vec![1.0, 1.0],
+        energy_scale: 1.0,
+        energy,
+        integrator: Integrator::new(
+            if general {
+                Method::ImplicitMidpoint
+            } else {
+                Method::StormerVerlet
+            },
+            0.01,
+        ),
+    }
+}
+
+#[test]
+fn blob_model_round_trips() {
+    for g in [false, true] {
+        let m = fixture(g);
+        let bytes = m.to_bytes().unwrap();
+        assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
+    }
+}
+
+#[test]
+fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
+    let src = fixture(false);
+    let (f32_bytes, r32) = keel_trainer::cmd_export::export(
+        &src,
+        WeightKind::F32,
+        &IntegratorArgs::default(),
+        1000,
+        4,
+    )
+    .unwrap();
+    let (i8_bytes, r8) = keel_trainer::cmd_export::export(
+        &src,
+        WeightKind::Int8,
+        &IntegratorArgs::default(),
+        1000,
+        4,
+    )
+    .unwrap();
+    // Same weights and integrator: no deviation at all.
+    assert_eq!(r32.max_state_deviation, 0.0);
+    // A sanity bound for random fixture weights (not an accuracy claim):
+    // the int8 trajectory departs from the f32 one, but stays the same
+    // motion, well inside the normalized range of +-1.
+    assert!(
+        r8.max_state_deviation > 0.0 && r8.max_state_deviation < 0.25,
+        "{}",
+        r8.max_state_deviation
+    );
+    println!(
+        "f32 {} bytes, int8 {} bytes, deviation {:.2e}",
+        f32_bytes.len(),
+        i8_bytes.len(),
+        r8.max_state_deviation
+    );
+    assert!(i8_bytes.len() * 2 < f32_bytes.len());
+    // Round-to-nearest with step s errs by at most s/2 per weight
+    // (uniform quantizer bound; common practice).
+    let q = BlobModel::from_bytes(&i8_bytes).unwrap();
+    let (Energy::Separable { potential: a, .. }, Energy::Separable { potential: b, .. }) =
+        (&src.energy, &q.energy)
+    else {
+        panic!()
+    };
+    for (la, lb) in a.layers.iter().zip(&b.layers) {
+        let Weights::Int8 { scales, .. } = &lb.weights else {
+            panic!("not int8")
+        };
+        for (k, (wa, wb)) in la.real_weights().iter().zip(lb.real_weights()).enumerate() {
+            assert!((wa - wb).abs() <= 0.5 * scales[k / la.inputs] * 1.0001);
+        }
+    }
+}
+
+#[test]
+fn export_refuses_an_explicit_method_for_a_general_model() {
+    let src = fixture(true);
+    let ia = IntegratorArgs {
+        integrator: Some(keel_trainer::integrator_args::MethodArg::Verlet),
+        ..Default::default()
+    };
+    let err = keel_trainer::cmd_export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
+    assert!(format!("{err:#}").contains("separable"), "{err:#}");
+}
+
+#[test]
+fn inspect_counts_match_the_shapes() {
+    let bytes = fixture(true)
+        .converted(WeightKind::Int8)
+        .to_bytes()
+        .unwrap();
+    let r = keel_trainer::cmd_inspect::inspect(&bytes).unwrap();
+    let forward = 2 * 32 + 32 * 32 + 32;
+    assert_eq!(r.macs_per_gradient as usize, 2 * forward);
+    assert_eq!(r.weights, "int8");
+    assert_eq!(r.sections.iter().map(|s| s.1).sum::<usize>(), bytes.len());
+}
+
+fn keel() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_keel"))
+}
+
+#[test]
+fn rollout_csv_compares_bit_for_bit_and_names_the_first_difference() {
+    let dir = tempfile::tempdir().unwrap();
+    let blob = dir.path().join("m.keel");
+    std::fs::write(&blob, fixture(false).to_bytes().unwrap()).unwrap();
+    let a = dir.path().join("a.csv");
+    let b = dir.path().join("b.csv");
+    for (out, bits) in [(&a, true), (&b, false)] {
+        let mut cmd = keel();
+        cmd.args(["rollout", "--model"])
+            .arg(&blob)
+            .args(["--init", "q1=0.5,p1=-0.1", "--steps", "200", "--out"])
+            .arg(out);
+        if bits {
+            cmd.arg("--bits");
+        }
+        let st = cmd.status().unwrap();
+        assert!(st.success());
+    }
+    // Hex bit patterns and shortest round-trip decimals hold the same bits.
+    assert_eq!(compare(&a, &b, None).unwrap(), Verdict::Same { rows: 201 });
+    // Change one value by one ulp at step 57.
+    let text = std::fs::read_to_string(&b).unwrap();
+    let mut lines: Vec<String> = text.lines().map(str::to_string).collect();
+    let mut f: Vec<String> = lines[58].split(',').map(str::to_string).collect();
+    let v: f32 = f[2].parse().unwrap();
+    f[2] = f32::from_bits(v.to_bits() + 1).to_string();
+    lines[58] = f.join(",");
+    std::fs::write(&b, lines.join("\n") + "\n").unwrap();
+    match compare(&a, &b, None).unwrap() {
+        Verdict::Differs { step, column, .. } => assert_eq!((step, column.as_str()), (57, "p1")),
+        v => panic!("{v:?}"),
+    }
+    assert!(matches!(
+        compare(&a, &b, Some(1e-6)).unwrap(),
+        Verdict::Same { .. }
+    ));
+    let st = keel().arg("compare").arg(&a).arg(&b).status().unwrap();
+    assert_eq!(st.code(), Some(1));
+}
+
+#[test]
+fn rollout_rejects_bad_init_and_writes_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let blob = dir.path().join("m.keel");
+    std::fs::write(&blob, fixture(false).to_bytes().unwrap()).unwrap();
+    let out = dir.path().join("o.csv");
+    for init in ["q1=0.5", "q1=0.5,p1=x", "q1=1,p1=0,q2=3", "q1=1,q1=2,p1=0"] {
+        let o = keel()
+            .args(["rollout", "--model"])
+            .arg(&blob)
+            .args(["--init", init, "--steps", "5", "--out"])
+            .arg(&out)
+            .output()
+            .unwrap();
+        assert!(!o.status.success(), "{init}");
+        assert!(
+            String::from_utf8_lossy(&o.stderr).contains("--init"),
+            "{init}"
+        );
+        assert!(!out.exists());
+    }
+}

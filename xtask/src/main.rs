@@ -1,2 +1,73 @@
-//! Project automation (`cargo xtask <task>`).
-fn main() {}
+//! Project automation (`cargo xtask <task>`):
+//!
+//! * `cargo xtask test`: the one command that checks everything, in order
+//!   (format, clippy, workspace tests, no_std build for the Cortex-M4F, device
+//!   check), stopping at the first failure.
+//! * `cargo xtask device [--blob FILE.keel]...`: installs missing tools, runs
+//!   the example firmware in QEMU for every device blob and compares every
+//!   state bit for bit with the host rollout.
+
+mod device_check;
+mod device_log;
+mod elf_size;
+mod fixtures;
+mod golden_csv;
+mod host_rollout;
+mod model_swap;
+mod qemu_run;
+mod run_plan;
+mod test_pipeline;
+mod tools;
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+const USAGE: &str = "usage: cargo xtask <task>
+  test                      format, clippy, tests, Cortex-M4F build, device check
+  device [--blob FILE]...   firmware-in-QEMU check against the host rollout
+                            (default: the generated fixture blobs)";
+
+fn main() -> ExitCode {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let result = match args.first().map(String::as_str) {
+        Some("test") if args.len() == 1 => test_pipeline::run(),
+        Some("device") => parse_blob_args(&args[1..]).and_then(device_check::run),
+        Some("-h" | "--help" | "help") => {
+            println!("{USAGE}");
+            return ExitCode::SUCCESS;
+        }
+        _ => {
+            eprintln!("{USAGE}");
+            return ExitCode::from(2);
+        }
+    };
+    match result {
+        Ok(true) => ExitCode::SUCCESS,
+        Ok(false) => ExitCode::FAILURE,
+        Err(e) => {
+            eprintln!("xtask error: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+fn parse_blob_args(args: &[String]) -> anyhow::Result<Vec<PathBuf>> {
+    let mut blobs = Vec::new();
+    let mut it = args.iter();
+    while let Some(a) = it.next() {
+        match a.as_str() {
+            "--blob" => match it.next() {
+                Some(p) => blobs.push(PathBuf::from(p)),
+                None => anyhow::bail!("--blob needs a file path\n{USAGE}"),
+            },
+            other => anyhow::bail!("unknown argument `{other}`\n{USAGE}"),
+        }
+    }
+    Ok(blobs)
+}
+
+/// The workspace root (the parent of this crate's directory).
+pub fn workspace_root() -> PathBuf {
+    let here = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
+    here.parent().map(PathBuf::from).unwrap_or(here)
+}

@@ -1,0 +1,21 @@
+//! Build script: hands `memory.x` to the linker and makes the build depend on
+//! the model blob and run plan named by `KEEL_BLOB` and `KEEL_RUN_PLAN`.
+use std::{env, fs, path::PathBuf};
+
+fn main() {
+    let out = PathBuf::from(env::var_os("OUT_DIR").expect("cargo sets OUT_DIR"));
+    fs::write(out.join("memory.x"), include_bytes!("memory.x")).expect("write memory.x");
+    println!("cargo:rustc-link-search={}", out.display());
+    println!("cargo:rerun-if-changed=memory.x");
+    for var in ["KEEL_BLOB", "KEEL_RUN_PLAN"] {
+        println!("cargo:rerun-if-env-changed={var}");
+        match env::var_os(var) {
+            Some(path) => println!("cargo:rerun-if-changed={}", PathBuf::from(path).display()),
+            None => panic!(
+                "{var} is not set: point it at a file (KEEL_BLOB: a model blob, KEEL_RUN_PLAN: a \
+                 run plan); `cargo xtask device` sets both"
+            ),
+        }
+    }
+    println!("cargo:rerun-if-env-changed=KEEL_DRILL");
+}

@@ -1,0 +1,45 @@
+//! The model blob in its own flash region. `memory.x` reserves the region
+//! `KEEL_MODEL` and places the output section `.keel_model` at its start;
+//! this build puts the blob named by `KEEL_BLOB` there, but the firmware
+//! reads the region through its linker symbols, never through the embedded
+//! array, so a board can be re-flashed with other weights (written at the
+//! region's address) without rebuilding. The blob's length comes from its own
+//! header; erased or foreign bytes are refused by the runtime's checks.
+
+use keel_runtime::format::{HEADER_LEN, TRAILER_LEN};
+
+/// The blob chosen at build time, placed in `.keel_model` (kept by the
+/// linker script even though no code refers to it).
+#[used]
+#[link_section = ".keel_model"]
+static EMBEDDED_BLOB: [u8; include_bytes!(env!("KEEL_BLOB")).len()] =
+    *include_bytes!(env!("KEEL_BLOB"));
+
+extern "C" {
+    static __keel_model_start: u8;
+    static __keel_model_end: u8;
+}
+
+/// The whole reserved region, as flashed.
+fn region() -> &'static [u8] {
+    let start = core::ptr::addr_of!(__keel_model_start);
+    let end = core::ptr::addr_of!(__keel_model_end);
+    let len = (end as usize).saturating_sub(start as usize);
+    // SAFETY: the linker script defines both symbols as the bounds of the
+    // KEEL_MODEL flash region, which is mapped, read-only and never written
+    // while the firmware runs.
+    unsafe { core::slice::from_raw_parts(start, len) }
+}
+
+/// The blob at the start of the region: as many bytes as its header claims
+/// (clamped to the region), for the runtime to validate.
+pub fn blob() -> &'static [u8] {
+    let region = region();
+    let claimed = match region.get(6..HEADER_LEN) {
+        Some(&[a, b, c, d]) => {
+            (HEADER_LEN + TRAILER_LEN).saturating_add(u32::from_le_bytes([a, b, c, d]) as usize)
+        }
+        _ => region.len(),
+    };
+    &region[..claimed.min(region.len())]
+}

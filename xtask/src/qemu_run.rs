@@ -1,0 +1,135 @@
+//! Building the example firmware for one blob and running it in QEMU with
+//! semihosting and a deterministic instruction clock, then decoding its defmt
+//! log with `defmt-print`.
+
+use std::fs::File;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+use anyhow::{bail, Context, Result};
+
+use crate::tools::{cargo, QEMU_MACHINE, TARGET};
+
+/// QEMU `-icount shift=N`: every instruction advances virtual time 2^N ns.
+pub const ICOUNT_SHIFT: u32 = 6;
+/// SysTick period on mps2-an386: the 25 MHz processor clock, 40 ns.
+pub const SYSTICK_NS: f64 = 40.0;
+/// A run longer than this is treated as a hang and killed.
+pub const RUN_TIMEOUT: Duration = Duration::from_secs(300);
+
+/// What one emulator run produced.
+pub struct RunOutcome {
+    /// Exit status of QEMU (None when killed).
+    pub exit_code: Option<i32>,
+    /// Killed after [`RUN_TIMEOUT`].
+    pub timed_out: bool,
+    /// The defmt log as decoded text, one message per line.
+    pub log: String,
+    /// Wall time of the emulator run.
+    pub seconds: f64,
+    /// Bytes of raw defmt output.
+    pub raw_bytes: u64,
+}
+
+/// Build the firmware with `blob`, `plan` and an optional fault drill; copy
+/// the ELF to `work/<name>.elf` and return that path.
+pub fn build_firmware(
+    root: &Path,
+    work: &Path,
+    name: &str,
+    blob: &Path,
+    plan: &Path,
+    drill: Option<&str>,
+) -> Result<PathBuf> {
+    // The firmware's build runs in its own directory: pass absolute paths.
+    let blob = std::path::absolute(blob)?;
+    let plan = std::path::absolute(plan)?;
+    let dir = root.join("firmware-example");
+    let target_dir = dir.join("target");
+    let mut cmd = Command::new(cargo());
+    cmd.current_dir(&dir)
+        .args(["build", "--release", "--quiet", "--target", TARGET])
+        .arg("--target-dir")
+        .arg(&target_dir)
+        .env("KEEL_BLOB", &blob)
+        .env("KEEL_RUN_PLAN", &plan)
+        .env_remove("CARGO_TARGET_DIR")
+        .env_remove("RUSTFLAGS")
+        .env_remove("CARGO_ENCODED_RUSTFLAGS")
+        .env_remove("CARGO_BUILD_TARGET");
+    match drill {
+        Some(d) => cmd.env("KEEL_DRILL", d),
+        None => cmd.env_remove("KEEL_DRILL"),
+    };
+    let status = cmd.status().context("starting cargo for the firmware")?;
+    if !status.success() {
+        bail!("firmware build for {name} failed ({status})");
+    }
+    let built = target_dir
+        .join(TARGET)
+        .join("release")
+        .join("keel-firmware-example");
+    let elf = work.join(format!("{name}.elf"));
+    std::fs::copy(&built, &elf)
+        .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;
+    Ok(elf)
+}
+
+/// Run `elf` in QEMU (stdout = raw defmt frames) and decode the log.
+pub fn run(elf: &Path, work: &Path, name: &str) -> Result<RunOutcome> {
+    let raw_path = work.join(format!("{name}.defmt"));
+    let err_path = work.join(format!("{name}.qemu-stderr.txt"));
+    let raw =
+        File::create(&raw_path).with_context(|| format!("creating {}", raw_path.display()))?;
+    let err = File::create(&err_path)?;
+    let started = Instant::now();
+    let mut child = Command::new("qemu-system-arm")
+        .args(["-machine", QEMU_MACHINE, "-cpu", "cortex-m4"])
+        .args(["-nographic", "-serial", "null", "-monitor", "none"])
+        .args(["-semihosting-config", "enable=on,target=native"])
+        .args(["-icount", &format!("shift={ICOUNT_SHIFT}")])
+        .arg("-kernel")
+        .arg(elf)
+        .stdin(Stdio::null())
+        .stdout(raw)
+        .stderr(err)
+        .spawn()
+        .context("starting qemu-system-arm")?;
+    let mut timed_out = false;
+    let status = loop {
+        if let Some(status) = child.try_wait()? {
+            break Some(status);
+        }
+        if started.elapsed() > RUN_TIMEOUT {
+            timed_out = true;
+            child.kill().ok();
+            child.wait().ok();
+            break None;
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    };
+    let seconds = started.elapsed().as_secs_f64();
+    let raw_bytes = std::fs::metadata(&raw_path).map(|m| m.len()).unwrap_or(0);
+    let decoded = Command::new("defmt-print")
+        .arg("-e")
+        .arg(elf)
+        .args(["--log-format", "{s}"])
+        .stdin(File::open(&raw_path)?)
+        .stderr(Stdio::inherit())
+        .output()
+        .context("starting defmt-print")?;
+    let log = String::from_utf8_lossy(&decoded.stdout).into_owned();
+    std::fs::write(work.join(format!("{name}.log.txt")), &log)?;
+    let stderr = std::fs::read_to_string(&err_path).unwrap_or_default();
+    if !stderr.trim().is_empty() {
+        eprintln!("qemu ({name}) stderr: {}", stderr.trim());
+    }
+    Ok(RunOutcome {
+        exit_code: status.and_then(|s| s.code()),
+        timed_out,
+        log,
+        seconds,
+        raw_bytes,
+    })
+}

@@ -1,0 +1,69 @@
+//! `cargo xtask test`: the project's one test command. Runs each stage in
+//! order with a header and stops at the first failure.
+
+use std::process::Command;
+
+use anyhow::{Context, Result};
+
+use crate::tools::{self, cargo, TARGET};
+
+fn cargo_stage(args: &[&str]) -> Result<bool> {
+    let status = Command::new(cargo())
+        .args(args)
+        .current_dir(crate::workspace_root())
+        .status()
+        .with_context(|| format!("starting cargo {}", args.join(" ")))?;
+    Ok(status.success())
+}
+
+/// Run all stages; Ok(false) at the first failing one.
+pub fn run() -> Result<bool> {
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 5] = [
+        ("cargo fmt --all -- --check", &|| {
+            cargo_stage(&["fmt", "--all", "--", "--check"])
+        }),
+        (
+            "cargo clippy --workspace --all-targets -- -D warnings",
+            &|| {
+                cargo_stage(&[
+                    "clippy",
+                    "--workspace",
+                    "--all-targets",
+                    "--",
+                    "-D",
+                    "warnings",
+                ])
+            },
+        ),
+        ("cargo test --workspace", &|| {
+            cargo_stage(&["test", "--workspace"])
+        }),
+        (
+            "cargo build -p keel-runtime --target thumbv7em-none-eabihf",
+            &|| {
+                tools::ensure_target()?;
+                cargo_stage(&["build", "-p", "keel-runtime", "--target", TARGET])
+            },
+        ),
+        ("cargo xtask device", &|| {
+            crate::device_check::run(Vec::new())
+        }),
+    ];
+    let count = stages.len();
+    for (i, (title, stage)) in stages.iter().enumerate() {
+        println!("\n==> [{}/{count}] {title}", i + 1);
+        match stage() {
+            Ok(true) => println!("==> [{}/{count}] passed: {title}", i + 1),
+            Ok(false) => {
+                println!("==> [{}/{count}] FAILED: {title}", i + 1);
+                return Ok(false);
+            }
+            Err(e) => {
+                println!("==> [{}/{count}] FAILED: {title}: {e:#}", i + 1);
+                return Ok(false);
+            }
+        }
+    }
+    println!("\n==> all {count} stages passed");
+    Ok(true)
+}

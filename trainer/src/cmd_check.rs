@@ -2,7 +2,7 @@
 //! against the plain baseline on held-out trajectories — as a terminal
 //! table, a JSON report and SVG plots.
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
 use anyhow::{anyhow, Context, Result};
 
@@ -10,7 +10,6 @@ use crate::atomic::write_atomic;
 use crate::blob::HostModel;
 use crate::check::{check, CheckReport, CheckSettings};
 use crate::data::{load_csv, LoadOptions};
-use crate::hnn::BaselineModel;
 use crate::svgplot::{Chart, Series, PALETTE};
 use crate::systems::{build_system, parse_param, ReferenceSystem};
 
@@ -259,13 +258,6 @@ pub fn units(system: Option<&dyn ReferenceSystem>) -> (&'static str, &'static st
     }
 }
 
-/// Read a baseline file.
-pub fn read_baseline(path: &Path) -> Result<BaselineModel> {
-    let text = std::fs::read_to_string(path)
-        .with_context(|| format!("{}: cannot read", path.display()))?;
-    serde_json::from_str(&text).map_err(|e| anyhow!("{}: line {}: {e}", path.display(), e.line()))
-}
-
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let bytes = std::fs::read(&args.model)
@@ -281,7 +273,10 @@ pub fn run(args: Args) -> Result<()> {
         .baseline
         .clone()
         .or_else(|| Some(args.model.with_extension("baseline.json")).filter(|p| p.exists()));
-    let baseline = base_path.as_deref().map(read_baseline).transpose()?;
+    let baseline = base_path
+        .as_deref()
+        .map(crate::export::read_baseline)
+        .transpose()?;
     let system = args
         .system
         .as_deref()

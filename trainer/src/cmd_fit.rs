@@ -9,10 +9,12 @@ use anyhow::{bail, Context, Result};
 use clap::ValueEnum;
 use keel_runtime::{Integrator, Method};
 
+use crate::blob::WeightKind;
 use crate::data::{self, LoadOptions};
 use crate::dataset::Dataset;
-use crate::export::{self, Precision};
+use crate::export;
 use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::integrator_args::MethodArg;
 use crate::net::Activation;
 
 /// Energy structure.
@@ -42,19 +44,6 @@ pub enum ActivationArg {
     Softplus,
     /// Refused: see the error message.
     Relu,
-}
-
-/// Integration method stored in the blob.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
-pub enum IntegratorArg {
-    /// Stormer-Verlet (separable models; the default for them).
-    Verlet,
-    /// Yoshida's fourth-order composition (separable models).
-    Yoshida4,
-    /// Implicit midpoint (any model; the default for general ones).
-    Midpoint,
-    /// Classical RK4 (not symplectic; for comparison only).
-    Rk4,
 }
 
 /// Arguments of `keel fit`.
@@ -122,7 +111,7 @@ pub struct Args {
     /// Integration method stored in the model (default: verlet for
     /// separable, midpoint for general models).
     #[arg(long, value_enum)]
-    pub integrator: Option<IntegratorArg>,
+    pub integrator: Option<MethodArg>,
     /// Time step stored in the model, in seconds (default: the log's median
     /// sample interval).
     #[arg(long, value_name = "S")]
@@ -246,10 +235,9 @@ pub fn run(args: Args) -> Result<()> {
     };
     let arch = choice.build(train.dof)?;
     let method = match (args.integrator, choice.separable) {
-        (None, true) | (Some(IntegratorArg::Verlet), _) => Method::StormerVerlet,
-        (None, false) | (Some(IntegratorArg::Midpoint), _) => Method::ImplicitMidpoint,
-        (Some(IntegratorArg::Yoshida4), _) => Method::Yoshida4,
-        (Some(IntegratorArg::Rk4), _) => Method::Rk4,
+        (Some(m), _) => Method::from(m),
+        (None, true) => Method::StormerVerlet,
+        (None, false) => Method::ImplicitMidpoint,
     };
     if method.needs_separable() && !choice.separable {
         bail!("--integrator {method:?} needs --arch separable; use --integrator midpoint");
@@ -294,7 +282,7 @@ pub fn run(args: Args) -> Result<()> {
     );
     let fitted = fit::fit_energy(&train, val.as_ref(), &arch, &settings)?;
     print_report("energy model", &fitted.report);
-    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, Precision::F32)?;
+    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
     println!(
         "wrote {} ({bytes} bytes, {method:?}, dt = {dt} s)",
         args.out.display()

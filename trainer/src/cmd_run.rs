@@ -321,7 +321,7 @@ pub fn run(args: Args) -> Result<()> {
             let bytes = crate::export::energy_blob(
                 &fitted.model,
                 integrator,
-                crate::export::Precision::F32,
+                crate::blob::WeightKind::F32,
             )?;
             write_atomic(&model_path, &bytes)?;
             let f = fit_summary(&fitted.report, arch.param_count(train.dof));

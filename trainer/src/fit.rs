@@ -384,6 +384,15 @@ fn run<O: Objective>(
     if !(s.lr.is_finite() && s.lr > 0.0) {
         bail!("learning rate must be positive, got {}", s.lr);
     }
+    if let Some(v) = val {
+        if v.dof != train.dof {
+            bail!(
+                "validation data has {} degrees of freedom, training data {}",
+                v.dof,
+                train.dof
+            );
+        }
+    }
     let threads = s.threads.max(1);
     let (z, t) = norm.normalize(train);
     let validation = val.map(|v| norm.normalize(v));

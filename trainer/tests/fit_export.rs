@@ -7,8 +7,9 @@
 //! expected to f32 rounding level, checked at relative 1e-4.
 
 use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use keel_trainer::blob::WeightKind;
 use keel_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use keel_trainer::export::{energy_blob, read_baseline, write_baseline, Precision};
+use keel_trainer::export::{energy_blob, read_baseline, write_baseline};
 use keel_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
 use keel_trainer::net::Activation;
 use ndarray::Array2;
@@ -84,8 +85,12 @@ fn runtime_matches_trainer_for_every_structure() {
             } else {
                 Method::ImplicitMidpoint
             };
-            let blob =
-                energy_blob(&fitted.model, Integrator::new(method, 1e-3), Precision::F32).unwrap();
+            let blob = energy_blob(
+                &fitted.model,
+                Integrator::new(method, 1e-3),
+                WeightKind::F32,
+            )
+            .unwrap();
             let model = Model::<8, 128>::from_bytes(&blob).unwrap();
             assert_eq!(model.is_separable(), separable);
             let states = Array2::from_shape_fn((50, 4), |(_, i)| {

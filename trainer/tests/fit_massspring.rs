@@ -9,8 +9,9 @@
 use std::f64::consts::PI;
 
 use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use keel_trainer::blob::WeightKind;
 use keel_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use keel_trainer::export::{energy_blob, Precision};
+use keel_trainer::export::energy_blob;
 use keel_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
 use keel_trainer::net::Activation;
 use ndarray::Array2;
@@ -88,7 +89,7 @@ fn energy_model_conserves_energy_and_baseline_drifts() {
     let blob = energy_blob(
         &fitted.model,
         Integrator::new(Method::StormerVerlet, dt),
-        Precision::F32,
+        WeightKind::F32,
     )
     .unwrap();
     let model = Model::<8, 128>::from_bytes(&blob).unwrap();
@@ -176,4 +177,28 @@ fn non_finite_loss_stops_and_keeps_finite_parameters() {
         fitted.report.stop
     );
     assert!(fitted.model.params.iter().all(|v| v.is_finite()));
+}
+
+#[test]
+fn interrupt_flag_stops_training() {
+    use std::sync::atomic::AtomicBool;
+    use std::sync::Arc;
+    let train = mass_spring(4, 30, 7);
+    let arch = ArchChoice {
+        hidden: vec![8],
+        ..ArchChoice::default()
+    }
+    .build(1)
+    .unwrap();
+    let s = FitSettings {
+        epochs: 50,
+        quiet: true,
+        interrupt: Some(Arc::new(AtomicBool::new(true))),
+        ..FitSettings::default()
+    };
+    let fitted = fit_energy(&train, None, &arch, &s).unwrap();
+    assert_eq!(fitted.report.stop, StopReason::Interrupted);
+    assert_eq!(fitted.report.steps, 0);
+    // Nothing trained yet: the seeded initial parameters are kept.
+    assert_eq!(fitted.model.params, arch.init(1, s.seed));
 }

@@ -200,7 +200,12 @@ th{background:#f0f0f0}td:first-child,th:first-child{text-align:left}.caution{bor
 
 /// Render the page. `charts` are (caption, svg) pairs.
 pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
-    let json = serde_json::to_value(report).unwrap_or(Value::Null);
+    // Render from the JSON text exactly as report.json holds it (an f32
+    // converted in memory reads 0.009999999776 where the file says 0.01).
+    let json = serde_json::to_string(report)
+        .ok()
+        .and_then(|t| serde_json::from_str::<Value>(&t).ok())
+        .unwrap_or(Value::Null);
     let mut h = Html {
         json: &json,
         out: String::new(),
@@ -212,7 +217,7 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     ));
     h.p(&format!("<h1>Keel report: {}</h1>", esc(&report.project)));
     h.p(&format!(
-        "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+        "<p class=\"caution\">{}</p>",
         esc(&report.caution)
     ));
     let verdict = if report.budget_pass {
@@ -385,7 +390,7 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         }
     }
     h.p(&format!(
-        "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+        "<p class=\"caution\">{}</p>",
         esc(&report.caution)
     ));
     h.p(&format!(

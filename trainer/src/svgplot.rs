@@ -69,7 +69,11 @@ fn fmt_tick(v: f64) -> String {
     if v == 0.0 {
         "0".into()
     } else if v.abs() >= 1e4 || v.abs() < 1e-3 {
-        format!("{v:.0e}")
+        let s = format!("{v:.2e}");
+        match s.split_once('e') {
+            Some((m, e)) => format!("{}e{e}", m.trim_end_matches('0').trim_end_matches('.')),
+            None => s,
+        }
     } else {
         let s = format!("{v:.4}");
         s.trim_end_matches('0').trim_end_matches('.').to_string()

@@ -15,7 +15,7 @@ use crate::device_log::{self, DeviceLog};
 use crate::elf_size::{self, ElfSize};
 use crate::fixtures;
 use crate::golden_csv;
-use crate::host_rollout::{self, HostRollout, InProcess, Trajectories};
+use crate::host_rollout::{self, HostRollout, KeelCommand, Trajectories};
 use crate::model_swap;
 use crate::qemu_run::{self, ICOUNT_SHIFT, SYSTICK_NS};
 use crate::run_plan::RunPlan;
@@ -252,6 +252,29 @@ fn run_good_case(
     Ok((same, row))
 }
 
+/// For a blob exported by `keel run` (in `<project>/out/`), write what the
+/// emulator measured to `<project>/out/device/<blob>.json`, where the next
+/// `keel run` picks it up for its report.
+fn record_measurement(case: &DeviceCase, row: &ReportRow) {
+    if case.golden.is_none() || row.name != case.name {
+        return;
+    }
+    let Some(dir) = case.blob.parent().map(|d| d.join("device")) else {
+        return;
+    };
+    let json = format!(
+        "{{\n  \"instructions_per_step\": {},\n  \"macs_per_step\": {},\n  \"stack_bytes\": {},\n  \"firmware_flash_bytes\": {},\n  \"firmware_static_ram_bytes\": {},\n  \"note\": \"QEMU-emulated instructions under -icount, not CPU cycles\"\n}}\n",
+        row.instructions_per_step.map_or("null".into(), |v| format!("{v:.1}")),
+        row.macs_per_step.map_or("null".into(), |v| v.to_string()),
+        row.stack_used.map_or("null".into(), |v| v.to_string()),
+        row.size.flash(),
+        row.size.static_ram(),
+    );
+    if std::fs::create_dir_all(&dir).is_ok() {
+        let _ = std::fs::write(dir.join(format!("{}.json", case.name)), json);
+    }
+}
+
 /// Re-flash check: take the first case's built ELF, write the blob of a
 /// later case with the same run plan into its `.keel_model` section (no
 /// rebuild), run it and compare with the host rollout of that blob. Ok(true)
@@ -379,7 +402,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     } else {
         file_cases(&blobs)?
     };
-    let host = InProcess;
+    let host = KeelCommand::build(&root, &work)?;
     println!("device check: host reference = {}", host.describe());
     let mut total = 0usize;
     let mut matched = 0usize;
@@ -468,6 +491,18 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     }
 
     print_report(&rows);
+    for r in &rows {
+        if let (Some(i), Some(m)) = (r.instructions_per_step, r.macs_per_step) {
+            println!(
+                "device {}: {i:.0} instructions/step, {m} MAC/step, {:.2} instr/MAC",
+                r.name,
+                i / f64::from(m.max(1))
+            );
+        }
+    }
+    for (case, row) in cases.iter().zip(&rows) {
+        record_measurement(case, row);
+    }
     println!(
         "device check took {:.1} s; artifacts in {}",
         started.elapsed().as_secs_f64(),

@@ -31,7 +31,7 @@ fn parse_value(text: &str) -> Option<u32> {
 }
 
 /// One file: the dof and every row's bit patterns (the `t` column dropped).
-fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
+pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
     let mut lines = text.lines();

@@ -1,18 +1,15 @@
 //! The host side of the device check: the reference rollout every device
 //! state is compared with, bit for bit.
 //!
-//! [`HostRollout`] is the seam: today [`InProcess`] steps the blob with
-//! `keel-runtime` linked into xtask. A second implementation can run the
-//! `keel rollout` command and parse its CSV instead (Rust prints `f32` with
-//! the shortest text that parses back to the same bits, so decimal CSV is
-//! exact); nothing else in the check has to change.
+//! [`HostRollout`] is the seam: [`KeelCommand`] runs the user-facing
+//! `keel rollout --bits` command (the path a user follows) and parses its
+//! CSV (Rust prints `f32` bit patterns exactly with `--bits`).
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
+use std::process::Command;
 
 use anyhow::{anyhow, bail, Context, Result};
-use keel_runtime::{Model, State};
 
-use crate::device_check::{FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH};
 use crate::run_plan::RunPlan;
 
 /// Bit patterns of every state: `[initial state][step]` -> q1..qn, p1..pn.
@@ -26,44 +23,95 @@ pub trait HostRollout {
     fn rollout(&self, blob: &Path, plan: &RunPlan) -> Result<Trajectories>;
 }
 
-/// `keel-runtime` in this process, with the firmware's const bounds.
-pub struct InProcess;
-
-type HostModel<'a> = Model<'a, FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH>;
-
-fn bits(x: &State<FIRMWARE_MAX_DOF>) -> Vec<u32> {
-    x.q().iter().chain(x.p()).map(|v| v.to_bits()).collect()
+/// The `keel rollout` command of this workspace (built in release by
+/// [`KeelCommand::build`]), one run per initial state, exact bit patterns.
+pub struct KeelCommand {
+    exe: PathBuf,
+    work: PathBuf,
 }
 
-impl HostRollout for InProcess {
+impl KeelCommand {
+    /// Build `keel` in release and use it, writing CSVs into `work`.
+    pub fn build(root: &Path, work: &Path) -> Result<Self> {
+        let status = Command::new(crate::tools::cargo())
+            .args([
+                "build",
+                "--release",
+                "--quiet",
+                "-p",
+                "keel-trainer",
+                "--bin",
+                "keel",
+            ])
+            .current_dir(root)
+            .status()
+            .context("starting cargo build -p keel-trainer")?;
+        if !status.success() {
+            bail!("building keel failed ({status})");
+        }
+        let target = std::env::var_os("CARGO_TARGET_DIR")
+            .map(PathBuf::from)
+            .unwrap_or_else(|| root.join("target"));
+        Ok(Self {
+            exe: target.join("release").join("keel"),
+            work: work.to_path_buf(),
+        })
+    }
+}
+
+/// `q1=..,qn=..,p1=..` with shortest round-trip decimals (exact in f32).
+fn init_spec(init: &[f32], n: usize) -> String {
+    let mut parts = Vec::new();
+    for (k, v) in init.iter().enumerate().take(2 * n) {
+        let (c, i) = if k < n {
+            ("q", k + 1)
+        } else {
+            ("p", k - n + 1)
+        };
+        parts.push(format!("{c}{i}={v}"));
+    }
+    parts.join(",")
+}
+
+impl HostRollout for KeelCommand {
     fn describe(&self) -> String {
         format!(
-            "keel-runtime in process (Model<{FIRMWARE_MAX_DOF}, {FIRMWARE_MAX_WIDTH}>, {})",
+            "`{} rollout --bits` ({})",
+            self.exe.display(),
             std::env::consts::ARCH
         )
     }
 
     fn rollout(&self, blob: &Path, plan: &RunPlan) -> Result<Trajectories> {
-        let bytes = std::fs::read(blob).with_context(|| format!("reading {}", blob.display()))?;
-        let model = HostModel::from_bytes(&bytes)
-            .map_err(|e| anyhow!("{}: blob refused on the host: {e}", blob.display()))?;
-        let n = plan.dof;
+        let stem = blob
+            .file_stem()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default();
         let mut out = Vec::with_capacity(plan.initial_states.len());
         for (s, init) in plan.initial_states.iter().enumerate() {
-            let mut x = State::<FIRMWARE_MAX_DOF>::new(&init[..n], &init[n..])
-                .map_err(|e| anyhow!("initial state {s}: {e}"))?;
-            let mut traj = Vec::with_capacity(plan.steps as usize + 1);
-            traj.push(bits(&x));
-            for k in 1..=plan.steps {
-                if let Err(e) = model.step(&mut x) {
-                    bail!(
-                        "{}: host step {k} from state {s} failed: {e}",
-                        blob.display()
-                    );
-                }
-                traj.push(bits(&x));
+            let csv = self.work.join(format!("{stem}.host-{s}.csv"));
+            let o = Command::new(&self.exe)
+                .arg("rollout")
+                .arg("--model")
+                .arg(blob)
+                .arg("--init")
+                .arg(init_spec(init, plan.dof))
+                .args(["--steps", &plan.steps.to_string(), "--bits", "--out"])
+                .arg(&csv)
+                .output()
+                .with_context(|| format!("starting {}", self.exe.display()))?;
+            if !o.status.success() {
+                bail!(
+                    "keel rollout of {} from state {s} failed: {}",
+                    blob.display(),
+                    String::from_utf8_lossy(&o.stderr).trim()
+                );
             }
-            out.push(traj);
+            let (n, rows) = crate::golden_csv::read_one(&csv)?;
+            if n != plan.dof {
+                bail!("{}: {n} dof, the plan {}", csv.display(), plan.dof);
+            }
+            out.push(rows);
         }
         Ok(out)
     }

@@ -18,10 +18,20 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 5] = [
-        ("cargo fmt --all -- --check", &|| {
-            cargo_stage(&["fmt", "--all", "--", "--check"])
-        }),
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 7] = [
+        (
+            "cargo fmt --all -- --check (workspace and firmware-example)",
+            &|| {
+                Ok(cargo_stage(&["fmt", "--all", "--", "--check"])?
+                    && cargo_stage(&[
+                        "fmt",
+                        "--manifest-path",
+                        "firmware-example/Cargo.toml",
+                        "--",
+                        "--check",
+                    ])?)
+            },
+        ),
         (
             "cargo clippy --workspace --all-targets -- -D warnings",
             &|| {
@@ -44,6 +54,14 @@ pub fn run() -> Result<bool> {
                 tools::ensure_target()?;
                 cargo_stage(&["build", "-p", "keel-runtime", "--target", TARGET])
             },
+        ),
+        (
+            "cargo xtask demos --verify (every demo project, reproducibility)",
+            &|| crate::demos::run(true, false),
+        ),
+        (
+            "cargo test -p keel-tests --release (checks against outside references)",
+            &|| cargo_stage(&["test", "-p", "keel-tests", "--release"]),
         ),
         ("cargo xtask device", &|| {
             crate::device_check::run(Vec::new())

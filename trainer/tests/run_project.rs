@@ -1,0 +1,145 @@
+//! `keel run` end to end on a tiny project: the HTML report shows exactly
+//! the numbers of report.json, reruns reuse unchanged steps (editing only the
+//! export section does not refit), and a bad project file is refused with
+//! its line and no output.
+
+use std::path::Path;
+use std::process::Command;
+
+use keel_trainer::report::{fmt_num, lookup, tagged_values};
+
+fn keel(args: &[&str], dir: &Path) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_keel"))
+        .args(args)
+        .arg(dir)
+        .output()
+        .unwrap()
+}
+
+fn simulate(out: &Path, seed: &str, n: &str) {
+    let st = Command::new(env!("CARGO_BIN_EXE_keel"))
+        .args([
+            "simulate",
+            "--system",
+            "flexure",
+            "--trajectories",
+            n,
+            "--duration",
+            "0.4",
+            "--rate",
+            "100",
+            "--seed",
+            seed,
+            "--out",
+        ])
+        .arg(out)
+        .output()
+        .unwrap();
+    assert!(
+        st.status.success(),
+        "{}",
+        String::from_utf8_lossy(&st.stderr)
+    );
+}
+
+const PROJECT: &str = r#"
+name = "tiny rig"
+[data]
+train = "data/train.csv"
+validation = "data/val.csv"
+[model]
+hidden = [8]
+[fit]
+epochs = 15
+[check]
+horizon_steps = 200
+golden_steps = 50
+reference_system = "flexure"
+[[export]]
+name = "tiny-f32"
+[device]
+flash_bytes = 100
+"#;
+
+#[test]
+fn report_matches_json_and_reruns_reuse_the_fit() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path();
+    std::fs::create_dir_all(p.join("data")).unwrap();
+    simulate(&p.join("data/train.csv"), "1", "6");
+    simulate(&p.join("data/val.csv"), "2", "2");
+    std::fs::write(p.join("keel.toml"), PROJECT).unwrap();
+
+    let o = keel(&["run", "--quiet"], p);
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        o.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(
+        stdout.contains("report: ") && stdout.contains("not a safety function"),
+        "{stdout}"
+    );
+    // A 100-byte flash budget cannot hold the blob: the report must say so.
+    assert!(stdout.contains("device budget FAIL"), "{stdout}");
+
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
+    let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
+    let tags = tagged_values(&html);
+    assert!(tags.len() > 40, "only {} tagged numbers", tags.len());
+    for (key, shown) in &tags {
+        let v = lookup(&json, key)
+            .cloned()
+            .unwrap_or(serde_json::Value::Null);
+        assert_eq!(
+            &fmt_num(&v),
+            shown,
+            "page and report.json disagree at {key}"
+        );
+    }
+    // The page is self-contained: no scripts, no external resources (the
+    // only URL is the SVG namespace name, which is never fetched).
+    for bad in ["<script", "src=", "<link", "url(", "@import"] {
+        assert!(!html.contains(bad), "report.html contains {bad}");
+    }
+    assert!(html.matches("<svg").count() >= 4);
+    assert!(html.contains("exceeds the flash budget"));
+    assert_eq!(json["fit"]["reused"], false);
+
+    // Edit only the export section: the fit is reused, the blob redone.
+    let edited = PROJECT.replace(
+        "name = \"tiny-f32\"",
+        "name = \"tiny-int8\"\nweights = \"int8\"",
+    );
+    std::fs::write(p.join("keel.toml"), edited).unwrap();
+    let o = keel(&["run", "--quiet"], p);
+    assert!(o.status.success());
+    assert!(String::from_utf8_lossy(&o.stdout).contains("inputs unchanged, reusing"));
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
+    assert_eq!(json["fit"]["reused"], true);
+    assert_eq!(json["devices"][0]["export"]["weights"], "int8");
+    assert!(p.join("out/tiny-int8.keel").exists());
+    assert!(p.join("out/golden/tiny-int8-0.csv").exists());
+}
+
+#[test]
+fn a_bad_project_file_names_its_line_and_writes_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path();
+    std::fs::write(
+        p.join("keel.toml"),
+        "[data]\ntrain = \"x.csv\"\n[fit]\nepochz = 3\n",
+    )
+    .unwrap();
+    let o = keel(&["run"], p);
+    assert!(!o.status.success());
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("keel.toml") && err.contains("line 4") && err.contains("epochz"),
+        "{err}"
+    );
+    assert!(!p.join("out").exists());
+}

@@ -1,0 +1,234 @@
+//! `cargo xtask demos [--verify]`: the demo projects in `models-demo/`,
+//! regenerated reproducibly. Each project's logs come from `keel simulate`
+//! with the seeds listed here; `keel run --force` then fits, checks and
+//! exports. With `--verify` (what CI runs) the logs are regenerated into a
+//! scratch folder and must equal the committed files byte for byte, and each
+//! project is run twice and must produce identical blobs.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use anyhow::{bail, Context, Result};
+
+/// One simulated log of a demo project: file name and `keel simulate` args.
+type Log = (&'static str, &'static [&'static str]);
+
+/// Demo projects and the commands that made their logs.
+const DEMOS: &[(&str, &[Log])] = &[
+    (
+        "crane-sway",
+        &[
+            (
+                "train.csv",
+                &[
+                    "--system",
+                    "crane",
+                    "--trajectories",
+                    "20",
+                    "--duration",
+                    "10",
+                    "--rate",
+                    "20",
+                    "--noise",
+                    "0.002",
+                    "--seed",
+                    "11",
+                ],
+            ),
+            (
+                "val.csv",
+                &[
+                    "--system",
+                    "crane",
+                    "--trajectories",
+                    "5",
+                    "--duration",
+                    "10",
+                    "--rate",
+                    "20",
+                    "--noise",
+                    "0.002",
+                    "--seed",
+                    "12",
+                ],
+            ),
+        ],
+    ),
+    (
+        "flexure-sensor",
+        &[
+            (
+                "train.csv",
+                &[
+                    "--system",
+                    "flexure",
+                    "--trajectories",
+                    "24",
+                    "--duration",
+                    "0.6",
+                    "--rate",
+                    "200",
+                    "--seed",
+                    "21",
+                ],
+            ),
+            (
+                "val.csv",
+                &[
+                    "--system",
+                    "flexure",
+                    "--trajectories",
+                    "6",
+                    "--duration",
+                    "0.6",
+                    "--rate",
+                    "200",
+                    "--seed",
+                    "22",
+                ],
+            ),
+        ],
+    ),
+    (
+        "isolation-mount",
+        &[
+            (
+                "train.csv",
+                &[
+                    "--system",
+                    "mount",
+                    "--trajectories",
+                    "16",
+                    "--duration",
+                    "0.3",
+                    "--rate",
+                    "400",
+                    "--seed",
+                    "31",
+                ],
+            ),
+            (
+                "val.csv",
+                &[
+                    "--system",
+                    "mount",
+                    "--trajectories",
+                    "4",
+                    "--duration",
+                    "0.3",
+                    "--rate",
+                    "400",
+                    "--seed",
+                    "32",
+                ],
+            ),
+        ],
+    ),
+];
+
+fn build_keel(root: &Path) -> Result<PathBuf> {
+    let status = Command::new(crate::tools::cargo())
+        .args([
+            "build",
+            "--release",
+            "--quiet",
+            "-p",
+            "keel-trainer",
+            "--bin",
+            "keel",
+        ])
+        .current_dir(root)
+        .status()
+        .context("starting cargo build")?;
+    if !status.success() {
+        bail!("building keel failed ({status})");
+    }
+    let target = std::env::var_os("CARGO_TARGET_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| root.join("target"));
+    Ok(target.join("release").join("keel"))
+}
+
+fn keel(exe: &Path, args: &[&str], extra: &[&Path]) -> Result<()> {
+    let mut cmd = Command::new(exe);
+    cmd.args(args).args(extra);
+    let status = cmd
+        .status()
+        .with_context(|| format!("starting {}", exe.display()))?;
+    if !status.success() {
+        bail!("keel {} failed ({status})", args.join(" "));
+    }
+    Ok(())
+}
+
+fn blobs(out: &Path) -> Result<Vec<(PathBuf, Vec<u8>)>> {
+    let mut v = Vec::new();
+    for e in std::fs::read_dir(out).with_context(|| format!("reading {}", out.display()))? {
+        let p = e?.path();
+        if p.extension().is_some_and(|x| x == "keel") {
+            let b = std::fs::read(&p)?;
+            v.push((p, b));
+        }
+    }
+    v.sort();
+    Ok(v)
+}
+
+/// Run every demo; with `verify`, check the logs and blobs reproduce.
+pub fn run(verify: bool, regenerate_data: bool) -> Result<bool> {
+    let root = crate::workspace_root();
+    let exe = build_keel(&root)?;
+    let scratch = root.join("target/demo-verify");
+    std::fs::create_dir_all(&scratch)?;
+    let mut ok = true;
+    for (name, logs) in DEMOS {
+        let dir = root.join("models-demo").join(name);
+        println!("demo {name}");
+        for (file, args) in *logs {
+            let committed = dir.join("data").join(file);
+            if regenerate_data {
+                let mut a = vec!["simulate"];
+                a.extend_from_slice(args);
+                a.push("--out");
+                keel(&exe, &a, &[&committed])?;
+            }
+            if verify {
+                let fresh = scratch.join(format!("{name}-{file}"));
+                let mut a = vec!["simulate"];
+                a.extend_from_slice(args);
+                a.push("--out");
+                keel(&exe, &a, &[&fresh])?;
+                let same = std::fs::read(&fresh)?
+                    == std::fs::read(&committed)
+                        .with_context(|| format!("reading {}", committed.display()))?;
+                println!(
+                    "  data/{file}: regenerated by keel simulate {} the committed file",
+                    if same { "equals" } else { "DIFFERS FROM" }
+                );
+                ok &= same;
+            }
+        }
+        keel(&exe, &["run", "--force", "--quiet"], &[&dir])?;
+        if verify {
+            let first = blobs(&dir.join("out"))?;
+            keel(&exe, &["run", "--force", "--quiet"], &[&dir])?;
+            let second = blobs(&dir.join("out"))?;
+            let same = first == second && !first.is_empty();
+            println!(
+                "  {} blobs from two runs with the same seed: {}",
+                first.len(),
+                if same { "bit-identical" } else { "DIFFERENT" }
+            );
+            ok &= same;
+        }
+    }
+    println!(
+        "demos: {}",
+        if ok {
+            "all reproduced"
+        } else {
+            "NOT reproduced (see above)"
+        }
+    );
+    Ok(ok)
+}

@@ -3,10 +3,17 @@
 //! * `cargo xtask test`: the one command that checks everything, in order
 //!   (format, clippy, workspace tests, no_std build for the Cortex-M4F, device
 //!   check), stopping at the first failure.
+//! * `cargo xtask demos [--verify] [--data]`: rerun the demo projects
+//!   (`--data` also rewrites their logs; `--verify` checks that logs and
+//!   blobs reproduce bit for bit).
+//! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
+//!   Keel against PyTorch and JAX references (see `bench/README.md`).
 //! * `cargo xtask device [--blob FILE.keel]...`: installs missing tools, runs
 //!   the example firmware in QEMU for every device blob and compares every
 //!   state bit for bit with the host rollout.
 
+mod bench;
+mod demos;
 mod device_check;
 mod device_log;
 mod elf_size;
@@ -24,13 +31,26 @@ use std::process::ExitCode;
 
 const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
+  demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
-                            (default: the generated fixture blobs)";
+                            (default: the generated fixture blobs)
+  bench [--rounds N] [--steps N] [--only keel,torch,jax]
+                            training throughput against PyTorch and JAX (CPU)";
 
 fn main() -> ExitCode {
     let args: Vec<String> = std::env::args().skip(1).collect();
     let result = match args.first().map(String::as_str) {
         Some("test") if args.len() == 1 => test_pipeline::run(),
+        Some("bench") => bench::run(&args[1..]),
+        Some("demos") => {
+            let verify = args.iter().any(|a| a == "--verify");
+            let data = args.iter().any(|a| a == "--data");
+            if args[1..].iter().any(|a| a != "--verify" && a != "--data") {
+                eprintln!("{USAGE}");
+                return ExitCode::from(2);
+            }
+            demos::run(verify, data)
+        }
         Some("device") => parse_blob_args(&args[1..]).and_then(device_check::run),
         Some("-h" | "--help" | "help") => {
             println!("{USAGE}");

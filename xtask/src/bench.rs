@@ -1,0 +1,712 @@
+//! `cargo xtask bench`: training throughput of Keel's trainer against our
+//! reference trainers of the same problem on general-purpose frameworks
+//! (`bench/hnn_torch.py`, `bench/hnn_jax.py`, CPU only).
+//!
+//! The problem: the ideal mass-spring H = p^2/2 + q^2/2, 64 trajectories x 64
+//! samples over one period (radius uniform in [0.2, 1], seeded phase), exact
+//! derivatives, written once as a CSV that all three read; a general 2-64-64-1
+//! tanh energy network, f32, Adam, 2000 steps, batch 256 and full batch, on 1
+//! and 2 threads. Runs alternate between the implementations within every
+//! round (the starting one rotates), and each number printed is a median over
+//! the rounds; ratios are medians of the per-round ratios. The Python side
+//! lives in a virtual environment under `target/bench-venv`, created on first
+//! use.
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use anyhow::{bail, Context, Result};
+
+const USAGE: &str = "usage: cargo xtask bench [--rounds N] [--steps N] [--only keel,torch,jax]";
+
+/// Trajectories in the generated log.
+const TRAJECTORIES: usize = 64;
+/// Samples per trajectory (one period of the unit-frequency oscillator).
+const SAMPLES: usize = 64;
+/// Hidden widths of the energy network.
+const HIDDEN: [usize; 2] = [64, 64];
+/// Minibatch sizes: a typical minibatch and the full data set.
+const BATCHES: [usize; 2] = [256, TRAJECTORIES * SAMPLES];
+const LR: &str = "1e-3";
+
+/// Command-line options.
+struct Options {
+    rounds: usize,
+    steps: usize,
+    impls: Vec<Impl>,
+}
+
+#[derive(Clone, Copy, PartialEq, Eq, Debug)]
+enum Impl {
+    Keel,
+    Torch,
+    Jax,
+}
+
+impl Impl {
+    const ALL: [Impl; 3] = [Impl::Keel, Impl::Torch, Impl::Jax];
+
+    fn name(self) -> &'static str {
+        match self {
+            Impl::Keel => "keel",
+            Impl::Torch => "torch",
+            Impl::Jax => "jax",
+        }
+    }
+}
+
+fn parse_options(args: &[String]) -> Result<Options> {
+    let mut o = Options {
+        rounds: 3,
+        steps: 2000,
+        impls: Impl::ALL.to_vec(),
+    };
+    let mut it = args.iter();
+    while let Some(a) = it.next() {
+        let mut value = |name: &str| -> Result<String> {
+            it.next()
+                .cloned()
+                .with_context(|| format!("{name} needs a value\n{USAGE}"))
+        };
+        match a.as_str() {
+            "--rounds" => o.rounds = value("--rounds")?.parse().context("--rounds")?,
+            "--steps" => o.steps = value("--steps")?.parse().context("--steps")?,
+            "--only" => {
+                let list = value("--only")?;
+                o.impls = Vec::new();
+                for name in list.split(',') {
+                    match Impl::ALL.iter().find(|i| i.name() == name) {
+                        Some(i) => o.impls.push(*i),
+                        None => bail!("--only: unknown implementation `{name}`\n{USAGE}"),
+                    }
+                }
+            }
+            other => bail!("unknown argument `{other}`\n{USAGE}"),
+        }
+    }
+    if o.rounds == 0 || o.steps == 0 {
+        bail!("--rounds and --steps must be at least 1");
+    }
+    Ok(o)
+}
+
+/// SplitMix64 (Steele, Lea, Flood 2014): a small generator with the same
+/// stream on every machine.
+struct SplitMix64(u64);
+
+impl SplitMix64 {
+    fn next_u64(&mut self) -> u64 {
+        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        let mut z = self.0;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+        z ^ (z >> 31)
+    }
+
+    /// Uniform in [0, 1) with 53 random bits.
+    fn unit(&mut self) -> f64 {
+        (self.next_u64() >> 11) as f64 / (1u64 << 53) as f64
+    }
+}
+
+/// The mass-spring log: exact solution q = r cos(t + phi), p = -r sin(t + phi)
+/// of H = p^2/2 + q^2/2 (unit mass and stiffness, period 2 pi), sampled at
+/// k * 2 pi / 64, k = 0..63, with exact derivatives dq/dt = p, dp/dt = -q.
+pub fn mass_spring_csv() -> String {
+    let mut rng = SplitMix64(0x6b65_656c_6265_6e63);
+    let dt = std::f64::consts::TAU / SAMPLES as f64;
+    let mut s = String::from("traj,t,q1,p1,dq1,dp1\n");
+    for traj in 0..TRAJECTORIES {
+        let radius = 0.2 + 0.8 * rng.unit();
+        let phase = std::f64::consts::TAU * rng.unit();
+        for k in 0..SAMPLES {
+            let t = k as f64 * dt;
+            let q = radius * (t + phase).cos();
+            let p = -radius * (t + phase).sin();
+            // Rust's `{}` for f64 is the shortest string that reads back
+            // to the same value, so every reader sees identical numbers.
+            let _ = writeln!(s, "{traj},{t},{q},{p},{p},{}", -q);
+        }
+    }
+    s
+}
+
+fn write_file(path: &Path, text: &str) -> Result<()> {
+    let tmp = path.with_extension("tmp");
+    std::fs::write(&tmp, text).with_context(|| format!("writing {}", tmp.display()))?;
+    std::fs::rename(&tmp, path).with_context(|| format!("renaming to {}", path.display()))
+}
+
+fn target_dir(root: &Path) -> PathBuf {
+    std::env::var_os("CARGO_TARGET_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| root.join("target"))
+}
+
+/// Create `target/bench-venv` and install `bench/requirements.txt` unless a
+/// marker says this exact requirements file is already installed.
+fn ensure_venv(root: &Path) -> Result<PathBuf> {
+    let venv = root.join("target").join("bench-venv");
+    let python = venv.join("bin").join("python");
+    let reqs_path = root.join("bench").join("requirements.txt");
+    let reqs = std::fs::read_to_string(&reqs_path)
+        .with_context(|| format!("reading {}", reqs_path.display()))?;
+    let marker = venv.join("keel-bench-installed.txt");
+    if std::fs::read_to_string(&marker).ok().as_deref() == Some(reqs.as_str()) && python.exists() {
+        return Ok(python);
+    }
+    if !python.exists() {
+        println!("creating {}", venv.display());
+        let ok = Command::new("python3")
+            .args(["-m", "venv"])
+            .arg(&venv)
+            .status()
+            .context("starting python3 -m venv (is Python 3 installed?)")?
+            .success();
+        if !ok {
+            bail!("python3 -m venv {} failed", venv.display());
+        }
+    }
+    println!(
+        "installing {} into {} (PyTorch's Linux wheels on PyPI bring the CUDA runtime \
+         libraries, about 3 GB; they are only loaded, never used)",
+        reqs_path.display(),
+        venv.display()
+    );
+    let ok = Command::new(&python)
+        .args(["-m", "pip", "install", "-r"])
+        .arg(&reqs_path)
+        .status()
+        .context("starting pip")?
+        .success();
+    if !ok {
+        bail!("pip install -r {} failed", reqs_path.display());
+    }
+    write_file(&marker, &reqs)?;
+    Ok(python)
+}
+
+fn build_keel(root: &Path) -> Result<PathBuf> {
+    let ok = Command::new(crate::tools::cargo())
+        .args(["build", "--release", "-p", "keel-trainer", "--bin", "keel"])
+        .current_dir(root)
+        .status()
+        .context("starting cargo build")?
+        .success();
+    if !ok {
+        bail!("cargo build --release -p keel-trainer failed");
+    }
+    Ok(target_dir(root).join("release").join("keel"))
+}
+
+/// One configuration of the benchmark.
+#[derive(Clone, Copy)]
+struct Config {
+    batch: usize,
+    threads: usize,
+}
+
+impl Config {
+    fn label(self) -> String {
+        format!("batch {} threads {}", self.batch, self.threads)
+    }
+}
+
+/// What one run reported.
+#[derive(Clone, Copy)]
+struct RunResult {
+    samples_per_second: f64,
+    final_loss: f64,
+}
+
+/// The number after `"key":` in a flat JSON object (our own summaries).
+fn json_number(text: &str, key: &str) -> Option<f64> {
+    let at = text.find(&format!("\"{key}\""))? + key.len() + 2;
+    let rest = text[at..].trim_start().strip_prefix(':')?.trim_start();
+    let end = rest
+        .find(|c: char| !(c.is_ascii_digit() || "+-.eE".contains(c)))
+        .unwrap_or(rest.len());
+    rest[..end].parse().ok()
+}
+
+struct Tools {
+    keel: PathBuf,
+    python: Option<PathBuf>,
+    taskset: bool,
+}
+
+/// Run one implementation on one configuration, pinned to the first
+/// `threads` CPUs with taskset when it is available.
+fn run_one(
+    tools: &Tools,
+    root: &Path,
+    work: &Path,
+    data: &Path,
+    imp: Impl,
+    cfg: Config,
+    steps: usize,
+) -> Result<RunResult> {
+    let json = work.join(format!(
+        "{}-b{}-t{}.json",
+        imp.name(),
+        cfg.batch,
+        cfg.threads
+    ));
+    let _ = std::fs::remove_file(&json);
+    let hidden = HIDDEN.map(|w| w.to_string()).join(",");
+    let (batch, steps_s, threads) = (
+        cfg.batch.to_string(),
+        steps.to_string(),
+        cfg.threads.to_string(),
+    );
+    let mut args: Vec<String> = Vec::new();
+    let program = match imp {
+        Impl::Keel => {
+            let model = work.join("keel-model.keel");
+            for a in [
+                "fit",
+                "--data",
+                &data.display().to_string(),
+                "--val-fraction",
+                "0",
+                "--arch",
+                "general",
+                "--hidden",
+                &hidden,
+                "--batch",
+                &batch,
+                "--steps",
+                &steps_s,
+                "--lr",
+                LR,
+                "--threads",
+                &threads,
+                "--no-early-stop",
+                "--quiet",
+                "--out",
+                &model.display().to_string(),
+                "--json",
+                &json.display().to_string(),
+            ] {
+                args.push(a.into());
+            }
+            tools.keel.clone()
+        }
+        Impl::Torch | Impl::Jax => {
+            let script = root
+                .join("bench")
+                .join(format!("hnn_{}.py", imp.name()))
+                .display()
+                .to_string();
+            for a in [
+                script.as_str(),
+                "--data",
+                &data.display().to_string(),
+                "--hidden",
+                &hidden,
+                "--batch",
+                &batch,
+                "--steps",
+                &steps_s,
+                "--lr",
+                LR,
+                "--threads",
+                &threads,
+                "--json",
+                &json.display().to_string(),
+            ] {
+                args.push(a.into());
+            }
+            tools
+                .python
+                .clone()
+                .context("no Python environment for the references")?
+        }
+    };
+    let mut cmd = if tools.taskset {
+        let mut c = Command::new("taskset");
+        c.arg("-c")
+            .arg(
+                (0..cfg.threads)
+                    .map(|c| c.to_string())
+                    .collect::<Vec<_>>()
+                    .join(","),
+            )
+            .arg(&program);
+        c
+    } else {
+        Command::new(&program)
+    };
+    cmd.args(&args)
+        .current_dir(root.join("bench"))
+        .env("CUDA_VISIBLE_DEVICES", "")
+        .env("JAX_PLATFORMS", "cpu");
+    let out = cmd
+        .output()
+        .with_context(|| format!("starting {}", program.display()))?;
+    if !out.status.success() {
+        bail!(
+            "{} {} failed ({}):\n{}",
+            imp.name(),
+            cfg.label(),
+            out.status,
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let text = std::fs::read_to_string(&json)
+        .with_context(|| format!("{} wrote no summary {}", imp.name(), json.display()))?;
+    let get = |k: &str| {
+        json_number(&text, k).with_context(|| format!("{}: no number `{k}`", json.display()))
+    };
+    Ok(RunResult {
+        samples_per_second: get("samples_per_second")?,
+        final_loss: get("final_train_loss")?,
+    })
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    }
+}
+
+/// Floating-point operations per training sample of one optimizer step of
+/// Keel's trainer for the general energy network `sizes`
+/// (`[inputs, hidden.., 1]`), counted from trainer/src/net.rs and hnn.rs:
+/// a multiply-add is 2, every other arithmetic operation 1, tanh 1. Returns
+/// (per-sample work, per-step work shared by the batch).
+pub fn flops_per_sample(sizes: &[usize]) -> (f64, f64) {
+    let l = sizes.len() - 1;
+    let mac = |k: usize| (sizes[k] * sizes[k + 1]) as f64;
+    let all: f64 = (0..l).map(mac).sum();
+    let hidden_units: f64 = sizes[1..l].iter().sum::<usize>() as f64;
+    // Forward: products, biases, activation value + s' + s'' (tanh, 1 - t*t,
+    // -2*t*d: 5 operations).
+    let forward = 2.0 * all + (sizes[1..].iter().sum::<usize>() as f64) + 5.0 * hidden_units;
+    // Input gradient: d_k = g_k W_k, g_{k-1} = d_k * s'.
+    let input_grad = 2.0 * all + hidden_units;
+    // Tangent pass: zdot_k = adot_k W_k^T, adot_{k+1} = zdot_k * s'.
+    let tangent = 2.0 * all + hidden_units;
+    // Reverse pass: g_k^T adot_k every layer; zbar_k^T a_k, bias sums and
+    // zbar_k W_k for the hidden layers; zbar_{k-1} = ab*s1 + d*zd*s2.
+    let mut reverse = 0.0;
+    for k in 0..l {
+        reverse += 2.0 * mac(k);
+        if k + 1 < l {
+            reverse += 2.0 * mac(k) + sizes[k + 1] as f64;
+            if k > 0 {
+                reverse += 2.0 * mac(k);
+            }
+        }
+        if k > 0 {
+            reverse += 4.0 * sizes[k] as f64;
+        }
+    }
+    // Loss: per component gain*u - t, square and sum, 2*e*gain/d.
+    let loss = 7.0 * sizes[0] as f64;
+    let params: f64 = (0..l).map(|k| mac(k) + sizes[k + 1] as f64).sum();
+    // Per step: scale by 1/batch, clip norm (square + add), Adam (about 13:
+    // two moment updates, bias corrections, sqrt, add, divide, multiply,
+    // subtract).
+    let per_step = params * (1.0 + 2.0 + 13.0);
+    (forward + input_grad + tangent + reverse + loss, per_step)
+}
+
+/// CPU facts for the peak estimate.
+struct Cpu {
+    model: String,
+    mhz: f64,
+    fma: bool,
+    avx2: bool,
+    avx512: bool,
+}
+
+fn cpu_info() -> Cpu {
+    let text = std::fs::read_to_string("/proc/cpuinfo").unwrap_or_default();
+    let field = |name: &str| {
+        text.lines()
+            .find(|l| l.starts_with(name))
+            .and_then(|l| l.split_once(':'))
+            .map(|(_, v)| v.trim().to_string())
+            .unwrap_or_default()
+    };
+    let flags = field("flags");
+    let has = |f: &str| flags.split_whitespace().any(|x| x == f);
+    Cpu {
+        model: field("model name"),
+        mhz: field("cpu MHz").parse().unwrap_or(0.0),
+        fma: has("fma"),
+        avx2: has("avx2"),
+        avx512: has("avx512f"),
+    }
+}
+
+fn shell_line(program: &str, args: &[&str]) -> String {
+    Command::new(program)
+        .args(args)
+        .output()
+        .ok()
+        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
+        .unwrap_or_default()
+}
+
+/// Run the benchmark; Ok(false) when the final losses disagree.
+pub fn run(args: &[String]) -> Result<bool> {
+    let o = parse_options(args)?;
+    let root = crate::workspace_root();
+    let work = target_dir(&root).join("bench");
+    std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
+    let data = work.join("mass-spring.csv");
+    write_file(&data, &mass_spring_csv())?;
+    let needs_python = o.impls.iter().any(|i| *i != Impl::Keel);
+    let tools = Tools {
+        keel: build_keel(&root)?,
+        python: if needs_python {
+            Some(ensure_venv(&root)?)
+        } else {
+            None
+        },
+        taskset: Command::new("taskset")
+            .args(["-c", "0", "true"])
+            .status()
+            .is_ok_and(|s| s.success()),
+    };
+    let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let thread_counts: Vec<usize> = [1, 2].into_iter().filter(|t| *t <= cpus).collect();
+    let mut configs = Vec::new();
+    for batch in BATCHES {
+        for &threads in &thread_counts {
+            configs.push(Config { batch, threads });
+        }
+    }
+    let cpu = cpu_info();
+    println!(
+        "machine: {} CPUs, {} at {:.0} MHz; {}; data {} ({} x {} samples); {} rounds of {} steps",
+        cpus,
+        cpu.model,
+        cpu.mhz,
+        shell_line("date", &["-u", "+%Y-%m-%d %H:%M UTC"]),
+        data.display(),
+        TRAJECTORIES,
+        SAMPLES,
+        o.rounds,
+        o.steps
+    );
+    if !tools.taskset {
+        println!("note: taskset not available; runs are not pinned to CPUs");
+    }
+    // results[config][impl] = one entry per round.
+    let ni = o.impls.len();
+    let mut results: Vec<Vec<Vec<RunResult>>> = vec![vec![Vec::new(); ni]; configs.len()];
+    for round in 0..o.rounds {
+        for (ci, cfg) in configs.iter().enumerate() {
+            for j in 0..ni {
+                let ii = (j + round) % ni;
+                let imp = o.impls[ii];
+                let r = run_one(&tools, &root, &work, &data, imp, *cfg, o.steps)?;
+                println!(
+                    "  round {} {} {}: {:.0} samples/s, final loss {:.3e}",
+                    round + 1,
+                    cfg.label(),
+                    imp.name(),
+                    r.samples_per_second,
+                    r.final_loss
+                );
+                results[ci][ii].push(r);
+            }
+        }
+    }
+    let pos = |imp: Impl| o.impls.iter().position(|i| *i == imp);
+    let med_rate = |ci: usize, ii: usize| {
+        median(
+            results[ci][ii]
+                .iter()
+                .map(|r| r.samples_per_second)
+                .collect(),
+        )
+    };
+    // Median over rounds of the ratio measured within each round.
+    let paired = |ci: usize, a: usize, b: usize| {
+        median(
+            results[ci][a]
+                .iter()
+                .zip(&results[ci][b])
+                .map(|(x, y)| x.samples_per_second / y.samples_per_second)
+                .collect(),
+        )
+    };
+    println!();
+    let mut agree = true;
+    for (ci, cfg) in configs.iter().enumerate() {
+        let mut line = format!("train {}:", cfg.label());
+        let mut parts = Vec::new();
+        for (ii, imp) in o.impls.iter().enumerate() {
+            parts.push(if *imp == Impl::Keel {
+                format!(" {} {:.0} samples/s", imp.name(), med_rate(ci, ii))
+            } else {
+                format!(" {} {:.0}", imp.name(), med_rate(ci, ii))
+            });
+        }
+        if let Some(k) = pos(Impl::Keel) {
+            for other in [Impl::Torch, Impl::Jax] {
+                if let Some(x) = pos(other) {
+                    parts.push(format!(" keel/{} {:.2}", other.name(), paired(ci, k, x)));
+                }
+            }
+        }
+        line.push_str(&parts.join(","));
+        println!("{line}");
+        let losses: Vec<f64> = (0..ni)
+            .map(|ii| median(results[ci][ii].iter().map(|r| r.final_loss).collect()))
+            .collect();
+        let lo = losses.iter().copied().fold(f64::INFINITY, f64::min);
+        let hi = losses.iter().copied().fold(0.0, f64::max);
+        let ok = lo.is_finite() && hi.is_finite() && lo > 0.0 && hi <= 2.0 * lo;
+        agree &= ok;
+        println!(
+            "  final loss (all 4096 samples, median): {} -> {}",
+            o.impls
+                .iter()
+                .zip(&losses)
+                .map(|(i, l)| format!("{} {l:.3e}", i.name()))
+                .collect::<Vec<_>>()
+                .join(", "),
+            if ok {
+                "agree within a factor of 2"
+            } else {
+                "DISAGREE (more than a factor of 2 apart)"
+            }
+        );
+    }
+    if thread_counts.len() == 2 {
+        for batch in BATCHES {
+            let one = configs
+                .iter()
+                .position(|c| c.batch == batch && c.threads == 1);
+            let two = configs
+                .iter()
+                .position(|c| c.batch == batch && c.threads == 2);
+            let (Some(one), Some(two)) = (one, two) else {
+                continue;
+            };
+            let ratios: Vec<String> = o
+                .impls
+                .iter()
+                .enumerate()
+                .map(|(ii, imp)| {
+                    format!(
+                        "{} {:.2}",
+                        imp.name(),
+                        med_rate(two, ii) / med_rate(one, ii)
+                    )
+                })
+                .collect();
+            println!(
+                "scaling batch {batch}: 2-thread / 1-thread throughput: {}",
+                ratios.join(", ")
+            );
+        }
+    }
+    if let Some(k) = pos(Impl::Keel) {
+        let mut sizes = vec![2];
+        sizes.extend_from_slice(&HIDDEN);
+        sizes.push(1);
+        let (per_sample, per_step) = flops_per_sample(&sizes);
+        // Peak per core: vector lanes x 2 (fused multiply-add) x 2 FMA units
+        // per core (common practice for recent x86 server cores; an
+        // assumption, not measured). ndarray's matrix products use 256-bit
+        // AVX2 + FMA kernels, so the AVX2 peak is the relevant one.
+        let lanes = if cpu.avx2 { 8.0 } else { 4.0 };
+        let fma = if cpu.fma { 2.0 } else { 1.0 };
+        let peak = cpu.mhz / 1000.0 * lanes * fma * 2.0;
+        println!(
+            "flops: keel step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
+             (Adam, clipping); peak assumption {peak:.1} GFLOP/s per core = {:.2} GHz x {} f32 \
+             lanes ({}) x {} (FMA) x 2 FMA units{}",
+            cpu.mhz / 1000.0,
+            lanes,
+            if cpu.avx2 { "AVX2" } else { "SSE" },
+            fma,
+            if cpu.avx512 {
+                "; AVX-512 would double it, but the matrix kernels in use are AVX2"
+            } else {
+                ""
+            }
+        );
+        for (ci, cfg) in configs.iter().enumerate() {
+            let rate = med_rate(ci, k);
+            let gflops = rate * (per_sample + per_step / cfg.batch as f64) / 1e9;
+            let cores_peak = peak * cfg.threads as f64;
+            println!(
+                "flops {}: keel {gflops:.2} GFLOP/s achieved of {cores_peak:.1} peak ({:.1} %)",
+                cfg.label(),
+                100.0 * gflops / cores_peak
+            );
+        }
+    }
+    if !agree {
+        println!("final losses disagree by more than a factor of 2: the comparison is not valid");
+    }
+    Ok(agree)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Hand count for 2-64-64-1 (see net.rs): the matrix products are three
+    /// passes of 2*64 + 64*64 + 64 = 4288 multiply-adds plus the reverse
+    /// pass's 64 + 3*4096 + 2*128 = 12608, i.e. 25472 multiply-adds.
+    #[test]
+    fn flop_count_matches_hand_count_of_matrix_products() {
+        let (per_sample, per_step) = flops_per_sample(&[2, 64, 64, 1]);
+        let matrix = 2.0 * 25472.0;
+        let elementwise = per_sample - matrix;
+        // forward 129 + 640, input gradient 128, tangent 128, reverse
+        // 128 + 512, loss 14.
+        assert_eq!(
+            elementwise,
+            129.0 + 640.0 + 128.0 + 128.0 + 128.0 + 512.0 + 14.0
+        );
+        // 4417 parameters (2*64+64 + 64*64+64 + 64+1), 16 operations each.
+        assert_eq!(per_step, 4417.0 * 16.0);
+    }
+
+    /// The log is the textbook solution: energy (q^2 + p^2) / 2 is constant
+    /// along each trajectory and the derivatives are (p, -q).
+    #[test]
+    fn mass_spring_log_follows_the_closed_form() {
+        let csv = mass_spring_csv();
+        let mut lines = csv.lines();
+        assert_eq!(lines.next(), Some("traj,t,q1,p1,dq1,dp1"));
+        let rows: Vec<Vec<f64>> = lines
+            .map(|l| l.split(',').map(|v| v.parse().unwrap()).collect())
+            .collect();
+        assert_eq!(rows.len(), TRAJECTORIES * SAMPLES);
+        for traj in rows.chunks(SAMPLES) {
+            let r2 = traj[0][2].powi(2) + traj[0][3].powi(2);
+            assert!((0.04..=1.0).contains(&r2));
+            for row in traj {
+                assert!((row[2].powi(2) + row[3].powi(2) - r2).abs() < 1e-12);
+                assert_eq!(row[4], row[3]);
+                assert_eq!(row[5], -row[2]);
+            }
+        }
+    }
+
+    #[test]
+    fn reads_numbers_from_our_summaries() {
+        let text = "{\n  \"samples_per_second\": 12345.5,\n  \"final_train_loss\": 1.5e-05\n}";
+        assert_eq!(json_number(text, "samples_per_second"), Some(12345.5));
+        assert_eq!(json_number(text, "final_train_loss"), Some(1.5e-5));
+        assert_eq!(json_number(text, "missing"), None);
+    }
+}

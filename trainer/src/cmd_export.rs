@@ -146,8 +146,8 @@ pub fn run(args: Args) -> Result<()> {
     }
     println!("wrote {} ({} bytes)", args.out.display(), r.bytes);
     println!(
-        "  weights {:?}, {} parameters, {:.2} bytes/parameter",
-        r.weights, r.parameters, r.bytes_per_parameter
+        "  weights {}, {} parameters, {:.2} bytes/parameter",
+        format!("{:?}", r.weights).to_lowercase(), r.parameters, r.bytes_per_parameter
     );
     println!(
         "  integrator {} dt {} s x {} substeps; {} MAC/gradient, {} MAC/step{}",

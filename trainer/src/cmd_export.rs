@@ -147,7 +147,9 @@ pub fn run(args: Args) -> Result<()> {
     println!("wrote {} ({} bytes)", args.out.display(), r.bytes);
     println!(
         "  weights {}, {} parameters, {:.2} bytes/parameter",
-        format!("{:?}", r.weights).to_lowercase(), r.parameters, r.bytes_per_parameter
+        format!("{:?}", r.weights).to_lowercase(),
+        r.parameters,
+        r.bytes_per_parameter
     );
     println!(
         "  integrator {} dt {} s x {} substeps; {} MAC/gradient, {} MAC/step{}",

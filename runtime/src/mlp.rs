@@ -229,48 +229,146 @@ fn activate(act: Activation, a: f32) -> (f32, f32) {
     }
 }
 
+/// Rows processed together by the dense kernels. Each output keeps its own
+/// accumulator and its own summation order (index order), so blocking
+/// changes no bit of the result; it lets one load of `x[i]` (or of an
+/// accumulator) serve four weights (see DEVELOPERS.md, device cost).
+const BLOCK: usize = 4;
+
+/// A little-endian f32 from a 4-byte chunk (from `chunks_exact(4)`).
+#[inline(always)]
+fn le_f32(c: &[u8]) -> f32 {
+    f32::from_le_bytes([c[0], c[1], c[2], c[3]])
+}
+
 /// y = W x + b, summing each row in index order.
 #[inline]
 fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
     let ni = l.inputs;
+    let x = &x[..ni.min(x.len())];
     match l.weights {
         WeightsDesc::F32(w) => {
-            for (j, (yj, row)) in y.iter_mut().zip(w.0.chunks_exact(4 * ni)).enumerate() {
+            let mut j = 0;
+            while j + BLOCK <= y.len() {
+                let base = 4 * ni * j;
+                let r = |b: usize| &w.0[base + 4 * ni * b..base + 4 * ni * (b + 1)];
+                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
+                let mut acc = [0.0f32; BLOCK];
+                let quads = r0
+                    .chunks_exact(4)
+                    .zip(r1.chunks_exact(4))
+                    .zip(r2.chunks_exact(4))
+                    .zip(r3.chunks_exact(4));
+                for ((((c0, c1), c2), c3), xi) in quads.zip(x) {
+                    acc[0] += le_f32(c0) * xi;
+                    acc[1] += le_f32(c1) * xi;
+                    acc[2] += le_f32(c2) * xi;
+                    acc[3] += le_f32(c3) * xi;
+                }
+                for (b, a) in acc.iter().enumerate() {
+                    y[j + b] = a + l.bias.get(j + b);
+                }
+                j += BLOCK;
+            }
+            for (jj, row) in w.0.chunks_exact(4 * ni).enumerate().skip(j) {
                 let mut acc = 0.0f32;
                 for (c, xi) in row.chunks_exact(4).zip(x) {
-                    acc += f32::from_le_bytes([c[0], c[1], c[2], c[3]]) * xi;
+                    acc += le_f32(c) * xi;
                 }
-                *yj = acc + l.bias.get(j);
+                if let Some(yj) = y.get_mut(jj) {
+                    *yj = acc + l.bias.get(jj);
+                }
             }
         }
         WeightsDesc::Int8 { values, scales } => {
-            for (j, (yj, row)) in y.iter_mut().zip(values.chunks_exact(ni)).enumerate() {
+            let mut j = 0;
+            while j + BLOCK <= y.len() {
+                let base = ni * j;
+                let r = |b: usize| &values[base + b * ni..base + (b + 1) * ni];
+                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
+                let mut acc = [0.0f32; BLOCK];
+                let quads = r0.iter().zip(r1).zip(r2).zip(r3);
+                for ((((v0, v1), v2), v3), xi) in quads.zip(x) {
+                    acc[0] += (*v0 as i8) as f32 * xi;
+                    acc[1] += (*v1 as i8) as f32 * xi;
+                    acc[2] += (*v2 as i8) as f32 * xi;
+                    acc[3] += (*v3 as i8) as f32 * xi;
+                }
+                for (b, a) in acc.iter().enumerate() {
+                    y[j + b] = a * scales.get(j + b) + l.bias.get(j + b);
+                }
+                j += BLOCK;
+            }
+            for (jj, row) in values.chunks_exact(ni).enumerate().skip(j) {
                 let mut acc = 0.0f32;
                 for (v, xi) in row.iter().zip(x) {
                     acc += (*v as i8) as f32 * xi;
                 }
-                *yj = acc * scales.get(j) + l.bias.get(j);
+                if let Some(yj) = y.get_mut(jj) {
+                    *yj = acc * scales.get(jj) + l.bias.get(jj);
+                }
             }
         }
     }
 }
 
-/// gx = W^T g, accumulated row by row (deterministic order over outputs).
+/// gx = W^T g, accumulated over outputs j in index order for every input
+/// (four rows per pass, same order, same bits).
 #[inline]
 fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
     let ni = l.inputs;
     gx.iter_mut().for_each(|v| *v = 0.0);
+    let no = g.len();
     match l.weights {
         WeightsDesc::F32(w) => {
-            for (gj, row) in g.iter().zip(w.0.chunks_exact(4 * ni)) {
+            let mut j = 0;
+            while j + BLOCK <= no {
+                let base = 4 * ni * j;
+                let r = |b: usize| &w.0[base + 4 * ni * b..base + 4 * ni * (b + 1)];
+                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
+                let (g0, g1, g2, g3) = (g[j], g[j + 1], g[j + 2], g[j + 3]);
+                let quads = r0
+                    .chunks_exact(4)
+                    .zip(r1.chunks_exact(4))
+                    .zip(r2.chunks_exact(4))
+                    .zip(r3.chunks_exact(4));
+                for ((((c0, c1), c2), c3), o) in quads.zip(gx.iter_mut()) {
+                    let mut v = *o;
+                    v += le_f32(c0) * g0;
+                    v += le_f32(c1) * g1;
+                    v += le_f32(c2) * g2;
+                    v += le_f32(c3) * g3;
+                    *o = v;
+                }
+                j += BLOCK;
+            }
+            for (gj, row) in g.iter().zip(w.0.chunks_exact(4 * ni)).skip(j) {
                 for (c, o) in row.chunks_exact(4).zip(gx.iter_mut()) {
-                    *o += f32::from_le_bytes([c[0], c[1], c[2], c[3]]) * gj;
+                    *o += le_f32(c) * gj;
                 }
             }
         }
         WeightsDesc::Int8 { values, scales } => {
-            for (j, (gj, row)) in g.iter().zip(values.chunks_exact(ni)).enumerate() {
-                let gs = gj * scales.get(j);
+            let mut j = 0;
+            while j + BLOCK <= no {
+                let base = ni * j;
+                let r = |b: usize| &values[base + ni * b..base + ni * (b + 1)];
+                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
+                let gs = |b: usize| g[j + b] * scales.get(j + b);
+                let (g0, g1, g2, g3) = (gs(0), gs(1), gs(2), gs(3));
+                let quads = r0.iter().zip(r1).zip(r2).zip(r3);
+                for ((((v0, v1), v2), v3), o) in quads.zip(gx.iter_mut()) {
+                    let mut v = *o;
+                    v += (*v0 as i8) as f32 * g0;
+                    v += (*v1 as i8) as f32 * g1;
+                    v += (*v2 as i8) as f32 * g2;
+                    v += (*v3 as i8) as f32 * g3;
+                    *o = v;
+                }
+                j += BLOCK;
+            }
+            for (jj, (gj, row)) in g.iter().zip(values.chunks_exact(ni)).enumerate().skip(j) {
+                let gs = gj * scales.get(jj);
                 for (v, o) in row.iter().zip(gx.iter_mut()) {
                     *o += (*v as i8) as f32 * gs;
                 }

@@ -500,6 +500,9 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
             );
         }
     }
+    println!(
+        "  (instr/MAC is a floor-to-goal measure for the explicit methods; for implicit midpoint\n   MAC/step is the bound at the iteration limit, so its instr/MAC understates the real cost)"
+    );
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);
     }

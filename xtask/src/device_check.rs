@@ -501,7 +501,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         }
     }
     println!(
-        "  (instr/MAC is a floor-to-goal measure for the explicit methods; for implicit midpoint\n   MAC/step is the bound at the iteration limit, so its instr/MAC understates the real cost)"
+        "  (instr/MAC: emulated instructions per multiply-accumulate; for implicit midpoint MAC/step\n   is the bound at the iteration limit, so its ratio understates the real cost)"
     );
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);

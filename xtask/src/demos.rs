@@ -126,29 +126,6 @@ const DEMOS: &[(&str, &[Log])] = &[
     ),
 ];
 
-fn build_keel(root: &Path) -> Result<PathBuf> {
-    let status = Command::new(crate::tools::cargo())
-        .args([
-            "build",
-            "--release",
-            "--quiet",
-            "-p",
-            "keel-trainer",
-            "--bin",
-            "keel",
-        ])
-        .current_dir(root)
-        .status()
-        .context("starting cargo build")?;
-    if !status.success() {
-        bail!("building keel failed ({status})");
-    }
-    let target = std::env::var_os("CARGO_TARGET_DIR")
-        .map(PathBuf::from)
-        .unwrap_or_else(|| root.join("target"));
-    Ok(target.join("release").join("keel"))
-}
-
 fn keel(exe: &Path, args: &[&str], extra: &[&Path]) -> Result<()> {
     let mut cmd = Command::new(exe);
     cmd.args(args).args(extra);
@@ -177,7 +154,7 @@ fn blobs(out: &Path) -> Result<Vec<(PathBuf, Vec<u8>)>> {
 /// Run every demo; with `verify`, check the logs and blobs reproduce.
 pub fn run(verify: bool, regenerate_data: bool) -> Result<bool> {
     let root = crate::workspace_root();
-    let exe = build_keel(&root)?;
+    let exe = crate::tools::build_keel(&root)?;
     let scratch = root.join("target/demo-verify");
     std::fs::create_dir_all(&scratch)?;
     let mut ok = true;

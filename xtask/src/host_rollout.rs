@@ -33,27 +33,8 @@ pub struct KeelCommand {
 impl KeelCommand {
     /// Build `keel` in release and use it, writing CSVs into `work`.
     pub fn build(root: &Path, work: &Path) -> Result<Self> {
-        let status = Command::new(crate::tools::cargo())
-            .args([
-                "build",
-                "--release",
-                "--quiet",
-                "-p",
-                "keel-trainer",
-                "--bin",
-                "keel",
-            ])
-            .current_dir(root)
-            .status()
-            .context("starting cargo build -p keel-trainer")?;
-        if !status.success() {
-            bail!("building keel failed ({status})");
-        }
-        let target = std::env::var_os("CARGO_TARGET_DIR")
-            .map(PathBuf::from)
-            .unwrap_or_else(|| root.join("target"));
         Ok(Self {
-            exe: target.join("release").join("keel"),
+            exe: crate::tools::build_keel(root)?,
             work: work.to_path_buf(),
         })
     }

@@ -114,6 +114,30 @@ pub fn ensure_defmt_print() -> Result<()> {
     Ok(())
 }
 
+/// Build the `keel` command in release and return its path.
+pub fn build_keel(root: &std::path::Path) -> Result<std::path::PathBuf> {
+    let status = Command::new(cargo())
+        .args([
+            "build",
+            "--release",
+            "--quiet",
+            "-p",
+            "keel-trainer",
+            "--bin",
+            "keel",
+        ])
+        .current_dir(root)
+        .status()
+        .context("starting cargo build -p keel-trainer")?;
+    if !status.success() {
+        bail!("building keel failed ({status})");
+    }
+    let target = std::env::var_os("CARGO_TARGET_DIR")
+        .map(std::path::PathBuf::from)
+        .unwrap_or_else(|| root.join("target"));
+    Ok(target.join("release").join("keel"))
+}
+
 /// Everything the device check needs.
 pub fn ensure_all() -> Result<()> {
     ensure_target()?;

@@ -32,7 +32,7 @@ pub struct Cost {
 #[derive(Debug, Clone, Copy)]
 pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
     dof: usize,
-    offset: [f32; D],
+    offset_q: [f32; D],
     scale_q: [f32; D],
     scale_p: [f32; D],
     offset_p: [f32; D],
@@ -92,7 +92,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         }
         let mut m = Self {
             dof: n,
-            offset: [0.0; D],
+            offset_q: [0.0; D],
             offset_p: [0.0; D],
             scale_q: [1.0; D],
             scale_p: [1.0; D],
@@ -101,7 +101,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
             integrator: desc.integrator,
         };
         for i in 0..n {
-            m.offset[i] = desc.offset.get(i);
+            m.offset_q[i] = desc.offset.get(i);
             m.offset_p[i] = desc.offset.get(n + i);
             m.scale_q[i] = desc.scale.get(i);
             m.scale_p[i] = desc.scale.get(n + i);
@@ -170,6 +170,27 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         Ok(())
     }
 
+    /// The gradient of one separable half (coordinates or momenta) in
+    /// physical units: normalize, let `grad` write dE/dz, then
+    /// dH/dv_i = energy_scale * dE/dz_i / scale_i.
+    fn half_gradient(
+        &self,
+        v: &[f32; D],
+        off: &[f32; D],
+        sc: &[f32; D],
+        out: &mut [f32; D],
+        grad: impl FnOnce(&[f32], &mut [f32]),
+    ) {
+        let n = self.dof;
+        let mut z = [0.0f32; D];
+        let mut g = [0.0f32; D];
+        Self::normalize(v, off, sc, n, &mut z);
+        grad(&z[..n], &mut g[..n]);
+        for i in 0..n {
+            out[i] = self.energy_scale * g[i] / sc[i];
+        }
+    }
+
     fn normalize(v: &[f32; D], off: &[f32; D], sc: &[f32; D], n: usize, z: &mut [f32]) {
         for i in 0..n {
             z[i] = (v[i] - off[i]) / sc[i];
@@ -191,7 +212,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         let n = self.dof;
         let mut zq = [0.0f32; D];
         let mut zp = [0.0f32; D];
-        Self::normalize(&x.q, &self.offset, &self.scale_q, n, &mut zq);
+        Self::normalize(&x.q, &self.offset_q, &self.scale_q, n, &mut zq);
         Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut zp);
         let e = match &self.energy {
             Energy::General(m) => {
@@ -219,7 +240,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
                 let n = self.dof;
                 let mut z = [0.0f32; 32];
                 let mut g = [0.0f32; 32];
-                Self::normalize(&x.q, &self.offset, &self.scale_q, n, &mut z[..n]);
+                Self::normalize(&x.q, &self.offset_q, &self.scale_q, n, &mut z[..n]);
                 Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut z[n..2 * n]);
                 m.value_and_gradient(&z[..2 * n], &mut g[..2 * n]);
                 for i in 0..n {
@@ -239,14 +260,9 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         let Energy::Separable { potential, .. } = &self.energy else {
             return Err(StepError::NotSeparable);
         };
-        let n = self.dof;
-        let mut z = [0.0f32; D];
-        let mut g = [0.0f32; D];
-        Self::normalize(q, &self.offset, &self.scale_q, n, &mut z);
-        potential.value_and_gradient(&z[..n], &mut g[..n]);
-        for i in 0..n {
-            out[i] = self.energy_scale * g[i] / self.scale_q[i];
-        }
+        self.half_gradient(q, &self.offset_q, &self.scale_q, out, |z, g| {
+            potential.value_and_gradient(z, g);
+        });
         Ok(())
     }
 
@@ -254,14 +270,9 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         let Energy::Separable { kinetic, .. } = &self.energy else {
             return Err(StepError::NotSeparable);
         };
-        let n = self.dof;
-        let mut z = [0.0f32; D];
-        let mut g = [0.0f32; D];
-        Self::normalize(p, &self.offset_p, &self.scale_p, n, &mut z);
-        kinetic.eval(&z[..n], Some(&mut g[..n]));
-        for i in 0..n {
-            out[i] = self.energy_scale * g[i] / self.scale_p[i];
-        }
+        self.half_gradient(p, &self.offset_p, &self.scale_p, out, |z, g| {
+            kinetic.eval(z, Some(g));
+        });
         Ok(())
     }
 }

@@ -71,6 +71,8 @@ pub enum BlobError {
     MethodNeedsSeparableModel,
     /// A dissipation or input term this runtime version cannot evaluate.
     UnsupportedTerm { section: Section },
+    /// An explicit symplectic method paired with dissipation or inputs.
+    MethodIgnoresPortTerms,
 }
 
 impl fmt::Display for BlobError {
@@ -123,6 +125,10 @@ impl fmt::Display for BlobError {
                 "Stormer-Verlet and Yoshida-4 need a separable model H = T(p) + V(q); \
                  use implicit midpoint (or RK4) for a general model",
             ),
+            Self::MethodIgnoresPortTerms => f.write_str(
+                "Stormer-Verlet and Yoshida-4 would drop the damping and input terms; store the \
+                 discrete-gradient method (or implicit midpoint) for a damped or driven model",
+            ),
             Self::UnsupportedTerm { section } => {
                 write!(f, "{section:?} term is not supported by this runtime version")
             }
@@ -148,6 +154,11 @@ pub enum StepError {
     NotSeparable,
     /// Integrator settings out of range.
     BadSettings,
+    /// The number of inputs given differs from the model's.
+    InputMismatch { model: u32, given: u32 },
+    /// An explicit symplectic method was asked to step a damped or driven
+    /// model; it would silently drop R and G.
+    MethodIgnoresPortTerms,
 }
 
 impl fmt::Display for StepError {
@@ -168,6 +179,13 @@ impl fmt::Display for StepError {
             ),
             Self::NotSeparable => f.write_str("method needs a separable Hamiltonian"),
             Self::BadSettings => f.write_str("integrator settings out of range"),
+            Self::InputMismatch { model, given } => {
+                write!(f, "{given} input values given, the model takes {model}")
+            }
+            Self::MethodIgnoresPortTerms => f.write_str(
+                "Stormer-Verlet and Yoshida-4 step only the conservative part; use the \
+                 discrete-gradient method (or implicit midpoint) for a damped or driven model",
+            ),
         }
     }
 }

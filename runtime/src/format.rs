@@ -4,7 +4,7 @@
 //! ```text
 //! offset  size  field
 //! 0       4     magic tag b"KEEL"
-//! 4       2     format version (u16)
+//! 4       2     format version (u16): 1, or 2 with port terms
 //! 6       4     payload length L (u32)
 //! 10      L     payload: postcard encoding of [`ModelDesc`]
 //! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
@@ -23,8 +23,14 @@ use crate::integrate::Integrator;
 
 /// First four bytes of every blob.
 pub const MAGIC: [u8; 4] = *b"KEEL";
-/// The format version this runtime writes and reads.
-pub const FORMAT_VERSION: u16 = 1;
+/// The newest format version this runtime reads and writes. Version 2 added
+/// the dissipation and input sections; a blob without them is still written
+/// as version 1, so firmware built before version 2 keeps reading it.
+pub const FORMAT_VERSION: u16 = 2;
+/// The oldest format version this runtime reads.
+pub const OLDEST_READABLE_VERSION: u16 = 1;
+/// Most inputs u1..um of a driven model.
+pub const MAX_INPUTS: usize = 8;
 /// Bytes before the payload: magic, version, length.
 pub const HEADER_LEN: usize = 10;
 /// Bytes after the payload: the CRC.
@@ -150,18 +156,34 @@ pub enum EnergyDesc<'a> {
     },
 }
 
-/// Dissipation term; format version 1 only has `None` (reserved for damping).
+/// Dissipation in the port-Hamiltonian form dx/dt = (J - R) dH/dx + G u.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-pub enum DissipationDesc {
-    /// Conservative model.
+pub enum DissipationDesc<'a> {
+    /// Conservative model (R = 0).
     None,
+    /// Constant R = L L^T (positive semidefinite by construction), in
+    /// physical units, with L the lower-triangular 2n x 2n factor stored row
+    /// by row (L00, L10, L11, ...): n (2n + 1) values. Format version 2.
+    Constant {
+        /// The factor L.
+        #[serde(borrow)]
+        factor: F32Bytes<'a>,
+    },
 }
 
-/// Input coupling; format version 1 only has `None` (reserved for actuators).
+/// Input coupling G u of a driven model.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-pub enum InputDesc {
+pub enum InputDesc<'a> {
     /// Autonomous model.
     None,
+    /// Constant G (2n x m, row-major, physical units). Format version 2.
+    Constant {
+        /// Number of inputs m (1..=MAX_INPUTS).
+        inputs: u8,
+        /// The matrix G.
+        #[serde(borrow)]
+        matrix: F32Bytes<'a>,
+    },
 }
 
 /// Everything a blob describes. Physical energy is
@@ -183,10 +205,12 @@ pub struct ModelDesc<'a> {
     pub energy: EnergyDesc<'a>,
     /// How to step the model.
     pub integrator: Integrator,
-    /// Reserved for dissipation.
-    pub dissipation: DissipationDesc,
-    /// Reserved for inputs.
-    pub input: InputDesc,
+    /// Dissipation R (none for a conservative model).
+    #[serde(borrow)]
+    pub dissipation: DissipationDesc<'a>,
+    /// Input coupling G (none for an autonomous model).
+    #[serde(borrow)]
+    pub input: InputDesc<'a>,
 }
 
 /// Write `desc` as a complete blob into `out`; returns the bytes used.
@@ -208,7 +232,14 @@ pub fn encode(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> 
         })?
         .len();
     head[..4].copy_from_slice(&MAGIC);
-    head[4..6].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
+    // The oldest version that can express the model, so older firmware
+    // keeps reading conservative, autonomous blobs.
+    let version = if desc.dissipation == DissipationDesc::None && desc.input == InputDesc::None {
+        OLDEST_READABLE_VERSION
+    } else {
+        FORMAT_VERSION
+    };
+    head[4..6].copy_from_slice(&version.to_le_bytes());
     head[6..10].copy_from_slice(&(body_len as u32).to_le_bytes());
     let end = HEADER_LEN + body_len;
     let crc = CRC32.checksum(&out[4..end]);
@@ -243,7 +274,7 @@ pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
         return Err(BlobError::BadMagic);
     }
     let version = u16::from_le_bytes([ver[0], ver[1]]);
-    if version != FORMAT_VERSION {
+    if !(OLDEST_READABLE_VERSION..=FORMAT_VERSION).contains(&version) {
         return Err(BlobError::UnsupportedVersion {
             found: version,
             supported: FORMAT_VERSION,
@@ -284,11 +315,16 @@ pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
 
 /// Check the container and decode the description (not yet validated).
 pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
-    let (_, payload) = open(bytes)?;
+    let (env, payload) = open(bytes)?;
     let (desc, rest) =
         postcard::take_from_bytes::<ModelDesc<'_>>(payload).map_err(|_| BlobError::Malformed)?;
     if !rest.is_empty() {
         return Err(BlobError::TrailingBytes);
+    }
+    // Version 1 has no port terms; a blob claiming otherwise is damaged.
+    let port = desc.dissipation != DissipationDesc::None || desc.input != InputDesc::None;
+    if env.version < 2 && port {
+        return Err(BlobError::Malformed);
     }
     Ok(desc)
 }

@@ -1,5 +1,7 @@
 //! The interface the integrators need from an energy function, so learned
-//! models and analytic textbook systems are stepped by the same code.
+//! models and analytic textbook systems are stepped by the same code. The
+//! motion is the port-Hamiltonian field f = (J - R) dH/dx + G u; a
+//! conservative, autonomous system has R = 0 and no inputs (the defaults).
 
 use crate::error::StepError;
 use crate::state::State;
@@ -35,18 +37,63 @@ pub trait Hamiltonian<const D: usize> {
         Err(StepError::NotSeparable)
     }
 
-    /// The vector field f(x) = J dH/dx: `dq` = dH/dp, `dp` = -dH/dq.
+    /// Number of inputs m (0 for an autonomous system).
+    fn inputs(&self) -> usize {
+        0
+    }
+
+    /// Whether the system has dissipation R or inputs G.
+    fn has_port_terms(&self) -> bool {
+        false
+    }
+
+    /// Weight of each coordinate in the metric the discrete-gradient method
+    /// uses (1 by default; learned models use 1 / scale^2, so the metric is
+    /// Euclidean in normalized coordinates).
+    fn metric(&self, wq: &mut [f32; D], wp: &mut [f32; D]) {
+        wq.iter_mut().chain(wp.iter_mut()).for_each(|w| *w = 1.0);
+    }
+
+    /// The field f = (J - R) g + G u for a given gradient g = (gq, gp):
+    /// `fq`, `fp` receive dq/dt and dp/dt. `u` holds `inputs()` values.
+    /// The default is the conservative J g.
+    fn field_from_gradient(
+        &self,
+        gq: &[f32; D],
+        gp: &[f32; D],
+        _u: &[f32],
+        fq: &mut [f32; D],
+        fp: &mut [f32; D],
+    ) {
+        for i in 0..self.dof().min(D) {
+            fq[i] = gp[i];
+            fp[i] = -gq[i];
+        }
+    }
+
+    /// The vector field f(x) = (J - R) dH/dx + G u (for an autonomous,
+    /// conservative system, J dH/dx: `dq` = dH/dp, `dp` = -dH/dq).
+    fn vector_field_driven(
+        &self,
+        x: &State<D>,
+        u: &[f32],
+        dq: &mut [f32; D],
+        dp: &mut [f32; D],
+    ) -> Result<(), StepError> {
+        let (mut gq, mut gp) = ([0.0; D], [0.0; D]);
+        self.gradient(x, &mut gq, &mut gp)?;
+        self.field_from_gradient(&gq, &gp, u, dq, dp);
+        Ok(())
+    }
+
+    /// The vector field with no input, f(x) = (J - R) dH/dx.
     fn vector_field(
         &self,
         x: &State<D>,
         dq: &mut [f32; D],
         dp: &mut [f32; D],
     ) -> Result<(), StepError> {
-        let mut gq = [0.0; D];
-        self.gradient(x, &mut gq, dq)?;
-        for (o, g) in dp.iter_mut().zip(gq.iter()).take(self.dof()) {
-            *o = -*g;
-        }
-        Ok(())
+        let zeros = [0.0f32; crate::format::MAX_INPUTS];
+        self.vector_field_driven(x, &zeros[..self.inputs().min(zeros.len())], dq, dp)
     }
 }

@@ -1,6 +1,7 @@
 //! Time steppers: Stormer-Verlet and Yoshida's fourth-order composition for
-//! separable systems, implicit midpoint for general ones, and classical RK4
-//! as a non-symplectic reference. All loops are bounded; a failed step
+//! separable systems, implicit midpoint for general ones, a discrete-gradient
+//! method for damped and driven (port-Hamiltonian) systems, and classical
+//! RK4 as a non-symplectic reference. All loops are bounded; a failed step
 //! returns an error and leaves the state as it was.
 
 use serde::{Deserialize, Serialize};
@@ -29,12 +30,24 @@ pub enum Method {
     ImplicitMidpoint,
     /// Classical Runge-Kutta 4 (order 4, not symplectic; a reference).
     Rk4,
+    /// Gonzalez's discrete-gradient method (order 2, any Hamiltonian):
+    /// H(x1) - H(x0) = -h |L^T g|^2 + h g^T G u exactly for the discrete
+    /// gradient g, so with R = L L^T and no input the energy never rises
+    /// (up to round-off) and without R it is conserved. Solved by bounded
+    /// fixed-point iteration. Format version 2.
+    DiscreteGradient,
 }
 
 impl Method {
     /// True for methods that need H = T(p) + V(q).
     pub fn needs_separable(self) -> bool {
         matches!(self, Self::StormerVerlet | Self::Yoshida4)
+    }
+
+    /// True for methods that step the whole field (J - R) dH/dx + G u;
+    /// the explicit symplectic methods only step J dH/dx.
+    pub fn handles_port_terms(self) -> bool {
+        !self.needs_separable()
     }
 
     /// Gradient evaluations per substep: for separable methods, counted as
@@ -46,6 +59,9 @@ impl Method {
             Self::Yoshida4 => (6, 3),
             Self::ImplicitMidpoint => (1 + max_iterations as u32, 0),
             Self::Rk4 => (4, 0),
+            // A gradient and an energy (a forward pass, half a gradient) per
+            // iteration and for the start.
+            Self::DiscreteGradient => ((3 * (1 + max_iterations as u32)).div_ceil(2), 0),
         }
     }
 }
@@ -95,11 +111,23 @@ impl Integrator {
             && self.tolerance > 0.0
     }
 
-    /// Advance `x` by `dt`. On error `x` is unchanged.
+    /// Advance `x` by `dt` with no input. On error `x` is unchanged.
     pub fn step<const D: usize, H: Hamiltonian<D> + ?Sized>(
         &self,
         h: &H,
         x: &mut State<D>,
+    ) -> Result<(), StepError> {
+        let zeros = [0.0f32; crate::format::MAX_INPUTS];
+        self.step_driven(h, x, &zeros[..h.inputs().min(zeros.len())])
+    }
+
+    /// Advance `x` by `dt` with input `u` held constant over the step
+    /// (`h.inputs()` values). On error `x` is unchanged.
+    pub fn step_driven<const D: usize, H: Hamiltonian<D> + ?Sized>(
+        &self,
+        h: &H,
+        x: &mut State<D>,
+        u: &[f32],
     ) -> Result<(), StepError> {
         if !self.is_valid() {
             return Err(StepError::BadSettings);
@@ -110,11 +138,20 @@ impl Integrator {
                 state: x.dof() as u32,
             });
         }
-        if !x.is_finite() {
+        if u.len() != h.inputs() {
+            return Err(StepError::InputMismatch {
+                model: h.inputs() as u32,
+                given: u.len() as u32,
+            });
+        }
+        if !x.is_finite() || !u.iter().all(|v| v.is_finite()) {
             return Err(StepError::NonFiniteState);
         }
         if self.method.needs_separable() && !h.is_separable() {
             return Err(StepError::NotSeparable);
+        }
+        if h.has_port_terms() && !self.method.handles_port_terms() {
+            return Err(StepError::MethodIgnoresPortTerms);
         }
         let hs = self.dt / self.substeps as f32;
         let mut y = *x;
@@ -127,9 +164,12 @@ impl Integrator {
                     verlet(h, &mut y, YOSHIDA_W1 * hs)?;
                 }
                 Method::ImplicitMidpoint => {
-                    implicit_midpoint(h, &mut y, hs, self.max_iterations, self.tolerance)?
+                    implicit_midpoint(h, &mut y, u, hs, self.max_iterations, self.tolerance)?
                 }
-                Method::Rk4 => rk4(h, &mut y, hs)?,
+                Method::Rk4 => rk4(h, &mut y, u, hs)?,
+                Method::DiscreteGradient => {
+                    discrete_gradient(h, &mut y, u, hs, self.max_iterations, self.tolerance)?
+                }
             }
             if !y.is_finite() {
                 return Err(StepError::Diverged);
@@ -169,6 +209,7 @@ fn verlet<const D: usize, H: Hamiltonian<D> + ?Sized>(
 fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
     ham: &H,
     x: &mut State<D>,
+    u: &[f32],
     h: f32,
     max_iter: u16,
     tol: f32,
@@ -177,7 +218,7 @@ fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
     let x0 = *x;
     let mut fq = [0.0f32; D];
     let mut fp = [0.0f32; D];
-    ham.vector_field(&x0, &mut fq, &mut fp)?;
+    ham.vector_field_driven(&x0, u, &mut fq, &mut fp)?;
     let mut x1 = x0;
     for i in 0..n {
         x1.q[i] = x0.q[i] + h * fq[i];
@@ -192,7 +233,7 @@ fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
         if !mid.is_finite() {
             return Err(StepError::Diverged);
         }
-        ham.vector_field(&mid, &mut fq, &mut fp)?;
+        ham.vector_field_driven(&mid, u, &mut fq, &mut fp)?;
         let mut converged = true;
         for i in 0..n {
             let q = x0.q[i] + h * fq[i];
@@ -216,6 +257,7 @@ fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
 fn rk4<const D: usize, H: Hamiltonian<D> + ?Sized>(
     ham: &H,
     x: &mut State<D>,
+    u: &[f32],
     h: f32,
 ) -> Result<(), StepError> {
     let n = x.dof();
@@ -225,7 +267,7 @@ fn rk4<const D: usize, H: Hamiltonian<D> + ?Sized>(
     let weights = [0.5 * h, 0.5 * h, h];
     for s in 0..4 {
         let (kq, kp) = &mut k[s];
-        ham.vector_field(&stage, kq, kp)?;
+        ham.vector_field_driven(&stage, u, kq, kp)?;
         if s < 3 {
             for i in 0..n {
                 stage.q[i] = x0.q[i] + weights[s] * kq[i];
@@ -239,4 +281,80 @@ fn rk4<const D: usize, H: Hamiltonian<D> + ?Sized>(
         x.p[i] = x0.p[i] + sixth * (k[0].1[i] + 2.0 * k[1].1[i] + 2.0 * k[2].1[i] + k[3].1[i]);
     }
     Ok(())
+}
+
+/// One step of Gonzalez's discrete-gradient method (Gonzalez, J. Nonlinear
+/// Sci. 6, 1996; McLachlan, Quispel & Robidoux, Phil. Trans. R. Soc. A 357,
+/// 1999): x1 = x0 + h f(gbar), f(g) = (J - R) g + G u, with the discrete
+/// gradient gbar = dH/dx(m) + c W d, m = (x0 + x1) / 2, d = x1 - x0,
+/// c = (H(x1) - H(x0) - dH/dx(m) . d) / (d . W d), W the system's metric.
+/// Then gbar . d = H(x1) - H(x0) holds by construction. Fixed-point
+/// iteration from the explicit Euler guess, at most `max_iter` times.
+fn discrete_gradient<const D: usize, H: Hamiltonian<D> + ?Sized>(
+    ham: &H,
+    x: &mut State<D>,
+    u: &[f32],
+    h: f32,
+    max_iter: u16,
+    tol: f32,
+) -> Result<(), StepError> {
+    let n = x.dof();
+    let x0 = *x;
+    let h0 = ham.energy(&x0)?;
+    let (mut wq, mut wp) = ([1.0f32; D], [1.0f32; D]);
+    ham.metric(&mut wq, &mut wp);
+    let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
+    let (mut fq, mut fp) = ([0.0f32; D], [0.0f32; D]);
+    ham.gradient(&x0, &mut gq, &mut gp)?;
+    ham.field_from_gradient(&gq, &gp, u, &mut fq, &mut fp);
+    let mut x1 = x0;
+    for i in 0..n {
+        x1.q[i] = x0.q[i] + h * fq[i];
+        x1.p[i] = x0.p[i] + h * fp[i];
+    }
+    let mut mid = x0;
+    for _ in 0..max_iter {
+        for i in 0..n {
+            mid.q[i] = 0.5 * (x0.q[i] + x1.q[i]);
+            mid.p[i] = 0.5 * (x0.p[i] + x1.p[i]);
+        }
+        if !mid.is_finite() || !x1.is_finite() {
+            return Err(StepError::Diverged);
+        }
+        ham.gradient(&mid, &mut gq, &mut gp)?;
+        let h1 = ham.energy(&x1)?;
+        // c = (H1 - H0 - g . d) / (d . W d), accumulated in index order.
+        let (mut gd, mut dwd) = (0.0f32, 0.0f32);
+        for i in 0..n {
+            let (dq, dp) = (x1.q[i] - x0.q[i], x1.p[i] - x0.p[i]);
+            gd += gq[i] * dq;
+            gd += gp[i] * dp;
+            dwd += wq[i] * dq * dq;
+            dwd += wp[i] * dp * dp;
+        }
+        if dwd > 0.0 && dwd.is_finite() {
+            let c = (h1 - h0 - gd) / dwd;
+            for i in 0..n {
+                gq[i] += c * wq[i] * (x1.q[i] - x0.q[i]);
+                gp[i] += c * wp[i] * (x1.p[i] - x0.p[i]);
+            }
+        }
+        ham.field_from_gradient(&gq, &gp, u, &mut fq, &mut fp);
+        let mut converged = true;
+        for i in 0..n {
+            let q = x0.q[i] + h * fq[i];
+            let p = x0.p[i] + h * fp[i];
+            converged &= (q - x1.q[i]).abs() <= tol * (1.0 + q.abs());
+            converged &= (p - x1.p[i]).abs() <= tol * (1.0 + p.abs());
+            x1.q[i] = q;
+            x1.p[i] = p;
+        }
+        if converged {
+            *x = x1;
+            return Ok(());
+        }
+    }
+    Err(StepError::NotConverged {
+        iterations: max_iter,
+    })
 }

@@ -6,7 +6,7 @@
 
 use crate::energy::Energy;
 use crate::error::{BlobError, Section, StepError};
-use crate::format::{self, DissipationDesc, InputDesc};
+use crate::format::{self, DissipationDesc, F32Bytes, InputDesc};
 use crate::hamiltonian::Hamiltonian;
 use crate::integrate::Integrator;
 use crate::state::State;
@@ -39,6 +39,10 @@ pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
     energy_scale: f32,
     energy: Energy<'a, W>,
     integrator: Integrator,
+    /// Lower-triangular factor L of R = L L^T over the 2n coordinates.
+    dissipation: Option<F32Bytes<'a>>,
+    /// Number of inputs m and G (2n x m, row-major).
+    input: Option<(usize, F32Bytes<'a>)>,
 }
 
 impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
@@ -84,12 +88,34 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
             });
         }
         let energy = Energy::validate(&desc.energy, n)?;
-        match desc.dissipation {
-            DissipationDesc::None => {}
-        }
-        match desc.input {
-            InputDesc::None => {}
-        }
+        let n2 = 2 * n;
+        let dissipation = match desc.dissipation {
+            DissipationDesc::None => None,
+            DissipationDesc::Constant { factor } => {
+                let section = Section::Dissipation;
+                if factor.0.len() != 4 * (n2 * (n2 + 1) / 2) {
+                    return Err(BlobError::ShapeMismatch { section, layer: 0 });
+                }
+                if !factor.iter().all(f32::is_finite) {
+                    return Err(BlobError::NonFinite { section });
+                }
+                Some(factor)
+            }
+        };
+        let input = match desc.input {
+            InputDesc::None => None,
+            InputDesc::Constant { inputs, matrix } => {
+                let section = Section::InputCoupling;
+                let m = inputs as usize;
+                if m == 0 || m > format::MAX_INPUTS || matrix.0.len() != 4 * n2 * m {
+                    return Err(BlobError::ShapeMismatch { section, layer: 0 });
+                }
+                if !matrix.iter().all(f32::is_finite) {
+                    return Err(BlobError::NonFinite { section });
+                }
+                Some((m, matrix))
+            }
+        };
         let mut m = Self {
             dof: n,
             offset_q: [0.0; D],
@@ -99,6 +125,8 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
             energy_scale: es,
             energy,
             integrator: desc.integrator,
+            dissipation,
+            input,
         };
         for i in 0..n {
             m.offset_q[i] = desc.offset.get(i);
@@ -118,6 +146,9 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         if integrator.method.needs_separable() && !self.energy.is_separable() {
             return Err(BlobError::MethodNeedsSeparableModel);
         }
+        if self.has_port_terms() && !integrator.method.handles_port_terms() {
+            return Err(BlobError::MethodIgnoresPortTerms);
+        }
         self.integrator = integrator;
         Ok(self)
     }
@@ -127,9 +158,16 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         self.integrator
     }
 
-    /// Advance `x` by one time step with the model's integrator.
+    /// Advance `x` by one time step with the model's integrator (inputs,
+    /// if the model has any, held at zero).
     pub fn step(&self, x: &mut State<D>) -> Result<(), StepError> {
         self.integrator.step(self, x)
+    }
+
+    /// Advance `x` by one time step with input `u` (`inputs()` values) held
+    /// constant over the step.
+    pub fn step_driven(&self, x: &mut State<D>, u: &[f32]) -> Result<(), StepError> {
+        self.integrator.step_driven(self, x, u)
     }
 
     /// The learned energy function.
@@ -143,10 +181,13 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         let (v, t) = self.energy.macs(n);
         let it = self.integrator;
         let (calls_a, calls_b) = it.method.gradient_calls(it.max_iterations);
+        let n2 = (2 * n) as u32;
+        let port = self.dissipation.map_or(0, |_| n2 * (n2 + 1))
+            + self.input.map_or(0, |(m, _)| n2 * m as u32);
         let per_sub = if self.energy.is_separable() && it.method.needs_separable() {
             calls_a * v + calls_b * t
         } else {
-            calls_a * (v + t)
+            calls_a * (v + t + port)
         };
         Cost {
             parameters: self.energy.parameters(n),
@@ -205,6 +246,74 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
 
     fn is_separable(&self) -> bool {
         self.energy.is_separable()
+    }
+
+    fn inputs(&self) -> usize {
+        self.input.map_or(0, |(m, _)| m)
+    }
+
+    fn has_port_terms(&self) -> bool {
+        self.dissipation.is_some() || self.input.is_some()
+    }
+
+    fn metric(&self, wq: &mut [f32; D], wp: &mut [f32; D]) {
+        for i in 0..D {
+            wq[i] = 1.0 / (self.scale_q[i] * self.scale_q[i]);
+            wp[i] = 1.0 / (self.scale_p[i] * self.scale_p[i]);
+        }
+    }
+
+    fn field_from_gradient(
+        &self,
+        gq: &[f32; D],
+        gp: &[f32; D],
+        u: &[f32],
+        fq: &mut [f32; D],
+        fp: &mut [f32; D],
+    ) {
+        let n = self.dof;
+        for i in 0..n {
+            fq[i] = gp[i];
+            fp[i] = -gq[i];
+        }
+        // Coordinate k of the 2n-vectors: q for k < n, p after.
+        let at = |a: &[f32; D], b: &[f32; D], k: usize| if k < n { a[k] } else { b[k - n] };
+        let n2 = 2 * n;
+        if let Some(l) = self.dissipation {
+            // v = L^T g, then R g = L v; f -= R g.
+            let mut v = [0.0f32; 2 * crate::MAX_DOF_SUPPORTED];
+            for j in 0..n2 {
+                let mut acc = 0.0f32;
+                for i in j..n2 {
+                    acc += l.get(i * (i + 1) / 2 + j) * at(gq, gp, i);
+                }
+                v[j] = acc;
+            }
+            for i in 0..n2 {
+                let mut acc = 0.0f32;
+                for j in 0..=i {
+                    acc += l.get(i * (i + 1) / 2 + j) * v[j];
+                }
+                if i < n {
+                    fq[i] -= acc;
+                } else {
+                    fp[i - n] -= acc;
+                }
+            }
+        }
+        if let Some((m, g)) = self.input {
+            for i in 0..n2 {
+                let mut acc = 0.0f32;
+                for (k, uk) in u.iter().enumerate().take(m) {
+                    acc += g.get(i * m + k) * uk;
+                }
+                if i < n {
+                    fq[i] += acc;
+                } else {
+                    fp[i - n] += acc;
+                }
+            }
+        }
     }
 
     fn energy(&self, x: &State<D>) -> Result<f32, StepError> {

@@ -24,6 +24,16 @@ fn seeds() -> Vec<Vec<u8>> {
             out.push(separable(&mut rng, 1, &[4], act, kind, Method::Yoshida4, 0.05).blob());
             out.push(general(&mut rng, 2, &[6], act, kind, Method::ImplicitMidpoint, 0.05).blob());
             out.push(general(&mut rng, 1, &[5, 3], act, kind, Method::Rk4, 0.05).blob());
+            out.push(
+                general(&mut rng, 2, &[6], act, kind, Method::DiscreteGradient, 0.05)
+                    .with_port(&mut rng, 0.3, 2)
+                    .blob(),
+            );
+            out.push(
+                separable(&mut rng, 1, &[4], act, kind, Method::DiscreteGradient, 0.05)
+                    .with_port(&mut rng, 0.3, 0)
+                    .blob(),
+            );
         }
     }
     out

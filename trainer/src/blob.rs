@@ -105,6 +105,11 @@ pub struct BlobModel {
     pub energy: Energy,
     /// Integrator settings.
     pub integrator: Integrator,
+    /// Factor L of the dissipation R = L L^T (2n x 2n lower-triangular, row
+    /// by row), for damped models.
+    pub dissipation: Option<Vec<f32>>,
+    /// Inputs m and G (2n x m, row-major), for driven models.
+    pub input: Option<(usize, Vec<f32>)>,
 }
 
 /// Precision of stored weight matrices.
@@ -282,6 +287,14 @@ impl BlobModel {
             energy_scale: d.energy_scale,
             energy,
             integrator: d.integrator,
+            dissipation: match d.dissipation {
+                DissipationDesc::None => None,
+                DissipationDesc::Constant { factor } => Some(f32s(factor)),
+            },
+            input: match d.input {
+                InputDesc::None => None,
+                InputDesc::Constant { inputs, matrix } => Some((inputs as usize, f32s(matrix))),
+            },
         })
     }
 
@@ -315,6 +328,8 @@ impl BlobModel {
                 },
             },
         };
+        let factor = self.dissipation.as_deref().map(le);
+        let g = self.input.as_ref().map(|(m, g)| (*m, le(g)));
         let desc = ModelDesc {
             dof: u8::try_from(self.dof).context("too many degrees of freedom")?,
             offset: F32Bytes(&offset),
@@ -322,8 +337,19 @@ impl BlobModel {
             energy_scale: self.energy_scale,
             energy,
             integrator: self.integrator,
-            dissipation: DissipationDesc::None,
-            input: InputDesc::None,
+            dissipation: match &factor {
+                None => DissipationDesc::None,
+                Some(f) => DissipationDesc::Constant {
+                    factor: F32Bytes(f),
+                },
+            },
+            input: match &g {
+                None => InputDesc::None,
+                Some((m, g)) => InputDesc::Constant {
+                    inputs: u8::try_from(*m).context("too many inputs")?,
+                    matrix: F32Bytes(g),
+                },
+            },
         };
         let room = 64 * 1024 + 16 * (offset.len() + chol.len() + self.parameters());
         let mut buf = vec![0u8; room];

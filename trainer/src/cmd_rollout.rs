@@ -10,7 +10,7 @@ use anyhow::{anyhow, bail, Result};
 use crate::atomic::write_atomic;
 use crate::blob::HostModel;
 use crate::integrator_args::IntegratorArgs;
-use crate::rollout::{parse_init, roll};
+use crate::rollout::{parse_init, read_inputs, roll_driven};
 
 /// Arguments of `keel rollout`.
 #[derive(Debug, clap::Args)]
@@ -24,6 +24,10 @@ pub struct Args {
     /// Number of steps.
     #[arg(long)]
     pub steps: usize,
+    /// Input sequence for a driven model: CSV `t,u1..um`, row k held over
+    /// step k (at least STEPS rows).
+    #[arg(long, value_name = "FILE.csv")]
+    pub inputs: Option<PathBuf>,
     #[command(flatten)]
     pub integrator: IntegratorArgs,
     /// Write state values as exact bit patterns (0x3f800000) instead of
@@ -69,7 +73,26 @@ pub fn run(args: Args) -> Result<()> {
         .map_err(|e| anyhow!("{e}"))?;
     let dof = keel_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;
-    let r = roll(&model, &x0, args.steps)?;
+    let m = keel_runtime::Hamiltonian::inputs(&model);
+    let inputs = match &args.inputs {
+        Some(p) => {
+            let rows = read_inputs(p, m)?;
+            if rows.len() < args.steps {
+                bail!(
+                    "{}: {} input rows for {} steps",
+                    p.display(),
+                    rows.len(),
+                    args.steps
+                );
+            }
+            rows
+        }
+        None if m > 0 => {
+            bail!("the model takes {m} inputs: pass --inputs FILE.csv (columns t,u1..u{m})")
+        }
+        None => Vec::new(),
+    };
+    let r = roll_driven(&model, &x0, args.steps, &inputs)?;
     if let Some((k, e)) = r.failure {
         bail!("step {} of {}: {e}; nothing written", k + 1, args.steps);
     }

@@ -66,6 +66,8 @@ pub fn blob_model(model: &EnergyModel, integrator: Integrator) -> BlobModel {
         energy_scale: model.norm.energy_scale,
         energy,
         integrator,
+        dissipation: None,
+        input: None,
     }
 }
 

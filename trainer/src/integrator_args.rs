@@ -7,7 +7,7 @@ use keel_runtime::{Integrator, Method};
 #[derive(
     Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, serde::Serialize, serde::Deserialize,
 )]
-#[serde(rename_all = "lowercase")]
+#[serde(rename_all = "kebab-case")]
 pub enum MethodArg {
     /// Stormer-Verlet (separable models).
     Verlet,
@@ -17,6 +17,9 @@ pub enum MethodArg {
     Midpoint,
     /// Classical Runge-Kutta 4 (not symplectic; a reference).
     Rk4,
+    /// Discrete-gradient method (any model; exact energy balance, for damped
+    /// and driven models).
+    DiscreteGradient,
 }
 
 impl From<MethodArg> for Method {
@@ -26,6 +29,7 @@ impl From<MethodArg> for Method {
             MethodArg::Yoshida4 => Method::Yoshida4,
             MethodArg::Midpoint => Method::ImplicitMidpoint,
             MethodArg::Rk4 => Method::Rk4,
+            MethodArg::DiscreteGradient => Method::DiscreteGradient,
         }
     }
 }
@@ -37,6 +41,7 @@ pub fn method_name(m: Method) -> &'static str {
         Method::Yoshida4 => "yoshida4",
         Method::ImplicitMidpoint => "midpoint",
         Method::Rk4 => "rk4",
+        Method::DiscreteGradient => "discrete-gradient",
     }
 }
 

@@ -38,6 +38,18 @@ pub fn state_of(x: &[f32]) -> Result<State<HOST_MAX_DOF>> {
 
 /// Step `model` `steps` times from `x0`, stopping at the first error.
 pub fn roll(model: &HostModel<'_>, x0: &[f32], steps: usize) -> Result<Rollout> {
+    roll_driven(model, x0, steps, &[])
+}
+
+/// As [`roll`], with input row `k` of `inputs` held over step `k` (zero
+/// inputs when `inputs` is shorter).
+pub fn roll_driven(
+    model: &HostModel<'_>,
+    x0: &[f32],
+    steps: usize,
+    inputs: &[Vec<f32>],
+) -> Result<Rollout> {
+    let zeros = vec![0.0f32; model.inputs()];
     let mut s = state_of(x0)?;
     let n = s.dof();
     let flat = |s: &State<HOST_MAX_DOF>| {
@@ -52,7 +64,8 @@ pub fn roll(model: &HostModel<'_>, x0: &[f32], steps: usize) -> Result<Rollout> 
     };
     out.states.reserve(steps);
     for k in 0..steps {
-        if let Err(e) = model.step(&mut s) {
+        let u = inputs.get(k).map_or(zeros.as_slice(), Vec::as_slice);
+        if let Err(e) = model.step_driven(&mut s, u) {
             out.failure = Some((k, e));
             break;
         }
@@ -61,6 +74,51 @@ pub fn roll(model: &HostModel<'_>, x0: &[f32], steps: usize) -> Result<Rollout> 
         out.energy.push(model.energy(&s).unwrap_or(f32::NAN));
     }
     Ok(out)
+}
+
+/// Read an input sequence: CSV with header `t,u1..um`, one row per step.
+/// Errors name the file, line and column.
+pub fn read_inputs(path: &std::path::Path, m: usize) -> Result<Vec<Vec<f32>>> {
+    let mut r =
+        csv::Reader::from_path(path).with_context(|| format!("{}: cannot read", path.display()))?;
+    let header: Vec<String> = r
+        .headers()
+        .with_context(|| format!("{}: line 1: cannot read the header", path.display()))?
+        .iter()
+        .map(|h| h.trim().to_string())
+        .collect();
+    let want: Vec<String> = std::iter::once("t".to_string())
+        .chain((1..=m).map(|i| format!("u{i}")))
+        .collect();
+    if header != want {
+        bail!(
+            "{}: line 1: columns {:?}, the model needs {:?}",
+            path.display(),
+            header,
+            want
+        );
+    }
+    let mut rows = Vec::new();
+    for (k, rec) in r.records().enumerate() {
+        let line = k + 2;
+        let rec = rec.with_context(|| format!("{}: line {line}: malformed row", path.display()))?;
+        let mut row = Vec::with_capacity(m);
+        for (c, name) in want.iter().enumerate().skip(1) {
+            let text = rec.get(c).unwrap_or("").trim();
+            let v: f32 = text.parse().with_context(|| {
+                format!(
+                    "{}: line {line}, column {name}: '{text}' is not a number",
+                    path.display()
+                )
+            })?;
+            if !v.is_finite() {
+                bail!("{}: line {line}, column {name}: not finite", path.display());
+            }
+            row.push(v);
+        }
+        rows.push(row);
+    }
+    Ok(rows)
 }
 
 /// Parse `q1=0.1,p1=0` (every coordinate named once) for `dof` degrees of

@@ -60,6 +60,8 @@ fn fixture(general: bool) -> BlobModel {
             },
             0.01,
         ),
+        dissipation: None,
+        input: None,
     }
 }
 
@@ -70,6 +72,36 @@ fn blob_model_round_trips() {
         let bytes = m.to_bytes().unwrap();
         assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
     }
+}
+
+#[test]
+fn damped_driven_models_keep_their_port_terms_through_export() {
+    // R = L L^T with L = diag(0, 0.3) (damping on p), G = (0, 1)^T.
+    let mut m = fixture(true);
+    m.integrator = Integrator::new(Method::DiscreteGradient, 0.01);
+    m.dissipation = Some(vec![0.0, 0.0, 0.3]);
+    m.input = Some((1, vec![0.0, 1.0]));
+    let bytes = m.to_bytes().unwrap();
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        keel_runtime::format::FORMAT_VERSION
+    );
+    assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
+    let (i8_bytes, r) =
+        keel_trainer::cmd_export::export(&m, WeightKind::Int8, &IntegratorArgs::default(), 200, 2)
+            .unwrap();
+    let q = BlobModel::from_bytes(&i8_bytes).unwrap();
+    assert_eq!(
+        (q.dissipation.clone(), q.input.clone()),
+        (m.dissipation.clone(), m.input.clone())
+    );
+    assert_eq!(r.failed_rollouts, 0);
+    // An explicit symplectic method would drop R and G: refused.
+    let ia = IntegratorArgs {
+        integrator: Some(keel_trainer::integrator_args::MethodArg::Verlet),
+        ..Default::default()
+    };
+    assert!(keel_trainer::cmd_export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
 }
 
 #[test]
@@ -216,4 +248,48 @@ fn rollout_rejects_bad_init_and_writes_nothing() {
         );
         assert!(!out.exists());
     }
+}
+
+#[test]
+fn rollout_takes_an_input_sequence_for_driven_models() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut m = fixture(true);
+    m.integrator = Integrator::new(Method::DiscreteGradient, 0.01);
+    m.dissipation = Some(vec![0.0, 0.0, 0.3]);
+    m.input = Some((1, vec![0.0, 1.0]));
+    let blob = dir.path().join("driven.keel");
+    std::fs::write(&blob, m.to_bytes().unwrap()).unwrap();
+    let inputs = dir.path().join("u.csv");
+    let rows: String = (0..50)
+        .map(|k| format!("{},{}\n", k as f64 * 0.01, 0.5))
+        .collect();
+    std::fs::write(&inputs, format!("t,u1\n{rows}")).unwrap();
+    let run = |extra: &[&str]| {
+        keel()
+            .args(["rollout", "--model"])
+            .arg(&blob)
+            .args(["--init", "q1=0.1,p1=0", "--steps", "50"])
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    // A driven model needs its inputs.
+    let o = run(&[]);
+    assert!(!o.status.success());
+    assert!(String::from_utf8_lossy(&o.stderr).contains("--inputs"));
+    let o = run(&["--inputs", inputs.to_str().unwrap()]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let csv = String::from_utf8_lossy(&o.stdout).to_string();
+    assert_eq!(csv.lines().count(), 52);
+    // A bad cell names file, line and column.
+    std::fs::write(&inputs, "t,u1\n0,0.5\n0.01,x\n").unwrap();
+    let o = run(&["--inputs", inputs.to_str().unwrap()]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        !o.status.success()
+            && err.contains("u.csv")
+            && err.contains("line 3")
+            && err.contains("u1"),
+        "{err}"
+    );
 }

@@ -168,6 +168,10 @@ pub struct OwnedModel {
     pub integrator: Integrator,
     pub offset_bytes: Vec<u8>,
     pub scale_bytes: Vec<u8>,
+    /// Factor L of R = L L^T (2n x 2n lower-triangular, row by row), bytes.
+    pub dissipation: Option<Vec<u8>>,
+    /// Inputs m and G (2n x m, row-major), bytes.
+    pub input: Option<(u8, Vec<u8>)>,
 }
 
 impl OwnedModel {
@@ -185,6 +189,8 @@ impl OwnedModel {
             energy_scale: 1.5,
             energy,
             integrator,
+            dissipation: None,
+            input: None,
         }
     }
 
@@ -208,9 +214,34 @@ impl OwnedModel {
             energy_scale: self.energy_scale,
             energy,
             integrator: self.integrator,
-            dissipation: DissipationDesc::None,
-            input: InputDesc::None,
+            dissipation: match &self.dissipation {
+                None => DissipationDesc::None,
+                Some(b) => DissipationDesc::Constant {
+                    factor: F32Bytes(b),
+                },
+            },
+            input: match &self.input {
+                None => InputDesc::None,
+                Some((m, b)) => InputDesc::Constant {
+                    inputs: *m,
+                    matrix: F32Bytes(b),
+                },
+            },
         }
+    }
+
+    /// Add R = L L^T with a random factor and G with `m` random columns.
+    pub fn with_port(mut self, rng: &mut Rng, damping: f64, m: usize) -> Self {
+        let n2 = 2 * self.dof;
+        let l: Vec<f32> = (0..n2 * (n2 + 1) / 2)
+            .map(|_| rng.uniform(-damping, damping) as f32)
+            .collect();
+        self.dissipation = Some(le(&l));
+        if m > 0 {
+            let g: Vec<f32> = (0..n2 * m).map(|_| rng.uniform(-1.0, 1.0) as f32).collect();
+            self.input = Some((m as u8, le(&g)));
+        }
+        self
     }
 
     pub fn blob(&self) -> Vec<u8> {

@@ -115,9 +115,12 @@ fn main() -> ! {
             }
         };
         log_state(s as u32, 0, &x, &mut bytes);
+        let mut u = [0.0f32; run_plan::MAX_INPUTS];
+        let m = plan.inputs();
         for k in 1..=plan.steps() {
+            plan.input(k, &mut u);
             let t0 = clock.now();
-            let r = model.step(&mut x);
+            let r = model.step_driven(&mut x, &u[..m]);
             let t1 = clock.now();
             step_ticks += u64::from(clock.elapsed(t0, t1));
             if let Err(e) = r {

@@ -148,7 +148,8 @@ pub enum StepError {
     /// The step produced NaN or infinity (the step size is too large for the
     /// model, or the model leaves its trained region).
     Diverged,
-    /// Implicit midpoint did not converge within its iteration limit.
+    /// An implicit method (midpoint, discrete gradient) did not converge
+    /// within its iteration limit.
     NotConverged { iterations: u16 },
     /// A separable-only method was asked of a non-separable system.
     NotSeparable,
@@ -174,8 +175,8 @@ impl fmt::Display for StepError {
             ),
             Self::NotConverged { iterations } => write!(
                 f,
-                "implicit midpoint did not converge in {iterations} iterations: reduce the time step \
-                 or raise the iteration limit"
+                "the implicit step did not converge in {iterations} iterations: reduce the time \
+                 step or raise the iteration limit"
             ),
             Self::NotSeparable => f.write_str("method needs a separable Hamiltonian"),
             Self::BadSettings => f.write_str("integrator settings out of range"),

@@ -14,6 +14,7 @@ use crate::data::{self, LoadOptions};
 use crate::dataset::Dataset;
 use crate::export;
 use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective};
 use crate::integrator_args::MethodArg;
 use crate::net::Activation;
 
@@ -119,6 +120,10 @@ pub struct Args {
     /// Write the loss history (JSON) here.
     #[arg(long, value_name = "FILE.json")]
     pub history: Option<PathBuf>,
+    /// Write a run summary (JSON) here: throughput, steps, batch, threads,
+    /// wall time and the final losses (used by `cargo xtask bench`).
+    #[arg(long, value_name = "FILE.json")]
+    pub json: Option<PathBuf>,
     /// No progress bar.
     #[arg(long, short)]
     pub quiet: bool,
@@ -182,6 +187,47 @@ fn print_report(label: &str, r: &TrainReport) {
         r.best_epoch.map_or("-".into(), |e| (e + 1).to_string()),
         stop_text(r.stop)
     );
+}
+
+/// The energy model's mean per-sample loss over every row of `data`.
+fn full_data_loss(model: &EnergyModel, data: &Dataset) -> f64 {
+    let (z, t) = model.norm.normalize(data);
+    let obj = HnnObjective::new(model.dof, model.arch.clone(), &model.norm);
+    let sum = obj.loss_sum(
+        &model.params,
+        z.view(),
+        t.view(),
+        &mut HnnWork::default(),
+        None,
+    );
+    sum / z.nrows().max(1) as f64
+}
+
+/// Run summary written by `--json`.
+#[derive(Debug, serde::Serialize)]
+struct RunSummary {
+    /// Optimizer steps taken x batch / wall time of the training loop.
+    samples_per_second: f64,
+    /// Optimizer steps taken.
+    steps: usize,
+    /// Samples per step.
+    batch: usize,
+    /// Worker threads.
+    threads: usize,
+    /// Wall time of the training loop in seconds.
+    seconds: f64,
+    /// Training rows.
+    train_samples: usize,
+    /// Trainable parameters.
+    parameters: usize,
+    /// Mean loss over all training rows with the kept parameters.
+    final_train_loss: f64,
+    /// Mean minibatch loss of the last epoch.
+    last_epoch_loss: Option<f64>,
+    /// The kept parameters' validation loss (training loss without validation).
+    best_val: f64,
+    /// Why training ended.
+    stop: String,
 }
 
 /// Run the command.
@@ -291,6 +337,26 @@ pub fn run(args: Args) -> Result<()> {
         let json = serde_json::to_vec_pretty(&fitted.report.history)?;
         crate::atomic::write_atomic(path, &json)
             .with_context(|| format!("writing history {}", path.display()))?;
+        println!("wrote {}", path.display());
+    }
+    if let Some(path) = &args.json {
+        let r = &fitted.report;
+        let summary = RunSummary {
+            samples_per_second: r.samples_per_second(),
+            steps: r.steps,
+            batch: r.batch,
+            threads: settings.threads,
+            seconds: r.seconds,
+            train_samples: train.samples(),
+            parameters: fitted.model.params.len(),
+            final_train_loss: full_data_loss(&fitted.model, &train),
+            last_epoch_loss: r.history.train.last().copied(),
+            best_val: r.best_val,
+            stop: stop_text(r.stop),
+        };
+        let json = serde_json::to_vec_pretty(&summary)?;
+        crate::atomic::write_atomic(path, &json)
+            .with_context(|| format!("writing run summary {}", path.display()))?;
         println!("wrote {}", path.display());
     }
     if args.baseline && !interrupt.load(Ordering::SeqCst) {

@@ -234,6 +234,8 @@ struct Tools {
     keel: PathBuf,
     python: Option<PathBuf>,
     taskset: bool,
+    /// Keel's initial parameters for the references (`--init`).
+    init: Option<PathBuf>,
 }
 
 /// Run one implementation on one configuration, pinned to the first
@@ -318,6 +320,10 @@ fn run_one(
             ] {
                 args.push(a.into());
             }
+            if let Some(init) = &tools.init {
+                args.push("--init".into());
+                args.push(init.display().to_string());
+            }
             tools
                 .python
                 .clone()
@@ -341,6 +347,7 @@ fn run_one(
     cmd.args(&args)
         .current_dir(root.join("bench"))
         .env("CUDA_VISIBLE_DEVICES", "")
+        .env("PYTHONDONTWRITEBYTECODE", "1")
         .env("JAX_PLATFORMS", "cpu");
     let out = cmd
         .output()
@@ -363,6 +370,61 @@ fn run_one(
         samples_per_second: get("samples_per_second")?,
         final_loss: get("final_train_loss")?,
     })
+}
+
+/// Keel's seeded initial parameters, so the references start from the very
+/// same network: `keel fit` for one step at a learning rate of 1e-30 (the
+/// first Adam update moves each parameter by about 1e-30, below f32
+/// resolution for every nonzero weight), the blob decoded with
+/// `keel_runtime::format::decode`, and each layer written as three lines:
+/// `outputs inputs`, the weights row by row, the biases. Rust prints each f32
+/// as the shortest decimal that reads back to the same value.
+fn write_initial_weights(tools: &Tools, work: &Path, data: &Path) -> Result<PathBuf> {
+    let blob = work.join("keel-init.keel");
+    let hidden = HIDDEN.map(|w| w.to_string()).join(",");
+    let out = Command::new(&tools.keel)
+        .args(["fit", "--data"])
+        .arg(data)
+        .args([
+            "--val-fraction",
+            "0",
+            "--arch",
+            "general",
+            "--hidden",
+            &hidden,
+        ])
+        .args([
+            "--batch", "4096", "--steps", "1", "--lr", "1e-30", "--quiet", "--out",
+        ])
+        .arg(&blob)
+        .output()
+        .context("starting keel fit for the initial weights")?;
+    if !out.status.success() {
+        bail!(
+            "keel fit (initial weights) failed:\n{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let bytes = std::fs::read(&blob).with_context(|| format!("reading {}", blob.display()))?;
+    let desc = keel_runtime::format::decode(&bytes)
+        .map_err(|e| anyhow::anyhow!("{}: {e:?}", blob.display()))?;
+    let keel_runtime::format::EnergyDesc::General(mlp) = &desc.energy else {
+        bail!("{}: expected a general energy network", blob.display());
+    };
+    let join =
+        |it: &mut dyn Iterator<Item = f32>| it.map(|v| v.to_string()).collect::<Vec<_>>().join(" ");
+    let mut text = String::new();
+    for layer in &mlp.layers {
+        let keel_runtime::format::WeightsDesc::F32(w) = layer.weights else {
+            bail!("{}: expected f32 weights", blob.display());
+        };
+        let _ = writeln!(text, "{} {}", layer.outputs, layer.inputs);
+        let _ = writeln!(text, "{}", join(&mut w.iter()));
+        let _ = writeln!(text, "{}", join(&mut layer.bias.iter()));
+    }
+    let path = work.join("initial-weights.txt");
+    write_file(&path, &text)?;
+    Ok(path)
 }
 
 fn median(mut v: Vec<f64>) -> f64 {
@@ -467,7 +529,7 @@ pub fn run(args: &[String]) -> Result<bool> {
     let data = work.join("mass-spring.csv");
     write_file(&data, &mass_spring_csv())?;
     let needs_python = o.impls.iter().any(|i| *i != Impl::Keel);
-    let tools = Tools {
+    let mut tools = Tools {
         keel: build_keel(&root)?,
         python: if needs_python {
             Some(ensure_venv(&root)?)
@@ -478,7 +540,9 @@ pub fn run(args: &[String]) -> Result<bool> {
             .args(["-c", "0", "true"])
             .status()
             .is_ok_and(|s| s.success()),
+        init: None,
     };
+    tools.init = Some(write_initial_weights(&tools, &work, &data)?);
     let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
     let thread_counts: Vec<usize> = [1, 2].into_iter().filter(|t| *t <= cpus).collect();
     let mut configs = Vec::new();

@@ -62,6 +62,13 @@ fn fixture_cases(work: &Path) -> Result<Vec<DeviceCase>> {
             vec![vec![0.4, 0.0], vec![-0.3, 0.25]]
         };
         let dof = initial_states[0].len() / 2;
+        // A driven fixture (one input, 0.01 s step) gets the two-tone input,
+        // the same for both initial states.
+        let inputs = if blob.name.contains("driven") {
+            crate::run_plan::two_tone_inputs(STEPS, 1, 0.01)
+        } else {
+            Vec::new()
+        };
         cases.push(DeviceCase {
             name: blob.name,
             blob: path,
@@ -69,6 +76,7 @@ fn fixture_cases(work: &Path) -> Result<Vec<DeviceCase>> {
                 dof,
                 steps: STEPS,
                 initial_states,
+                inputs,
             },
             golden: None,
         });
@@ -436,6 +444,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         dof: 1,
         steps: 1,
         initial_states: vec![vec![0.0, 0.0]],
+        inputs: Vec::new(),
     }
     .write(&probe_plan)?;
     for bad in fixtures::bad_fixtures(FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH)? {
@@ -501,7 +510,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         }
     }
     println!(
-        "  (instr/MAC: emulated instructions per multiply-accumulate; for implicit midpoint MAC/step\n   is the bound at the iteration limit, so its ratio understates the real cost)"
+        "  (instr/MAC: emulated instructions per multiply-accumulate; for the implicit methods\n   MAC/step is the bound at the iteration limit, so their ratio understates the real cost)"
     );
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);

@@ -266,6 +266,19 @@ fn separable(seed: u64, dof: usize, net: Net, precision: Precision) -> Result<Ve
 
 /// General fixture: H(q, p) as one tanh network, implicit midpoint.
 fn general(seed: u64, dof: usize, net: Net, precision: Precision) -> Result<Vec<u8>> {
+    general_with(seed, dof, net, precision, false)
+}
+
+/// General fixture, optionally damped and driven: R = L L^T with L acting on
+/// the momenta (0.3 on each diagonal entry of the p block), G = 1 on each
+/// momentum from input u1, stepped by the discrete-gradient method.
+fn general_with(
+    seed: u64,
+    dof: usize,
+    net: Net,
+    precision: Precision,
+    driven: bool,
+) -> Result<Vec<u8>> {
     let mut rng = SplitMix64(seed);
     let net = match net {
         Net::Well => well_mlp(&mut rng, 2 * dof, precision),
@@ -273,20 +286,47 @@ fn general(seed: u64, dof: usize, net: Net, precision: Precision) -> Result<Vec<
     };
     let offset = f32_bytes(&vec![0.1; 2 * dof]);
     let scale = f32_bytes(&vec![0.8; 2 * dof]);
+    let n2 = 2 * dof;
+    let factor: Vec<f32> = (0..n2)
+        .flat_map(|i| (0..=i).map(move |j| if i == j && i >= dof { 0.3 } else { 0.0 }))
+        .collect();
+    let g: Vec<f32> = (0..n2).map(|i| if i >= dof { 1.0 } else { 0.0 }).collect();
+    let (factor, g) = (f32_bytes(&factor), f32_bytes(&g));
     let desc = ModelDesc {
         dof: dof as u8,
         offset: F32Bytes(&offset),
         scale: F32Bytes(&scale),
         energy_scale: 0.5,
         energy: EnergyDesc::General(mlp_desc(&net)?),
-        integrator: Integrator::new(Method::ImplicitMidpoint, 0.01),
-        dissipation: format::DissipationDesc::None,
-        input: format::InputDesc::None,
+        integrator: Integrator::new(
+            if driven {
+                Method::DiscreteGradient
+            } else {
+                Method::ImplicitMidpoint
+            },
+            0.01,
+        ),
+        dissipation: if driven {
+            format::DissipationDesc::Constant {
+                factor: F32Bytes(&factor),
+            }
+        } else {
+            format::DissipationDesc::None
+        },
+        input: if driven {
+            format::InputDesc::Constant {
+                inputs: 1,
+                matrix: F32Bytes(&g),
+            }
+        } else {
+            format::InputDesc::None
+        },
     };
     encode(&desc)
 }
 
-/// The four good fixture blobs.
+/// The good fixture blobs: separable and general, f32 and int8, and one
+/// damped, driven model (its name contains `driven`).
 pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
     Ok(vec![
         NamedBlob {
@@ -304,6 +344,10 @@ pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
         NamedBlob {
             name: "fixture-general-midpoint-int8".into(),
             bytes: general(0x5EED_0002, 1, Net::Well, Precision::Int8)?,
+        },
+        NamedBlob {
+            name: "fixture-driven-dgrad-f32".into(),
+            bytes: general_with(0x5EED_0003, 1, Net::Well, Precision::F32, true)?,
         },
     ])
 }

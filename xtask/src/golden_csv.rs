@@ -103,6 +103,7 @@ pub fn read(files: &[PathBuf]) -> Result<(RunPlan, Trajectories)> {
             .iter()
             .map(|t| t[0].iter().map(|b| f32::from_bits(*b)).collect())
             .collect(),
+        inputs: Vec::new(),
     };
     Ok((plan, trajectories))
 }

@@ -71,8 +71,29 @@ impl HostRollout for KeelCommand {
         let mut out = Vec::with_capacity(plan.initial_states.len());
         for (s, init) in plan.initial_states.iter().enumerate() {
             let csv = self.work.join(format!("{stem}.host-{s}.csv"));
-            let o = Command::new(&self.exe)
-                .arg("rollout")
+            let mut cmd = Command::new(&self.exe);
+            cmd.arg("rollout");
+            if !plan.inputs.is_empty() {
+                // Row k (t = (k-1) dt) holds the input of step k.
+                let path = self.work.join(format!("{stem}.inputs.csv"));
+                let m = plan.inputs[0].len();
+                let mut text = String::from("t");
+                for i in 1..=m {
+                    text.push_str(&format!(",u{i}"));
+                }
+                text.push('\n');
+                for (k, row) in plan.inputs.iter().enumerate() {
+                    text.push_str(&k.to_string());
+                    for v in row {
+                        text.push_str(&format!(",{v}"));
+                    }
+                    text.push('\n');
+                }
+                std::fs::write(&path, text)
+                    .with_context(|| format!("writing {}", path.display()))?;
+                cmd.arg("--inputs").arg(&path);
+            }
+            let o = cmd
                 .arg("--model")
                 .arg(blob)
                 .arg("--init")
@@ -119,9 +140,16 @@ pub fn default_plan(blob: &[u8], steps: u32) -> Result<RunPlan> {
                 .collect()
         })
         .collect();
+    let inputs = match desc.input {
+        keel_runtime::format::InputDesc::Constant { inputs, .. } => {
+            crate::run_plan::two_tone_inputs(steps, inputs as usize, desc.integrator.dt)
+        }
+        keel_runtime::format::InputDesc::None => Vec::new(),
+    };
     Ok(RunPlan {
         dof: n,
         steps,
         initial_states,
+        inputs,
     })
 }

@@ -204,26 +204,27 @@ fn verlet<const D: usize, H: Hamiltonian<D> + ?Sized>(
     Ok(())
 }
 
-/// One implicit midpoint step x1 = x0 + h f((x0 + x1) / 2), by fixed-point
-/// iteration from the explicit Euler guess, at most `max_iter` times.
-fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
-    ham: &H,
+/// Bounded fixed-point iteration for an implicit step x1 = x0 + h F(x1):
+/// starts from the explicit Euler guess x0 + h `f0`, and in each of at most
+/// `max_iter` passes lets `field(mid, x1, fq, fp)` compute F (given the
+/// midpoint (x0 + x1) / 2 and the current x1), until every component moves
+/// by at most `tol * (1 + |x_i|)`.
+fn fixed_point<const D: usize>(
     x: &mut State<D>,
-    u: &[f32],
     h: f32,
     max_iter: u16,
     tol: f32,
+    f0: (&[f32; D], &[f32; D]),
+    mut field: impl FnMut(&State<D>, &State<D>, &mut [f32; D], &mut [f32; D]) -> Result<(), StepError>,
 ) -> Result<(), StepError> {
     let n = x.dof();
     let x0 = *x;
-    let mut fq = [0.0f32; D];
-    let mut fp = [0.0f32; D];
-    ham.vector_field_driven(&x0, u, &mut fq, &mut fp)?;
     let mut x1 = x0;
     for i in 0..n {
-        x1.q[i] = x0.q[i] + h * fq[i];
-        x1.p[i] = x0.p[i] + h * fp[i];
+        x1.q[i] = x0.q[i] + h * f0.0[i];
+        x1.p[i] = x0.p[i] + h * f0.1[i];
     }
+    let (mut fq, mut fp) = ([0.0f32; D], [0.0f32; D]);
     let mut mid = x0;
     for _ in 0..max_iter {
         for i in 0..n {
@@ -233,7 +234,7 @@ fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
         if !mid.is_finite() {
             return Err(StepError::Diverged);
         }
-        ham.vector_field_driven(&mid, u, &mut fq, &mut fp)?;
+        field(&mid, &x1, &mut fq, &mut fp)?;
         let mut converged = true;
         for i in 0..n {
             let q = x0.q[i] + h * fq[i];
@@ -250,6 +251,22 @@ fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
     }
     Err(StepError::NotConverged {
         iterations: max_iter,
+    })
+}
+
+/// One implicit midpoint step x1 = x0 + h f((x0 + x1) / 2).
+fn implicit_midpoint<const D: usize, H: Hamiltonian<D> + ?Sized>(
+    ham: &H,
+    x: &mut State<D>,
+    u: &[f32],
+    h: f32,
+    max_iter: u16,
+    tol: f32,
+) -> Result<(), StepError> {
+    let (mut fq, mut fp) = ([0.0f32; D], [0.0f32; D]);
+    ham.vector_field_driven(x, u, &mut fq, &mut fp)?;
+    fixed_point(x, h, max_iter, tol, (&fq, &fp), |mid, _, fq, fp| {
+        ham.vector_field_driven(mid, u, fq, fp)
     })
 }
 
@@ -307,22 +324,10 @@ fn discrete_gradient<const D: usize, H: Hamiltonian<D> + ?Sized>(
     let (mut fq, mut fp) = ([0.0f32; D], [0.0f32; D]);
     ham.gradient(&x0, &mut gq, &mut gp)?;
     ham.field_from_gradient(&gq, &gp, u, &mut fq, &mut fp);
-    let mut x1 = x0;
-    for i in 0..n {
-        x1.q[i] = x0.q[i] + h * fq[i];
-        x1.p[i] = x0.p[i] + h * fp[i];
-    }
-    let mut mid = x0;
-    for _ in 0..max_iter {
-        for i in 0..n {
-            mid.q[i] = 0.5 * (x0.q[i] + x1.q[i]);
-            mid.p[i] = 0.5 * (x0.p[i] + x1.p[i]);
-        }
-        if !mid.is_finite() || !x1.is_finite() {
-            return Err(StepError::Diverged);
-        }
-        ham.gradient(&mid, &mut gq, &mut gp)?;
-        let h1 = ham.energy(&x1)?;
+    fixed_point(x, h, max_iter, tol, (&fq, &fp), |mid, x1, fq, fp| {
+        let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
+        ham.gradient(mid, &mut gq, &mut gp)?;
+        let h1 = ham.energy(x1)?;
         // c = (H1 - H0 - g . d) / (d . W d), accumulated in index order.
         let (mut gd, mut dwd) = (0.0f32, 0.0f32);
         for i in 0..n {
@@ -344,22 +349,7 @@ fn discrete_gradient<const D: usize, H: Hamiltonian<D> + ?Sized>(
                 gp[i] += c * wp[i] * (x1.p[i] - x0.p[i]);
             }
         }
-        ham.field_from_gradient(&gq, &gp, u, &mut fq, &mut fp);
-        let mut converged = true;
-        for i in 0..n {
-            let q = x0.q[i] + h * fq[i];
-            let p = x0.p[i] + h * fp[i];
-            converged &= (q - x1.q[i]).abs() <= tol * (1.0 + q.abs());
-            converged &= (p - x1.p[i]).abs() <= tol * (1.0 + p.abs());
-            x1.q[i] = q;
-            x1.p[i] = p;
-        }
-        if converged {
-            *x = x1;
-            return Ok(());
-        }
-    }
-    Err(StepError::NotConverged {
-        iterations: max_iter,
+        ham.field_from_gradient(&gq, &gp, u, fq, fp);
+        Ok(())
     })
 }

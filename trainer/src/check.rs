@@ -3,12 +3,14 @@
 //! field) from each validation trajectory's first state, and measure
 //! vector-field error, state error over the trajectory, and energy drift over
 //! a long horizon — learned energy always, true energy for built-in systems.
+//! Damped or driven models get [`check_port`] instead: damping per mode of
+//! the linearization at rest and driven rollouts with the logged inputs.
 
 use anyhow::{anyhow, Result};
 use keel_runtime::{Hamiltonian, Integrator};
 use serde::Serialize;
 
-use crate::blob::HostModel;
+use crate::blob::{HostModel, HOST_MAX_DOF};
 use crate::dataset::{Dataset, Trajectory};
 use crate::hnn::BaselineModel;
 use crate::rollout::state_of;
@@ -443,5 +445,291 @@ pub fn check(
         median_baseline: (!bs.is_empty()).then(|| summarize(&bs)),
         median_model,
         trajectories: out,
+    })
+}
+
+// ------------------------------------------------ damped and driven models
+
+/// One mode of a damped model's linearization at rest.
+#[derive(Debug, Clone, Serialize)]
+pub struct ModeDamping {
+    /// Eigenvalue real part (1/s).
+    pub real: f64,
+    /// Eigenvalue imaginary part (rad/s, positive member of the pair).
+    pub imag: f64,
+    /// Undamped natural frequency |lambda| / (2 pi) in Hz.
+    pub natural_hz: f64,
+    /// Damping ratio -Re(lambda) / |lambda| (1 for a real, decaying mode).
+    pub damping_ratio: f64,
+}
+
+/// A driven rollout of one held-out trajectory.
+#[derive(Debug, Clone, Serialize)]
+pub struct DrivenRollout {
+    /// Trajectory id.
+    pub id: String,
+    /// sqrt(mean over coordinates of MSE_i / mean(x_i^2)): each
+    /// coordinate's error over its own RMS, so units do not mix.
+    pub state_rel_rmse: f64,
+    /// Why the rollout stopped early.
+    pub failure: Option<String>,
+}
+
+/// The checks specific to damped and driven models.
+#[derive(Debug, Clone, Serialize)]
+pub struct PortCheckReport {
+    /// The rest state found (f(x) = 0 with u = 0), q then p.
+    pub rest: Vec<f64>,
+    /// Largest |f(rest)| relative to the RMS rates of the data.
+    pub rest_residual: f64,
+    /// Modes of the linearization at rest, oscillatory pairs once, rigid
+    /// (zero) modes left out, by natural frequency.
+    pub modes: Vec<ModeDamping>,
+    /// Driven rollouts with the logged inputs.
+    pub rollouts: Vec<DrivenRollout>,
+}
+
+/// f(x) with u = 0 through the runtime, in f64.
+fn unforced_field(model: &HostModel<'_>, x: &[f64]) -> Result<Vec<f64>> {
+    let n = x.len() / 2;
+    let xf: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+    let s = state_of(&xf)?;
+    let (mut dq, mut dp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
+    model
+        .vector_field(&s, &mut dq, &mut dp)
+        .map_err(|e| anyhow!("vector field: {e}"))?;
+    Ok(dq[..n].iter().chain(&dp[..n]).map(|v| *v as f64).collect())
+}
+
+/// Jacobian of the unforced field by central differences with steps
+/// `h_j = 1e-3 * scale_j` (f32 evaluation: about 3 to 4 digits).
+fn field_jacobian(model: &HostModel<'_>, x: &[f64], scale: &[f64]) -> Result<Vec<Vec<f64>>> {
+    let d = x.len();
+    let mut a = vec![vec![0.0; d]; d];
+    for j in 0..d {
+        let h = 1e-3 * scale[j];
+        let mut plus = x.to_vec();
+        let mut minus = x.to_vec();
+        plus[j] += h;
+        minus[j] -= h;
+        let (fp, fm) = (
+            unforced_field(model, &plus)?,
+            unforced_field(model, &minus)?,
+        );
+        for i in 0..d {
+            a[i][j] = (fp[i] - fm[i]) / (2.0 * h);
+        }
+    }
+    Ok(a)
+}
+
+/// Solve (A^T A + mu I) s = A^T b (Levenberg-Marquardt step; works for a
+/// singular A, as for a free rotation).
+fn lm_step(a: &[Vec<f64>], b: &[f64], mu: f64) -> Vec<f64> {
+    let d = b.len();
+    let mut m = vec![vec![0.0; d + 1]; d];
+    for i in 0..d {
+        for j in 0..d {
+            m[i][j] =
+                (0..d).map(|k| a[k][i] * a[k][j]).sum::<f64>() + if i == j { mu } else { 0.0 };
+        }
+        m[i][d] = (0..d).map(|k| a[k][i] * b[k]).sum();
+    }
+    // Gaussian elimination with partial pivoting (the matrix is SPD).
+    for c in 0..d {
+        let p = (c..d)
+            .max_by(|&r, &s| m[r][c].abs().total_cmp(&m[s][c].abs()))
+            .unwrap_or(c);
+        m.swap(c, p);
+        for r in c + 1..d {
+            let f = m[r][c] / m[c][c];
+            let pivot = m[c].clone();
+            for (dst, src) in m[r].iter_mut().zip(&pivot).skip(c) {
+                *dst -= f * src;
+            }
+        }
+    }
+    let mut s = vec![0.0; d];
+    for r in (0..d).rev() {
+        let acc: f64 = (r + 1..d).map(|k| m[r][k] * s[k]).sum();
+        s[r] = (m[r][d] - acc) / m[r][r];
+    }
+    s
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Complex(f64, f64);
+
+impl Complex {
+    fn add(self, o: Self) -> Self {
+        Self(self.0 + o.0, self.1 + o.1)
+    }
+    fn sub(self, o: Self) -> Self {
+        Self(self.0 - o.0, self.1 - o.1)
+    }
+    fn mul(self, o: Self) -> Self {
+        Self(self.0 * o.0 - self.1 * o.1, self.0 * o.1 + self.1 * o.0)
+    }
+    fn div(self, o: Self) -> Self {
+        let d = o.0 * o.0 + o.1 * o.1;
+        Self(
+            (self.0 * o.0 + self.1 * o.1) / d,
+            (self.1 * o.0 - self.0 * o.1) / d,
+        )
+    }
+    fn abs(self) -> f64 {
+        self.0.hypot(self.1)
+    }
+}
+
+/// Eigenvalues of a small real matrix: characteristic polynomial by the
+/// Faddeev-LeVerrier recursion, roots by the Durand-Kerner (Weierstrass)
+/// iteration.
+pub fn eigenvalues(a: &[Vec<f64>]) -> Vec<(f64, f64)> {
+    let d = a.len();
+    // c[k] is the coefficient of lambda^(d - k), c[0] = 1.
+    let mut c = vec![0.0; d + 1];
+    c[0] = 1.0;
+    let mut m = vec![vec![0.0; d]; d];
+    for k in 1..=d {
+        // M_k = A M_(k-1) + c_(k-1) I; c_k = -tr(A M_k) / k.
+        let mut next = vec![vec![0.0; d]; d];
+        for i in 0..d {
+            for j in 0..d {
+                next[i][j] = (0..d).map(|l| a[i][l] * m[l][j]).sum::<f64>()
+                    + if i == j { c[k - 1] } else { 0.0 };
+            }
+        }
+        m = next;
+        let tr: f64 = (0..d)
+            .map(|i| (0..d).map(|l| a[i][l] * m[l][i]).sum::<f64>())
+            .sum();
+        c[k] = -tr / k as f64;
+    }
+    let poly = |z: Complex| {
+        c.iter().fold(Complex(0.0, 0.0), |acc, &ck| {
+            acc.mul(z).add(Complex(ck, 0.0))
+        })
+    };
+    let radius = 1.0 + c.iter().skip(1).fold(0.0f64, |r, v| r.max(v.abs()));
+    let mut roots: Vec<Complex> = (0..d)
+        .map(|k| {
+            let angle = 0.4 + 2.0 * std::f64::consts::PI * k as f64 / d as f64;
+            Complex(radius * angle.cos(), radius * angle.sin())
+        })
+        .collect();
+    for _ in 0..2000 {
+        let mut change = 0.0f64;
+        for i in 0..d {
+            let mut denom = Complex(1.0, 0.0);
+            for j in 0..d {
+                if i != j {
+                    denom = denom.mul(roots[i].sub(roots[j]));
+                }
+            }
+            let delta = poly(roots[i]).div(denom);
+            roots[i] = roots[i].sub(delta);
+            change = change.max(delta.abs() / roots[i].abs().max(1e-300));
+        }
+        if change < 1e-14 {
+            break;
+        }
+    }
+    roots.iter().map(|z| (z.0, z.1)).collect()
+}
+
+/// Damping per mode at the model's rest state, and driven rollouts of the
+/// held-out trajectories with their logged inputs (`inputs` per
+/// trajectory; `None` for an undriven model).
+pub fn check_port(
+    model: &HostModel<'_>,
+    blob: &crate::blob::BlobModel,
+    data: &Dataset,
+    inputs: Option<&crate::dataset::Inputs>,
+) -> Result<PortCheckReport> {
+    let d = 2 * blob.dof;
+    let scale: Vec<f64> = blob.scale.iter().map(|v| *v as f64).collect();
+    let rates: Vec<f64> = (0..d)
+        .map(|i| {
+            let (s, c) = data.trajectories.iter().fold((0.0, 0usize), |(s, c), t| {
+                (
+                    s + t.dx.column(i).iter().map(|v| v * v).sum::<f64>(),
+                    c + t.t.len(),
+                )
+            });
+            (s / c.max(1) as f64).sqrt().max(f64::MIN_POSITIVE)
+        })
+        .collect();
+    // Rest: f(x) = 0, from the centre of the fitted range.
+    let mut x: Vec<f64> = blob.offset.iter().map(|v| *v as f64).collect();
+    for _ in 0..30 {
+        let f = unforced_field(model, &x)?;
+        let a = field_jacobian(model, &x, &scale)?;
+        let mu = 1e-9 * a.iter().flatten().map(|v| v * v).sum::<f64>();
+        let s = lm_step(&a, &f, mu);
+        x.iter_mut().zip(&s).for_each(|(v, s)| *v -= s);
+    }
+    let f = unforced_field(model, &x)?;
+    let rest_residual = f
+        .iter()
+        .zip(&rates)
+        .map(|(v, r)| v.abs() / r)
+        .fold(0.0, f64::max);
+    let a = field_jacobian(model, &x, &scale)?;
+    let eig = eigenvalues(&a);
+    let largest = eig.iter().map(|(r, i)| r.hypot(*i)).fold(0.0, f64::max);
+    // Imaginary parts below 1e-9 of the largest modulus are rounding: real.
+    let mut modes: Vec<ModeDamping> = eig
+        .iter()
+        .map(|&(r, i)| (r, if i.abs() < 1e-9 * largest { 0.0 } else { i }))
+        .filter(|(r, i)| r.hypot(*i) > 1e-3 * largest && *i >= 0.0)
+        .map(|(real, imag)| {
+            let w = real.hypot(imag);
+            ModeDamping {
+                real,
+                imag,
+                natural_hz: w / (2.0 * std::f64::consts::PI),
+                damping_ratio: -real / w,
+            }
+        })
+        .collect();
+    modes.sort_by(|a, b| a.natural_hz.total_cmp(&b.natural_hz));
+    let mut rollouts = Vec::new();
+    for (k, traj) in data.trajectories.iter().enumerate() {
+        let dt = trajectory_dt(traj);
+        let stepped = model
+            .with_integrator(integrator_for(model.integrator(), dt))
+            .map_err(|e| anyhow!("{e}"))?;
+        let u: Vec<Vec<f32>> = match inputs {
+            Some(u) => u.per_trajectory[k]
+                .rows()
+                .into_iter()
+                .map(|r| r.iter().map(|v| *v as f32).collect())
+                .collect(),
+            None => Vec::new(),
+        };
+        let x0: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
+        let steps = traj.t.len() - 1;
+        let out = crate::rollout::roll_driven(&stepped, &x0, steps, &u)?;
+        let mut sum = 0.0;
+        for i in 0..d {
+            let (mut e, mut r) = (0.0, 0.0);
+            for (s, truth) in out.states.iter().zip(traj.x.rows()) {
+                e += (s[i] as f64 - truth[i]).powi(2);
+                r += truth[i] * truth[i];
+            }
+            sum += e / r.max(f64::MIN_POSITIVE);
+        }
+        rollouts.push(DrivenRollout {
+            id: traj.id.clone(),
+            state_rel_rmse: (sum / d as f64).sqrt(),
+            failure: out.failure.map(|(k, e)| format!("step {k}: {e}")),
+        });
+    }
+    Ok(PortCheckReport {
+        rest: x,
+        rest_residual,
+        modes,
+        rollouts,
     })
 }

@@ -1,10 +1,13 @@
 //! `keel check`: the evidence a user needs before deploying — the model
 //! against the plain baseline on held-out trajectories — as a terminal
-//! table, a JSON report and SVG plots.
+//! table, a JSON report and SVG plots. Damped or driven models (blobs with
+//! R or G) get their own table: damping per mode at rest and driven
+//! rollouts of the held-out trajectories with their logged inputs.
 
 use std::path::PathBuf;
 
 use anyhow::{anyhow, Context, Result};
+use keel_runtime::Hamiltonian;
 
 use crate::atomic::write_atomic;
 use crate::blob::HostModel;
@@ -268,6 +271,9 @@ pub fn run(args: Args) -> Result<()> {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
+    if model.has_port_terms() {
+        return run_port(&args, &model, &bytes, &opts);
+    }
     let data = load_csv(&args.data, &opts)?;
     let base_path = args
         .baseline
@@ -319,6 +325,66 @@ pub fn run(args: Args) -> Result<()> {
             write_atomic(&p, chart.to_svg().as_bytes())?;
         }
         println!("plots: {}", dir.display());
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}
+
+/// `run` for a damped or driven model.
+fn run_port(args: &Args, model: &HostModel<'_>, bytes: &[u8], opts: &LoadOptions) -> Result<()> {
+    let blob = crate::blob::BlobModel::from_bytes(bytes)
+        .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
+    let (data, inputs) = crate::data::load_csv_with_inputs(&args.data, opts)?;
+    if data.dof != blob.dof {
+        anyhow::bail!(
+            "{}: {} degrees of freedom, but the model has {}",
+            args.data.display(),
+            data.dof,
+            blob.dof
+        );
+    }
+    let m = model.inputs();
+    let got = inputs.as_ref().map_or(0, |u| u.count);
+    if got != m {
+        anyhow::bail!(
+            "{}: {got} input columns, but the model takes {m} inputs (u1..u{m})",
+            args.data.display()
+        );
+    }
+    let r = crate::check::check_port(model, &blob, &data, inputs.as_ref())?;
+    let rest: Vec<String> = r.rest.iter().map(|v| format!("{v:.4e}")).collect();
+    println!(
+        "rest state ({}), residual {} of the RMS rates",
+        rest.join(", "),
+        sci(r.rest_residual)
+    );
+    println!(
+        "{:<6} {:>16} {:>14} {:>22}",
+        "mode", "natural freq (Hz)", "damping ratio", "eigenvalue (1/s)"
+    );
+    for (k, mode) in r.modes.iter().enumerate() {
+        println!(
+            "{:<6} {:>16.4} {:>14.4} {:>22}",
+            k + 1,
+            mode.natural_hz,
+            mode.damping_ratio,
+            format!("{:.3} {:+.3}i", mode.real, mode.imag)
+        );
+    }
+    println!(
+        "{:<10} {:>28}",
+        "trajectory", "driven-rollout state rel. RMSE"
+    );
+    for t in &r.rollouts {
+        let value = match &t.failure {
+            Some(f) => format!("failed ({f})"),
+            None => sci(t.state_rel_rmse),
+        };
+        println!("{:<10} {:>28}", t.id, value);
+    }
+    if let Some(p) = &args.report {
+        write_atomic(p, serde_json::to_string_pretty(&r)?.as_bytes())?;
+        println!("report: {}", p.display());
     }
     println!("{}", crate::CAUTION);
     Ok(())

@@ -1,5 +1,8 @@
 //! `keel fit`: load a motion log, fit an energy model (and optionally the
 //! plain vector-field baseline), and write the model blob atomically.
+//! Logs with input columns `u1..um`, or `--dissipation`, give a damped
+//! and/or driven model dx/dt = (J - R) dH/dx + G u (stepped by the
+//! discrete-gradient method).
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -11,7 +14,7 @@ use keel_runtime::{Integrator, Method};
 
 use crate::blob::WeightKind;
 use crate::data::{self, LoadOptions};
-use crate::dataset::Dataset;
+use crate::dataset::{Dataset, Inputs};
 use crate::export;
 use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
 use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective};
@@ -106,6 +109,12 @@ pub struct Args {
     /// OUT with extension `.baseline.json`.
     #[arg(long)]
     pub baseline: bool,
+    /// Learn a constant dissipation R = L L^T acting on the momenta
+    /// (viscous damping and friction). Inputs u1..um in the log are always
+    /// used (G is then learned); either makes a port-Hamiltonian model,
+    /// stored with the discrete-gradient method.
+    #[arg(long)]
+    pub dissipation: bool,
     /// Masses m1,..,mn for logs with velocity columns (p = m v).
     #[arg(long, value_delimiter = ',', value_name = "M1,..")]
     pub mass: Option<Vec<f64>>,
@@ -248,7 +257,10 @@ pub fn run(args: Args) -> Result<()> {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
-    let all = data::load_csv(&args.data, &opts)?;
+    let (all, all_inputs) = data::load_csv_with_inputs(&args.data, &opts)?;
+    if all_inputs.is_some() || args.dissipation {
+        return run_port(&args, act, all, all_inputs, &opts);
+    }
     let (train, val) = match &args.val {
         Some(path) => {
             let v = data::load_csv(path, &opts)?;
@@ -365,6 +377,136 @@ pub fn run(args: Args) -> Result<()> {
         let path = baseline_path(&args.out);
         export::write_baseline(&path, &base.model)?;
         println!("wrote {}", path.display());
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}
+
+/// `run` for a damped and/or driven model.
+fn run_port(
+    args: &Args,
+    act: Activation,
+    all: Dataset,
+    all_inputs: Option<Inputs>,
+    opts: &LoadOptions,
+) -> Result<()> {
+    if args.baseline {
+        bail!("--baseline is not available for damped or driven models (it has no input or dissipation term)");
+    }
+    type Split = (Dataset, Option<Inputs>);
+    let ((train, train_u), val): (Split, Option<Split>) = match &args.val {
+        Some(path) => {
+            let (v, vu) = data::load_csv_with_inputs(path, opts)?;
+            if v.dof != all.dof {
+                bail!(
+                    "{}: {} degrees of freedom, but {} has {}",
+                    path.display(),
+                    v.dof,
+                    args.data.display(),
+                    all.dof
+                );
+            }
+            let (want, got) = (
+                all_inputs.as_ref().map_or(0, |u| u.count),
+                vu.as_ref().map_or(0, |u| u.count),
+            );
+            if want != got {
+                bail!(
+                    "{}: {got} input columns, but {} has {want}",
+                    path.display(),
+                    args.data.display()
+                );
+            }
+            ((all, all_inputs), Some((v, vu)))
+        }
+        None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => match &all_inputs {
+            Some(u) => {
+                let ((t, tu), (v, vu)) =
+                    data::split_with_inputs(&all, u, args.val_fraction, args.seed);
+                ((t, Some(tu)), Some((v, Some(vu))))
+            }
+            None => {
+                let (t, v) = data::split_by_trajectory(&all, args.val_fraction, args.seed);
+                ((t, None), Some((v, None)))
+            }
+        },
+        None => ((all, all_inputs), None),
+    };
+    let val = val.filter(|(v, _)| !v.trajectories.is_empty());
+    let choice = ArchChoice {
+        separable: args.arch == ArchArg::Separable,
+        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
+        hidden: args.hidden.clone(),
+        activation: act,
+    };
+    let arch = choice.build(train.dof)?;
+    let method = args
+        .integrator
+        .map_or(Method::DiscreteGradient, Method::from);
+    if !method.handles_port_terms() {
+        bail!("--integrator {method:?} cannot step damped or driven models; use the default (discrete gradient)");
+    }
+    let dt = match args.dt {
+        Some(dt) => dt,
+        None => median_step(&train)
+            .map(|v| v as f32)
+            .context("cannot infer --dt: the log has no two consecutive samples")?,
+    };
+    let integrator = Integrator::new(method, dt);
+    if !integrator.is_valid() {
+        bail!("time step {dt} s is not usable; pass --dt");
+    }
+    let interrupt = Arc::new(AtomicBool::new(false));
+    {
+        let flag = interrupt.clone();
+        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
+            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
+        }
+    }
+    let settings = FitSettings {
+        epochs: args.epochs,
+        steps: args.steps,
+        batch: args.batch,
+        lr: args.lr,
+        threads: args.threads.max(1),
+        early_stop: !args.no_early_stop,
+        patience: args.patience,
+        seed: args.seed,
+        quiet: args.quiet,
+        interrupt: Some(interrupt),
+        ..FitSettings::default()
+    };
+    let m = train_u.as_ref().map_or(0, |u| u.count);
+    println!(
+        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, dissipation {}",
+        train.samples(),
+        train.trajectories.len(),
+        val.as_ref().map_or(0, |(v, _)| v.samples()),
+        m,
+        if args.dissipation { "learned" } else { "none" },
+    );
+    let fitted = fit::fit_port(
+        &train,
+        train_u.as_ref(),
+        val.as_ref().map(|(v, u)| (v, u.as_ref())),
+        &arch,
+        args.dissipation,
+        &settings,
+    )?;
+    print_report("energy model", &fitted.report);
+    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
+    println!(
+        "wrote {} ({bytes} bytes, {method:?}, dt = {dt} s)",
+        args.out.display()
+    );
+    if let Some(path) = &args.history {
+        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
+        crate::atomic::write_atomic(path, &json)
+            .with_context(|| format!("writing history {}", path.display()))?;
+        println!("wrote {}", path.display());
+    }
+    if args.json.is_some() {
+        eprintln!("note: --json is not written for damped or driven models yet");
     }
     println!("{}", crate::CAUTION);
     Ok(())

@@ -1,8 +1,10 @@
 //! `keel simulate`: write reference trajectories of a built-in system to CSV.
 
-use crate::data::write_csv;
-use crate::simulate::{add_noise, max_relative_energy_drift, simulate, SimulationSpec};
-use crate::systems::{build_system, parse_param, CATALOG};
+use crate::data::{write_csv, write_csv_with_inputs};
+use crate::simulate::{
+    add_noise, max_relative_energy_drift, simulate, simulate_port, SimulationSpec,
+};
+use crate::systems::{build_port_system, build_system, parse_param, CATALOG, PORT_CATALOG};
 use std::path::PathBuf;
 
 /// Generate reference trajectories from a built-in system. The list of
@@ -10,7 +12,8 @@ use std::path::PathBuf;
 #[derive(Debug, clap::Args)]
 #[command(after_help = after_help())]
 pub struct Args {
-    /// Built-in system: flexure, crane or mount.
+    /// Built-in system: flexure, crane, mount, or the damped/driven
+    /// flexure-damped and drivetrain.
     #[arg(long, value_name = "NAME")]
     pub system: String,
 
@@ -63,6 +66,21 @@ fn after_help() -> String {
             ));
         }
     }
+    text.push_str("Damped or driven systems (dx/dt = (J - R) dH/dx + G u):\n");
+    for entry in PORT_CATALOG {
+        text.push_str(&format!("  {:<8} {}\n", entry.name, entry.summary));
+        for p in entry.params {
+            text.push_str(&format!(
+                "           {}={} {}  {}\n",
+                p.name, p.default, p.unit, p.meaning
+            ));
+        }
+    }
+    text.push_str(
+        "\nDriven systems add input columns u1..um (the excitation at each sample; a\n\
+         multisine: per trajectory six tones, frequencies log-uniform in the stated\n\
+         band, random phases). Their derivatives are (J - R) dH/dx + G u exactly.\n",
+    );
     text.push_str(
         "\nOutput columns: traj,t,q1..qn,p1..pn,dq1..dqn,dp1..dpn. The derivatives are exact\n\
          (the system's equations of motion at the clean state). With --noise they are\n\
@@ -75,7 +93,16 @@ fn after_help() -> String {
 
 /// Run the command.
 pub fn run(args: Args) -> anyhow::Result<()> {
-    let system = build_system(&args.system, &args.params)?;
+    if let Some(system) = build_port_system(&args.system, &args.params) {
+        return run_port(&args, system?.as_ref());
+    }
+    let system = build_system(&args.system, &args.params).map_err(|e| match e {
+        crate::systems::SystemError::UnknownSystem { name, mut valid } => {
+            valid.extend(PORT_CATALOG.iter().map(|p| p.name));
+            crate::systems::SystemError::UnknownSystem { name, valid }
+        }
+        other => other,
+    })?;
     anyhow::ensure!(
         args.noise.is_finite() && args.noise >= 0.0,
         "--noise must be a finite non-negative number (got {})",
@@ -108,6 +135,43 @@ pub fn run(args: Args) -> anyhow::Result<()> {
         if with_derivatives { "exact" } else { "omitted" },
         args.out.display(),
         drift
+    );
+    Ok(())
+}
+
+/// `run` for a damped or driven system.
+fn run_port(args: &Args, system: &dyn crate::systems::PortSystem) -> anyhow::Result<()> {
+    anyhow::ensure!(
+        args.noise.is_finite() && args.noise >= 0.0,
+        "--noise must be a finite non-negative number (got {})",
+        args.noise
+    );
+    let spec = SimulationSpec {
+        trajectories: args.trajectories,
+        duration: args.duration,
+        rate: args.rate,
+        seed: args.seed,
+    };
+    let (mut ds, inputs) = simulate_port(system, &spec)?;
+    add_noise(&mut ds, args.noise, args.seed)?;
+    let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
+    write_csv_with_inputs(&args.out, &ds, inputs.as_ref(), with_derivatives)?;
+    let params: Vec<String> = system
+        .params()
+        .iter()
+        .map(|(k, v, u)| format!("{k}={v} {u}"))
+        .collect();
+    println!(
+        "wrote {} trajectories x {} samples of '{}' ({}; {} Hz, noise {}, derivatives {}, {} input columns) to {}",
+        ds.trajectories.len(),
+        ds.trajectories.first().map_or(0, |t| t.t.len()),
+        system.name(),
+        params.join(", "),
+        spec.rate,
+        args.noise,
+        if with_derivatives { "exact" } else { "omitted" },
+        system.inputs(),
+        args.out.display(),
     );
     Ok(())
 }

@@ -6,7 +6,9 @@
 //! (velocities, converted with p = m v using [`LoadOptions::masses`]), and
 //! optionally derivatives `dq1..dqn`, `dp1..dpn` (with velocities,
 //! `dv1..dvn` in place of `dp*`, converted with dp = m dv). If both `p*`
-//! and `v*` columns exist the momenta are used. Other columns are ignored. Rows of one trajectory must be contiguous; time must increase
+//! and `v*` columns exist the momenta are used. Driven systems add inputs
+//! `u1..um` (read by [`load_csv_with_inputs`]; [`load_csv`] ignores them).
+//! Other columns are ignored. Rows of one trajectory must be contiguous; time must increase
 //! strictly and evenly: a step may differ from the trajectory's median step
 //! by at most [`LoadOptions::step_tolerance`] (1 % by default) of that median.
 //! Without derivative columns the derivatives are estimated with a
@@ -14,7 +16,7 @@
 //! least the filter's window of samples.
 
 use crate::atomic::write_atomic_with;
-use crate::dataset::{Dataset, DerivativeSource, Trajectory};
+use crate::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
 use crate::derivative::SavitzkyGolay;
 use ndarray::Array2;
 use rand::seq::SliceRandom;
@@ -174,6 +176,8 @@ struct Layout {
     p: Vec<usize>,
     /// dq and dp (or dv) columns, if present.
     derivatives: Option<(Vec<usize>, Vec<usize>)>,
+    /// u columns (only when inputs are read).
+    u: Vec<usize>,
     names: Vec<String>,
 }
 
@@ -193,6 +197,7 @@ fn parse_layout(
     file: &Path,
     names: Vec<String>,
     opts: &LoadOptions,
+    with_inputs: bool,
 ) -> Result<(Layout, Option<Vec<f64>>), DataError> {
     let err = |column: &str, problem| DataError {
         file: file.to_path_buf(),
@@ -260,17 +265,37 @@ fn parse_layout(
     };
     // A numbered column outside the contiguous runs (e.g. q3 without q2) is
     // almost certainly a mistake; refuse it rather than ignore it.
+    let u = if with_inputs {
+        numbered(&names, "u")
+    } else {
+        Vec::new()
+    };
+    if u.len() > keel_runtime::format::MAX_INPUTS {
+        return Err(err(
+            &format!("u{}", keel_runtime::format::MAX_INPUTS + 1),
+            DataProblem::MismatchedDimensions(format!(
+                "{} input columns; the runtime takes at most {}",
+                u.len(),
+                keel_runtime::format::MAX_INPUTS
+            )),
+        ));
+    }
     let used: Vec<usize> = q
         .iter()
         .chain(&p)
         .chain(derivatives.iter().flat_map(|(a, b)| a.iter().chain(b)))
+        .chain(&u)
         .copied()
         .collect();
+    let input_prefix: &[&str] = if with_inputs { &["u"] } else { &[] };
     for (i, name) in names.iter().enumerate() {
-        let stray = ["q", pv, "dq", dpv_prefix].iter().any(|prefix| {
-            name.strip_prefix(prefix)
-                .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
-        });
+        let stray = ["q", pv, "dq", dpv_prefix]
+            .iter()
+            .chain(input_prefix)
+            .any(|prefix| {
+                name.strip_prefix(prefix)
+                    .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
+            });
         if stray && !used.contains(&i) {
             return Err(err(
                 name,
@@ -311,6 +336,7 @@ fn parse_layout(
             q,
             p,
             derivatives,
+            u,
             names,
         },
         masses,
@@ -325,10 +351,28 @@ struct Block {
     t: Vec<f64>,
     x: Vec<f64>,
     dx: Vec<f64>,
+    u: Vec<f64>,
 }
 
-/// Load and validate a CSV log.
+/// Load and validate a CSV log (any `u*` input columns are ignored).
 pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
+    load(path, opts, false).map(|(ds, _)| ds)
+}
+
+/// Load and validate a CSV log with optional inputs `u1..um` (validated
+/// like every other column); `None` when the log has no `u1` column.
+pub fn load_csv_with_inputs(
+    path: &Path,
+    opts: &LoadOptions,
+) -> Result<(Dataset, Option<Inputs>), DataError> {
+    load(path, opts, true)
+}
+
+fn load(
+    path: &Path,
+    opts: &LoadOptions,
+    with_inputs: bool,
+) -> Result<(Dataset, Option<Inputs>), DataError> {
     let file_err = |line: u64, column: Option<String>, problem| DataError {
         file: path.to_path_buf(),
         line,
@@ -348,7 +392,8 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
         return Err(file_err(1, None, DataProblem::Empty));
     }
     let names: Vec<String> = headers.iter().map(str::to_string).collect();
-    let (layout, masses) = parse_layout(path, names, opts)?;
+    let (layout, masses) = parse_layout(path, names, opts, with_inputs)?;
+    let m = layout.u.len();
     let n = layout.q.len();
 
     let mut blocks: Vec<Block> = Vec::new();
@@ -394,6 +439,7 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
                 t: Vec::new(),
                 x: Vec::new(),
                 dx: Vec::new(),
+                u: Vec::new(),
             });
         }
         let block = blocks.last_mut().expect("pushed above");
@@ -428,6 +474,9 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
                 block.dx.push(scale * field(c)?);
             }
         }
+        for &c in &layout.u {
+            block.u.push(field(c)?);
+        }
     }
     if blocks.is_empty() {
         return Err(file_err(2, None, DataProblem::Empty));
@@ -435,10 +484,14 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
 
     let needed = opts.filter.window();
     let mut trajectories = Vec::with_capacity(blocks.len());
+    let mut inputs = Vec::with_capacity(blocks.len());
     for block in blocks {
         check_even_steps(path, &block, opts.step_tolerance)?;
         let samples = block.t.len();
         let x = Array2::from_shape_vec((samples, 2 * n), block.x).expect("row-major 2n per row");
+        if m > 0 {
+            inputs.push(Array2::from_shape_vec((samples, m), block.u).expect("m per row"));
+        }
         let dx = if layout.derivatives.is_some() {
             Array2::from_shape_vec((samples, 2 * n), block.dx).expect("row-major 2n per row")
         } else {
@@ -472,7 +525,7 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
             dx,
         });
     }
-    Ok(Dataset {
+    let ds = Dataset {
         dof: n,
         trajectories,
         derivatives: if layout.derivatives.is_some() {
@@ -480,7 +533,12 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
         } else {
             DerivativeSource::Estimated
         },
-    })
+    };
+    let inputs = (m > 0).then_some(Inputs {
+        count: m,
+        per_trajectory: inputs,
+    });
+    Ok((ds, inputs))
 }
 
 fn check_even_steps(path: &Path, block: &Block, tolerance: f64) -> Result<(), DataError> {
@@ -527,11 +585,35 @@ pub fn column_names(dof: usize, derivatives: bool) -> Vec<String> {
 /// `derivatives`. Numbers use Rust's shortest round-trip formatting, so the
 /// output is deterministic and re-reads to the same values.
 pub fn write_csv(path: &Path, ds: &Dataset, derivatives: bool) -> anyhow::Result<()> {
+    write_csv_with_inputs(path, ds, None, derivatives)
+}
+
+/// [`write_csv`] plus input columns `u1..um` after the others, if `inputs`.
+pub fn write_csv_with_inputs(
+    path: &Path,
+    ds: &Dataset,
+    inputs: Option<&Inputs>,
+    derivatives: bool,
+) -> anyhow::Result<()> {
+    if let Some(u) = inputs {
+        anyhow::ensure!(
+            u.per_trajectory.len() == ds.trajectories.len()
+                && u.per_trajectory
+                    .iter()
+                    .zip(&ds.trajectories)
+                    .all(|(a, t)| a.dim() == (t.t.len(), u.count)),
+            "inputs do not match the trajectories"
+        );
+    }
     write_atomic_with(path, |w| {
         let mut writer = csv::Writer::from_writer(w);
-        writer.write_record(column_names(ds.dof, derivatives))?;
+        let mut header = column_names(ds.dof, derivatives);
+        if let Some(u) = inputs {
+            header.extend((1..=u.count).map(|k| format!("u{k}")));
+        }
+        writer.write_record(header)?;
         let mut row: Vec<String> = Vec::new();
-        for traj in &ds.trajectories {
+        for (k, traj) in ds.trajectories.iter().enumerate() {
             for (i, t) in traj.t.iter().enumerate() {
                 row.clear();
                 row.push(traj.id.clone());
@@ -539,6 +621,9 @@ pub fn write_csv(path: &Path, ds: &Dataset, derivatives: bool) -> anyhow::Result
                 row.extend(traj.x.row(i).iter().map(|v| format!("{v}")));
                 if derivatives {
                     row.extend(traj.dx.row(i).iter().map(|v| format!("{v}")));
+                }
+                if let Some(u) = inputs {
+                    row.extend(u.per_trajectory[k].row(i).iter().map(|v| format!("{v}")));
                 }
                 writer.write_record(&row)?;
             }
@@ -554,7 +639,41 @@ pub fn write_csv(path: &Path, ds: &Dataset, derivatives: bool) -> anyhow::Result
 /// gets at least one. A single trajectory goes to training. Both sides keep
 /// the original trajectory order.
 pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Dataset, Dataset) {
-    let count = ds.trajectories.len();
+    let is_val = validation_mask(ds.trajectories.len(), val_fraction, seed);
+    let pick = |want: bool| Dataset {
+        dof: ds.dof,
+        trajectories: ds
+            .trajectories
+            .iter()
+            .zip(&is_val)
+            .filter(|(_, v)| **v == want)
+            .map(|(t, _)| t.clone())
+            .collect(),
+        derivatives: ds.derivatives,
+    };
+    (pick(false), pick(true))
+}
+
+/// [`split_by_trajectory`] with the inputs split alike:
+/// ((training, its inputs), (validation, its inputs)).
+pub fn split_with_inputs(
+    ds: &Dataset,
+    inputs: &Inputs,
+    val_fraction: f64,
+    seed: u64,
+) -> ((Dataset, Inputs), (Dataset, Inputs)) {
+    let is_val = validation_mask(ds.trajectories.len(), val_fraction, seed);
+    let (train, val) = split_by_trajectory(ds, val_fraction, seed);
+    let pick = |want: bool| {
+        let idx: Vec<usize> = (0..is_val.len()).filter(|&i| is_val[i] == want).collect();
+        inputs.select(&idx)
+    };
+    ((train, pick(false)), (val, pick(true)))
+}
+
+/// Which of `count` trajectories go to validation (see
+/// [`split_by_trajectory`]).
+fn validation_mask(count: usize, val_fraction: f64, seed: u64) -> Vec<bool> {
     let fraction = if val_fraction.is_nan() {
         0.0
     } else {
@@ -571,16 +690,5 @@ pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Datas
     for &i in &order[..n_val] {
         is_val[i] = true;
     }
-    let pick = |want: bool| Dataset {
-        dof: ds.dof,
-        trajectories: ds
-            .trajectories
-            .iter()
-            .zip(&is_val)
-            .filter(|(_, v)| **v == want)
-            .map(|(t, _)| t.clone())
-            .collect(),
-        derivatives: ds.derivatives,
-    };
-    (pick(false), pick(true))
+    is_val
 }

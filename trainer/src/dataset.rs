@@ -44,3 +44,29 @@ impl Dataset {
         self.trajectories.iter().map(|t| t.t.len()).sum()
     }
 }
+
+/// Inputs u1..um of a driven system, one array per trajectory of the
+/// [`Dataset`] they belong to (same order), each of shape (samples, m), in
+/// the log's own units (e.g. N m of motor torque). Kept beside the dataset
+/// rather than inside [`Trajectory`] so conservative data keeps its exact
+/// type and layout.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Inputs {
+    /// Number of inputs m.
+    pub count: usize,
+    /// Per trajectory, shape (samples, m).
+    pub per_trajectory: Vec<Array2<f64>>,
+}
+
+impl Inputs {
+    /// Inputs of the trajectories whose indices are listed, in that order.
+    pub fn select(&self, indices: &[usize]) -> Self {
+        Self {
+            count: self.count,
+            per_trajectory: indices
+                .iter()
+                .map(|&i| self.per_trajectory[i].clone())
+                .collect(),
+        }
+    }
+}

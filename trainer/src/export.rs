@@ -66,8 +66,14 @@ pub fn blob_model(model: &EnergyModel, integrator: Integrator) -> BlobModel {
         energy_scale: model.norm.energy_scale,
         energy,
         integrator,
-        dissipation: None,
-        input: None,
+        dissipation: model
+            .port
+            .as_ref()
+            .and_then(|p| p.physical_dissipation(n, &model.norm)),
+        input: model
+            .port
+            .as_ref()
+            .and_then(|p| p.physical_input(n, &model.norm)),
     }
 }
 

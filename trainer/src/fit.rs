@@ -16,10 +16,10 @@ use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
-use crate::dataset::Dataset;
+use crate::dataset::{Dataset, Inputs};
 use crate::hnn::{
     BaselineModel, BaselineObjective, EnergyArch, EnergyModel, HnnObjective, KineticArch,
-    Normalization, Objective,
+    Normalization, Objective, PortArch, PortModel, PortObjective,
 };
 use crate::net::{Activation, MlpShape};
 
@@ -221,6 +221,110 @@ pub fn fit_energy(
             arch: arch.clone(),
             norm,
             params,
+            port: None,
+        },
+        report,
+    })
+}
+
+/// Fit a damped and/or driven model (see [`PortObjective`]): R = L L^T on
+/// the momentum block if `dissipation`, G if `inputs` (one input array per
+/// training trajectory). Validation inputs must be given when the training
+/// data has inputs.
+pub fn fit_port(
+    train: &Dataset,
+    inputs: Option<&Inputs>,
+    val: Option<(&Dataset, Option<&Inputs>)>,
+    arch: &EnergyArch,
+    dissipation: bool,
+    settings: &FitSettings,
+) -> Result<Fitted<EnergyModel>> {
+    let quadratic = matches!(
+        arch,
+        EnergyArch::Separable {
+            kinetic: KineticArch::Quadratic,
+            ..
+        }
+    );
+    let n = train.dof;
+    let norm = Normalization::from_data(train, quadratic)?;
+    let m = inputs.map_or(0, |u| u.count);
+    let input_scale: Vec<f32> = (0..m)
+        .map(|k| {
+            let u = inputs.expect("m > 0");
+            let (sq, count) = u.per_trajectory.iter().fold((0.0f64, 0usize), |(s, c), a| {
+                (
+                    s + a.column(k).iter().map(|v| v * v).sum::<f64>(),
+                    c + a.nrows(),
+                )
+            });
+            let rms = (sq / count.max(1) as f64).sqrt();
+            if rms > 0.0 {
+                rms as f32
+            } else {
+                1.0
+            }
+        })
+        .collect();
+    let with_inputs = |ds: &Dataset, u: Option<&Inputs>| -> Result<(Array2<f32>, Array2<f32>)> {
+        if ds.dof != n {
+            bail!(
+                "validation data has {} degrees of freedom, training data {n}",
+                ds.dof
+            );
+        }
+        let (z, t) = norm.normalize(ds);
+        if m == 0 {
+            return Ok((z, t));
+        }
+        let Some(u) = u.filter(|u| u.count == m) else {
+            bail!("the training data has {m} input columns; the validation data must too");
+        };
+        let mut zu = Array2::zeros((z.nrows(), 2 * n + m));
+        zu.slice_mut(s![.., ..2 * n]).assign(&z);
+        let mut r = 0;
+        for a in &u.per_trajectory {
+            for row in a.rows() {
+                for k in 0..m {
+                    zu[[r, 2 * n + k]] = (row[k] / input_scale[k] as f64) as f32;
+                }
+                r += 1;
+            }
+        }
+        if r != z.nrows() {
+            bail!(
+                "input rows ({r}) do not match the state rows ({})",
+                z.nrows()
+            );
+        }
+        Ok((zu, t))
+    };
+    let (z, t) = with_inputs(train, inputs)?;
+    let validation = match val {
+        Some((v, u)) => Some(with_inputs(v, u)?),
+        None => None,
+    };
+    let port = PortArch {
+        dissipation,
+        inputs: m,
+    };
+    let obj = PortObjective::new(n, arch.clone(), port.clone(), &norm);
+    let mut init = arch.init(n, settings.seed);
+    let energy_count = init.len();
+    init.extend(port.init(n));
+    let (mut params, report) = run_arrays(&obj, init, z, t, validation, settings)?;
+    let port_params = params.split_off(energy_count);
+    Ok(Fitted {
+        model: EnergyModel {
+            dof: n,
+            arch: arch.clone(),
+            norm,
+            params,
+            port: Some(PortModel {
+                arch: port,
+                input_scale,
+                params: port_params,
+            }),
         },
         report,
     })
@@ -372,7 +476,7 @@ fn progress_bar(total: usize, quiet: bool) -> ProgressBar {
 /// The loop shared by the energy model and the baseline.
 fn run<O: Objective>(
     obj: &O,
-    mut params: Vec<f32>,
+    params: Vec<f32>,
     norm: &Normalization,
     train: &Dataset,
     val: Option<&Dataset>,
@@ -393,9 +497,27 @@ fn run<O: Objective>(
             );
         }
     }
-    let threads = s.threads.max(1);
     let (z, t) = norm.normalize(train);
     let validation = val.map(|v| norm.normalize(v));
+    run_arrays(obj, params, z, t, validation, s)
+}
+
+/// [`run`] on normalized arrays (rows of inputs `z` and targets `t`).
+fn run_arrays<O: Objective>(
+    obj: &O,
+    mut params: Vec<f32>,
+    z: Array2<f32>,
+    t: Array2<f32>,
+    validation: Option<(Array2<f32>, Array2<f32>)>,
+    s: &FitSettings,
+) -> Result<(Vec<f32>, TrainReport)> {
+    if s.batch == 0 {
+        bail!("batch size must be at least 1");
+    }
+    if !(s.lr.is_finite() && s.lr > 0.0) {
+        bail!("learning rate must be positive, got {}", s.lr);
+    }
+    let threads = s.threads.max(1);
     let rows = z.nrows();
     let batch = s.batch.min(rows);
     let per_epoch = rows.div_ceil(batch);

@@ -599,3 +599,369 @@ mod tests {
         assert!(parse_param("k=abc").is_err());
     }
 }
+
+// ------------------------------------------------------- damped and driven
+
+/// A damped, driven system in port-Hamiltonian form
+/// dx/dt = (J - R) dH/dx + G u(t), with H, the constant dissipation R and
+/// the constant input matrix G known in closed form (SI units).
+pub trait PortSystem: Send + Sync + fmt::Debug {
+    /// Catalog name.
+    fn name(&self) -> &'static str;
+    /// Degrees of freedom n.
+    fn dof(&self) -> usize;
+    /// Number of inputs m (0 for an undriven system).
+    fn inputs(&self) -> usize;
+    /// Parameter values in use.
+    fn params(&self) -> &ParamValues;
+    /// Energy H(x) in joules.
+    fn hamiltonian(&self, x: &[f64]) -> f64;
+    /// dH/dx into `g` (2n entries).
+    fn gradient(&self, x: &[f64], g: &mut [f64]);
+    /// R, 2n x 2n, row-major, symmetric positive semidefinite.
+    fn dissipation(&self) -> Vec<f64>;
+    /// G, 2n x m, row-major.
+    fn input_matrix(&self) -> Vec<f64>;
+    /// A random initial state from the operating range.
+    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64>;
+    /// A random excitation for one trajectory (no components if m = 0).
+    fn sample_excitation(&self, rng: &mut ChaCha8Rng) -> Multisine;
+}
+
+/// The port-Hamiltonian field f = (J - R) dH/dx + G u of `system`.
+pub fn port_field(system: &dyn PortSystem, x: &[f64], u: &[f64], f: &mut [f64]) {
+    let n = system.dof();
+    let d = 2 * n;
+    let m = system.inputs();
+    let mut g = vec![0.0; d];
+    system.gradient(x, &mut g);
+    let r = system.dissipation();
+    let gm = system.input_matrix();
+    for i in 0..d {
+        let mut acc = if i < n { g[n + i] } else { -g[i - n] };
+        for j in 0..d {
+            acc -= r[i * d + j] * g[j];
+        }
+        for k in 0..m {
+            acc += gm[i * m + k] * u[k];
+        }
+        f[i] = acc;
+    }
+}
+
+/// One smooth excitation signal per input: u_j(t) = sum_k a_jk sin(2 pi
+/// f_jk t + phi_jk) (a multisine; zero mean, so a driven free rotor's
+/// angle stays bounded on average). An empty signal is u = 0.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Multisine {
+    /// Per input: (amplitude, frequency in Hz, phase in rad) of each tone.
+    pub tones: Vec<Vec<(f64, f64, f64)>>,
+}
+
+impl Multisine {
+    /// No input.
+    pub fn none() -> Self {
+        Self { tones: Vec::new() }
+    }
+
+    /// `count` tones per input, frequencies log-uniform in [f_lo, f_hi] Hz,
+    /// phases uniform, each tone of amplitude `amplitude / sqrt(count)` (so
+    /// the RMS is about `amplitude / sqrt(2)`).
+    pub fn random(
+        rng: &mut ChaCha8Rng,
+        inputs: usize,
+        count: usize,
+        amplitude: f64,
+        f_lo: f64,
+        f_hi: f64,
+    ) -> Self {
+        let a = amplitude / (count as f64).sqrt();
+        let tones = (0..inputs)
+            .map(|_| {
+                (0..count)
+                    .map(|_| {
+                        let f = f_lo * (f_hi / f_lo).powf(rng.random::<f64>());
+                        (a, f, uniform(rng, 0.0, 2.0 * PI))
+                    })
+                    .collect()
+            })
+            .collect();
+        Self { tones }
+    }
+
+    /// u(t) into `u` (one value per input).
+    pub fn value(&self, t: f64, u: &mut [f64]) {
+        for (out, tones) in u.iter_mut().zip(&self.tones) {
+            *out = tones
+                .iter()
+                .map(|(a, f, phi)| a * (2.0 * PI * f * t + phi).sin())
+                .sum();
+        }
+    }
+}
+
+/// A catalog entry for a damped or driven system.
+pub struct PortEntry {
+    /// Name used with `--system`.
+    pub name: &'static str,
+    /// One-line description.
+    pub summary: &'static str,
+    /// Declared parameters and their defaults.
+    pub params: &'static [ParamSpec],
+    /// Build the system from validated parameter values.
+    pub build: fn(ParamValues) -> Box<dyn PortSystem>,
+}
+
+/// Every built-in damped or driven system.
+pub const PORT_CATALOG: &[PortEntry] = &[
+    PortEntry {
+        name: "flexure-damped",
+        summary: "sensor mass on a flexure with viscous damping, no input, 1 dof",
+        params: FLEXURE_DAMPED_PARAMS,
+        build: FlexureDamped::build,
+    },
+    PortEntry {
+        name: "drivetrain",
+        summary: "two-inertia servo drivetrain (motor, elastic damped shaft, load with friction), motor torque input u1, 2 dof",
+        params: DRIVETRAIN_PARAMS,
+        build: Drivetrain::build,
+    },
+];
+
+/// Look up `name` in [`PORT_CATALOG`]; `None` if it is not a port system.
+pub fn build_port_system(
+    name: &str,
+    overrides: &[(String, f64)],
+) -> Option<Result<Box<dyn PortSystem>, SystemError>> {
+    let entry = PORT_CATALOG.iter().find(|e| e.name == name)?;
+    Some(ParamValues::new(entry.name, entry.params, overrides).map(entry.build))
+}
+
+const FLEXURE_DAMPED_PARAMS: &[ParamSpec] = &[
+    ParamSpec {
+        name: "m",
+        default: 0.05,
+        unit: "kg",
+        meaning: "moving mass",
+    },
+    ParamSpec {
+        name: "k",
+        default: 20.0,
+        unit: "N/m",
+        meaning: "flexure stiffness",
+    },
+    ParamSpec {
+        name: "zeta",
+        default: 0.05,
+        unit: "1",
+        meaning: "damping ratio c / (2 sqrt(k m)) (below 1)",
+    },
+    ParamSpec {
+        name: "amp",
+        default: 0.005,
+        unit: "m",
+        meaning: "largest initial amplitude",
+    },
+];
+
+/// Sensor mass on a flexure with a viscous damper c = 2 zeta sqrt(k m):
+/// H = p^2/(2m) + k q^2/2, R = diag(0, c), no input.
+#[derive(Debug)]
+pub struct FlexureDamped {
+    params: ParamValues,
+    m: f64,
+    k: f64,
+    c: f64,
+    amp: f64,
+}
+
+impl FlexureDamped {
+    fn build(params: ParamValues) -> Box<dyn PortSystem> {
+        let (m, k) = (params.get("m"), params.get("k"));
+        let zeta = params.get("zeta").min(0.999);
+        Box::new(FlexureDamped {
+            m,
+            k,
+            c: 2.0 * zeta * (k * m).sqrt(),
+            amp: params.get("amp"),
+            params,
+        })
+    }
+
+    /// The viscous damping coefficient c in N s/m.
+    pub fn damping(&self) -> f64 {
+        self.c
+    }
+}
+
+impl PortSystem for FlexureDamped {
+    fn name(&self) -> &'static str {
+        "flexure-damped"
+    }
+    fn dof(&self) -> usize {
+        1
+    }
+    fn inputs(&self) -> usize {
+        0
+    }
+    fn params(&self) -> &ParamValues {
+        &self.params
+    }
+    fn hamiltonian(&self, x: &[f64]) -> f64 {
+        x[1] * x[1] / (2.0 * self.m) + 0.5 * self.k * x[0] * x[0]
+    }
+    fn gradient(&self, x: &[f64], g: &mut [f64]) {
+        g[0] = self.k * x[0];
+        g[1] = x[1] / self.m;
+    }
+    fn dissipation(&self) -> Vec<f64> {
+        vec![0.0, 0.0, 0.0, self.c]
+    }
+    fn input_matrix(&self) -> Vec<f64> {
+        Vec::new()
+    }
+    /// Amplitude uniform in [0.3, 1] * amp, phase uniform.
+    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64> {
+        let a = uniform(rng, 0.3, 1.0) * self.amp;
+        let phase = uniform(rng, 0.0, 2.0 * PI);
+        let omega = (self.k / self.m).sqrt();
+        vec![a * phase.cos(), -self.m * omega * a * phase.sin()]
+    }
+    fn sample_excitation(&self, _rng: &mut ChaCha8Rng) -> Multisine {
+        Multisine::none()
+    }
+}
+
+const DRIVETRAIN_PARAMS: &[ParamSpec] = &[
+    ParamSpec {
+        name: "jm",
+        default: 2e-4,
+        unit: "kg m^2",
+        meaning: "motor inertia",
+    },
+    ParamSpec {
+        name: "jl",
+        default: 1e-3,
+        unit: "kg m^2",
+        meaning: "load inertia",
+    },
+    ParamSpec {
+        name: "k",
+        default: 1.0,
+        unit: "N m/rad",
+        meaning: "shaft stiffness",
+    },
+    ParamSpec {
+        name: "c",
+        default: 2e-3,
+        unit: "N m s/rad",
+        meaning: "shaft damping (between the inertias)",
+    },
+    ParamSpec {
+        name: "b",
+        default: 1e-2,
+        unit: "N m s/rad",
+        meaning: "viscous friction of the load",
+    },
+    ParamSpec {
+        name: "torque",
+        default: 0.02,
+        unit: "N m",
+        meaning: "motor torque excitation amplitude (multisine, 0.2..15 Hz)",
+    },
+    ParamSpec {
+        name: "speed",
+        default: 2.0,
+        unit: "rad/s",
+        meaning: "largest initial speed",
+    },
+];
+
+/// Two-inertia servo drivetrain. Coordinates: q1 = motor angle, q2 = load
+/// angle (rad), p1 = Jm w_m, p2 = Jl w_l (kg m^2/s). The energy
+/// H = p1^2/(2 Jm) + p2^2/(2 Jl) + k (q1 - q2)^2 / 2 depends on the twist
+/// q1 - q2 only. R (momentum block) = [[c, -c], [-c, c + b]]: the shaft
+/// damper acts on the speed difference, the friction on the load speed.
+/// G = (0, 0, 1, 0)^T: the motor torque u1 drives p1. The absolute angles
+/// are kept as coordinates (they are what an encoder logs); with a
+/// zero-mean multisine torque and friction they stay bounded on average, so
+/// the data covers them. Under a constant torque tau the steady speed of
+/// both inertias is tau / b.
+#[derive(Debug)]
+pub struct Drivetrain {
+    params: ParamValues,
+    jm: f64,
+    jl: f64,
+    k: f64,
+    c: f64,
+    b: f64,
+    torque: f64,
+    speed: f64,
+}
+
+impl Drivetrain {
+    fn build(params: ParamValues) -> Box<dyn PortSystem> {
+        Box::new(Drivetrain {
+            jm: params.get("jm"),
+            jl: params.get("jl"),
+            k: params.get("k"),
+            c: params.get("c"),
+            b: params.get("b"),
+            torque: params.get("torque"),
+            speed: params.get("speed"),
+            params,
+        })
+    }
+}
+
+impl PortSystem for Drivetrain {
+    fn name(&self) -> &'static str {
+        "drivetrain"
+    }
+    fn dof(&self) -> usize {
+        2
+    }
+    fn inputs(&self) -> usize {
+        1
+    }
+    fn params(&self) -> &ParamValues {
+        &self.params
+    }
+    fn hamiltonian(&self, x: &[f64]) -> f64 {
+        let twist = x[0] - x[1];
+        x[2] * x[2] / (2.0 * self.jm) + x[3] * x[3] / (2.0 * self.jl) + 0.5 * self.k * twist * twist
+    }
+    fn gradient(&self, x: &[f64], g: &mut [f64]) {
+        let twist = x[0] - x[1];
+        g[0] = self.k * twist;
+        g[1] = -self.k * twist;
+        g[2] = x[2] / self.jm;
+        g[3] = x[3] / self.jl;
+    }
+    fn dissipation(&self) -> Vec<f64> {
+        let (c, b) = (self.c, self.b);
+        #[rustfmt::skip]
+        let r = vec![
+            0.0, 0.0, 0.0, 0.0,
+            0.0, 0.0, 0.0, 0.0,
+            0.0, 0.0, c, -c,
+            0.0, 0.0, -c, c + b,
+        ];
+        r
+    }
+    fn input_matrix(&self) -> Vec<f64> {
+        vec![0.0, 0.0, 1.0, 0.0]
+    }
+    /// Both angles 0 plus a twist uniform in +-(torque / k); speeds uniform
+    /// in +-speed.
+    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64> {
+        let twist = uniform(rng, -1.0, 1.0) * self.torque / self.k;
+        let wm = uniform(rng, -1.0, 1.0) * self.speed;
+        let wl = uniform(rng, -1.0, 1.0) * self.speed;
+        vec![0.5 * twist, -0.5 * twist, self.jm * wm, self.jl * wl]
+    }
+    /// Six tones per trajectory, 0.2..15 Hz, amplitude `torque`.
+    fn sample_excitation(&self, rng: &mut ChaCha8Rng) -> Multisine {
+        Multisine::random(rng, 1, 6, self.torque, 0.2, 15.0)
+    }
+}

@@ -61,8 +61,18 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test -p keel-tests --release (checks against outside references)",
-            &|| cargo_stage(&["test", "-p", "keel-tests", "--release"]),
+            "cargo test --release: keel-tests and the trainer's port checks (outside references)",
+            &|| {
+                Ok(cargo_stage(&["test", "-p", "keel-tests", "--release"])?
+                    && cargo_stage(&[
+                        "test",
+                        "-p",
+                        "keel-trainer",
+                        "--release",
+                        "--test",
+                        "port_checks",
+                    ])?)
+            },
         ),
         ("cargo xtask device", &|| {
             crate::device_check::run(Vec::new())

@@ -1,0 +1,292 @@
+//! Fitted damped and driven models against outside references, through the
+//! trainer's export path and the runtime's arithmetic:
+//! * damped flexure: the damping ratio from the logarithmic decrement of
+//!   the fitted model's free decay, delta = ln(x_k / x_(k+1)) =
+//!   2 pi zeta / sqrt(1 - zeta^2) (Thomson & Dahmel, "Theory of Vibration
+//!   with Applications", section on the logarithmic decrement; from
+//!   memory), within 5 % of the simulated zeta;
+//! * drivetrain: under a constant motor torque tau the steady speed of a
+//!   two-inertia chain whose only friction to ground is viscous (b, on the
+//!   load) is tau / b (steady state of J dw/dt = tau - b w, any dynamics
+//!   text; from memory), within 2 %;
+//! * with u = 0 the exported model's discrete energy never rises over many
+//!   random states (the discrete-gradient identity H(x1) - H(x0) =
+//!   -h |L^T g|^2 <= 0, Gonzalez 1996 / McLachlan, Quispel & Robidoux 1999;
+//!   from memory);
+//! * `keel check`'s damping per mode (linearization at rest) agrees with
+//!   the simulated damping ratio and natural frequency;
+//! * the runtime's field (J - R) dH/dx + G u equals the trainer's
+//!   prediction on random states and inputs (relative 1e-4).
+//!
+//! Release build: each fit takes a few seconds; in debug builds (about 2.5
+//! minutes) the two fitting tests are ignored: `cargo test --release -p
+//! keel-trainer --test port_checks` runs them.
+
+use keel_runtime::{Hamiltonian, Integrator, Method, State};
+use keel_trainer::blob::{BlobModel, HostModel, HOST_MAX_DOF};
+use keel_trainer::check::{check_port, eigenvalues};
+use keel_trainer::dataset::{Dataset, Inputs};
+use keel_trainer::export::blob_model;
+use keel_trainer::fit::{fit_port, ArchChoice, FitSettings};
+use keel_trainer::hnn::EnergyModel;
+use keel_trainer::rollout::{roll_driven, sample_states};
+use keel_trainer::simulate::{simulate_port, SimulationSpec};
+use keel_trainer::systems::build_port_system;
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+fn simulate(
+    name: &str,
+    params: &[(String, f64)],
+    trajectories: usize,
+    duration: f64,
+    rate: f64,
+    seed: u64,
+) -> (Dataset, Option<Inputs>) {
+    let system = build_port_system(name, params).unwrap().unwrap();
+    let spec = SimulationSpec {
+        trajectories,
+        duration,
+        rate,
+        seed,
+    };
+    simulate_port(system.as_ref(), &spec).unwrap()
+}
+
+fn fit(ds: &Dataset, inputs: Option<&Inputs>, hidden: &[usize], epochs: usize) -> EnergyModel {
+    let arch = ArchChoice {
+        hidden: hidden.to_vec(),
+        ..ArchChoice::default()
+    }
+    .build(ds.dof)
+    .unwrap();
+    let settings = FitSettings {
+        epochs,
+        early_stop: false,
+        quiet: true,
+        lr: 3e-3,
+        ..FitSettings::default()
+    };
+    let fitted = fit_port(ds, inputs, None, &arch, true, &settings).unwrap();
+    println!(
+        "fitted: final training loss {:.3e}",
+        fitted.report.history.train.last().unwrap()
+    );
+    fitted.model
+}
+
+fn export(model: &EnergyModel, dt: f32) -> Vec<u8> {
+    let integrator = Integrator::new(Method::DiscreteGradient, dt);
+    let blob: BlobModel = blob_model(model, integrator);
+    blob.to_bytes().unwrap()
+}
+
+/// Successive positive peaks of a sampled signal (parabolic interpolation
+/// through the three samples around each local maximum).
+fn positive_peaks(x: &[f64]) -> Vec<f64> {
+    (1..x.len() - 1)
+        .filter(|&k| x[k] > 0.0 && x[k] >= x[k - 1] && x[k] > x[k + 1])
+        .map(|k| {
+            let (a, b, c) = (x[k - 1], x[k], x[k + 1]);
+            let denom = a - 2.0 * b + c;
+            if denom == 0.0 {
+                b
+            } else {
+                b - 0.125 * (a - c) * (a - c) / denom
+            }
+        })
+        .collect()
+}
+
+#[test]
+#[cfg_attr(
+    debug_assertions,
+    ignore = "trains for about 3 s in release but minutes in debug; run with --release"
+)]
+fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
+    let zeta = 0.05;
+    let params = vec![("zeta".to_string(), zeta)];
+    let (ds, inputs) = simulate("flexure-damped", &params, 30, 3.0, 100.0, 7);
+    assert!(inputs.is_none());
+    let model = fit(&ds, None, &[32, 32], 300);
+    let bytes = export(&model, 0.002);
+    let runtime = HostModel::from_bytes(&bytes).unwrap();
+    // Free decay from 0.8 of the largest simulated amplitude (5 mm default),
+    // inside the fitted range; 2 s = about 6 periods.
+    let x0 = [0.004f32, 0.0];
+    let out = roll_driven(&runtime, &x0, 1000, &[]).unwrap();
+    assert!(out.failure.is_none(), "{:?}", out.failure);
+    let q: Vec<f64> = out.states.iter().map(|s| s[0] as f64).collect();
+    let peaks = positive_peaks(&q);
+    assert!(peaks.len() >= 5, "only {} peaks", peaks.len());
+    let cycles = (peaks.len() - 1) as f64;
+    let delta = (peaks[0] / peaks[peaks.len() - 1]).ln() / cycles;
+    let fitted_zeta = delta / (4.0 * std::f64::consts::PI.powi(2) + delta * delta).sqrt();
+    let rel = (fitted_zeta - zeta).abs() / zeta;
+    println!(
+        "log decrement {delta:.4} over {cycles} cycles: zeta {fitted_zeta:.4} vs simulated {zeta} ({:.2} %)",
+        rel * 100.0
+    );
+    assert!(rel < 0.05, "fitted zeta {fitted_zeta} vs {zeta}");
+
+    // `keel check`'s damping per mode (eigenvalues of the linearization at
+    // rest) gives the same ratio and the undamped natural frequency
+    // sqrt(k / m) / (2 pi) = 3.183 Hz (textbook closed form).
+    let blob = BlobModel::from_bytes(&bytes).unwrap();
+    let report = check_port(&runtime, &blob, &ds, None).unwrap();
+    println!("modes at rest: {:?}", report.modes);
+    assert_eq!(report.modes.len(), 1);
+    let mode = &report.modes[0];
+    let f_n = (20.0f64 / 0.05).sqrt() / (2.0 * std::f64::consts::PI);
+    assert!((mode.damping_ratio - zeta).abs() / zeta < 0.05, "{mode:?}");
+    assert!((mode.natural_hz - f_n).abs() / f_n < 0.01, "{mode:?}");
+    assert!(report.rollouts.iter().all(|r| r.failure.is_none()));
+}
+
+#[test]
+fn eigenvalues_of_a_damped_oscillator_match_the_closed_form() {
+    // dx/dt = [[0, 1], [-w^2, -2 zeta w]] x has lambda = -zeta w +- i w
+    // sqrt(1 - zeta^2) (textbook closed form); and a 4 x 4 block-diagonal
+    // pair of such oscillators gives both pairs.
+    let (w1, z1, w2, z2) = (20.0f64, 0.05, 77.0, 0.3);
+    let a = vec![
+        vec![0.0, 1.0, 0.0, 0.0],
+        vec![-w1 * w1, -2.0 * z1 * w1, 0.0, 0.0],
+        vec![0.0, 0.0, 0.0, 1.0],
+        vec![0.0, 0.0, -w2 * w2, -2.0 * z2 * w2],
+    ];
+    let mut eig = eigenvalues(&a);
+    eig.sort_by(|a, b| a.1.total_cmp(&b.1));
+    let expect = [
+        (-z2 * w2, -w2 * (1.0 - z2 * z2).sqrt()),
+        (-z1 * w1, -w1 * (1.0 - z1 * z1).sqrt()),
+        (-z1 * w1, w1 * (1.0 - z1 * z1).sqrt()),
+        (-z2 * w2, w2 * (1.0 - z2 * z2).sqrt()),
+    ];
+    for ((r, i), (er, ei)) in eig.iter().zip(expect) {
+        assert!(
+            (r - er).abs() < 1e-9 * w2 && (i - ei).abs() < 1e-9 * w2,
+            "{eig:?}"
+        );
+    }
+}
+
+#[test]
+#[cfg_attr(
+    debug_assertions,
+    ignore = "trains for about 3 s in release but minutes in debug; run with --release"
+)]
+fn drivetrain_steady_speed_is_torque_over_friction() {
+    let (ds, inputs) = simulate("drivetrain", &[], 16, 4.0, 400.0, 11);
+    let inputs = inputs.unwrap();
+    let model = fit(&ds, Some(&inputs), &[32, 32], 60);
+    let dt = 0.0025f32;
+    let bytes = export(&model, dt);
+    let runtime = HostModel::from_bytes(&bytes).unwrap();
+    // Defaults: b = 0.01 N m s/rad; a small torque keeps the angles in the
+    // fitted range: steady speed 0.5 rad/s.
+    let (tau, b) = (0.005f32, 0.01f64);
+    let steps = 800; // 2 s, about 16 time constants (Jm + Jl) / b = 0.12 s
+    let u = vec![vec![tau]; steps];
+    let out = roll_driven(&runtime, &[0.0, 0.0, 0.0, 0.0], steps, &u).unwrap();
+    assert!(out.failure.is_none(), "{:?}", out.failure);
+    // Mean motor speed over the last 0.25 s from the angle (averages out
+    // any residual shaft oscillation).
+    let back = 100;
+    let q_end = out.states[steps][0] as f64;
+    let q_before = out.states[steps - back][0] as f64;
+    let speed = (q_end - q_before) / (back as f64 * dt as f64);
+    let load = (out.states[steps][1] as f64 - out.states[steps - back][1] as f64)
+        / (back as f64 * dt as f64);
+    let expected = tau as f64 / b;
+    let rel = (speed - expected).abs() / expected;
+    println!(
+        "steady motor speed {speed:.4} rad/s, load {load:.4} rad/s vs tau/b = {expected} ({:.2} %)",
+        rel * 100.0
+    );
+    assert!(rel < 0.02, "motor speed {speed} vs {expected}");
+    assert!(
+        (load - expected).abs() / expected < 0.02,
+        "load speed {load}"
+    );
+
+    // Modes at rest against the exact linear system A = (J - R) Q with
+    // Q = Hessian of H (closed form from the parameters): the shaft mode
+    // and the real friction mode -b / (Jm + Jl).
+    let (jm, jl, k, c) = (2e-4f64, 1e-3f64, 1.0f64, 2e-3f64);
+    let exact = vec![
+        vec![0.0, 0.0, 1.0 / jm, 0.0],
+        vec![0.0, 0.0, 0.0, 1.0 / jl],
+        vec![-k, k, -c / jm, c / jl],
+        vec![k, -k, c / jm, -(c + b) / jl],
+    ];
+    let mut exact_modes: Vec<(f64, f64)> = eigenvalues(&exact)
+        .into_iter()
+        .filter(|(r, i)| r.hypot(*i) > 1e-3 && *i > -1e-6)
+        .collect();
+    exact_modes.sort_by(|a, b| a.0.hypot(a.1).total_cmp(&b.0.hypot(b.1)));
+    let blob = BlobModel::from_bytes(&bytes).unwrap();
+    let report = check_port(&runtime, &blob, &ds, Some(&inputs)).unwrap();
+    println!("modes at rest: {:?}; exact {exact_modes:?}", report.modes);
+    assert_eq!(report.modes.len(), exact_modes.len());
+    for (mode, (er, ei)) in report.modes.iter().zip(&exact_modes) {
+        let w = er.hypot(*ei);
+        assert!(
+            (mode.natural_hz * 2.0 * std::f64::consts::PI - w).abs() / w < 0.01,
+            "{mode:?}"
+        );
+        let zeta = -er / w;
+        assert!(
+            (mode.damping_ratio - zeta).abs() / zeta < 0.05,
+            "{mode:?} vs {zeta}"
+        );
+    }
+
+    // The runtime's field equals the trainer's prediction (physical units).
+    let mut rng = ChaCha8Rng::seed_from_u64(5);
+    let states = sample_states(&model.norm.offset, &model.norm.scale, 1.5, 500, 3);
+    let us: Vec<f32> = (0..states.len())
+        .map(|_| rng.random_range(-0.04f32..0.04))
+        .collect();
+    let x = Array2::from_shape_fn((states.len(), 4), |(r, i)| states[r][i]);
+    let ua = Array2::from_shape_fn((states.len(), 1), |(r, _)| us[r]);
+    let trainer = model.vector_field_driven(x.view(), ua.view());
+    let mut worst = 0.0f64;
+    for (r, s) in states.iter().enumerate() {
+        let st = State::new(&s[..2], &s[2..]).unwrap();
+        let (mut dq, mut dp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
+        runtime
+            .vector_field_driven(&st, &[us[r]], &mut dq, &mut dp)
+            .unwrap();
+        let rt = [dq[0], dq[1], dp[0], dp[1]];
+        for i in 0..4 {
+            // Relative to the component's typical size (its RMS rate).
+            let scale = model.norm.rate_scale[i] as f64;
+            let err = (rt[i] as f64 - trainer[[r, i]] as f64).abs() / scale;
+            worst = worst.max(err);
+        }
+    }
+    println!("runtime vs trainer field: worst error {worst:.2e} of the RMS rate");
+    assert!(
+        worst < 1e-4,
+        "runtime field differs from the trainer's by {worst}"
+    );
+
+    // With u = 0 the discrete energy never rises.
+    let (mut rises, mut stepped) = (0, 0);
+    for s in sample_states(&model.norm.offset, &model.norm.scale, 2.0, 20_000, 9) {
+        let mut st = State::new(&s[..2], &s[2..]).unwrap();
+        let e0 = runtime.energy(&st).unwrap();
+        if runtime.step_driven(&mut st, &[0.0]).is_err() {
+            continue;
+        }
+        stepped += 1;
+        if runtime.energy(&st).unwrap() > e0 {
+            rises += 1;
+        }
+    }
+    println!("{stepped} unforced steps, {rises} energy rises");
+    assert!(stepped > 19_000);
+    assert_eq!(rises, 0);
+}

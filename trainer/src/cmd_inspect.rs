@@ -60,6 +60,10 @@ pub struct Inspection {
     pub macs_per_gradient: u32,
     /// Multiply-accumulates of one step (bound for implicit midpoint).
     pub macs_per_step: u32,
+    /// Damping R = L L^T present (format version 2).
+    pub damped: bool,
+    /// Number of inputs u1..um (0 for an autonomous model).
+    pub inputs: usize,
 }
 
 fn postcard_len<T: Serialize>(v: &T) -> usize {
@@ -91,7 +95,7 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
     }
     sections.push(("integrator".into(), postcard_len(&desc.integrator)));
     sections.push((
-        "reserved terms".into(),
+        "damping and input terms".into(),
         postcard_len(&desc.dissipation) + postcard_len(&desc.input),
     ));
     sections.push(("crc".into(), format::TRAILER_LEN));
@@ -127,6 +131,8 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
         runtime_ram_bytes: model_value + scratch,
         macs_per_gradient: cost.macs_per_gradient,
         macs_per_step: cost.macs_per_step,
+        damped: model.dissipation.is_some(),
+        inputs: model.input.as_ref().map_or(0, |(m, _)| *m),
     })
 }
 
@@ -140,7 +146,7 @@ pub fn run(args: Args) -> Result<()> {
         return Ok(());
     }
     println!("{}", args.file.display());
-    let row = |k: &str, v: String| println!("  {k:<22} {v}");
+    let row = |k: &str, v: String| println!("  {k:<25} {v}");
     row("format version", r.format_version.to_string());
     row("crc-32", r.crc.clone());
     row("size", format!("{} bytes", r.bytes));
@@ -158,7 +164,8 @@ pub fn run(args: Args) -> Result<()> {
     for (name, b) in &r.sections {
         row(&format!("  {name}"), format!("{b} bytes"));
     }
-    let it = if r.integrator == "midpoint" {
+    let implicit = matches!(r.integrator.as_str(), "midpoint" | "discrete-gradient");
+    let it = if implicit {
         format!(
             "{} dt {} s x {} substeps, <= {} iterations, tol {:e}",
             r.integrator, r.dt, r.substeps, r.max_iterations, r.tolerance
@@ -167,6 +174,10 @@ pub fn run(args: Args) -> Result<()> {
         format!("{} dt {} s x {} substeps", r.integrator, r.dt, r.substeps)
     };
     row("integrator", it);
+    if r.damped || r.inputs > 0 {
+        let damping = if r.damped { "damping R = L L^T, " } else { "" };
+        row("port terms", format!("{damping}{} input(s)", r.inputs));
+    }
     row(
         "runtime RAM",
         format!(
@@ -180,7 +191,7 @@ pub fn run(args: Args) -> Result<()> {
         format!(
             "{}{}",
             r.macs_per_step,
-            if r.integrator == "midpoint" {
+            if implicit {
                 " (at the iteration limit)"
             } else {
                 ""

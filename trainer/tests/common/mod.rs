@@ -1,0 +1,75 @@
+//! Shared by the gradient tests: an independent f64 re-implementation of
+//! the trainer's networks and energies over any `num-dual` number type.
+
+use keel_trainer::hnn::{tri_index, EnergyArch, KineticArch};
+use keel_trainer::net::{Activation, MlpShape};
+use num_dual::DualNum;
+
+/// Generic dense network, the same layout as the trainer's flat vector:
+/// per layer W row-major [out][in], then b.
+pub fn mlp_generic<T: DualNum<Primitive = f64> + Copy>(
+    shape: &MlpShape,
+    p: &[T],
+    x: &[T],
+    soft: bool,
+) -> Vec<T> {
+    let mut a: Vec<T> = x.to_vec();
+    let mut off = 0;
+    let layers = shape.layers();
+    for k in 0..layers {
+        let (i, o) = (shape.sizes[k], shape.sizes[k + 1]);
+        let mut z = Vec::with_capacity(o);
+        for r in 0..o {
+            let mut acc = p[off + o * i + r];
+            for c in 0..i {
+                acc += p[off + r * i + c] * a[c];
+            }
+            z.push(acc);
+        }
+        off += o * i + o;
+        a = if k + 1 < layers {
+            z.into_iter()
+                .map(|v| if soft { (v.exp() + 1.0).ln() } else { v.tanh() })
+                .collect()
+        } else {
+            z
+        };
+    }
+    a
+}
+
+/// E(z) for the architecture, generic scalar.
+pub fn energy_generic<T: DualNum<Primitive = f64> + Copy>(
+    arch: &EnergyArch,
+    n: usize,
+    p: &[T],
+    z: &[T],
+) -> T {
+    match arch {
+        EnergyArch::General(m) => mlp_generic(m, p, z, m.activation == Activation::Softplus)[0],
+        EnergyArch::Separable { potential, kinetic } => {
+            let np = potential.param_count();
+            let soft = potential.activation == Activation::Softplus;
+            let v = mlp_generic(potential, &p[..np], &z[..n], soft)[0];
+            let pt = &p[np..];
+            let t = match kinetic {
+                KineticArch::Network(m) => mlp_generic(m, pt, &z[n..], soft)[0],
+                KineticArch::Quadratic => {
+                    // T = 1/2 |L^T z|^2, L_ii = exp(raw_ii).
+                    let mut t = T::zero();
+                    for j in 0..n {
+                        let mut u = T::zero();
+                        for i in j..n {
+                            let raw = pt[tri_index(i, j)];
+                            let lij = if i == j { raw.exp() } else { raw };
+                            u += lij * z[n + i];
+                        }
+                        t += u * u * 0.5;
+                    }
+                    t
+                }
+            };
+            v + t
+        }
+    }
+}

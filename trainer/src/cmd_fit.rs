@@ -239,6 +239,59 @@ struct RunSummary {
     stop: String,
 }
 
+/// The structure asked for on the command line.
+fn arch_choice(args: &Args, act: Activation) -> ArchChoice {
+    ArchChoice {
+        separable: args.arch == ArchArg::Separable,
+        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
+        hidden: args.hidden.clone(),
+        activation: act,
+    }
+}
+
+/// The integrator stored in the blob: `method` with `--dt` or the log's
+/// median sampling interval.
+fn stored_integrator(args: &Args, method: Method, train: &Dataset) -> Result<Integrator> {
+    let dt = match args.dt {
+        Some(dt) => dt,
+        None => median_step(train)
+            .map(|v| v as f32)
+            .context("cannot infer --dt: the log has no two consecutive samples")?,
+    };
+    let integrator = Integrator::new(method, dt);
+    if !integrator.is_valid() {
+        bail!("time step {dt} s is not usable; pass --dt");
+    }
+    Ok(integrator)
+}
+
+/// A flag Ctrl-C sets; the training loop stops and keeps the best so far.
+fn interrupt_flag() -> Arc<AtomicBool> {
+    let interrupt = Arc::new(AtomicBool::new(false));
+    let flag = interrupt.clone();
+    if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
+        eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
+    }
+    interrupt
+}
+
+/// Training settings from the command line.
+fn fit_settings(args: &Args, interrupt: Arc<AtomicBool>) -> FitSettings {
+    FitSettings {
+        epochs: args.epochs,
+        steps: args.steps,
+        batch: args.batch,
+        lr: args.lr,
+        threads: args.threads.max(1),
+        early_stop: !args.no_early_stop,
+        patience: args.patience,
+        seed: args.seed,
+        quiet: args.quiet,
+        interrupt: Some(interrupt),
+        ..FitSettings::default()
+    }
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let act = activation(args.activation)?;
@@ -285,12 +338,7 @@ pub fn run(args: Args) -> Result<()> {
         }
         None => (all, None),
     };
-    let choice = ArchChoice {
-        separable: args.arch == ArchArg::Separable,
-        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
-        hidden: args.hidden.clone(),
-        activation: act,
-    };
+    let choice = arch_choice(&args, act);
     let arch = choice.build(train.dof)?;
     let method = match (args.integrator, choice.separable) {
         (Some(m), _) => Method::from(m),
@@ -300,37 +348,11 @@ pub fn run(args: Args) -> Result<()> {
     if method.needs_separable() && !choice.separable {
         bail!("--integrator {method:?} needs --arch separable; use --integrator midpoint");
     }
-    let dt = match args.dt {
-        Some(dt) => dt,
-        None => median_step(&train)
-            .map(|v| v as f32)
-            .context("cannot infer --dt: the log has no two consecutive samples")?,
-    };
-    let integrator = Integrator::new(method, dt);
-    if !integrator.is_valid() {
-        bail!("time step {dt} s is not usable; pass --dt");
-    }
+    let integrator = stored_integrator(&args, method, &train)?;
+    let dt = integrator.dt;
 
-    let interrupt = Arc::new(AtomicBool::new(false));
-    {
-        let flag = interrupt.clone();
-        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
-            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
-        }
-    }
-    let settings = FitSettings {
-        epochs: args.epochs,
-        steps: args.steps,
-        batch: args.batch,
-        lr: args.lr,
-        threads: args.threads.max(1),
-        early_stop: !args.no_early_stop,
-        patience: args.patience,
-        seed: args.seed,
-        quiet: args.quiet,
-        interrupt: Some(interrupt.clone()),
-        ..FitSettings::default()
-    };
+    let interrupt = interrupt_flag();
+    let settings = fit_settings(&args, interrupt.clone());
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} parameters",
         train.samples(),
@@ -433,12 +455,7 @@ fn run_port(
         None => ((all, all_inputs), None),
     };
     let val = val.filter(|(v, _)| !v.trajectories.is_empty());
-    let choice = ArchChoice {
-        separable: args.arch == ArchArg::Separable,
-        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
-        hidden: args.hidden.clone(),
-        activation: act,
-    };
+    let choice = arch_choice(args, act);
     let arch = choice.build(train.dof)?;
     let method = args
         .integrator
@@ -446,36 +463,10 @@ fn run_port(
     if !method.handles_port_terms() {
         bail!("--integrator {method:?} cannot step damped or driven models; use the default (discrete gradient)");
     }
-    let dt = match args.dt {
-        Some(dt) => dt,
-        None => median_step(&train)
-            .map(|v| v as f32)
-            .context("cannot infer --dt: the log has no two consecutive samples")?,
-    };
-    let integrator = Integrator::new(method, dt);
-    if !integrator.is_valid() {
-        bail!("time step {dt} s is not usable; pass --dt");
-    }
-    let interrupt = Arc::new(AtomicBool::new(false));
-    {
-        let flag = interrupt.clone();
-        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
-            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
-        }
-    }
-    let settings = FitSettings {
-        epochs: args.epochs,
-        steps: args.steps,
-        batch: args.batch,
-        lr: args.lr,
-        threads: args.threads.max(1),
-        early_stop: !args.no_early_stop,
-        patience: args.patience,
-        seed: args.seed,
-        quiet: args.quiet,
-        interrupt: Some(interrupt),
-        ..FitSettings::default()
-    };
+    let integrator = stored_integrator(args, method, &train)?;
+    let dt = integrator.dt;
+    let interrupt = interrupt_flag();
+    let settings = fit_settings(args, interrupt);
     let m = train_u.as_ref().map_or(0, |u| u.count);
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} inputs, dissipation {}",

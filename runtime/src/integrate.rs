@@ -50,18 +50,22 @@ impl Method {
         !self.needs_separable()
     }
 
-    /// Gradient evaluations per substep: for separable methods, counted as
-    /// (potential, kinetic) gradients; for the others, full gradients (for
-    /// implicit midpoint, one plus the iteration count).
-    pub fn gradient_calls(self, max_iterations: u16) -> (u32, u32) {
+    /// Gradient evaluations of one step of `substeps` substeps: for the
+    /// separable methods (potential, kinetic) gradients, the potential one
+    /// at the end of a Verlet stage reused by the next stage's first kick;
+    /// for the others full gradients (for the implicit methods, the bound
+    /// at `max_iterations`).
+    pub fn gradient_calls(self, max_iterations: u16, substeps: u16) -> (u32, u32) {
+        let s = substeps as u32;
+        let it = max_iterations as u32;
         match self {
-            Self::StormerVerlet => (2, 1),
-            Self::Yoshida4 => (6, 3),
-            Self::ImplicitMidpoint => (1 + max_iterations as u32, 0),
-            Self::Rk4 => (4, 0),
+            Self::StormerVerlet => (s + 1, s),
+            Self::Yoshida4 => (3 * s + 1, 3 * s),
+            Self::ImplicitMidpoint => ((1 + it) * s, 0),
+            Self::Rk4 => (4 * s, 0),
             // A gradient and an energy (a forward pass, half a gradient) per
             // iteration and for the start.
-            Self::DiscreteGradient => ((3 * (1 + max_iterations as u32)).div_ceil(2), 0),
+            Self::DiscreteGradient => ((3 * (1 + it)).div_ceil(2) * s, 0),
         }
     }
 }
@@ -155,13 +159,16 @@ impl Integrator {
         }
         let hs = self.dt / self.substeps as f32;
         let mut y = *x;
+        // dV/dq at the current q, carried from one Verlet stage's last kick
+        // to the next stage's first kick (same q, same bits).
+        let mut dv = None;
         for _ in 0..self.substeps {
             match self.method {
-                Method::StormerVerlet => verlet(h, &mut y, hs)?,
+                Method::StormerVerlet => verlet(h, &mut y, hs, &mut dv)?,
                 Method::Yoshida4 => {
-                    verlet(h, &mut y, YOSHIDA_W1 * hs)?;
-                    verlet(h, &mut y, YOSHIDA_W0 * hs)?;
-                    verlet(h, &mut y, YOSHIDA_W1 * hs)?;
+                    verlet(h, &mut y, YOSHIDA_W1 * hs, &mut dv)?;
+                    verlet(h, &mut y, YOSHIDA_W0 * hs, &mut dv)?;
+                    verlet(h, &mut y, YOSHIDA_W1 * hs, &mut dv)?;
                 }
                 Method::ImplicitMidpoint => {
                     implicit_midpoint(h, &mut y, u, hs, self.max_iterations, self.tolerance)?
@@ -180,27 +187,39 @@ impl Integrator {
     }
 }
 
-/// One kick-drift-kick Stormer-Verlet step of size `h`.
+/// One kick-drift-kick Stormer-Verlet step of size `h`. `dv` holds dV/dq
+/// at `x.q` when known (it is then not recomputed) and returns it at the
+/// new `x.q`.
 fn verlet<const D: usize, H: Hamiltonian<D> + ?Sized>(
     ham: &H,
     x: &mut State<D>,
     h: f32,
+    dv: &mut Option<[f32; D]>,
 ) -> Result<(), StepError> {
     let n = x.dof();
     let half = 0.5 * h;
+    let g = match dv.take() {
+        Some(g) => g,
+        None => {
+            let mut g = [0.0f32; D];
+            ham.potential_gradient(&x.q, &mut g)?;
+            g
+        }
+    };
+    for i in 0..n {
+        x.p[i] -= half * g[i];
+    }
+    let mut v = [0.0f32; D];
+    ham.kinetic_gradient(&x.p, &mut v)?;
+    for i in 0..n {
+        x.q[i] += h * v[i];
+    }
     let mut g = [0.0f32; D];
     ham.potential_gradient(&x.q, &mut g)?;
     for i in 0..n {
         x.p[i] -= half * g[i];
     }
-    ham.kinetic_gradient(&x.p, &mut g)?;
-    for i in 0..n {
-        x.q[i] += h * g[i];
-    }
-    ham.potential_gradient(&x.q, &mut g)?;
-    for i in 0..n {
-        x.p[i] -= half * g[i];
-    }
+    *dv = Some(g);
     Ok(())
 }
 

@@ -180,11 +180,11 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         let n = self.dof;
         let (v, t) = self.energy.macs(n);
         let it = self.integrator;
-        let (calls_a, calls_b) = it.method.gradient_calls(it.max_iterations);
+        let (calls_a, calls_b) = it.method.gradient_calls(it.max_iterations, it.substeps);
         let n2 = (2 * n) as u32;
         let port = self.dissipation.map_or(0, |_| n2 * (n2 + 1))
             + self.input.map_or(0, |(m, _)| n2 * m as u32);
-        let per_sub = if self.energy.is_separable() && it.method.needs_separable() {
+        let per_step = if self.energy.is_separable() && it.method.needs_separable() {
             calls_a * v + calls_b * t
         } else {
             calls_a * (v + t + port)
@@ -192,7 +192,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         Cost {
             parameters: self.energy.parameters(n),
             macs_per_gradient: v + t,
-            macs_per_step: per_sub * it.substeps as u32,
+            macs_per_step: per_step,
             model_bytes: core::mem::size_of::<Self>() as u32,
             scratch_bytes: ((format::MAX_LAYERS + 4) * W * 4) as u32,
         }

@@ -6,7 +6,7 @@ mod common;
 
 use common::*;
 use keel_runtime::format::Activation;
-use keel_runtime::{Method, Model};
+use keel_runtime::{Integrator, Method, Model};
 
 #[test]
 fn macs_and_sizes_of_a_2_64_64_1_model() {
@@ -62,4 +62,14 @@ fn macs_and_sizes_of_a_2_64_64_1_model() {
     let m: Model<'_, 2, 32> = Model::from_bytes(&blob).unwrap();
     let v = 2 * (2 * 32 + 32) as u32;
     assert_eq!(m.cost().macs_per_step, 2 * v + 6);
+    // The potential gradient at the end of one Verlet stage serves the next
+    // stage's first kick: Yoshida-4 with 2 substeps (6 stages) takes 7
+    // potential and 6 kinetic gradients per step.
+    let yoshida = m
+        .with_integrator(Integrator {
+            substeps: 2,
+            ..Integrator::new(Method::Yoshida4, 0.01)
+        })
+        .unwrap();
+    assert_eq!(yoshida.cost().macs_per_step, 7 * v + 6 * 6);
 }

@@ -292,6 +292,29 @@ fn fit_settings(args: &Args, interrupt: Arc<AtomicBool>) -> FitSettings {
     }
 }
 
+/// Print the run, write the blob and, when asked, the loss history.
+fn write_model(
+    args: &Args,
+    fitted: &fit::Fitted<EnergyModel>,
+    integrator: Integrator,
+) -> Result<()> {
+    print_report("energy model", &fitted.report);
+    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
+    println!(
+        "wrote {} ({bytes} bytes, {:?}, dt = {} s)",
+        args.out.display(),
+        integrator.method,
+        integrator.dt
+    );
+    if let Some(path) = &args.history {
+        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
+        crate::atomic::write_atomic(path, &json)
+            .with_context(|| format!("writing history {}", path.display()))?;
+        println!("wrote {}", path.display());
+    }
+    Ok(())
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let act = activation(args.activation)?;
@@ -349,7 +372,6 @@ pub fn run(args: Args) -> Result<()> {
         bail!("--integrator {method:?} needs --arch separable; use --integrator midpoint");
     }
     let integrator = stored_integrator(&args, method, &train)?;
-    let dt = integrator.dt;
 
     let interrupt = interrupt_flag();
     let settings = fit_settings(&args, interrupt.clone());
@@ -361,18 +383,7 @@ pub fn run(args: Args) -> Result<()> {
         arch.param_count(train.dof)
     );
     let fitted = fit::fit_energy(&train, val.as_ref(), &arch, &settings)?;
-    print_report("energy model", &fitted.report);
-    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
-    println!(
-        "wrote {} ({bytes} bytes, {method:?}, dt = {dt} s)",
-        args.out.display()
-    );
-    if let Some(path) = &args.history {
-        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
-        crate::atomic::write_atomic(path, &json)
-            .with_context(|| format!("writing history {}", path.display()))?;
-        println!("wrote {}", path.display());
-    }
+    write_model(&args, &fitted, integrator)?;
     if let Some(path) = &args.json {
         let r = &fitted.report;
         let summary = RunSummary {
@@ -464,7 +475,6 @@ fn run_port(
         bail!("--integrator {method:?} cannot step damped or driven models; use the default (discrete gradient)");
     }
     let integrator = stored_integrator(args, method, &train)?;
-    let dt = integrator.dt;
     let interrupt = interrupt_flag();
     let settings = fit_settings(args, interrupt);
     let m = train_u.as_ref().map_or(0, |u| u.count);
@@ -484,18 +494,7 @@ fn run_port(
         args.dissipation,
         &settings,
     )?;
-    print_report("energy model", &fitted.report);
-    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
-    println!(
-        "wrote {} ({bytes} bytes, {method:?}, dt = {dt} s)",
-        args.out.display()
-    );
-    if let Some(path) = &args.history {
-        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
-        crate::atomic::write_atomic(path, &json)
-            .with_context(|| format!("writing history {}", path.display()))?;
-        println!("wrote {}", path.display());
-    }
+    write_model(args, &fitted, integrator)?;
     if args.json.is_some() {
         eprintln!("note: --json is not written for damped or driven models yet");
     }

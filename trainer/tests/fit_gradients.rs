@@ -10,7 +10,7 @@
 
 mod common;
 
-use common::{energy_generic, mlp_generic};
+use common::{central_difference, energy_generic, mlp_generic};
 use keel_trainer::hnn::{BaselineObjective, EnergyArch, HnnObjective, KineticArch, Objective};
 use keel_trainer::net::{Activation, MlpShape};
 use ndarray::Array2;
@@ -55,11 +55,6 @@ fn loss_directional_dual(
         loss += row / dim as f64;
     }
     loss.eps
-}
-
-fn loss_f32(obj: &impl Objective, p: &[f32], z: &Array2<f32>, t: &Array2<f32>) -> f64 {
-    let mut work = Default::default();
-    obj.loss_sum(p, z.view(), t.view(), &mut work, None)
 }
 
 struct Case {
@@ -178,13 +173,7 @@ fn hnn_gradient_matches_central_differences() {
                 .map(|_| rng.random_range(-1.0f32..1.0))
                 .collect();
             let analytic: f64 = grad.iter().zip(&d).map(|(g, dv)| (*g * dv) as f64).sum();
-            // Central difference, error O(h^2) (textbook); h balances that
-            // against f32 rounding of the loss.
-            let h = 2e-3f32;
-            let plus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a + h * b).collect();
-            let minus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a - h * b).collect();
-            let fd =
-                (loss_f32(&obj, &plus, &z, &t) - loss_f32(&obj, &minus, &z, &t)) / (2.0 * h as f64);
+            let fd = central_difference(&obj, &p, &d, &z, &t);
             let magnitude: f64 = grad
                 .iter()
                 .zip(&d)
@@ -249,12 +238,8 @@ fn baseline_gradient_matches_num_dual_and_central_differences() {
             "baseline {act:?}: {analytic} vs num-dual {} ",
             loss.eps
         );
-        // Central difference (textbook, O(h^2)).
-        let h = 2e-3f32;
-        let plus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a + h * *b as f32).collect();
-        let minus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a - h * *b as f32).collect();
-        let fd =
-            (loss_f32(&obj, &plus, &z, &t) - loss_f32(&obj, &minus, &z, &t)) / (2.0 * h as f64);
+        let d32: Vec<f32> = d.iter().map(|v| *v as f32).collect();
+        let fd = central_difference(&obj, &p, &d32, &z, &t);
         let rel_fd = (analytic - fd).abs() / magnitude;
         assert!(
             rel_fd < 5e-3,

@@ -10,7 +10,7 @@
 
 mod common;
 
-use common::energy_generic;
+use common::{central_difference, energy_generic};
 use keel_trainer::hnn::{
     tri_index, EnergyArch, HnnObjective, KineticArch, Objective, PortArch, PortObjective,
 };
@@ -99,11 +99,6 @@ fn loss_directional_dual(
         loss += row / dim as f64;
     }
     loss.eps
-}
-
-fn loss_f32(obj: &impl Objective, p: &[f32], z: &Array2<f32>, t: &Array2<f32>) -> f64 {
-    let mut work = Default::default();
-    obj.loss_sum(p, z.view(), t.view(), &mut work, None)
 }
 
 fn cases() -> Vec<(EnergyArch, usize, PortArch)> {
@@ -236,12 +231,7 @@ fn port_gradient_matches_central_differences() {
                 .map(|_| rng.random_range(-1.0f32..1.0))
                 .collect();
             let analytic: f64 = grad.iter().zip(&d).map(|(g, dv)| (*g * dv) as f64).sum();
-            // Central difference, error O(h^2) (textbook).
-            let h = 2e-3f32;
-            let plus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a + h * b).collect();
-            let minus: Vec<f32> = p.iter().zip(&d).map(|(a, b)| a - h * b).collect();
-            let fd =
-                (loss_f32(&obj, &plus, &z, &t) - loss_f32(&obj, &minus, &z, &t)) / (2.0 * h as f64);
+            let fd = central_difference(&obj, &p, &d, &z, &t);
             let magnitude: f64 = grad
                 .iter()
                 .zip(&d)

@@ -1,8 +1,9 @@
 //! Shared by the gradient tests: an independent f64 re-implementation of
 //! the trainer's networks and energies over any `num-dual` number type.
 
-use keel_trainer::hnn::{tri_index, EnergyArch, KineticArch};
+use keel_trainer::hnn::{tri_index, EnergyArch, KineticArch, Objective};
 use keel_trainer::net::{Activation, MlpShape};
+use ndarray::Array2;
 use num_dual::DualNum;
 
 /// Generic dense network, the same layout as the trainer's flat vector:
@@ -72,4 +73,25 @@ pub fn energy_generic<T: DualNum<Primitive = f64> + Copy>(
             v + t
         }
     }
+}
+
+/// The trainer's own loss at parameters `p` (no gradient).
+pub fn loss_f32(obj: &impl Objective, p: &[f32], z: &Array2<f32>, t: &Array2<f32>) -> f64 {
+    let mut work = Default::default();
+    obj.loss_sum(p, z.view(), t.view(), &mut work, None)
+}
+
+/// Central difference of the loss along direction `d`, step 2e-3: error
+/// O(h^2) (textbook), h balanced against the f32 rounding of the loss.
+pub fn central_difference(
+    obj: &impl Objective,
+    p: &[f32],
+    d: &[f32],
+    z: &Array2<f32>,
+    t: &Array2<f32>,
+) -> f64 {
+    let h = 2e-3f32;
+    let plus: Vec<f32> = p.iter().zip(d).map(|(a, b)| a + h * b).collect();
+    let minus: Vec<f32> = p.iter().zip(d).map(|(a, b)| a - h * b).collect();
+    (loss_f32(obj, &plus, z, t) - loss_f32(obj, &minus, z, t)) / (2.0 * h as f64)
 }

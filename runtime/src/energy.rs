@@ -33,18 +33,21 @@ impl<'a, const W: usize> Energy<'a, W> {
     /// Validate the description for `n` degrees of freedom.
     pub fn validate(desc: &EnergyDesc<'a>, n: usize) -> Result<Self, BlobError> {
         match desc {
-            EnergyDesc::General(mlp) => {
-                Ok(Self::General(Mlp::validate(mlp, 2 * n, Section::General)?))
-            }
+            EnergyDesc::General(mlp) => Ok(Self::General(Mlp::validate(
+                mlp,
+                2 * n,
+                1,
+                Section::General,
+            )?)),
             EnergyDesc::Separable { potential, kinetic } => {
-                let potential = Mlp::validate(potential, n, Section::Potential)?;
+                let potential = Mlp::validate(potential, n, 1, Section::Potential)?;
                 let kinetic = match kinetic {
                     KineticDesc::Quadratic { cholesky } => {
                         validate_cholesky(*cholesky, n)?;
                         Kinetic::Quadratic(*cholesky)
                     }
                     KineticDesc::Network(mlp) => {
-                        Kinetic::Network(Mlp::validate(mlp, n, Section::Kinetic)?)
+                        Kinetic::Network(Mlp::validate(mlp, n, 1, Section::Kinetic)?)
                     }
                 };
                 Ok(Self::Separable { potential, kinetic })

@@ -22,9 +22,9 @@ pub enum Section {
     InverseMass,
     /// The integrator settings.
     Integrator,
-    /// Dissipation terms (reserved).
+    /// Dissipation R (constant factor or network of q).
     Dissipation,
-    /// Input coupling terms (reserved).
+    /// Input coupling G (constant matrix or network of q).
     InputCoupling,
 }
 

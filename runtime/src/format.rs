@@ -4,7 +4,8 @@
 //! ```text
 //! offset  size  field
 //! 0       4     magic tag b"KEEL"
-//! 4       2     format version (u16): 1, or 2 with port terms
+//! 4       2     format version (u16): 1; 2 with constant port terms;
+//!                3 with port terms that are networks of q
 //! 6       4     payload length L (u32)
 //! 10      L     payload: postcard encoding of [`ModelDesc`]
 //! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
@@ -24,9 +25,11 @@ use crate::integrate::Integrator;
 /// First four bytes of every blob.
 pub const MAGIC: [u8; 4] = *b"KEEL";
 /// The newest format version this runtime reads and writes. Version 2 added
-/// the dissipation and input sections; a blob without them is still written
-/// as version 1, so firmware built before version 2 keeps reading it.
-pub const FORMAT_VERSION: u16 = 2;
+/// the dissipation and input sections, version 3 their network variants
+/// (R and G as functions of q). A blob is always written with the oldest
+/// version that can express it, so older firmware keeps reading the blobs
+/// it understands.
+pub const FORMAT_VERSION: u16 = 3;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
 /// Most inputs u1..um of a driven model.
@@ -157,7 +160,7 @@ pub enum EnergyDesc<'a> {
 }
 
 /// Dissipation in the port-Hamiltonian form dx/dt = (J - R) dH/dx + G u.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub enum DissipationDesc<'a> {
     /// Conservative model (R = 0).
     None,
@@ -169,10 +172,14 @@ pub enum DissipationDesc<'a> {
         #[serde(borrow)]
         factor: F32Bytes<'a>,
     },
+    /// R(q) = L(q) L(q)^T with the factor a network of the normalized
+    /// coordinates z_q (n inputs) whose n (2n + 1) outputs are L(q) in
+    /// physical units, packed as in `Constant`. Format version 3.
+    Network(#[serde(borrow)] MlpDesc<'a>),
 }
 
 /// Input coupling G u of a driven model.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub enum InputDesc<'a> {
     /// Autonomous model.
     None,
@@ -184,6 +191,31 @@ pub enum InputDesc<'a> {
         #[serde(borrow)]
         matrix: F32Bytes<'a>,
     },
+    /// G(q) as a network of the normalized coordinates z_q (n inputs) whose
+    /// 2n m outputs are G(q) in physical units, row-major. Format version 3.
+    Network {
+        /// Number of inputs m (1..=MAX_INPUTS).
+        inputs: u8,
+        /// The network.
+        #[serde(borrow)]
+        net: MlpDesc<'a>,
+    },
+}
+
+impl ModelDesc<'_> {
+    /// The oldest format version that can express this model.
+    pub fn needed_version(&self) -> u16 {
+        let networks = matches!(self.dissipation, DissipationDesc::Network(_))
+            || matches!(self.input, InputDesc::Network { .. });
+        let port = self.dissipation != DissipationDesc::None || self.input != InputDesc::None;
+        if networks {
+            3
+        } else if port {
+            2
+        } else {
+            OLDEST_READABLE_VERSION
+        }
+    }
 }
 
 /// Everything a blob describes. Physical energy is
@@ -233,12 +265,8 @@ pub fn encode(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> 
         .len();
     head[..4].copy_from_slice(&MAGIC);
     // The oldest version that can express the model, so older firmware
-    // keeps reading conservative, autonomous blobs.
-    let version = if desc.dissipation == DissipationDesc::None && desc.input == InputDesc::None {
-        OLDEST_READABLE_VERSION
-    } else {
-        FORMAT_VERSION
-    };
+    // keeps reading the blobs it understands.
+    let version = desc.needed_version();
     head[4..6].copy_from_slice(&version.to_le_bytes());
     head[6..10].copy_from_slice(&(body_len as u32).to_le_bytes());
     let end = HEADER_LEN + body_len;
@@ -321,9 +349,9 @@ pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
     if !rest.is_empty() {
         return Err(BlobError::TrailingBytes);
     }
-    // Version 1 has no port terms; a blob claiming otherwise is damaged.
-    let port = desc.dissipation != DissipationDesc::None || desc.input != InputDesc::None;
-    if env.version < 2 && port {
+    // Version 1 has no port terms and version 2 no port networks; a blob
+    // whose content needs a newer version than it claims is damaged.
+    if env.version < desc.needed_version() {
         return Err(BlobError::Malformed);
     }
     Ok(desc)

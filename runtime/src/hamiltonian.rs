@@ -54,11 +54,13 @@ pub trait Hamiltonian<const D: usize> {
         wq.iter_mut().chain(wp.iter_mut()).for_each(|w| *w = 1.0);
     }
 
-    /// The field f = (J - R) g + G u for a given gradient g = (gq, gp):
-    /// `fq`, `fp` receive dq/dt and dp/dt. `u` holds `inputs()` values.
-    /// The default is the conservative J g.
+    /// The field f = (J - R(q)) g + G(q) u for a given gradient g = (gq, gp),
+    /// with R and G taken at coordinates `q`: `fq`, `fp` receive dq/dt and
+    /// dp/dt. `u` holds `inputs()` values. The default is the conservative
+    /// J g.
     fn field_from_gradient(
         &self,
+        _q: &[f32; D],
         gq: &[f32; D],
         gp: &[f32; D],
         _u: &[f32],
@@ -82,7 +84,7 @@ pub trait Hamiltonian<const D: usize> {
     ) -> Result<(), StepError> {
         let (mut gq, mut gp) = ([0.0; D], [0.0; D]);
         self.gradient(x, &mut gq, &mut gp)?;
-        self.field_from_gradient(&gq, &gp, u, dq, dp);
+        self.field_from_gradient(&x.q, &gq, &gp, u, dq, dp);
         Ok(())
     }
 

@@ -342,7 +342,7 @@ fn discrete_gradient<const D: usize, H: Hamiltonian<D> + ?Sized>(
     let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
     let (mut fq, mut fp) = ([0.0f32; D], [0.0f32; D]);
     ham.gradient(&x0, &mut gq, &mut gp)?;
-    ham.field_from_gradient(&gq, &gp, u, &mut fq, &mut fp);
+    ham.field_from_gradient(&x0.q, &gq, &gp, u, &mut fq, &mut fp);
     fixed_point(x, h, max_iter, tol, (&fq, &fp), |mid, x1, fq, fp| {
         let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
         ham.gradient(mid, &mut gq, &mut gp)?;
@@ -368,7 +368,7 @@ fn discrete_gradient<const D: usize, H: Hamiltonian<D> + ?Sized>(
                 gp[i] += c * wp[i] * (x1.p[i] - x0.p[i]);
             }
         }
-        ham.field_from_gradient(&gq, &gp, u, fq, fp);
+        ham.field_from_gradient(&mid.q, &gq, &gp, u, fq, fp);
         Ok(())
     })
 }

@@ -1,7 +1,9 @@
 //! Validated multilayer perceptrons over borrowed weight bytes: a forward
 //! pass that keeps what the backward pass needs, and the analytic gradient of
-//! the scalar output with respect to the input (reverse mode, no finite
-//! differences). `W` bounds every layer width and sizes the stack buffers.
+//! a scalar output with respect to the input (reverse mode, no finite
+//! differences). Energy networks have one output; the networks of the port
+//! terms R(q), G(q) have several and are only evaluated forward. `W` bounds
+//! every layer width and sizes the stack buffers.
 
 use crate::error::{BlobError, Section};
 use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
@@ -16,13 +18,14 @@ struct Layer<'a> {
     bias: F32Bytes<'a>,
 }
 
-/// A validated network with inputs of width `inputs` and one scalar output.
+/// A validated network with inputs of width `inputs` and `outputs` outputs.
 #[derive(Debug, Clone, Copy)]
 pub struct Mlp<'a, const W: usize> {
     activation: Activation,
     layers: [Option<Layer<'a>>; MAX_LAYERS],
     count: usize,
     inputs: usize,
+    outputs: usize,
 }
 
 fn all_finite(v: F32Bytes<'_>) -> bool {
@@ -30,10 +33,12 @@ fn all_finite(v: F32Bytes<'_>) -> bool {
 }
 
 impl<'a, const W: usize> Mlp<'a, W> {
-    /// Check shapes, byte lengths, finiteness and the activation.
+    /// Check shapes (`inputs` in, `outputs` out), byte lengths, finiteness
+    /// and the activation.
     pub fn validate(
         desc: &MlpDesc<'a>,
         inputs: usize,
+        outputs: usize,
         section: Section,
     ) -> Result<Self, BlobError> {
         if desc.activation == Activation::Relu {
@@ -63,7 +68,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
                 });
             }
             let last = i + 1 == count;
-            if last && no != 1 {
+            if last && no != outputs {
                 return Err(BlobError::ShapeMismatch { section, layer: li });
             }
             check_layer(l, ni, no, section, li)?;
@@ -80,12 +85,18 @@ impl<'a, const W: usize> Mlp<'a, W> {
             layers,
             count,
             inputs,
+            outputs,
         })
     }
 
     /// Input width.
     pub fn inputs(&self) -> usize {
         self.inputs
+    }
+
+    /// Output width.
+    pub fn outputs(&self) -> usize {
+        self.outputs
     }
 
     /// Multiply-accumulates of one forward pass plus one input gradient.
@@ -111,32 +122,44 @@ impl<'a, const W: usize> Mlp<'a, W> {
             .sum()
     }
 
-    /// The scalar output for input `x` (first `inputs()` entries used).
+    /// The first output for input `x` (first `inputs()` entries used).
     pub fn value(&self, x: &[f32]) -> f32 {
         let mut deriv = [[0.0f32; W]; MAX_LAYERS];
-        self.forward(x, &mut deriv)
+        let mut out = [0.0f32];
+        self.forward(x, &mut deriv, &mut out);
+        out[0]
     }
 
-    /// The output and its gradient with respect to the input, written to
-    /// `grad[..inputs()]`.
+    /// All outputs for input `x`, written to `out[..outputs()]` (a shorter
+    /// `out` receives the leading outputs).
+    pub fn evaluate(&self, x: &[f32], out: &mut [f32]) {
+        let mut deriv = [[0.0f32; W]; MAX_LAYERS];
+        self.forward(x, &mut deriv, out);
+    }
+
+    /// The first output and its gradient with respect to the input, written
+    /// to `grad[..inputs()]`.
     pub fn value_and_gradient(&self, x: &[f32], grad: &mut [f32]) -> f32 {
         let mut deriv = [[0.0f32; W]; MAX_LAYERS];
-        let y = self.forward(x, &mut deriv);
+        let mut out = [0.0f32];
+        self.forward(x, &mut deriv, &mut out);
         self.backward(&deriv, grad);
-        y
+        out[0]
     }
 
-    /// Forward pass; stores each hidden layer's activation derivative.
-    fn forward(&self, x: &[f32], deriv: &mut [[f32; W]; MAX_LAYERS]) -> f32 {
+    /// Forward pass into `out`; stores each hidden layer's activation
+    /// derivative.
+    fn forward(&self, x: &[f32], deriv: &mut [[f32; W]; MAX_LAYERS], out: &mut [f32]) {
         let mut cur = [0.0f32; W];
         let mut next = [0.0f32; W];
-        let mut out = 0.0;
         for (k, layer) in self.layers.iter().take(self.count).enumerate() {
             let Some(l) = layer else { break };
             let input: &[f32] = if k == 0 { x } else { &cur[..l.inputs] };
             dense(l, input, &mut next[..l.outputs]);
             if k + 1 == self.count {
-                out = next[0];
+                for (o, v) in out.iter_mut().zip(&next[..l.outputs]) {
+                    *o = *v;
+                }
             } else {
                 for j in 0..l.outputs {
                     let (a, d) = activate(self.activation, next[j]);
@@ -145,7 +168,6 @@ impl<'a, const W: usize> Mlp<'a, W> {
                 }
             }
         }
-        out
     }
 
     /// Reverse pass from d(output) = 1 down to the input.

@@ -9,7 +9,86 @@ use crate::error::{BlobError, Section, StepError};
 use crate::format::{self, DissipationDesc, F32Bytes, InputDesc};
 use crate::hamiltonian::Hamiltonian;
 use crate::integrate::Integrator;
+use crate::mlp::Mlp;
 use crate::state::State;
+
+/// A port matrix (the factor L of R, or G): constant, or a network of the
+/// normalized coordinates z_q whose outputs are the entries.
+#[derive(Debug, Clone, Copy)]
+enum PortMatrix<'a, const W: usize> {
+    Constant(F32Bytes<'a>),
+    Network(Mlp<'a, W>),
+}
+
+/// The entries of a port matrix at one state.
+enum Entries<'a, const W: usize> {
+    Stored(F32Bytes<'a>),
+    Computed([f32; W]),
+}
+
+impl<const W: usize> Entries<'_, W> {
+    /// Entry `i` (NaN out of range; shapes are validated at parse time).
+    #[inline(always)]
+    fn get(&self, i: usize) -> f32 {
+        match self {
+            Self::Stored(m) => m.get(i),
+            Self::Computed(v) => v.get(i).copied().unwrap_or(f32::NAN),
+        }
+    }
+}
+
+impl<'a, const W: usize> PortMatrix<'a, W> {
+    /// Validate a constant of `entries` values or a network of `n` inputs
+    /// and `entries` outputs.
+    fn constant(m: F32Bytes<'a>, entries: usize, section: Section) -> Result<Self, BlobError> {
+        if m.0.len() != 4 * entries {
+            return Err(BlobError::ShapeMismatch { section, layer: 0 });
+        }
+        if !m.iter().all(f32::is_finite) {
+            return Err(BlobError::NonFinite { section });
+        }
+        Ok(Self::Constant(m))
+    }
+
+    fn network(
+        desc: &format::MlpDesc<'a>,
+        n: usize,
+        entries: usize,
+        section: Section,
+    ) -> Result<Self, BlobError> {
+        Ok(Self::Network(Mlp::validate(desc, n, entries, section)?))
+    }
+
+    /// The entries at normalized coordinates `zq`: a constant's values are
+    /// read in place; a network's are computed.
+    #[inline]
+    fn entries(&self, zq: &[f32]) -> Entries<'a, W> {
+        match self {
+            Self::Constant(m) => Entries::Stored(*m),
+            Self::Network(net) => {
+                let mut buf = [0.0f32; W];
+                net.evaluate(zq, &mut buf);
+                Entries::Computed(buf)
+            }
+        }
+    }
+
+    /// Multiply-accumulates of producing the entries (0 for a constant).
+    fn macs(&self) -> u32 {
+        match self {
+            Self::Constant(_) => 0,
+            Self::Network(net) => net.macs_forward(),
+        }
+    }
+
+    /// Learned parameters.
+    fn parameters(&self) -> u32 {
+        match self {
+            Self::Constant(m) => m.len() as u32,
+            Self::Network(net) => net.parameters(),
+        }
+    }
+}
 
 /// Work one model costs, from the shapes in its blob.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -40,9 +119,9 @@ pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
     energy: Energy<'a, W>,
     integrator: Integrator,
     /// Lower-triangular factor L of R = L L^T over the 2n coordinates.
-    dissipation: Option<F32Bytes<'a>>,
+    dissipation: Option<PortMatrix<'a, W>>,
     /// Number of inputs m and G (2n x m, row-major).
-    input: Option<(usize, F32Bytes<'a>)>,
+    input: Option<(usize, PortMatrix<'a, W>)>,
 }
 
 impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
@@ -89,31 +168,39 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         }
         let energy = Energy::validate(&desc.energy, n)?;
         let n2 = 2 * n;
-        let dissipation = match desc.dissipation {
+        let l_entries = n2 * (n2 + 1) / 2;
+        let dissipation = match &desc.dissipation {
             DissipationDesc::None => None,
-            DissipationDesc::Constant { factor } => {
-                let section = Section::Dissipation;
-                if factor.0.len() != 4 * (n2 * (n2 + 1) / 2) {
-                    return Err(BlobError::ShapeMismatch { section, layer: 0 });
-                }
-                if !factor.iter().all(f32::is_finite) {
-                    return Err(BlobError::NonFinite { section });
-                }
-                Some(factor)
+            DissipationDesc::Constant { factor } => Some(PortMatrix::constant(
+                *factor,
+                l_entries,
+                Section::Dissipation,
+            )?),
+            DissipationDesc::Network(net) => Some(PortMatrix::network(
+                net,
+                n,
+                l_entries,
+                Section::Dissipation,
+            )?),
+        };
+        let section = Section::InputCoupling;
+        let input_count = |inputs: u8| {
+            let m = inputs as usize;
+            if m == 0 || m > format::MAX_INPUTS {
+                Err(BlobError::ShapeMismatch { section, layer: 0 })
+            } else {
+                Ok(m)
             }
         };
-        let input = match desc.input {
+        let input = match &desc.input {
             InputDesc::None => None,
             InputDesc::Constant { inputs, matrix } => {
-                let section = Section::InputCoupling;
-                let m = inputs as usize;
-                if m == 0 || m > format::MAX_INPUTS || matrix.0.len() != 4 * n2 * m {
-                    return Err(BlobError::ShapeMismatch { section, layer: 0 });
-                }
-                if !matrix.iter().all(f32::is_finite) {
-                    return Err(BlobError::NonFinite { section });
-                }
-                Some((m, matrix))
+                let m = input_count(*inputs)?;
+                Some((m, PortMatrix::constant(*matrix, n2 * m, section)?))
+            }
+            InputDesc::Network { inputs, net } => {
+                let m = input_count(*inputs)?;
+                Some((m, PortMatrix::network(net, n, n2 * m, section)?))
             }
         };
         let mut m = Self {
@@ -182,15 +269,17 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         let it = self.integrator;
         let (calls_a, calls_b) = it.method.gradient_calls(it.max_iterations, it.substeps);
         let n2 = (2 * n) as u32;
-        let port = self.dissipation.map_or(0, |_| n2 * (n2 + 1))
-            + self.input.map_or(0, |(m, _)| n2 * m as u32);
+        let port = self.dissipation.map_or(0, |l| n2 * (n2 + 1) + l.macs())
+            + self.input.map_or(0, |(m, g)| n2 * m as u32 + g.macs());
         let per_step = if self.energy.is_separable() && it.method.needs_separable() {
             calls_a * v + calls_b * t
         } else {
             calls_a * (v + t + port)
         };
         Cost {
-            parameters: self.energy.parameters(n),
+            parameters: self.energy.parameters(n)
+                + self.dissipation.map_or(0, |l| l.parameters())
+                + self.input.map_or(0, |(_, g)| g.parameters()),
             macs_per_gradient: v + t,
             macs_per_step: per_step,
             model_bytes: core::mem::size_of::<Self>() as u32,
@@ -265,6 +354,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
 
     fn field_from_gradient(
         &self,
+        q: &[f32; D],
         gq: &[f32; D],
         gp: &[f32; D],
         u: &[f32],
@@ -279,7 +369,15 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         // Coordinate k of the 2n-vectors: q for k < n, p after.
         let at = |a: &[f32; D], b: &[f32; D], k: usize| if k < n { a[k] } else { b[k - n] };
         let n2 = 2 * n;
-        if let Some(l) = self.dissipation {
+        let mut zq = [0.0f32; D];
+        if matches!(self.dissipation, Some(PortMatrix::Network(_)))
+            || matches!(self.input, Some((_, PortMatrix::Network(_))))
+        {
+            Self::normalize(q, &self.offset_q, &self.scale_q, n, &mut zq);
+        }
+        let zq = &zq[..n];
+        if let Some(l) = &self.dissipation {
+            let l = l.entries(zq);
             // v = L^T g, then R g = L v; f -= R g.
             let mut v = [0.0f32; 2 * crate::MAX_DOF_SUPPORTED];
             for j in 0..n2 {
@@ -301,7 +399,8 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
                 }
             }
         }
-        if let Some((m, g)) = self.input {
+        if let Some((m, g)) = &self.input {
+            let (m, g) = (*m, g.entries(zq));
             for i in 0..n2 {
                 let mut acc = 0.0f32;
                 for (k, uk) in u.iter().enumerate().take(m) {

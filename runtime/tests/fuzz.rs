@@ -34,6 +34,11 @@ fn seeds() -> Vec<Vec<u8>> {
                     .with_port(&mut rng, 0.3, 0)
                     .blob(),
             );
+            out.push(
+                separable(&mut rng, 2, &[4], act, kind, Method::ImplicitMidpoint, 0.05)
+                    .with_port_networks(&mut rng, 0.5, 1, 4, kind)
+                    .blob(),
+            );
         }
     }
     out

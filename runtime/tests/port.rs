@@ -10,8 +10,11 @@
 //!   states of learned-style models (the discrete-gradient identity,
 //!   Gonzalez 1996; McLachlan, Quispel & Robidoux 1999);
 //! * with no damping it is conserved to round-off;
-//! * blobs with port terms are version 2, validated, and refused with
-//!   explicit symplectic methods.
+//! * R(q) and G(q) given as networks of q give the field
+//!   (J - L L^T) dH/dx + G u of an independent f64 evaluation of the same
+//!   networks (the port-Hamiltonian form's definition);
+//! * blobs with constant port terms are version 2, with port networks
+//!   version 3, validated, and refused with explicit symplectic methods.
 
 mod common;
 
@@ -55,6 +58,7 @@ impl Hamiltonian<2> for DampedOscillator {
     }
     fn field_from_gradient(
         &self,
+        _q: &[f32; 2],
         gq: &[f32; 2],
         gp: &[f32; 2],
         u: &[f32],
@@ -180,6 +184,19 @@ fn energy_never_rises_without_input_over_1e5_random_states() {
         .with_port(&mut rng, 0.3, 0);
         s.integrator.max_iterations = 100;
         blobs.push(s.blob());
+        // R(q) = L(q) L(q)^T and G(q) as networks of q.
+        let mut net = separable(
+            &mut rng,
+            2,
+            &[16],
+            act,
+            Kind::F32,
+            Method::DiscreteGradient,
+            0.02,
+        )
+        .with_port_networks(&mut rng, 0.5, 1, 8, Kind::F32);
+        net.integrator.max_iterations = 100;
+        blobs.push(net.blob());
     }
     let (mut steps, mut rises, mut worst) = (0u32, 0u32, 0.0f64);
     for k in 0..100_000u32 {
@@ -212,7 +229,69 @@ fn energy_never_rises_without_input_over_1e5_random_states() {
 }
 
 #[test]
-fn port_blobs_are_version_2_validated_and_refuse_explicit_methods() {
+fn port_networks_give_the_port_hamiltonian_field() {
+    let mut rng = Rng(77);
+    let mut worst = 0.0f64;
+    for (dof, m, kind) in [(1, 1, Kind::F32), (2, 2, Kind::Int8), (3, 1, Kind::F32)] {
+        let fixture = general(
+            &mut rng,
+            dof,
+            &[12],
+            Activation::Tanh,
+            Kind::F32,
+            Method::DiscreteGradient,
+            0.01,
+        )
+        .with_port_networks(&mut rng, 0.5, m, 10, kind);
+        let blob = fixture.blob();
+        let model: Model<'_, 4, 32> = Model::from_bytes(&blob).unwrap();
+        let (n, n2) = (dof, 2 * dof);
+        let l_net = fixture.dissipation_net.as_ref().unwrap();
+        let g_net = &fixture.input_net.as_ref().unwrap().1;
+        for _ in 0..200 {
+            let q: Vec<f32> = (0..n).map(|_| rng.uniform(-1.5, 1.5) as f32).collect();
+            let p: Vec<f32> = (0..n).map(|_| rng.uniform(-1.5, 1.5) as f32).collect();
+            let u: Vec<f32> = (0..m).map(|_| rng.uniform(-2.0, 2.0) as f32).collect();
+            let x = State::<4>::new(&q, &p).unwrap();
+            let (mut fq, mut fp) = ([0.0f32; 4], [0.0f32; 4]);
+            model.vector_field_driven(&x, &u, &mut fq, &mut fp).unwrap();
+            // Reference: the model's own dH/dx, then (J - L L^T) g + G u
+            // in f64 with L(q), G(q) from an f64 pass over the same weights.
+            let (mut gq, mut gp) = ([0.0f32; 4], [0.0f32; 4]);
+            model.gradient(&x, &mut gq, &mut gp).unwrap();
+            let g: Vec<f64> = (0..n2)
+                .map(|k| if k < n { gq[k] } else { gp[k - n] } as f64)
+                .collect();
+            let zq: Vec<f64> = (0..n)
+                .map(|i| ((q[i] - fixture.offset[i]) / fixture.scale[i]) as f64)
+                .collect();
+            let l = l_net.forward_f64(&zq);
+            let gm = g_net.forward_f64(&zq);
+            let lij = |i: usize, j: usize| if j <= i { l[i * (i + 1) / 2 + j] } else { 0.0 };
+            let lt_g: Vec<f64> = (0..n2)
+                .map(|j| (0..n2).map(|i| lij(i, j) * g[i]).sum())
+                .collect();
+            for k in 0..n2 {
+                let j_g = if k < n { g[n + k] } else { -g[k - n] };
+                let r_g: f64 = (0..n2).map(|j| lij(k, j) * lt_g[j]).sum();
+                let g_u: f64 = (0..m).map(|c| gm[k * m + c] * u[c] as f64).sum();
+                let want = j_g - r_g + g_u;
+                let got = if k < n { fq[k] } else { fp[k - n] } as f64;
+                let scale = j_g.abs() + r_g.abs() + g_u.abs() + 1e-3;
+                worst = worst.max((got - want).abs() / scale);
+            }
+        }
+    }
+    println!("port networks: worst field error {worst:.2e} relative to the term sizes");
+    // f32 kernels against f64: a few ulp per term, summed over small sums.
+    assert!(
+        worst < 2e-6,
+        "field differs from the f64 reference by {worst:e}"
+    );
+}
+
+#[test]
+fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
     let mut rng = Rng(5);
     let plain = general(
         &mut rng,
@@ -229,10 +308,38 @@ fn port_blobs_are_version_2_validated_and_refuse_explicit_methods() {
     );
     let driven = plain.clone().with_port(&mut rng, 0.2, 2);
     let blob = driven.blob();
+    assert_eq!(u16::from_le_bytes([blob[4], blob[5]]), 2);
+    // Port networks need version 3; a version-2 header cannot carry them.
+    let networked = plain
+        .clone()
+        .with_port_networks(&mut rng, 0.5, 1, 6, Kind::F32);
+    let mut v3 = networked.blob();
+    assert_eq!(u16::from_le_bytes([v3[4], v3[5]]), format::FORMAT_VERSION);
+    assert_eq!(format::FORMAT_VERSION, 3);
+    assert!(Model::<4, 16>::from_bytes(&v3).is_ok());
+    v3[4..6].copy_from_slice(&2u16.to_le_bytes());
+    let end = v3.len() - 4;
+    let crc = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC).checksum(&v3[4..end]);
+    v3[end..].copy_from_slice(&crc.to_le_bytes());
     assert_eq!(
-        u16::from_le_bytes([blob[4], blob[5]]),
-        format::FORMAT_VERSION
+        Model::<4, 16>::from_bytes(&v3).unwrap_err(),
+        BlobError::Malformed
     );
+    // A network with the wrong number of outputs for L is refused.
+    let mut wrong = networked.clone();
+    wrong.dissipation_net = Some(OwnedMlp::random(
+        &mut rng,
+        &[1, 6, 2],
+        Activation::Tanh,
+        Kind::F32,
+    ));
+    assert!(matches!(
+        Model::<4, 16>::from_bytes(&wrong.blob()),
+        Err(BlobError::ShapeMismatch {
+            section: keel_runtime::error::Section::Dissipation,
+            ..
+        })
+    ));
     let m: Model<'_, 4, 16> = Model::from_bytes(&blob).unwrap();
     assert_eq!(m.inputs(), 2);
     let mut x = State::<4>::new(&[0.1], &[0.2]).unwrap();

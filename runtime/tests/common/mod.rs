@@ -138,6 +138,45 @@ impl OwnedMlp {
     pub fn parameters(&self) -> usize {
         self.layers.iter().map(|l| l.w.len() + l.b.len()).sum()
     }
+
+    /// Multiply the last layer's weights and biases by `k` (a power of two
+    /// keeps int8 values and scales exact).
+    pub fn scale_last(&mut self, k: f32) {
+        let l = self.layers.last_mut().expect("at least one layer");
+        l.w.iter_mut().for_each(|v| *v *= k);
+        l.b.iter_mut().for_each(|v| *v *= k);
+        l.scales.iter_mut().for_each(|v| *v *= k);
+        l.w_bytes = le(&l.w);
+        l.b_bytes = le(&l.b);
+        l.s_bytes = le(&l.scales);
+    }
+
+    /// All outputs at `x`, in f64 (an independent reference for the
+    /// runtime's f32 kernels; tanh or softplus hidden layers).
+    pub fn forward_f64(&self, x: &[f64]) -> Vec<f64> {
+        let mut cur = x.to_vec();
+        for (k, l) in self.layers.iter().enumerate() {
+            let mut next: Vec<f64> = (0..l.outputs)
+                .map(|j| {
+                    l.b[j] as f64
+                        + (0..l.inputs)
+                            .map(|i| l.w[j * l.inputs + i] as f64 * cur[i])
+                            .sum::<f64>()
+                })
+                .collect();
+            if k + 1 < self.layers.len() {
+                for v in &mut next {
+                    *v = match self.activation {
+                        Activation::Tanh => v.tanh(),
+                        Activation::Softplus => v.exp().ln_1p(),
+                        Activation::Relu => v.max(0.0),
+                    };
+                }
+            }
+            cur = next;
+        }
+        cur
+    }
 }
 
 /// The kinetic part of a separable fixture.
@@ -172,6 +211,10 @@ pub struct OwnedModel {
     pub dissipation: Option<Vec<u8>>,
     /// Inputs m and G (2n x m, row-major), bytes.
     pub input: Option<(u8, Vec<u8>)>,
+    /// L(q) as a network of z_q (replaces `dissipation` when set).
+    pub dissipation_net: Option<OwnedMlp>,
+    /// Inputs m and G(q) as a network of z_q (replaces `input` when set).
+    pub input_net: Option<(u8, OwnedMlp)>,
 }
 
 impl OwnedModel {
@@ -191,6 +234,8 @@ impl OwnedModel {
             integrator,
             dissipation: None,
             input: None,
+            dissipation_net: None,
+            input_net: None,
         }
     }
 
@@ -214,20 +259,47 @@ impl OwnedModel {
             energy_scale: self.energy_scale,
             energy,
             integrator: self.integrator,
-            dissipation: match &self.dissipation {
-                None => DissipationDesc::None,
-                Some(b) => DissipationDesc::Constant {
+            dissipation: match (&self.dissipation_net, &self.dissipation) {
+                (Some(net), _) => DissipationDesc::Network(net.desc()),
+                (None, None) => DissipationDesc::None,
+                (None, Some(b)) => DissipationDesc::Constant {
                     factor: F32Bytes(b),
                 },
             },
-            input: match &self.input {
-                None => InputDesc::None,
-                Some((m, b)) => InputDesc::Constant {
+            input: match (&self.input_net, &self.input) {
+                (Some((m, net)), _) => InputDesc::Network {
+                    inputs: *m,
+                    net: net.desc(),
+                },
+                (None, None) => InputDesc::None,
+                (None, Some((m, b))) => InputDesc::Constant {
                     inputs: *m,
                     matrix: F32Bytes(b),
                 },
             },
         }
+    }
+
+    /// Add L(q) and (when `m > 0`) G(q) as random networks of z_q with one
+    /// hidden layer of `hidden` units; L's last layer is scaled by
+    /// `damping`.
+    pub fn with_port_networks(
+        mut self,
+        rng: &mut Rng,
+        damping: f32,
+        m: usize,
+        hidden: usize,
+        kind: Kind,
+    ) -> Self {
+        let (n, n2) = (self.dof, 2 * self.dof);
+        let mut l = OwnedMlp::random(rng, &[n, hidden, n2 * (n2 + 1) / 2], Activation::Tanh, kind);
+        l.scale_last(damping);
+        self.dissipation_net = Some(l);
+        if m > 0 {
+            let g = OwnedMlp::random(rng, &[n, hidden, n2 * m], Activation::Tanh, kind);
+            self.input_net = Some((m as u8, g));
+        }
+        self
     }
 
     /// Add R = L L^T with a random factor and G with `m` random columns.

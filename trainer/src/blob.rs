@@ -58,7 +58,7 @@ impl Layer {
     }
 }
 
-/// A network with a scalar output.
+/// A network (scalar output for energies, several for port terms).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Mlp {
     /// Hidden activation.
@@ -90,6 +90,53 @@ pub enum Energy {
     },
 }
 
+/// A port matrix (the factor L of R, or G): constant entries, or a network
+/// of the normalized coordinates z_q whose outputs are the entries.
+#[derive(Debug, Clone, PartialEq)]
+pub enum PortTerm {
+    /// The entries.
+    Constant(Vec<f32>),
+    /// A network of z_q.
+    Network(Mlp),
+}
+
+impl PortTerm {
+    fn from_constant(b: F32Bytes<'_>) -> Self {
+        Self::Constant(f32s(b))
+    }
+
+    /// The network, if this term is one.
+    pub fn network(&self) -> Option<&Mlp> {
+        match self {
+            Self::Constant(_) => None,
+            Self::Network(m) => Some(m),
+        }
+    }
+
+    /// Weights and biases (or entries).
+    pub fn parameters(&self) -> usize {
+        match self {
+            Self::Constant(v) => v.len(),
+            Self::Network(m) => m.parameters(),
+        }
+    }
+
+    fn converted(&self, kind: WeightKind) -> Self {
+        match self {
+            Self::Constant(v) => Self::Constant(v.clone()),
+            Self::Network(m) => Self::Network(m.converted(kind)),
+        }
+    }
+
+    /// Short label: `constant` or the network's widths.
+    pub fn label(&self) -> String {
+        match self {
+            Self::Constant(_) => "constant".into(),
+            Self::Network(m) => format!("network {}", m.label()),
+        }
+    }
+}
+
 /// Everything a blob holds, owned.
 #[derive(Debug, Clone, PartialEq)]
 pub struct BlobModel {
@@ -107,9 +154,9 @@ pub struct BlobModel {
     pub integrator: Integrator,
     /// Factor L of the dissipation R = L L^T (2n x 2n lower-triangular, row
     /// by row), for damped models.
-    pub dissipation: Option<Vec<f32>>,
+    pub dissipation: Option<PortTerm>,
     /// Inputs m and G (2n x m, row-major), for driven models.
-    pub input: Option<(usize, Vec<f32>)>,
+    pub input: Option<(usize, PortTerm)>,
 }
 
 /// Precision of stored weight matrices.
@@ -173,6 +220,24 @@ impl Mlp {
             .unwrap_or_default();
         w.extend(self.layers.iter().map(|l| l.outputs));
         w
+    }
+
+    /// Weights and biases.
+    pub fn parameters(&self) -> usize {
+        self.layers
+            .iter()
+            .map(|l| l.inputs * l.outputs + l.outputs)
+            .sum()
+    }
+
+    /// Widths joined by dashes and the activation, e.g. `1-16-2 tanh`.
+    pub fn label(&self) -> String {
+        let widths: Vec<String> = self.widths().iter().map(|v| v.to_string()).collect();
+        format!(
+            "{} {}",
+            widths.join("-"),
+            format!("{:?}", self.activation).to_lowercase()
+        )
     }
 
     /// This network with every weight matrix stored as `kind`.
@@ -287,13 +352,19 @@ impl BlobModel {
             energy_scale: d.energy_scale,
             energy,
             integrator: d.integrator,
-            dissipation: match d.dissipation {
+            dissipation: match &d.dissipation {
                 DissipationDesc::None => None,
-                DissipationDesc::Constant { factor } => Some(f32s(factor)),
+                DissipationDesc::Constant { factor } => Some(PortTerm::from_constant(*factor)),
+                DissipationDesc::Network(m) => Some(PortTerm::Network(Mlp::from_desc(m))),
             },
-            input: match d.input {
+            input: match &d.input {
                 InputDesc::None => None,
-                InputDesc::Constant { inputs, matrix } => Some((inputs as usize, f32s(matrix))),
+                InputDesc::Constant { inputs, matrix } => {
+                    Some((*inputs as usize, PortTerm::from_constant(*matrix)))
+                }
+                InputDesc::Network { inputs, net } => {
+                    Some((*inputs as usize, PortTerm::Network(Mlp::from_desc(net))))
+                }
             },
         })
     }
@@ -328,8 +399,17 @@ impl BlobModel {
                 },
             },
         };
-        let factor = self.dissipation.as_deref().map(le);
-        let g = self.input.as_ref().map(|(m, g)| (*m, le(g)));
+        // Bytes of each port term: a constant's entries, or a network's.
+        enum TermBytes {
+            Constant(Vec<u8>),
+            Network(Bytes),
+        }
+        let term_bytes = |t: &PortTerm| match t {
+            PortTerm::Constant(v) => TermBytes::Constant(le(v)),
+            PortTerm::Network(m) => TermBytes::Network(Bytes::of(m)),
+        };
+        let factor = self.dissipation.as_ref().map(term_bytes);
+        let g = self.input.as_ref().map(|(m, g)| (*m, g, term_bytes(g)));
         let desc = ModelDesc {
             dof: u8::try_from(self.dof).context("too many degrees of freedom")?,
             offset: F32Bytes(&offset),
@@ -337,18 +417,31 @@ impl BlobModel {
             energy_scale: self.energy_scale,
             energy,
             integrator: self.integrator,
-            dissipation: match &factor {
-                None => DissipationDesc::None,
-                Some(f) => DissipationDesc::Constant {
+            dissipation: match (&factor, &self.dissipation) {
+                (Some(TermBytes::Constant(f)), _) => DissipationDesc::Constant {
                     factor: F32Bytes(f),
                 },
+                (Some(TermBytes::Network(b)), Some(PortTerm::Network(m))) => {
+                    DissipationDesc::Network(b.desc(m)?)
+                }
+                _ => DissipationDesc::None,
             },
             input: match &g {
                 None => InputDesc::None,
-                Some((m, g)) => InputDesc::Constant {
-                    inputs: u8::try_from(*m).context("too many inputs")?,
-                    matrix: F32Bytes(g),
-                },
+                Some((m, term, bytes)) => {
+                    let inputs = u8::try_from(*m).context("too many inputs")?;
+                    match (bytes, term) {
+                        (TermBytes::Network(b), PortTerm::Network(net)) => InputDesc::Network {
+                            inputs,
+                            net: b.desc(net)?,
+                        },
+                        (TermBytes::Constant(c), _) => InputDesc::Constant {
+                            inputs,
+                            matrix: F32Bytes(c),
+                        },
+                        _ => bail!("inconsistent input term"),
+                    }
+                }
             },
         };
         let room = 64 * 1024 + 16 * (offset.len() + chol.len() + self.parameters());
@@ -361,9 +454,10 @@ impl BlobModel {
         Ok(buf)
     }
 
-    /// The networks, potential (or general) first.
+    /// The networks, potential (or general) first, then those of the port
+    /// terms.
     pub fn networks(&self) -> Vec<(&'static str, &Mlp)> {
-        match &self.energy {
+        let mut v = match &self.energy {
             Energy::General(m) => vec![("energy", m)],
             Energy::Separable { potential, kinetic } => {
                 let mut v = vec![("potential", potential)];
@@ -372,17 +466,19 @@ impl BlobModel {
                 }
                 v
             }
+        };
+        if let Some(m) = self.dissipation.as_ref().and_then(PortTerm::network) {
+            v.push(("dissipation", m));
         }
+        if let Some(m) = self.input.as_ref().and_then(|(_, g)| g.network()) {
+            v.push(("input", m));
+        }
+        v
     }
 
-    /// Number of weights and biases.
+    /// Number of weights and biases (port terms included).
     pub fn parameters(&self) -> usize {
-        let nets: usize = self
-            .networks()
-            .iter()
-            .flat_map(|(_, m)| m.layers.iter())
-            .map(|l| l.inputs * l.outputs + l.outputs)
-            .sum();
+        let nets: usize = self.networks().iter().map(|(_, m)| m.parameters()).sum();
         let chol = match &self.energy {
             Energy::Separable {
                 kinetic: Kinetic::Quadratic(l),
@@ -390,7 +486,13 @@ impl BlobModel {
             } => l.len(),
             _ => 0,
         };
+        let constant = |t: &PortTerm| match t {
+            PortTerm::Constant(v) => v.len(),
+            PortTerm::Network(_) => 0,
+        };
         nets + chol
+            + self.dissipation.as_ref().map_or(0, constant)
+            + self.input.as_ref().map_or(0, |(_, g)| constant(g))
     }
 
     /// Weight storage of the networks.
@@ -415,6 +517,8 @@ impl BlobModel {
         };
         Self {
             energy,
+            dissipation: self.dissipation.as_ref().map(|t| t.converted(kind)),
+            input: self.input.as_ref().map(|(m, g)| (*m, g.converted(kind))),
             ..self.clone()
         }
     }

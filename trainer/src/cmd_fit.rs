@@ -17,7 +17,7 @@ use crate::data::{self, LoadOptions};
 use crate::dataset::{Dataset, Inputs};
 use crate::export;
 use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
-use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective};
+use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch};
 use crate::integrator_args::MethodArg;
 use crate::net::Activation;
 
@@ -115,6 +115,17 @@ pub struct Args {
     /// stored with the discrete-gradient method.
     #[arg(long)]
     pub dissipation: bool,
+    /// Make L (of R = L L^T) a network of the coordinates q with these
+    /// hidden widths instead of a constant, for damping that depends on
+    /// position (implies --dissipation).
+    #[arg(long, value_delimiter = ',', value_name = "W1,..")]
+    pub dissipation_net: Option<Vec<usize>>,
+    /// Make the input coupling G a network of the coordinates q with these
+    /// hidden widths instead of a constant, for inputs that act through the
+    /// geometry (a trolley's acceleration on a swinging load acts through
+    /// cos q).
+    #[arg(long, value_delimiter = ',', value_name = "W1,..")]
+    pub input_net: Option<Vec<usize>>,
     /// Masses m1,..,mn for logs with velocity columns (p = m v).
     #[arg(long, value_delimiter = ',', value_name = "M1,..")]
     pub mass: Option<Vec<f64>>,
@@ -334,7 +345,7 @@ pub fn run(args: Args) -> Result<()> {
         ..LoadOptions::default()
     };
     let (all, all_inputs) = data::load_csv_with_inputs(&args.data, &opts)?;
-    if all_inputs.is_some() || args.dissipation {
+    if all_inputs.is_some() || args.dissipation || args.dissipation_net.is_some() {
         return run_port(&args, act, all, all_inputs, &opts);
     }
     let (train, val) = match &args.val {
@@ -479,19 +490,29 @@ fn run_port(
     let settings = fit_settings(args, interrupt);
     let m = train_u.as_ref().map_or(0, |u| u.count);
     println!(
-        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, dissipation {}",
+        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, {}",
         train.samples(),
         train.trajectories.len(),
         val.as_ref().map_or(0, |(v, _)| v.samples()),
         m,
-        if args.dissipation { "learned" } else { "none" },
+        PortArch {
+            inputs: m,
+            ..port_terms(args)?
+        }
+        .label(train.dof),
     );
+    if m == 0 && args.input_net.is_some() {
+        bail!(
+            "--input-net: {} has no input columns u1..um, so there is no G to learn",
+            args.data.display()
+        );
+    }
     let fitted = fit::fit_port(
         &train,
         train_u.as_ref(),
         val.as_ref().map(|(v, u)| (v, u.as_ref())),
         &arch,
-        args.dissipation,
+        &port_terms(args)?,
         &settings,
     )?;
     write_model(args, &fitted, integrator)?;
@@ -500,4 +521,23 @@ fn run_port(
     }
     println!("{}", crate::CAUTION);
     Ok(())
+}
+
+/// The port terms asked for on the command line (the input count comes
+/// from the data).
+fn port_terms(args: &Args) -> Result<PortArch> {
+    let hidden = |name: &str, v: &Option<Vec<usize>>| -> Result<Vec<usize>> {
+        let v = v.clone().unwrap_or_default();
+        if v.contains(&0) || v.len() > 3 {
+            bail!("--{name} takes one to three hidden widths, each at least 1");
+        }
+        Ok(v)
+    };
+    let dissipation_hidden = hidden("dissipation-net", &args.dissipation_net)?;
+    Ok(PortArch {
+        dissipation: args.dissipation || args.dissipation_net.is_some(),
+        inputs: 0,
+        input_hidden: hidden("input-net", &args.input_net)?,
+        dissipation_hidden,
+    })
 }

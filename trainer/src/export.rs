@@ -8,9 +8,10 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use keel_runtime::Integrator;
 
-use crate::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, WeightKind, Weights};
+use crate::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
 use crate::hnn::{
     cholesky_from_params, tri_index, BaselineModel, EnergyArch, EnergyModel, KineticArch,
+    PhysicalTerm,
 };
 use crate::net::MlpShape;
 
@@ -30,6 +31,14 @@ fn blob_mlp(shape: &MlpShape, params: &[f32]) -> Mlp {
     Mlp {
         activation: shape.activation.to_runtime(),
         layers,
+    }
+}
+
+/// A port term in physical units as the blob's owned mirror holds it.
+fn port_term(t: PhysicalTerm) -> PortTerm {
+    match t {
+        PhysicalTerm::Constant(v) => PortTerm::Constant(v),
+        PhysicalTerm::Network { shape, params } => PortTerm::Network(blob_mlp(&shape, &params)),
     }
 }
 
@@ -69,11 +78,13 @@ pub fn blob_model(model: &EnergyModel, integrator: Integrator) -> BlobModel {
         dissipation: model
             .port
             .as_ref()
-            .and_then(|p| p.physical_dissipation(n, &model.norm)),
+            .and_then(|p| p.physical_dissipation(n, &model.norm))
+            .map(port_term),
         input: model
             .port
             .as_ref()
-            .and_then(|p| p.physical_input(n, &model.norm)),
+            .and_then(|p| p.physical_input(n, &model.norm))
+            .map(|(m, g)| (m, port_term(g))),
     }
 }
 

@@ -228,15 +228,16 @@ pub fn fit_energy(
 }
 
 /// Fit a damped and/or driven model (see [`PortObjective`]): R = L L^T on
-/// the momentum block if `dissipation`, G if `inputs` (one input array per
-/// training trajectory). Validation inputs must be given when the training
-/// data has inputs.
+/// the momentum block if `terms.dissipation`, G if `inputs` (one input array
+/// per training trajectory), each constant or a network of q as `terms`
+/// says; `terms.inputs` is taken from the data. Validation inputs must be
+/// given when the training data has inputs.
 pub fn fit_port(
     train: &Dataset,
     inputs: Option<&Inputs>,
     val: Option<(&Dataset, Option<&Inputs>)>,
     arch: &EnergyArch,
-    dissipation: bool,
+    terms: &PortArch,
     settings: &FitSettings,
 ) -> Result<Fitted<EnergyModel>> {
     let quadratic = matches!(
@@ -305,13 +306,13 @@ pub fn fit_port(
         None => None,
     };
     let port = PortArch {
-        dissipation,
         inputs: m,
+        ..terms.clone()
     };
     let obj = PortObjective::new(n, arch.clone(), port.clone(), &norm);
     let mut init = arch.init(n, settings.seed);
     let energy_count = init.len();
-    init.extend(port.init(n));
+    init.extend(port.init(n, settings.seed));
     let (mut params, report) = run_arrays(&obj, init, z, t, validation, settings)?;
     let port_params = params.split_off(energy_count);
     Ok(Fitted {

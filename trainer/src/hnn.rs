@@ -16,12 +16,8 @@
 //! components of the squared difference between J dH/dx = (dH/dp, -dH/dq)
 //! and the target dx/dt, both divided by `rate_scale`.
 //!
-//! Damped, driven systems ([`PortObjective`]) predict the port-Hamiltonian
-//! field (J - R) dH/dx + G u instead. R = L L^T acts on the momentum block
-//! only (friction and damper forces; position rates stay dH/dp), with the
-//! n x n lower-triangular L learned in normalized units (see [`PortModel`]
-//! for the exact conversion to physical units); G (2n x m) is learned for
-//! normalized inputs u / input_scale.
+//! Damped, driven systems ([`PortObjective`], in [`crate::port`]) predict
+//! the port-Hamiltonian field (J - R) dH/dx + G u instead.
 
 use anyhow::{bail, Result};
 use ndarray::{s, Array1, Array2, ArrayView2, Axis};
@@ -31,6 +27,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::dataset::Dataset;
 use crate::net::{self, Activation, MlpShape, MlpWork};
+pub use crate::port::{PhysicalTerm, PortArch, PortModel, PortObjective};
 
 /// Kinetic term of a separable energy.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -244,9 +241,9 @@ pub struct HnnWork {
     first: MlpWork,
     second: MlpWork,
     /// dE/dz (rows x 2n).
-    u: Array2<f32>,
+    pub(crate) u: Array2<f32>,
     /// d loss / d u.
-    r: Array2<f32>,
+    pub(crate) r: Array2<f32>,
 }
 
 /// The Hamiltonian-network loss for one architecture.
@@ -364,7 +361,13 @@ impl Objective for HnnObjective {
 impl HnnObjective {
     /// Add d loss / d params to `grad`, given d loss / d(dE/dz) in `work.r`
     /// after [`Self::energy_gradient`] on the same `z` (2n columns used).
-    fn backprop(&self, p: &[f32], z: ArrayView2<'_, f32>, work: &mut HnnWork, grad: &mut [f32]) {
+    pub(crate) fn backprop(
+        &self,
+        p: &[f32],
+        z: ArrayView2<'_, f32>,
+        work: &mut HnnWork,
+        grad: &mut [f32],
+    ) {
         let n = self.dof;
         match &self.arch {
             EnergyArch::General(m) => {
@@ -402,254 +405,6 @@ impl HnnObjective {
                 }
             }
         }
-    }
-}
-
-/// Which port terms a damped or driven model learns.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
-pub struct PortArch {
-    /// Learn R = L L^T on the momentum block.
-    pub dissipation: bool,
-    /// Number of inputs m (G is learned when m > 0).
-    pub inputs: usize,
-}
-
-impl PortArch {
-    /// Parameters: n (n + 1) / 2 entries of L (row by row, plain values:
-    /// L L^T is positive semidefinite for any L), then G row-major 2n x m.
-    pub fn param_count(&self, dof: usize) -> usize {
-        self.l_count(dof) + 2 * dof * self.inputs
-    }
-
-    fn l_count(&self, dof: usize) -> usize {
-        if self.dissipation {
-            dof * (dof + 1) / 2
-        } else {
-            0
-        }
-    }
-
-    /// Initial values: L = 0.3 I (a non-zero L so its gradient is not zero),
-    /// G = 0.
-    pub fn init(&self, dof: usize) -> Vec<f32> {
-        let mut p = vec![0.0; self.param_count(dof)];
-        if self.dissipation {
-            for i in 0..dof {
-                p[tri_index(i, i)] = 0.3;
-            }
-        }
-        p
-    }
-}
-
-/// Learned port terms of a fitted model, in normalized units.
-///
-/// Physical conversion (exact up to f32 rounding): with a_i =
-/// sqrt(rate_scale_i * scale_i / energy_scale) for momentum coordinate i,
-/// the physical factor is L_phys = diag(a) L, so R_phys = L_phys L_phys^T;
-/// G_phys[i][k] = rate_scale_i * G[i][k] / input_scale_k.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct PortModel {
-    /// Which terms are learned.
-    pub arch: PortArch,
-    /// RMS of each input over the training data (1 where it is zero).
-    pub input_scale: Vec<f32>,
-    /// Parameters (layout as in [`PortArch::param_count`]).
-    pub params: Vec<f32>,
-}
-
-impl PortModel {
-    /// L_phys as the runtime stores it: 2n x 2n lower triangle, row by row,
-    /// zero outside the momentum block. `None` without dissipation.
-    pub fn physical_dissipation(&self, dof: usize, norm: &Normalization) -> Option<Vec<f32>> {
-        if !self.arch.dissipation {
-            return None;
-        }
-        let n = dof;
-        let d = 2 * n;
-        let mut packed = vec![0.0f32; d * (d + 1) / 2];
-        for i in 0..n {
-            let a = (norm.rate_scale[n + i] * norm.scale[n + i] / norm.energy_scale).sqrt();
-            for j in 0..=i {
-                packed[tri_index(n + i, n + j)] = a * self.params[tri_index(i, j)];
-            }
-        }
-        Some(packed)
-    }
-
-    /// (m, G_phys row-major 2n x m); `None` without inputs.
-    pub fn physical_input(&self, dof: usize, norm: &Normalization) -> Option<(usize, Vec<f32>)> {
-        let m = self.arch.inputs;
-        if m == 0 {
-            return None;
-        }
-        let g = &self.params[self.arch.l_count(dof)..];
-        let out = (0..2 * dof * m)
-            .map(|idx| norm.rate_scale[idx / m] * g[idx] / self.input_scale[idx % m])
-            .collect();
-        Some((m, out))
-    }
-}
-
-/// The port-Hamiltonian loss: mean squared error between the normalized
-/// (J - R) dH/dx + G u and the normalized targets. Rows of `z` hold the 2n
-/// normalized coordinates followed by the m normalized inputs. Parameters
-/// are the energy's followed by the port terms'.
-#[derive(Debug, Clone)]
-pub struct PortObjective {
-    /// The conservative part (energy network and gains).
-    pub hnn: HnnObjective,
-    /// The port terms.
-    pub port: PortArch,
-    /// c_i = sqrt(scale_i / (rate_scale_i * energy_scale)) per coordinate:
-    /// the normalized R term is -C L L^T C^-1 dE/dz on the momentum block.
-    pub c: Vec<f32>,
-}
-
-impl PortObjective {
-    /// The loss for `arch` and `port` under `norm`.
-    pub fn new(dof: usize, arch: EnergyArch, port: PortArch, norm: &Normalization) -> Self {
-        let c = (0..2 * dof)
-            .map(|i| (norm.scale[i] / (norm.rate_scale[i] * norm.energy_scale)).sqrt())
-            .collect();
-        Self {
-            hnn: HnnObjective::new(dof, arch, norm),
-            port,
-            c,
-        }
-    }
-
-    /// Normalized predictions (rows x 2n) for parameters `p` at rows of `z`.
-    pub fn predict(&self, p: &[f32], z: ArrayView2<'_, f32>) -> Array2<f32> {
-        let d = 2 * self.hnn.dof;
-        let (pe, pp) = p.split_at(self.hnn.param_count());
-        let mut work = HnnWork::default();
-        self.hnn
-            .energy_gradient(pe, z.slice(s![.., ..d]), &mut work);
-        let mut out = Array2::zeros((z.nrows(), d));
-        let mut row = vec![0.0f32; d];
-        for b in 0..z.nrows() {
-            self.predict_row(pp, work.u.row(b), z.row(b), &mut row);
-            out.row_mut(b).assign(&ndarray::ArrayView1::from(&row));
-        }
-        out
-    }
-
-    /// One row's prediction from dE/dz (`u`) and the row of `z`.
-    fn predict_row(
-        &self,
-        pp: &[f32],
-        u: ndarray::ArrayView1<'_, f32>,
-        z: ndarray::ArrayView1<'_, f32>,
-        out: &mut [f32],
-    ) {
-        let n = self.hnn.dof;
-        let d = 2 * n;
-        let m = self.port.inputs;
-        for (i, o) in out.iter_mut().enumerate().take(d) {
-            let src = if i < n { n + i } else { i - n };
-            *o = self.hnn.gains[i] * u[src];
-        }
-        if self.port.dissipation {
-            let l = &pp[..n * (n + 1) / 2];
-            let v: Vec<f32> = (0..n).map(|j| u[n + j] / self.c[n + j]).collect();
-            let y = llt_times(l, n, &v);
-            for i in 0..n {
-                out[n + i] -= self.c[n + i] * y[i];
-            }
-        }
-        let g = &pp[self.port.l_count(n)..];
-        for i in 0..d {
-            for k in 0..m {
-                out[i] += g[i * m + k] * z[d + k];
-            }
-        }
-    }
-}
-
-/// L L^T v for L packed row by row (n x n lower triangle).
-fn llt_times(l: &[f32], n: usize, v: &[f32]) -> Vec<f32> {
-    let w = lt_times(l, n, v);
-    (0..n)
-        .map(|i| (0..=i).map(|j| l[tri_index(i, j)] * w[j]).sum())
-        .collect()
-}
-
-/// L^T v for L packed row by row.
-fn lt_times(l: &[f32], n: usize, v: &[f32]) -> Vec<f32> {
-    (0..n)
-        .map(|j| (j..n).map(|i| l[tri_index(i, j)] * v[i]).sum())
-        .collect()
-}
-
-impl Objective for PortObjective {
-    type Work = HnnWork;
-
-    fn param_count(&self) -> usize {
-        self.hnn.param_count() + self.port.param_count(self.hnn.dof)
-    }
-
-    fn loss_sum(
-        &self,
-        p: &[f32],
-        z: ArrayView2<'_, f32>,
-        t: ArrayView2<'_, f32>,
-        work: &mut HnnWork,
-        grad: Option<&mut [f32]>,
-    ) -> f64 {
-        let n = self.hnn.dof;
-        let d = 2 * n;
-        let m = self.port.inputs;
-        let ne = self.hnn.param_count();
-        let (pe, pp) = p.split_at(ne);
-        let zs = z.slice(s![.., ..d]);
-        self.hnn.energy_gradient(pe, zs, work);
-        let inv_d = 1.0 / d as f32;
-        let lc = self.port.l_count(n);
-        let mut port_grad = vec![0.0f32; pp.len()];
-        let mut pred = vec![0.0f32; d];
-        let mut w = vec![0.0f32; d];
-        let mut total = 0.0f64;
-        for b in 0..z.nrows() {
-            self.predict_row(pp, work.u.row(b), z.row(b), &mut pred);
-            let mut row_sum = 0.0f32;
-            for i in 0..d {
-                let e = pred[i] - t[[b, i]];
-                row_sum += e * e;
-                w[i] = 2.0 * e * inv_d;
-                let src = if i < n { n + i } else { i - n };
-                work.r[[b, src]] = w[i] * self.hnn.gains[i];
-            }
-            total += (row_sum * inv_d) as f64;
-            if self.port.dissipation {
-                // pred_p -= C L L^T C^-1 u_p: with a = C w_p, v = C^-1 u_p,
-                // d/du_p = -C^-1 L L^T a, d/dL = -(a (L^T v)^T + v (L^T a)^T).
-                let l = &pp[..lc];
-                let a: Vec<f32> = (0..n).map(|i| self.c[n + i] * w[n + i]).collect();
-                let v: Vec<f32> = (0..n).map(|j| work.u[[b, n + j]] / self.c[n + j]).collect();
-                let back = llt_times(l, n, &a);
-                for (j, bj) in back.iter().enumerate() {
-                    work.r[[b, n + j]] -= bj / self.c[n + j];
-                }
-                let ltv = lt_times(l, n, &v);
-                let lta = lt_times(l, n, &a);
-                for i in 0..n {
-                    for j in 0..=i {
-                        port_grad[tri_index(i, j)] -= a[i] * ltv[j] + v[i] * lta[j];
-                    }
-                }
-            }
-            for i in 0..d {
-                for k in 0..m {
-                    port_grad[lc + i * m + k] += w[i] * z[[b, d + k]];
-                }
-            }
-        }
-        let Some(grad) = grad else { return total };
-        let (ge, gp) = grad.split_at_mut(ne);
-        self.hnn.backprop(pe, zs, work, ge);
-        gp.iter_mut().zip(&port_grad).for_each(|(a, b)| *a += b);
-        total
     }
 }
 
@@ -734,10 +489,7 @@ impl EnergyModel {
     ) -> Array2<f32> {
         let d = 2 * self.dof;
         let port = self.port.clone().unwrap_or(PortModel {
-            arch: PortArch {
-                dissipation: false,
-                inputs: 0,
-            },
+            arch: PortArch::default(),
             input_scale: Vec::new(),
             params: Vec::new(),
         });

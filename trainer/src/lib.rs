@@ -36,6 +36,7 @@ pub mod hnn;
 pub mod integrator_args;
 pub mod net;
 pub mod optim;
+pub mod port;
 pub mod project;
 pub mod report;
 pub mod rollout;

@@ -603,8 +603,8 @@ mod tests {
 // ------------------------------------------------------- damped and driven
 
 /// A damped, driven system in port-Hamiltonian form
-/// dx/dt = (J - R) dH/dx + G u(t), with H, the constant dissipation R and
-/// the constant input matrix G known in closed form (SI units).
+/// dx/dt = (J - R(x)) dH/dx + G(x) u(t), with H, the dissipation R and the
+/// input matrix G known in closed form (SI units).
 pub trait PortSystem: Send + Sync + fmt::Debug {
     /// Catalog name.
     fn name(&self) -> &'static str;
@@ -618,10 +618,10 @@ pub trait PortSystem: Send + Sync + fmt::Debug {
     fn hamiltonian(&self, x: &[f64]) -> f64;
     /// dH/dx into `g` (2n entries).
     fn gradient(&self, x: &[f64], g: &mut [f64]);
-    /// R, 2n x 2n, row-major, symmetric positive semidefinite.
-    fn dissipation(&self) -> Vec<f64>;
-    /// G, 2n x m, row-major.
-    fn input_matrix(&self) -> Vec<f64>;
+    /// R at state `x`, 2n x 2n, row-major, symmetric positive semidefinite.
+    fn dissipation(&self, x: &[f64]) -> Vec<f64>;
+    /// G at state `x`, 2n x m, row-major.
+    fn input_matrix(&self, x: &[f64]) -> Vec<f64>;
     /// A random initial state from the operating range.
     fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64>;
     /// A random excitation for one trajectory (no components if m = 0).
@@ -635,8 +635,8 @@ pub fn port_field(system: &dyn PortSystem, x: &[f64], u: &[f64], f: &mut [f64]) 
     let m = system.inputs();
     let mut g = vec![0.0; d];
     system.gradient(x, &mut g);
-    let r = system.dissipation();
-    let gm = system.input_matrix();
+    let r = system.dissipation(x);
+    let gm = system.input_matrix(x);
     for i in 0..d {
         let mut acc = if i < n { g[n + i] } else { -g[i - n] };
         for j in 0..d {
@@ -726,6 +726,12 @@ pub const PORT_CATALOG: &[PortEntry] = &[
         params: DRIVETRAIN_PARAMS,
         build: Drivetrain::build,
     },
+    PortEntry {
+        name: "crane-trolley",
+        summary: "payload swinging under a moving trolley, rope damping, trolley acceleration input u1 (acts through cos q), 1 dof",
+        params: CRANE_TROLLEY_PARAMS,
+        build: CraneTrolley::build,
+    },
 ];
 
 /// Look up `name` in [`PORT_CATALOG`]; `None` if it is not a port system.
@@ -814,10 +820,10 @@ impl PortSystem for FlexureDamped {
         g[0] = self.k * x[0];
         g[1] = x[1] / self.m;
     }
-    fn dissipation(&self) -> Vec<f64> {
+    fn dissipation(&self, _x: &[f64]) -> Vec<f64> {
         vec![0.0, 0.0, 0.0, self.c]
     }
-    fn input_matrix(&self) -> Vec<f64> {
+    fn input_matrix(&self, _x: &[f64]) -> Vec<f64> {
         Vec::new()
     }
     /// Amplitude uniform in [0.3, 1] * amp, phase uniform.
@@ -938,7 +944,7 @@ impl PortSystem for Drivetrain {
         g[2] = x[2] / self.jm;
         g[3] = x[3] / self.jl;
     }
-    fn dissipation(&self) -> Vec<f64> {
+    fn dissipation(&self, _x: &[f64]) -> Vec<f64> {
         let (c, b) = (self.c, self.b);
         #[rustfmt::skip]
         let r = vec![
@@ -949,7 +955,7 @@ impl PortSystem for Drivetrain {
         ];
         r
     }
-    fn input_matrix(&self) -> Vec<f64> {
+    fn input_matrix(&self, _x: &[f64]) -> Vec<f64> {
         vec![0.0, 0.0, 1.0, 0.0]
     }
     /// Both angles 0 plus a twist uniform in +-(torque / k); speeds uniform
@@ -963,5 +969,119 @@ impl PortSystem for Drivetrain {
     /// Six tones per trajectory, 0.2..15 Hz, amplitude `torque`.
     fn sample_excitation(&self, rng: &mut ChaCha8Rng) -> Multisine {
         Multisine::random(rng, 1, 6, self.torque, 0.2, 15.0)
+    }
+}
+
+const CRANE_TROLLEY_PARAMS: &[ParamSpec] = &[
+    ParamSpec {
+        name: "m",
+        default: 2.0,
+        unit: "kg",
+        meaning: "payload mass",
+    },
+    ParamSpec {
+        name: "l",
+        default: 1.0,
+        unit: "m",
+        meaning: "rope length",
+    },
+    ParamSpec {
+        name: "g",
+        default: 9.81,
+        unit: "m/s^2",
+        meaning: "gravitational acceleration",
+    },
+    ParamSpec {
+        name: "zeta",
+        default: 0.05,
+        unit: "1",
+        meaning: "damping ratio of small swings, rope and pivot losses (below 1)",
+    },
+    ParamSpec {
+        name: "accel",
+        default: 2.0,
+        unit: "m/s^2",
+        meaning: "trolley acceleration excitation amplitude (multisine, 0.05..1.5 Hz)",
+    },
+    ParamSpec {
+        name: "max_angle_deg",
+        default: 30.0,
+        unit: "deg",
+        meaning: "largest initial rope angle",
+    },
+];
+
+/// A payload of mass m on a rope of length l under a trolley whose
+/// acceleration a(t) is the input (a lab-scale gantry rig). Coordinates: q
+/// = rope angle from the vertical (rad), p = m l^2 dq/dt. In the trolley's
+/// frame the payload feels the inertial force -m a, whose moment about the
+/// pivot is -m l a cos q, so H = p^2 / (2 m l^2) + m g l (1 - cos q),
+/// R (momentum block) = c with c = 2 zeta m l^2 sqrt(g / l) (viscous rope
+/// and pivot losses), and G(q) = (0, -m l cos q)^T depends on the state.
+/// Under a constant acceleration a the payload settles at
+/// q = -atan(a / g).
+#[derive(Debug)]
+pub struct CraneTrolley {
+    params: ParamValues,
+    m: f64,
+    l: f64,
+    g: f64,
+    c: f64,
+    accel: f64,
+    max_angle: f64,
+}
+
+impl CraneTrolley {
+    fn build(params: ParamValues) -> Box<dyn PortSystem> {
+        let (m, l, g) = (params.get("m"), params.get("l"), params.get("g"));
+        let zeta = params.get("zeta").min(0.999);
+        Box::new(CraneTrolley {
+            m,
+            l,
+            g,
+            c: 2.0 * zeta * m * l * l * (g / l).sqrt(),
+            accel: params.get("accel"),
+            max_angle: params.get("max_angle_deg").clamp(0.0, 170.0).to_radians(),
+            params,
+        })
+    }
+}
+
+impl PortSystem for CraneTrolley {
+    fn name(&self) -> &'static str {
+        "crane-trolley"
+    }
+    fn dof(&self) -> usize {
+        1
+    }
+    fn inputs(&self) -> usize {
+        1
+    }
+    fn params(&self) -> &ParamValues {
+        &self.params
+    }
+    fn hamiltonian(&self, x: &[f64]) -> f64 {
+        let (m, l) = (self.m, self.l);
+        x[1] * x[1] / (2.0 * m * l * l) + m * self.g * l * (1.0 - x[0].cos())
+    }
+    fn gradient(&self, x: &[f64], g: &mut [f64]) {
+        let (m, l) = (self.m, self.l);
+        g[0] = m * self.g * l * x[0].sin();
+        g[1] = x[1] / (m * l * l);
+    }
+    fn dissipation(&self, _x: &[f64]) -> Vec<f64> {
+        vec![0.0, 0.0, 0.0, self.c]
+    }
+    fn input_matrix(&self, x: &[f64]) -> Vec<f64> {
+        vec![0.0, -self.m * self.l * x[0].cos()]
+    }
+    /// Angle uniform in +-max_angle, at rest.
+    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64> {
+        vec![uniform(rng, -1.0, 1.0) * self.max_angle, 0.0]
+    }
+    /// Five tones per trajectory, 0.05..1.5 Hz (around the swing frequency
+    /// sqrt(g / l) / (2 pi) = 0.5 Hz at the defaults), amplitude `accel`.
+    fn sample_excitation(&self, rng: &mut ChaCha8Rng) -> Multisine {
+        Multisine::random(rng, 1, 5, self.accel, 0.05, 1.5)
     }
 }

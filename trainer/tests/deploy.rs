@@ -6,7 +6,7 @@ use std::process::Command;
 
 use keel_runtime::format::Activation;
 use keel_runtime::{Integrator, Method};
-use keel_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, WeightKind, Weights};
+use keel_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
 use keel_trainer::cmd_compare::{compare, Verdict};
 use keel_trainer::integrator_args::IntegratorArgs;
 use rand::{Rng, SeedableRng};
@@ -79,14 +79,39 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     // R = L L^T with L = diag(0, 0.3) (damping on p), G = (0, 1)^T.
     let mut m = fixture(true);
     m.integrator = Integrator::new(Method::DiscreteGradient, 0.01);
-    m.dissipation = Some(vec![0.0, 0.0, 0.3]);
-    m.input = Some((1, vec![0.0, 1.0]));
+    m.dissipation = Some(PortTerm::Constant(vec![0.0, 0.0, 0.3]));
+    m.input = Some((1, PortTerm::Constant(vec![0.0, 1.0])));
     let bytes = m.to_bytes().unwrap();
+    // Constant port terms: format version 2 (older readers keep working).
+    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 2);
+    assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
+
+    // G(q) as a network of q: version 3, round trip exact, and int8
+    // export quantizes the port network like the energy network.
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+    let mut net = m.clone();
+    net.input = Some((1, PortTerm::Network(mlp(&mut rng, &[1, 6, 2]))));
+    let net_bytes = net.to_bytes().unwrap();
     assert_eq!(
-        u16::from_le_bytes([bytes[4], bytes[5]]),
+        u16::from_le_bytes([net_bytes[4], net_bytes[5]]),
         keel_runtime::format::FORMAT_VERSION
     );
-    assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
+    assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
+    assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
+    let (net_i8, r) = keel_trainer::cmd_export::export(
+        &net,
+        WeightKind::Int8,
+        &IntegratorArgs::default(),
+        200,
+        2,
+    )
+    .unwrap();
+    let q = BlobModel::from_bytes(&net_i8).unwrap();
+    let Some((1, PortTerm::Network(g))) = &q.input else {
+        panic!("input network lost: {:?}", q.input)
+    };
+    assert_eq!(g.weight_kind(), WeightKind::Int8);
+    assert_eq!(r.failed_rollouts, 0);
     let (i8_bytes, r) =
         keel_trainer::cmd_export::export(&m, WeightKind::Int8, &IntegratorArgs::default(), 200, 2)
             .unwrap();
@@ -255,8 +280,8 @@ fn rollout_takes_an_input_sequence_for_driven_models() {
     let dir = tempfile::tempdir().unwrap();
     let mut m = fixture(true);
     m.integrator = Integrator::new(Method::DiscreteGradient, 0.01);
-    m.dissipation = Some(vec![0.0, 0.0, 0.3]);
-    m.input = Some((1, vec![0.0, 1.0]));
+    m.dissipation = Some(PortTerm::Constant(vec![0.0, 0.0, 0.3]));
+    m.input = Some((1, PortTerm::Constant(vec![0.0, 1.0])));
     let blob = dir.path().join("driven.keel");
     std::fs::write(&blob, m.to_bytes().unwrap()).unwrap();
     let inputs = dir.path().join("u.csv");

@@ -1,6 +1,6 @@
 //! Parameter gradients of the port-Hamiltonian loss (learned energy plus
-//! R = L L^T on the momenta and G), checked two ways like the conservative
-//! loss in `fit_gradients.rs`:
+//! R = L L^T on the momenta and G, each constant or a network of q),
+//! checked two ways like the conservative loss in `fit_gradients.rs`:
 //! * against forward-mode automatic differentiation with the general-purpose
 //!   `num-dual` crate: energy, field (J - R) dH/dx + G u and loss are
 //!   re-implemented here in f64 over (hyper-)dual numbers, and the loss's
@@ -10,7 +10,7 @@
 
 mod common;
 
-use common::{central_difference, energy_generic};
+use common::{central_difference, energy_generic, mlp_generic};
 use keel_trainer::hnn::{
     tri_index, EnergyArch, HnnObjective, KineticArch, Objective, PortArch, PortObjective,
 };
@@ -42,13 +42,20 @@ fn loss_directional_dual(
         .zip(&d[ne..])
         .map(|(&v, &dv)| Dual64::new(v as f64, dv))
         .collect();
-    let lc = if obj.port.dissipation {
-        n * (n + 1) / 2
-    } else {
-        0
-    };
+    let lc = obj.port.l_count(n);
+    let (pl, pg) = pp.split_at(lc);
     let mut loss = Dual64::from(0.0);
     for b in 0..z.nrows() {
+        // L and G at this row: the constants, or the networks of z_q.
+        let zq: Vec<Dual64> = (0..n).map(|i| Dual64::from(z[[b, i]] as f64)).collect();
+        let l_row = match obj.port.dissipation_net(n) {
+            Some(shape) => mlp_generic(&shape, pl, &zq, false),
+            None => pl.to_vec(),
+        };
+        let g_row = match obj.port.input_net(n) {
+            Some(shape) => mlp_generic(&shape, pg, &zq, false),
+            None => pg.to_vec(),
+        };
         let mut u = Vec::with_capacity(dim);
         for i in 0..dim {
             let zh: Vec<HyperDual64> = (0..dim)
@@ -69,7 +76,7 @@ fn loss_directional_dual(
             // Dense R_n = L L^T, then pred_p -= C R_n C^-1 u_p.
             let l = |i: usize, j: usize| {
                 if j <= i {
-                    pp[tri_index(i, j)]
+                    l_row[tri_index(i, j)]
                 } else {
                     Dual64::from(0.0)
                 }
@@ -88,7 +95,7 @@ fn loss_directional_dual(
         }
         for (i, value) in pred.iter_mut().enumerate() {
             for k in 0..m {
-                *value += pp[lc + i * m + k] * z[[b, dim + k]] as f64;
+                *value += g_row[i * m + k] * z[[b, dim + k]] as f64;
             }
         }
         let mut row = Dual64::from(0.0);
@@ -114,14 +121,32 @@ fn cases() -> Vec<(EnergyArch, usize, PortArch)> {
         ];
         for arch in archs {
             for (dissipation, inputs) in [(true, 0), (false, 2), (true, 1), (true, 3)] {
+                let constant = PortArch {
+                    dissipation,
+                    inputs,
+                    ..PortArch::default()
+                };
+                v.push((arch.clone(), dof, constant.clone()));
+                // The same terms as networks of q (and one of each kind).
                 v.push((
                     arch.clone(),
                     dof,
                     PortArch {
-                        dissipation,
-                        inputs,
+                        dissipation_hidden: if dissipation { vec![4] } else { vec![] },
+                        input_hidden: if inputs > 0 { vec![3, 4] } else { vec![] },
+                        ..constant.clone()
                     },
                 ));
+                if dissipation && inputs > 0 {
+                    v.push((
+                        arch.clone(),
+                        dof,
+                        PortArch {
+                            input_hidden: vec![5],
+                            ..constant
+                        },
+                    ));
+                }
             }
         }
     }
@@ -161,7 +186,7 @@ fn random_setup(
         c,
     };
     let mut p = arch.init(dof, rng.random());
-    p.extend(port.init(dof));
+    p.extend(port.init(dof, rng.random()));
     for v in p.iter_mut() {
         *v += rng.random_range(-0.3f32..0.3);
     }

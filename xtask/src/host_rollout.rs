@@ -140,9 +140,10 @@ pub fn default_plan(blob: &[u8], steps: u32) -> Result<RunPlan> {
                 .collect()
         })
         .collect();
-    let inputs = match desc.input {
-        keel_runtime::format::InputDesc::Constant { inputs, .. } => {
-            crate::run_plan::two_tone_inputs(steps, inputs as usize, desc.integrator.dt)
+    let inputs = match &desc.input {
+        keel_runtime::format::InputDesc::Constant { inputs, .. }
+        | keel_runtime::format::InputDesc::Network { inputs, .. } => {
+            crate::run_plan::two_tone_inputs(steps, *inputs as usize, desc.integrator.dt)
         }
         keel_runtime::format::InputDesc::None => Vec::new(),
     };

@@ -325,8 +325,36 @@ fn general_with(
     encode(&desc)
 }
 
-/// The good fixture blobs: separable and general, f32 and int8, and one
-/// damped, driven model (its name contains `driven`).
+/// Damped, driven fixture whose port terms are networks of q (format
+/// version 3): L(q) (2n x 2n packed, n (2n + 1) outputs) and G(q) (2n x 1)
+/// as one-hidden-layer tanh networks of z_q, discrete-gradient method.
+fn driven_q_networks(seed: u64, dof: usize, precision: Precision) -> Result<Vec<u8>> {
+    let mut rng = SplitMix64(seed);
+    let energy = well_mlp(&mut rng, 2 * dof, precision);
+    let n2 = 2 * dof;
+    let l_net = random_mlp(&mut rng, &[dof, 6, n2 * (n2 + 1) / 2], precision);
+    let g_net = random_mlp(&mut rng, &[dof, 6, n2], precision);
+    let offset = f32_bytes(&vec![0.1; n2]);
+    let scale = f32_bytes(&vec![0.8; n2]);
+    let desc = ModelDesc {
+        dof: dof as u8,
+        offset: F32Bytes(&offset),
+        scale: F32Bytes(&scale),
+        energy_scale: 0.5,
+        energy: EnergyDesc::General(mlp_desc(&energy)?),
+        integrator: Integrator::new(Method::DiscreteGradient, 0.01),
+        dissipation: format::DissipationDesc::Network(mlp_desc(&l_net)?),
+        input: format::InputDesc::Network {
+            inputs: 1,
+            net: mlp_desc(&g_net)?,
+        },
+    };
+    encode(&desc)
+}
+
+/// The good fixture blobs: separable and general, f32 and int8, and two
+/// damped, driven models (their names contain `driven`): constant port
+/// terms, and port terms that are networks of q.
 pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
     Ok(vec![
         NamedBlob {
@@ -348,6 +376,10 @@ pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
         NamedBlob {
             name: "fixture-driven-dgrad-f32".into(),
             bytes: general_with(0x5EED_0003, 1, Net::Well, Precision::F32, true)?,
+        },
+        NamedBlob {
+            name: "fixture-driven-qnet-dgrad-int8".into(),
+            bytes: driven_q_networks(0x5EED_0005, 1, Precision::Int8)?,
         },
     ])
 }

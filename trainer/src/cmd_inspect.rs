@@ -64,6 +64,10 @@ pub struct Inspection {
     pub damped: bool,
     /// Number of inputs u1..um (0 for an autonomous model).
     pub inputs: usize,
+    /// Form of R: `constant` or `network <widths> <activation>` (of q).
+    pub dissipation_form: Option<String>,
+    /// Form of G, likewise.
+    pub input_form: Option<String>,
 }
 
 fn postcard_len<T: Serialize>(v: &T) -> usize {
@@ -133,6 +137,8 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
         macs_per_step: cost.macs_per_step,
         damped: model.dissipation.is_some(),
         inputs: model.input.as_ref().map_or(0, |(m, _)| *m),
+        dissipation_form: model.dissipation.as_ref().map(|t| t.label()),
+        input_form: model.input.as_ref().map(|(_, g)| g.label()),
     })
 }
 
@@ -175,8 +181,14 @@ pub fn run(args: Args) -> Result<()> {
     };
     row("integrator", it);
     if r.damped || r.inputs > 0 {
-        let damping = if r.damped { "damping R = L L^T, " } else { "" };
-        row("port terms", format!("{damping}{} input(s)", r.inputs));
+        let mut terms = Vec::new();
+        if let Some(form) = &r.dissipation_form {
+            terms.push(format!("damping R = L L^T ({form})"));
+        }
+        if let Some(form) = &r.input_form {
+            terms.push(format!("{} input(s) through G ({form})", r.inputs));
+        }
+        row("port terms", terms.join(", "));
     }
     row(
         "runtime RAM",

@@ -13,7 +13,7 @@ use std::path::PathBuf;
 #[command(after_help = after_help())]
 pub struct Args {
     /// Built-in system: flexure, crane, mount, or the damped/driven
-    /// flexure-damped, drivetrain and crane-trolley.
+    /// flexure-damped, drivetrain, flexure-squeeze and crane-trolley.
     #[arg(long, value_name = "NAME")]
     pub system: String,
 

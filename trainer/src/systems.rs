@@ -727,6 +727,12 @@ pub const PORT_CATALOG: &[PortEntry] = &[
         build: Drivetrain::build,
     },
     PortEntry {
+        name: "flexure-squeeze",
+        summary: "sensor mass on a flexure beside a fixed plate: squeeze-film damping that grows as the gap closes, no input, 1 dof",
+        params: FLEXURE_SQUEEZE_PARAMS,
+        build: FlexureSqueeze::build,
+    },
+    PortEntry {
         name: "crane-trolley",
         summary: "payload swinging under a moving trolley, rope damping, trolley acceleration input u1 (acts through cos q), 1 dof",
         params: CRANE_TROLLEY_PARAMS,
@@ -1083,5 +1089,109 @@ impl PortSystem for CraneTrolley {
     /// sqrt(g / l) / (2 pi) = 0.5 Hz at the defaults), amplitude `accel`.
     fn sample_excitation(&self, rng: &mut ChaCha8Rng) -> Multisine {
         Multisine::random(rng, 1, 5, self.accel, 0.05, 1.5)
+    }
+}
+
+const FLEXURE_SQUEEZE_PARAMS: &[ParamSpec] = &[
+    ParamSpec {
+        name: "m",
+        default: 0.05,
+        unit: "kg",
+        meaning: "moving mass",
+    },
+    ParamSpec {
+        name: "k",
+        default: 20.0,
+        unit: "N/m",
+        meaning: "flexure stiffness",
+    },
+    ParamSpec {
+        name: "gap",
+        default: 0.002,
+        unit: "m",
+        meaning: "air gap to the fixed plate at rest",
+    },
+    ParamSpec {
+        name: "zeta0",
+        default: 0.05,
+        unit: "1",
+        meaning: "damping ratio of small motions about rest",
+    },
+    ParamSpec {
+        name: "amp",
+        default: 0.0012,
+        unit: "m",
+        meaning: "largest initial amplitude (below the gap)",
+    },
+];
+
+/// Sensor mass on a flexure whose face moves against a fixed plate across
+/// an air film: q = displacement towards the plate (m), p = m dq/dt. The
+/// squeeze-film damping of parallel plates grows as the gap h - q closes,
+/// c(q) = c0 (h / (h - q))^3 (Reynolds lubrication theory; from memory),
+/// with c0 = 2 zeta0 sqrt(k m). H = p^2/(2m) + k q^2/2, R (momentum
+/// block) = c(q), no input.
+#[derive(Debug)]
+pub struct FlexureSqueeze {
+    params: ParamValues,
+    m: f64,
+    k: f64,
+    gap: f64,
+    c0: f64,
+    amp: f64,
+}
+
+impl FlexureSqueeze {
+    fn build(params: ParamValues) -> Box<dyn PortSystem> {
+        let (m, k, gap) = (params.get("m"), params.get("k"), params.get("gap"));
+        Box::new(FlexureSqueeze {
+            m,
+            k,
+            gap,
+            c0: 2.0 * params.get("zeta0") * (k * m).sqrt(),
+            amp: params.get("amp").clamp(0.0, 0.9 * gap),
+            params,
+        })
+    }
+
+    /// The squeeze-film damping coefficient at displacement q, N s/m.
+    pub fn damping_at(&self, q: f64) -> f64 {
+        let ratio = self.gap / (self.gap - q).max(1e-3 * self.gap);
+        self.c0 * ratio * ratio * ratio
+    }
+}
+
+impl PortSystem for FlexureSqueeze {
+    fn name(&self) -> &'static str {
+        "flexure-squeeze"
+    }
+    fn dof(&self) -> usize {
+        1
+    }
+    fn inputs(&self) -> usize {
+        0
+    }
+    fn params(&self) -> &ParamValues {
+        &self.params
+    }
+    fn hamiltonian(&self, x: &[f64]) -> f64 {
+        x[1] * x[1] / (2.0 * self.m) + 0.5 * self.k * x[0] * x[0]
+    }
+    fn gradient(&self, x: &[f64], g: &mut [f64]) {
+        g[0] = self.k * x[0];
+        g[1] = x[1] / self.m;
+    }
+    fn dissipation(&self, x: &[f64]) -> Vec<f64> {
+        vec![0.0, 0.0, 0.0, self.damping_at(x[0])]
+    }
+    fn input_matrix(&self, _x: &[f64]) -> Vec<f64> {
+        Vec::new()
+    }
+    /// Released from rest at a displacement uniform in +-amp.
+    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64> {
+        vec![uniform(rng, -1.0, 1.0) * self.amp, 0.0]
+    }
+    fn sample_excitation(&self, _rng: &mut ChaCha8Rng) -> Multisine {
+        Multisine::none()
     }
 }

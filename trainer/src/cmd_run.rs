@@ -709,6 +709,14 @@ pub fn run(args: Args) -> Result<()> {
     // 4. Export targets and golden rollouts.
     let mut devices = Vec::new();
     let targets = project.export_targets();
+    if inputs > 0 && golden_u.len() < project.check.golden_steps {
+        println!(
+            "      note: golden rollouts take {} steps, the length of held-out trajectory {}'s input sequence ([check] golden_steps = {})",
+            golden_u.len(),
+            val.trajectories.first().map_or("", |t| t.id.as_str()),
+            project.check.golden_steps
+        );
+    }
     println!("[4/5] export: {} device blob(s)", targets.len());
     for t in &targets {
         let ia = IntegratorArgs {

@@ -473,6 +473,77 @@ pub struct DrivenRollout {
     pub state_rel_rmse: f64,
     /// Why the rollout stopped early.
     pub failure: Option<String>,
+    /// The states of the rollout, the initial state first (for plots).
+    #[serde(skip)]
+    pub states: Vec<Vec<f32>>,
+}
+
+/// sqrt(mean over coordinates of MSE_i / mean(x_i^2)) of rolled-out
+/// `states` against the logged trajectory (rows beyond either end are left
+/// out).
+fn driven_rel_rmse(states: &[Vec<f32>], traj: &Trajectory) -> f64 {
+    let d = traj.x.ncols();
+    let mut sum = 0.0;
+    for i in 0..d {
+        let (mut e, mut r) = (0.0, 0.0);
+        for (s, truth) in states.iter().zip(traj.x.rows()) {
+            e += (s[i] as f64 - truth[i]).powi(2);
+            r += truth[i] * truth[i];
+        }
+        sum += e / r.max(f64::MIN_POSITIVE);
+    }
+    (sum / d as f64).sqrt()
+}
+
+/// Logged inputs of trajectory `k` as f32 rows (empty without inputs).
+fn input_rows(inputs: Option<&crate::dataset::Inputs>, k: usize) -> Vec<Vec<f32>> {
+    match inputs {
+        Some(u) => u.per_trajectory[k]
+            .rows()
+            .into_iter()
+            .map(|r| r.iter().map(|v| *v as f32).collect())
+            .collect(),
+        None => Vec::new(),
+    }
+}
+
+/// The baseline's driven rollouts of the held-out trajectories: RK4 at the
+/// log's interval with logged input row k held over step k, scored as the
+/// model's in [`check_port`].
+pub fn driven_baseline(
+    baseline: &BaselineModel,
+    data: &Dataset,
+    inputs: Option<&crate::dataset::Inputs>,
+) -> Vec<DrivenRollout> {
+    let mut out = Vec::new();
+    for (k, traj) in data.trajectories.iter().enumerate() {
+        let dt = trajectory_dt(traj) as f32;
+        let u = input_rows(inputs, k);
+        let mut x: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
+        let mut states = vec![x.clone()];
+        let mut failure = None;
+        for step in 0..traj.t.len().saturating_sub(1) {
+            baseline.step_rk4_driven(&mut x, u.get(step).map_or(&[], Vec::as_slice), dt);
+            if !x.iter().all(|v| v.is_finite()) {
+                failure = Some(format!(
+                    "step {step}: baseline rollout produced NaN or infinity"
+                ));
+                break;
+            }
+            states.push(x.clone());
+        }
+        out.push(DrivenRollout {
+            id: traj.id.clone(),
+            state_rel_rmse: if failure.is_some() {
+                f64::INFINITY
+            } else {
+                driven_rel_rmse(&states, traj)
+            },
+            failure,
+            states,
+        });
+    }
+    out
 }
 
 /// The checks specific to damped and driven models.
@@ -638,6 +709,72 @@ pub fn eigenvalues(a: &[Vec<f64>]) -> Vec<(f64, f64)> {
     roots.iter().map(|z| (z.0, z.1)).collect()
 }
 
+/// Modes of the linear field dx/dt = A x: oscillatory pairs once, rigid
+/// (zero) modes left out, sorted by natural frequency.
+fn modes_of(a: &[Vec<f64>]) -> Vec<ModeDamping> {
+    let eig = eigenvalues(a);
+    let largest = eig.iter().map(|(r, i)| r.hypot(*i)).fold(0.0, f64::max);
+    // Imaginary parts below 1e-9 of the largest modulus are rounding: real.
+    let mut modes: Vec<ModeDamping> = eig
+        .iter()
+        .map(|&(r, i)| (r, if i.abs() < 1e-9 * largest { 0.0 } else { i }))
+        .filter(|(r, i)| r.hypot(*i) > 1e-3 * largest && *i >= 0.0)
+        .map(|(real, imag)| {
+            let w = real.hypot(imag);
+            ModeDamping {
+                real,
+                imag,
+                natural_hz: w / (2.0 * std::f64::consts::PI),
+                damping_ratio: -real / w,
+            }
+        })
+        .collect();
+    modes.sort_by(|a, b| a.natural_hz.total_cmp(&b.natural_hz));
+    modes
+}
+
+/// Modes of a built-in damped or driven system linearized at x = 0 (its
+/// rest state): A = (J - R) Hess H, the Hessian by central differences of
+/// the exact gradient (steps 1e-6, exact for the quadratic energies of the
+/// built-in systems up to rounding).
+pub fn reference_modes(system: &dyn crate::systems::PortSystem) -> Vec<ModeDamping> {
+    let n = system.dof();
+    let d = 2 * n;
+    let r = system.dissipation(&vec![0.0; d]);
+    let mut hess = vec![vec![0.0; d]; d];
+    let (mut gp, mut gm) = (vec![0.0; d], vec![0.0; d]);
+    let h = 1e-6;
+    for j in 0..d {
+        let mut x = vec![0.0; d];
+        x[j] = h;
+        system.gradient(&x, &mut gp);
+        x[j] = -h;
+        system.gradient(&x, &mut gm);
+        for i in 0..d {
+            hess[i][j] = (gp[i] - gm[i]) / (2.0 * h);
+        }
+    }
+    // (J - R)[i][k]: J = [[0, I], [-I, 0]].
+    let jr = |i: usize, k: usize| -> f64 {
+        let j = if i < n && k == i + n {
+            1.0
+        } else if i >= n && k + n == i {
+            -1.0
+        } else {
+            0.0
+        };
+        j - r[i * d + k]
+    };
+    let a: Vec<Vec<f64>> = (0..d)
+        .map(|i| {
+            (0..d)
+                .map(|c| (0..d).map(|k| jr(i, k) * hess[k][c]).sum())
+                .collect()
+        })
+        .collect();
+    modes_of(&a)
+}
+
 /// Damping per mode at the model's rest state, and driven rollouts of the
 /// held-out trajectories with their logged inputs (`inputs` per
 /// trajectory; `None` for an undriven model).
@@ -676,54 +813,22 @@ pub fn check_port(
         .map(|(v, r)| v.abs() / r)
         .fold(0.0, f64::max);
     let a = field_jacobian(model, &x, &scale)?;
-    let eig = eigenvalues(&a);
-    let largest = eig.iter().map(|(r, i)| r.hypot(*i)).fold(0.0, f64::max);
-    // Imaginary parts below 1e-9 of the largest modulus are rounding: real.
-    let mut modes: Vec<ModeDamping> = eig
-        .iter()
-        .map(|&(r, i)| (r, if i.abs() < 1e-9 * largest { 0.0 } else { i }))
-        .filter(|(r, i)| r.hypot(*i) > 1e-3 * largest && *i >= 0.0)
-        .map(|(real, imag)| {
-            let w = real.hypot(imag);
-            ModeDamping {
-                real,
-                imag,
-                natural_hz: w / (2.0 * std::f64::consts::PI),
-                damping_ratio: -real / w,
-            }
-        })
-        .collect();
-    modes.sort_by(|a, b| a.natural_hz.total_cmp(&b.natural_hz));
+    let modes = modes_of(&a);
     let mut rollouts = Vec::new();
     for (k, traj) in data.trajectories.iter().enumerate() {
         let dt = trajectory_dt(traj);
         let stepped = model
             .with_integrator(integrator_for(model.integrator(), dt))
             .map_err(|e| anyhow!("{e}"))?;
-        let u: Vec<Vec<f32>> = match inputs {
-            Some(u) => u.per_trajectory[k]
-                .rows()
-                .into_iter()
-                .map(|r| r.iter().map(|v| *v as f32).collect())
-                .collect(),
-            None => Vec::new(),
-        };
+        let u = input_rows(inputs, k);
         let x0: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
         let steps = traj.t.len() - 1;
         let out = crate::rollout::roll_driven(&stepped, &x0, steps, &u)?;
-        let mut sum = 0.0;
-        for i in 0..d {
-            let (mut e, mut r) = (0.0, 0.0);
-            for (s, truth) in out.states.iter().zip(traj.x.rows()) {
-                e += (s[i] as f64 - truth[i]).powi(2);
-                r += truth[i] * truth[i];
-            }
-            sum += e / r.max(f64::MIN_POSITIVE);
-        }
         rollouts.push(DrivenRollout {
             id: traj.id.clone(),
-            state_rel_rmse: (sum / d as f64).sqrt(),
+            state_rel_rmse: driven_rel_rmse(&out.states, traj),
             failure: out.failure.map(|(k, e)| format!("step {k}: {e}")),
+            states: out.states,
         });
     }
     Ok(PortCheckReport {

@@ -229,23 +229,99 @@ pub fn charts(
         ));
     }
     if let Some(h) = history {
-        let pts = |v: &[f64]| {
-            v.iter()
-                .enumerate()
-                .map(|(k, l)| ((k + 1) as f64, *l))
-                .collect()
-        };
+        out.push(("loss".into(), loss_chart(h)));
+    }
+    out
+}
+
+/// The loss curves of a fit.
+pub fn loss_chart(h: &HistoryFile) -> Chart {
+    let pts = |v: &[f64]| {
+        v.iter()
+            .enumerate()
+            .map(|(k, l)| ((k + 1) as f64, *l))
+            .collect()
+    };
+    Chart {
+        title: "Fit history".into(),
+        x_label: "epoch (-)".into(),
+        y_label: "loss, normalized units (-)".into(),
+        log_y: true,
+        series: vec![
+            series("training", pts(&h.train), 1, false, false),
+            series("validation", pts(&h.val), 2, false, false),
+        ],
+    }
+}
+
+/// Charts of a driven rollout of one held-out trajectory: its logged inputs
+/// over time, then each momentum p_i over time (log, model, baseline).
+/// `model` and `baseline` hold rolled-out states, one per logged sample.
+pub fn driven_charts(
+    traj: &crate::dataset::Trajectory,
+    inputs: Option<&ndarray::Array2<f64>>,
+    model: &[Vec<f32>],
+    baseline: Option<&[Vec<f32>]>,
+    keep: usize,
+) -> Vec<(String, Chart)> {
+    let thin = |v: Vec<(f64, f64)>| -> Vec<(f64, f64)> {
+        let stride = v.len().div_ceil(keep.max(1)).max(1);
+        v.into_iter().step_by(stride).collect()
+    };
+    let mut out = Vec::new();
+    if let Some(u) = inputs {
+        let s = (0..u.ncols())
+            .map(|k| {
+                let pts = traj
+                    .t
+                    .iter()
+                    .zip(u.column(k))
+                    .map(|(t, v)| (*t, *v))
+                    .collect();
+                series(&format!("u{}", k + 1), thin(pts), k % 3, false, false)
+            })
+            .collect();
         out.push((
-            "loss".into(),
+            "inputs".into(),
             Chart {
-                title: "Fit history".into(),
-                x_label: "epoch (-)".into(),
-                y_label: "loss, normalized units (-)".into(),
-                log_y: true,
-                series: vec![
-                    series("training", pts(&h.train), 1, false, false),
-                    series("validation", pts(&h.val), 2, false, false),
-                ],
+                title: format!("Held-out input sequence, trajectory {}", traj.id),
+                x_label: "time (s)".into(),
+                y_label: "input (log units)".into(),
+                log_y: false,
+                series: s,
+            },
+        ));
+    }
+    let n = traj.x.ncols() / 2;
+    let rolled = |states: &[Vec<f32>], c: usize| -> Vec<(f64, f64)> {
+        states
+            .iter()
+            .zip(&traj.t)
+            .map(|(s, t)| (*t, s[c] as f64))
+            .collect()
+    };
+    for i in 0..n {
+        let c = n + i;
+        let logged = traj.t.iter().zip(traj.x.column(c)).map(|(t, v)| (*t, *v));
+        let mut s = vec![
+            series("log", thin(logged.collect()), 0, false, true),
+            series("energy model", thin(rolled(model, c)), 1, false, false),
+        ];
+        if let Some(b) = baseline {
+            s.push(series("baseline", thin(rolled(b, c)), 2, true, false));
+        }
+        out.push((
+            format!("response-p{}", i + 1),
+            Chart {
+                title: format!(
+                    "Response to the held-out inputs: p{} over time, trajectory {}",
+                    i + 1,
+                    traj.id
+                ),
+                x_label: "time (s)".into(),
+                y_label: format!("p{} (SI)", i + 1),
+                log_y: false,
+                series: s,
             },
         ));
     }

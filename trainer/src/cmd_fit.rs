@@ -17,7 +17,7 @@ use crate::data::{self, LoadOptions};
 use crate::dataset::{Dataset, Inputs};
 use crate::export;
 use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
-use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch};
+use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
 use crate::integrator_args::MethodArg;
 use crate::net::Activation;
 
@@ -106,7 +106,9 @@ pub struct Args {
     #[arg(long, default_value_t = 0, value_name = "N")]
     pub seed: u64,
     /// Also fit the plain vector-field baseline and write it to
-    /// OUT with extension `.baseline.json`.
+    /// OUT with extension `.baseline.json`. With inputs u1..um in the log
+    /// the baseline takes them too (dx/dt = f(x, u), stepped by RK4 with u
+    /// held over the step).
     #[arg(long)]
     pub baseline: bool,
     /// Learn a constant dissipation R = L L^T acting on the momenta
@@ -248,6 +250,56 @@ struct RunSummary {
     best_val: f64,
     /// Why training ended.
     stop: String,
+}
+
+/// Write the `--json` run summary of `fitted` (trained on `train_samples`
+/// rows; `final_train_loss` over all of them with the kept parameters).
+fn write_summary(
+    path: &Path,
+    fitted: &fit::Fitted<EnergyModel>,
+    threads: usize,
+    train_samples: usize,
+    final_train_loss: f64,
+) -> Result<()> {
+    let r = &fitted.report;
+    let summary = RunSummary {
+        samples_per_second: r.samples_per_second(),
+        steps: r.steps,
+        batch: r.batch,
+        threads,
+        seconds: r.seconds,
+        train_samples,
+        parameters: fitted.model.params.len()
+            + fitted.model.port.as_ref().map_or(0, |p| p.params.len()),
+        final_train_loss,
+        last_epoch_loss: r.history.train.last().copied(),
+        best_val: r.best_val,
+        stop: stop_text(r.stop),
+    };
+    let json = serde_json::to_vec_pretty(&summary)?;
+    crate::atomic::write_atomic(path, &json)
+        .with_context(|| format!("writing run summary {}", path.display()))?;
+    println!("wrote {}", path.display());
+    Ok(())
+}
+
+/// A damped or driven model's mean per-sample loss over every row of
+/// `data` (with its inputs `u`).
+fn full_port_loss(model: &EnergyModel, data: &Dataset, u: Option<&Inputs>) -> Result<f64> {
+    let port = model
+        .port
+        .as_ref()
+        .context("the model has no dissipation or input terms")?;
+    let (z, t) = fit::stack_inputs(&model.norm, data, u, &port.input_scale)?;
+    let obj = PortObjective::new(
+        model.dof,
+        model.arch.clone(),
+        port.arch.clone(),
+        &model.norm,
+    );
+    let p: Vec<f32> = model.params.iter().chain(&port.params).copied().collect();
+    let sum = obj.loss_sum(&p, z.view(), t.view(), &mut Default::default(), None);
+    Ok(sum / z.nrows().max(1) as f64)
 }
 
 /// The structure asked for on the command line.
@@ -396,24 +448,8 @@ pub fn run(args: Args) -> Result<()> {
     let fitted = fit::fit_energy(&train, val.as_ref(), &arch, &settings)?;
     write_model(&args, &fitted, integrator)?;
     if let Some(path) = &args.json {
-        let r = &fitted.report;
-        let summary = RunSummary {
-            samples_per_second: r.samples_per_second(),
-            steps: r.steps,
-            batch: r.batch,
-            threads: settings.threads,
-            seconds: r.seconds,
-            train_samples: train.samples(),
-            parameters: fitted.model.params.len(),
-            final_train_loss: full_data_loss(&fitted.model, &train),
-            last_epoch_loss: r.history.train.last().copied(),
-            best_val: r.best_val,
-            stop: stop_text(r.stop),
-        };
-        let json = serde_json::to_vec_pretty(&summary)?;
-        crate::atomic::write_atomic(path, &json)
-            .with_context(|| format!("writing run summary {}", path.display()))?;
-        println!("wrote {}", path.display());
+        let loss = full_data_loss(&fitted.model, &train);
+        write_summary(path, &fitted, settings.threads, train.samples(), loss)?;
     }
     if args.baseline && !interrupt.load(Ordering::SeqCst) {
         let base = fit::fit_baseline(&train, val.as_ref(), &choice.hidden, act, &settings)?;
@@ -434,9 +470,6 @@ fn run_port(
     all_inputs: Option<Inputs>,
     opts: &LoadOptions,
 ) -> Result<()> {
-    if args.baseline {
-        bail!("--baseline is not available for damped or driven models (it has no input or dissipation term)");
-    }
     type Split = (Dataset, Option<Inputs>);
     let ((train, train_u), val): (Split, Option<Split>) = match &args.val {
         Some(path) => {
@@ -487,7 +520,7 @@ fn run_port(
     }
     let integrator = stored_integrator(args, method, &train)?;
     let interrupt = interrupt_flag();
-    let settings = fit_settings(args, interrupt);
+    let settings = fit_settings(args, interrupt.clone());
     let m = train_u.as_ref().map_or(0, |u| u.count);
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} inputs, {}",
@@ -516,8 +549,23 @@ fn run_port(
         &settings,
     )?;
     write_model(args, &fitted, integrator)?;
-    if args.json.is_some() {
-        eprintln!("note: --json is not written for damped or driven models yet");
+    if let Some(path) = &args.json {
+        let loss = full_port_loss(&fitted.model, &train, train_u.as_ref())?;
+        write_summary(path, &fitted, settings.threads, train.samples(), loss)?;
+    }
+    if args.baseline && !interrupt.load(Ordering::SeqCst) {
+        let base = fit::fit_baseline_driven(
+            &train,
+            train_u.as_ref(),
+            val.as_ref().map(|(v, u)| (v, u.as_ref())),
+            &choice.hidden,
+            act,
+            &settings,
+        )?;
+        print_report("baseline", &base.report);
+        let path = baseline_path(&args.out);
+        export::write_baseline(&path, &base.model)?;
+        println!("wrote {}", path.display());
     }
     println!("{}", crate::CAUTION);
     Ok(())

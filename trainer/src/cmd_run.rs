@@ -3,12 +3,17 @@
 //! baseline, one blob per export target, golden rollouts for the device
 //! check, `report.json` and `report.html`. Steps whose inputs did not change
 //! since the last run are reused (their inputs and settings are hashed).
+//! A damped or driven project (`[model] dissipation = true`, or input
+//! columns u1..um in the training log) fits the port-Hamiltonian model and
+//! a baseline that takes the inputs, reports damping per mode and the
+//! response to held-out input sequences, and keeps the golden rollouts'
+//! input sequence beside them (`golden/<blob>-inputs.csv`).
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::{anyhow, bail, Context, Result};
-use keel_runtime::{Integrator, Method};
+use keel_runtime::{Hamiltonian, Integrator, Method};
 use serde::{de::DeserializeOwned, Serialize};
 use sha2::{Digest, Sha256};
 
@@ -19,15 +24,18 @@ use crate::cmd_check::{charts, units, HistoryFile};
 use crate::cmd_export::export;
 use crate::cmd_inspect::inspect;
 use crate::cmd_rollout::to_csv;
-use crate::data::{load_csv, split_by_trajectory, LoadOptions};
-use crate::dataset::{Dataset, DerivativeSource};
-use crate::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::data::{load_csv_with_inputs, split_by_trajectory, split_with_inputs, LoadOptions};
+use crate::dataset::{Dataset, DerivativeSource, Inputs};
+use crate::fit::{
+    fit_baseline_driven, fit_energy, fit_port, ArchChoice, FitSettings, StopReason, TrainReport,
+};
 use crate::integrator_args::{IntegratorArgs, MethodArg};
 use crate::project::{ActivationName, Arch, DeviceBudget, KineticKind, Project};
 use crate::report::{
-    render_html, BudgetVerdict, CoordinateSummary, DataSummary, DeviceBlob, FitSummary, RunReport,
+    render_html, BudgetVerdict, CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison,
+    FitSummary, PortReport, RunReport,
 };
-use crate::rollout::{roll, sample_states};
+use crate::rollout::{roll_driven, sample_states};
 
 /// Arguments of `keel run`.
 #[derive(Debug, clap::Args)]
@@ -63,7 +71,12 @@ fn write_json<T: Serialize>(p: &Path, v: &T) -> Result<()> {
 /// deviation s, x[k+1] - 2x[k] + x[k-1] has variance 6 s^2 (common practice
 /// for well-sampled smooth signals; the motion's own curvature adds a little,
 /// so this is an upper bound).
-fn data_summary(train_file: &str, train: &Dataset, val: Option<&Dataset>) -> DataSummary {
+fn data_summary(
+    train_file: &str,
+    train: &Dataset,
+    val: Option<&Dataset>,
+    inputs: usize,
+) -> DataSummary {
     let n2 = 2 * train.dof;
     let names = crate::data::column_names(train.dof, false);
     let mut dts: Vec<f64> = train
@@ -112,6 +125,7 @@ fn data_summary(train_file: &str, train: &Dataset, val: Option<&Dataset>) -> Dat
             DerivativeSource::Estimated => "estimated (Savitzky-Golay)".into(),
         },
         coordinates,
+        inputs,
     }
 }
 
@@ -180,11 +194,251 @@ fn budget_verdict(b: &DeviceBudget, bytes: usize, ram: usize, macs_per_step: u32
     }
 }
 
-fn method_of(m: Option<MethodArg>, separable: bool) -> Method {
+fn method_of(m: Option<MethodArg>, separable: bool, port: bool) -> Method {
     match m {
         Some(m) => m.into(),
+        None if port => Method::DiscreteGradient,
         None if separable => Method::StormerVerlet,
         None => Method::ImplicitMidpoint,
+    }
+}
+
+/// Refuse a method that cannot step a damped or driven model.
+fn check_port_method(method: Method, whence: &str) -> Result<()> {
+    if !method.handles_port_terms() {
+        bail!(
+            "{whence} integrator = \"{}\" cannot step a damped or driven model: it steps only J dH/dx \
+             and would drop the dissipation R and the inputs G u; use \"discrete-gradient\" (the \
+             default; exact energy balance) or \"midpoint\"",
+            crate::integrator_args::method_name(method)
+        );
+    }
+    Ok(())
+}
+
+/// The training and validation logs with their inputs (`None` for logs
+/// without u columns). `val_bytes` is empty when validation trajectories
+/// were held out of the training log.
+struct Logs {
+    train: Dataset,
+    train_u: Option<Inputs>,
+    val: Dataset,
+    val_u: Option<Inputs>,
+    train_bytes: Vec<u8>,
+    val_bytes: Vec<u8>,
+}
+
+fn load_logs(dir: &Path, project: &Project, opts: &LoadOptions) -> Result<Logs> {
+    let train_path = dir.join(&project.data.train);
+    let train_bytes = std::fs::read(&train_path)
+        .with_context(|| format!("{}: cannot read", train_path.display()))?;
+    let (all, all_u) = load_csv_with_inputs(&train_path, opts)?;
+    let m = all_u.as_ref().map_or(0, |u| u.count);
+    match &project.data.validation {
+        Some(v) => {
+            let p = dir.join(v);
+            let b = std::fs::read(&p).with_context(|| format!("{}: cannot read", p.display()))?;
+            let (vd, vu) = load_csv_with_inputs(&p, opts)?;
+            if vd.dof != all.dof {
+                bail!(
+                    "{}: {} degrees of freedom, the training log {}",
+                    p.display(),
+                    vd.dof,
+                    all.dof
+                );
+            }
+            let got = vu.as_ref().map_or(0, |u| u.count);
+            if got != m {
+                bail!(
+                    "{}: line 1: {got} input columns (u1..), the training log {} has {m}",
+                    p.display(),
+                    train_path.display()
+                );
+            }
+            Ok(Logs {
+                train: all,
+                train_u: all_u,
+                val: vd,
+                val_u: vu,
+                train_bytes,
+                val_bytes: b,
+            })
+        }
+        None => {
+            let (frac, seed) = (project.data.val_fraction, project.fit.seed);
+            let ((t, tu), (v, vu)) = match &all_u {
+                Some(u) => {
+                    let ((t, tu), (v, vu)) = split_with_inputs(&all, u, frac, seed);
+                    ((t, Some(tu)), (v, Some(vu)))
+                }
+                None => {
+                    let (t, v) = split_by_trajectory(&all, frac, seed);
+                    ((t, None), (v, None))
+                }
+            };
+            if v.trajectories.is_empty() {
+                bail!("no validation trajectories: add [data] validation or more trajectories (val_fraction {frac})");
+            }
+            Ok(Logs {
+                train: t,
+                train_u: tu,
+                val: v,
+                val_u: vu,
+                train_bytes,
+                val_bytes: Vec::new(),
+            })
+        }
+    }
+}
+
+/// The inputs the golden rollouts replay: validation trajectory 0's logged
+/// inputs, at most `steps` rows (row k held over step k).
+fn golden_inputs(val: &Dataset, val_u: Option<&Inputs>, steps: usize) -> (String, Vec<Vec<f32>>) {
+    match (val.trajectories.first(), val_u) {
+        (Some(t), Some(u)) => (
+            t.id.clone(),
+            u.per_trajectory[0]
+                .rows()
+                .into_iter()
+                .take(steps)
+                .map(|r| r.iter().map(|v| *v as f32).collect())
+                .collect(),
+        ),
+        _ => (String::new(), Vec::new()),
+    }
+}
+
+/// The input sequence as CSV `t,u1..um` (t = k dt, row k held over step
+/// k), shortest round-trip decimals: `keel rollout --inputs` reads it back
+/// bit for bit.
+fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
+    let m = rows.first().map_or(0, Vec::len);
+    let mut text = String::from("t");
+    for i in 1..=m {
+        text.push_str(&format!(",u{i}"));
+    }
+    text.push('\n');
+    for (k, row) in rows.iter().enumerate() {
+        text.push_str(&format!("{}", k as f64 * dt as f64));
+        for v in row {
+            text.push_str(&format!(",{v}"));
+        }
+        text.push('\n');
+    }
+    text
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+/// The damped or driven model's check: damping per mode, driven rollouts of
+/// the held-out trajectories for model and baseline, and their charts.
+#[allow(clippy::too_many_arguments)]
+fn port_check(
+    model: &HostModel<'_>,
+    blob: &BlobModel,
+    baseline: Option<&crate::hnn::BaselineModel>,
+    logs: &Logs,
+    reference: Option<&dyn crate::systems::PortSystem>,
+    dissipation: bool,
+    golden_input_trajectory: String,
+    history: &HistoryFile,
+) -> Result<(PortReport, Vec<(String, String)>)> {
+    let r = crate::check::check_port(model, blob, &logs.val, logs.val_u.as_ref())?;
+    let base = baseline.map(|b| crate::check::driven_baseline(b, &logs.val, logs.val_u.as_ref()));
+    let driven: Vec<DrivenComparison> = r
+        .rollouts
+        .iter()
+        .enumerate()
+        .map(|(k, m)| {
+            let b = base.as_ref().map(|b| &b[k]);
+            DrivenComparison {
+                id: m.id.clone(),
+                samples: logs.val.trajectories[k].t.len(),
+                model_state_rel_rmse: m.state_rel_rmse,
+                baseline_state_rel_rmse: b.map(|b| b.state_rel_rmse),
+                model_failure: m.failure.clone(),
+                baseline_failure: b.and_then(|b| b.failure.clone()),
+            }
+        })
+        .collect();
+    let mut figs = Vec::new();
+    if let (Some(t), Some(m)) = (logs.val.trajectories.first(), r.rollouts.first()) {
+        let u = logs.val_u.as_ref().map(|u| &u.per_trajectory[0]);
+        let b = base.as_ref().map(|b| b[0].states.as_slice());
+        figs = crate::cmd_check::driven_charts(t, u, &m.states, b, 1500);
+    }
+    figs.push(("loss".into(), crate::cmd_check::loss_chart(history)));
+    let report = PortReport {
+        inputs: model.inputs(),
+        dissipation,
+        median_model_state_rel_rmse: median(
+            driven.iter().map(|d| d.model_state_rel_rmse).collect(),
+        ),
+        median_baseline_state_rel_rmse: base
+            .as_ref()
+            .map(|b| median(b.iter().map(|d| d.state_rel_rmse).collect())),
+        rest: r.rest,
+        rest_residual: r.rest_residual,
+        modes: r.modes,
+        reference_modes: reference.map(crate::check::reference_modes),
+        driven,
+        golden_input_trajectory,
+    };
+    Ok((
+        report,
+        figs.into_iter()
+            .map(|(_, c)| (c.title.clone(), c.to_svg()))
+            .collect(),
+    ))
+}
+
+/// Print the damped or driven model's check.
+fn print_port(r: &PortReport) {
+    println!(
+        "      {:<6} {:>18} {:>14} {:>30}",
+        "mode", "natural freq (Hz)", "damping ratio", "reference system (Hz, ratio)"
+    );
+    for (k, m) in r.modes.iter().enumerate() {
+        let reference = r
+            .reference_modes
+            .as_ref()
+            .and_then(|v| v.get(k))
+            .map_or("-".into(), |m| {
+                format!("{:.4}, {:.4}", m.natural_hz, m.damping_ratio)
+            });
+        println!(
+            "      {:<6} {:>18.4} {:>14.4} {:>30}",
+            k + 1,
+            m.natural_hz,
+            m.damping_ratio,
+            reference
+        );
+    }
+    println!(
+        "      {:<10} {:>26} {:>12}",
+        "trajectory", "driven state rel. RMSE", "baseline"
+    );
+    for d in &r.driven {
+        let show = |v: f64, f: &Option<String>| {
+            if f.is_some() {
+                "failed".to_string()
+            } else {
+                format!("{v:.2e}")
+            }
+        };
+        println!(
+            "      {:<10} {:>26} {:>12}",
+            d.id,
+            show(d.model_state_rel_rmse, &d.model_failure),
+            d.baseline_state_rel_rmse
+                .map_or("-".into(), |b| show(b, &d.baseline_failure)),
+        );
     }
 }
 
@@ -194,8 +448,6 @@ pub fn run(args: Args) -> Result<()> {
     let dir = &args.dir;
     let project = Project::load(dir)?;
     let out = dir.join("out");
-    std::fs::create_dir_all(out.join("golden"))
-        .with_context(|| format!("{}: cannot create", out.display()))?;
     let name = project.name.clone().unwrap_or_else(|| {
         dir.file_name()
             .map(|s| s.to_string_lossy().into_owned())
@@ -210,45 +462,41 @@ pub fn run(args: Args) -> Result<()> {
         step_tolerance: project.data.step_tolerance,
         ..LoadOptions::default()
     };
-    let train_path = dir.join(&project.data.train);
-    let train_bytes = std::fs::read(&train_path)
-        .with_context(|| format!("{}: cannot read", train_path.display()))?;
-    let all = load_csv(&train_path, &opts)?;
-    let (val_bytes, train, val) = match &project.data.validation {
-        Some(v) => {
-            let p = dir.join(v);
-            let b = std::fs::read(&p).with_context(|| format!("{}: cannot read", p.display()))?;
-            let vd = load_csv(&p, &opts)?;
-            if vd.dof != all.dof {
-                bail!(
-                    "{}: {} degrees of freedom, the training log {}",
-                    p.display(),
-                    vd.dof,
-                    all.dof
-                );
-            }
-            (b, all, vd)
-        }
-        None => {
-            let (t, v) = split_by_trajectory(&all, project.data.val_fraction, project.fit.seed);
-            if v.trajectories.is_empty() {
-                bail!("no validation trajectories: add [data] validation or more trajectories (val_fraction {})", project.data.val_fraction);
-            }
-            (Vec::new(), t, v)
-        }
-    };
+    let logs = load_logs(dir, &project, &opts)?;
+    let inputs = logs.train_u.as_ref().map_or(0, |u| u.count);
+    let port = inputs > 0 || project.model.damped();
+    if inputs == 0 && !project.model.input_net.is_empty() {
+        bail!(
+            "{}: [model] input_net: the training log has no input columns u1..um, so there is no G to learn",
+            dir.join("keel.toml").display()
+        );
+    }
+    let (train, val) = (&logs.train, &logs.val);
     let data = data_summary(
         &project.data.train.display().to_string(),
-        &train,
-        Some(&val),
+        train,
+        Some(val),
+        inputs,
     );
     println!(
-        "      {} training trajectories ({} samples), {} validation, {} dof, derivatives {}",
+        "      {} training trajectories ({} samples), {} validation, {} dof, derivatives {}{}",
         data.train_trajectories,
         data.train_samples,
         data.validation_trajectories,
         data.dof,
-        data.derivatives
+        data.derivatives,
+        if port {
+            format!(
+                "; damped/driven model: {inputs} input(s), {}",
+                crate::hnn::PortArch {
+                    inputs,
+                    ..project.model.port_terms()
+                }
+                .label(data.dof)
+            )
+        } else {
+            String::new()
+        }
     );
 
     // 2. Fit (reused when data and settings are unchanged).
@@ -266,22 +514,33 @@ pub fn run(args: Args) -> Result<()> {
         activation,
     };
     let arch = choice.build(train.dof)?;
-    let method = method_of(m.integrator, separable);
+    let method = method_of(m.integrator, separable, port);
     let dt = m.dt.unwrap_or(data.sample_interval_s as f32);
     let integrator = Integrator::new(method, dt);
     if !integrator.is_valid() {
         bail!("[model] time step {dt} s is not usable");
     }
+    if port {
+        check_port_method(method, "[model]")?;
+        for t in project.export_targets() {
+            if let Some(i) = t.integrator {
+                check_port_method(i.into(), &format!("[[export]] {}:", t.name))?;
+            }
+        }
+    }
     if method.needs_separable() && !separable {
         bail!("[model] integrator {method:?} needs arch = \"separable\"; use \"midpoint\"");
     }
+    // Nothing is written before the data and settings are known to be usable.
+    std::fs::create_dir_all(out.join("golden"))
+        .with_context(|| format!("{}: cannot create", out.display()))?;
     let settings_json = serde_json::to_vec(&(
         &project.data,
         &project.model,
         &project.fit,
         env!("CARGO_PKG_VERSION"),
     ))?;
-    let fit_hash = sha(&[&train_bytes, &val_bytes, &settings_json]);
+    let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
     let model_path = out.join("model.keel");
     let baseline_path = out.join("model.baseline.json");
     let fit_path = out.join("fit.json");
@@ -317,17 +576,44 @@ pub fn run(args: Args) -> Result<()> {
                 quiet: args.quiet,
                 ..FitSettings::default()
             };
-            let fitted = fit_energy(&train, Some(&val), &arch, &settings)?;
+            let fitted = if port {
+                fit_port(
+                    train,
+                    logs.train_u.as_ref(),
+                    Some((val, logs.val_u.as_ref())),
+                    &arch,
+                    &project.model.port_terms(),
+                    &settings,
+                )?
+            } else {
+                fit_energy(train, Some(val), &arch, &settings)?
+            };
             let bytes = crate::export::energy_blob(
                 &fitted.model,
                 integrator,
                 crate::blob::WeightKind::F32,
             )?;
             write_atomic(&model_path, &bytes)?;
-            let f = fit_summary(&fitted.report, arch.param_count(train.dof));
+            let params = arch.param_count(train.dof)
+                + fitted.model.port.as_ref().map_or(0, |p| p.params.len());
+            let f = fit_summary(&fitted.report, params);
             let b = if project.fit.baseline {
-                println!("      baseline (plain vector field, same hidden sizes)");
-                let base = fit_baseline(&train, Some(&val), &choice.hidden, activation, &settings)?;
+                println!(
+                    "      baseline (plain vector field, same hidden sizes{})",
+                    if inputs > 0 {
+                        ", state and inputs in"
+                    } else {
+                        ""
+                    }
+                );
+                let base = fit_baseline_driven(
+                    train,
+                    logs.train_u.as_ref(),
+                    Some((val, logs.val_u.as_ref())),
+                    &choice.hidden,
+                    activation,
+                    &settings,
+                )?;
                 crate::export::write_baseline(&baseline_path, &base.model)?;
                 let params = base.model.params.len();
                 Some(fit_summary(&base.report, params))
@@ -363,29 +649,80 @@ pub fn run(args: Args) -> Result<()> {
         .iter()
         .map(|(k, v)| (k.clone(), *v))
         .collect();
-    let system = project
-        .check
-        .reference_system
-        .as_deref()
-        .map(|s| crate::systems::build_system(s, &params))
-        .transpose()
-        .map_err(|e| anyhow!("[check] reference_system: {e}"))?;
-    let check_report = check(
-        &model,
-        baseline.as_ref(),
-        &val,
-        system.as_deref(),
-        &CheckSettings {
-            horizon_steps: Some(project.check.horizon_steps),
-            ..CheckSettings::default()
-        },
-    )?;
-    crate::cmd_check::print_table(&check_report);
+    let reference = project.check.reference_system.as_deref();
+    let system = match reference {
+        Some(s) if !port => Some(
+            crate::systems::build_system(s, &params)
+                .map_err(|e| anyhow!("[check] reference_system: {e}"))?,
+        ),
+        _ => None,
+    };
+    let port_system = match reference {
+        Some(s) if port => Some(
+            crate::systems::build_port_system(s, &params)
+                .ok_or_else(|| {
+                    anyhow!(
+                        "[check] reference_system = \"{s}\" is not a damped or driven system; a damped or driven project needs one of {}",
+                        crate::systems::PORT_CATALOG
+                            .iter()
+                            .map(|p| p.name)
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )
+                })?
+                .map_err(|e| anyhow!("[check] reference_system: {e}"))?,
+        ),
+        _ => None,
+    };
+    let history = HistoryFile {
+        train: fit.train_loss.clone(),
+        val: fit.validation_loss.clone(),
+    };
+    let src = BlobModel::from_bytes(&model_bytes).map_err(|e| anyhow!("{e}"))?;
+    let (golden_id, golden_u) = golden_inputs(val, logs.val_u.as_ref(), project.check.golden_steps);
+    let (check_report, port_report, figs) = if port {
+        let (r, figs) = port_check(
+            &model,
+            &src,
+            baseline.as_ref(),
+            &logs,
+            port_system.as_deref(),
+            project.model.damped(),
+            golden_id,
+            &history,
+        )?;
+        print_port(&r);
+        (None, Some(r), figs)
+    } else {
+        let r = check(
+            &model,
+            baseline.as_ref(),
+            val,
+            system.as_deref(),
+            &CheckSettings {
+                horizon_steps: Some(project.check.horizon_steps),
+                ..CheckSettings::default()
+            },
+        )?;
+        crate::cmd_check::print_table(&r);
+        let figs: Vec<(String, String)> = charts(&r, Some(&history), units(system.as_deref()))
+            .into_iter()
+            .map(|(_, c)| (c.title.clone(), c.to_svg()))
+            .collect();
+        (Some(r), None, figs)
+    };
 
     // 4. Export targets and golden rollouts.
-    let src = BlobModel::from_bytes(&model_bytes).map_err(|e| anyhow!("{e}"))?;
     let mut devices = Vec::new();
     let targets = project.export_targets();
+    if inputs > 0 && golden_u.len() < project.check.golden_steps {
+        println!(
+            "      note: golden rollouts take {} steps, the length of held-out trajectory {}'s input sequence ([check] golden_steps = {})",
+            golden_u.len(),
+            val.trajectories.first().map_or("", |t| t.id.as_str()),
+            project.check.golden_steps
+        );
+    }
     println!("[4/5] export: {} device blob(s)", targets.len());
     for t in &targets {
         let ia = IntegratorArgs {
@@ -423,6 +760,11 @@ pub fn run(args: Args) -> Result<()> {
         let ins = inspect(&bytes)?;
         let dev = HostModel::from_bytes(&bytes).map_err(|e| anyhow!("{e}"))?;
         let mut golden = Vec::new();
+        let golden_steps = if inputs > 0 {
+            golden_u.len().min(project.check.golden_steps)
+        } else {
+            project.check.golden_steps
+        };
         for (k, x0) in sample_states(
             &src.offset,
             &src.scale,
@@ -433,7 +775,7 @@ pub fn run(args: Args) -> Result<()> {
         .iter()
         .enumerate()
         {
-            let r = roll(&dev, x0, project.check.golden_steps)?;
+            let r = roll_driven(&dev, x0, golden_steps, &golden_u)?;
             if let Some((step, e)) = r.failure {
                 bail!(
                     "golden rollout {k} of {} failed at step {step}: {e}",
@@ -446,6 +788,13 @@ pub fn run(args: Args) -> Result<()> {
                 to_csv(&r.states, src.dof, dev.integrator().dt, true).as_bytes(),
             )?;
             golden.push(file);
+        }
+        let golden_inputs_file = (inputs > 0).then(|| format!("golden/{}-inputs.csv", t.name));
+        if let Some(file) = &golden_inputs_file {
+            write_atomic(
+                &out.join(file),
+                inputs_csv(&golden_u[..golden_steps], dev.integrator().dt).as_bytes(),
+            )?;
         }
         let measured: Option<serde_json::Value> =
             read_json(&out.join(format!("device/{}.json", t.name)));
@@ -473,6 +822,7 @@ pub fn run(args: Args) -> Result<()> {
                 .and_then(|v| v.get("instructions_per_step"))
                 .and_then(|v| v.as_f64()),
             golden,
+            golden_inputs: golden_inputs_file,
             budget,
             export: report,
         });
@@ -489,38 +839,42 @@ pub fn run(args: Args) -> Result<()> {
         fit,
         baseline_fit,
         check: check_report,
+        port: port_report,
         devices,
         budget: project.device.clone(),
         budget_pass,
         caution: crate::CAUTION.into(),
     };
-    let history = HistoryFile {
-        train: report.fit.train_loss.clone(),
-        val: report.fit.validation_loss.clone(),
-    };
-    let figs: Vec<(String, String)> =
-        charts(&report.check, Some(&history), units(system.as_deref()))
-            .into_iter()
-            .map(|(_, c)| (c.title.clone(), c.to_svg()))
-            .collect();
     write_json(&out.join("report.json"), &report)?;
     let html_path = out.join("report.html");
     write_atomic(&html_path, render_html(&report, &figs).as_bytes())?;
-    let m = &report.check.median_model;
-    println!(
-        "done in {:.1} s: state error {:.2e} (baseline {}), energy drift {} (baseline {}); device budget {}",
-        started.elapsed().as_secs_f64(),
-        m.state_rel_rmse,
-        report.check.median_baseline.as_ref().map_or("-".into(), |b| format!("{:.2e}", b.state_rel_rmse)),
-        m.true_energy_drift.or(m.learned_energy_drift).map_or("-".into(), |v| format!("{v:.2e}")),
-        report
-            .check
-            .median_baseline
-            .as_ref()
-            .and_then(|b| b.true_energy_drift)
-            .map_or("-".into(), |v| format!("{v:.2e}")),
-        if budget_pass { "PASS" } else { "FAIL (see the report)" }
-    );
+    let verdict = if budget_pass {
+        "PASS"
+    } else {
+        "FAIL (see the report)"
+    };
+    if let Some(c) = &report.check {
+        let m = &c.median_model;
+        println!(
+            "done in {:.1} s: state error {:.2e} (baseline {}), energy drift {} (baseline {}); device budget {verdict}",
+            started.elapsed().as_secs_f64(),
+            m.state_rel_rmse,
+            c.median_baseline.as_ref().map_or("-".into(), |b| format!("{:.2e}", b.state_rel_rmse)),
+            m.true_energy_drift.or(m.learned_energy_drift).map_or("-".into(), |v| format!("{v:.2e}")),
+            c.median_baseline
+                .as_ref()
+                .and_then(|b| b.true_energy_drift)
+                .map_or("-".into(), |v| format!("{v:.2e}")),
+        );
+    }
+    if let Some(p) = &report.port {
+        println!(
+            "done in {:.1} s: driven state error {:.2e} (baseline {}) on held-out input sequences; device budget {verdict}",
+            started.elapsed().as_secs_f64(),
+            p.median_model_state_rel_rmse,
+            p.median_baseline_state_rel_rmse.map_or("-".into(), |v| format!("{v:.2e}")),
+        );
+    }
     println!("report: {}", html_path.display());
     println!("{}", crate::CAUTION);
     Ok(())

@@ -123,7 +123,8 @@ pub fn read_baseline(path: &Path) -> Result<BaselineModel> {
     let bytes = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
     let m: BaselineModel = serde_json::from_slice(&bytes)
         .with_context(|| format!("{}: not a baseline file", path.display()))?;
-    if m.shape.inputs() != 2 * m.dof
+    if m.shape.inputs() != 2 * m.dof + m.input_scale.len()
+        || m.input_scale.iter().any(|s| !(s.is_finite() && *s > 0.0))
         || m.shape.outputs() != 2 * m.dof
         || m.params.len() != m.shape.param_count()
     {

@@ -227,6 +227,72 @@ pub fn fit_energy(
     })
 }
 
+/// RMS of each input over all trajectories (1 where it is zero); empty
+/// without inputs.
+pub fn input_scales(inputs: Option<&Inputs>) -> Vec<f32> {
+    let Some(u) = inputs else {
+        return Vec::new();
+    };
+    (0..u.count)
+        .map(|k| {
+            let (sq, count) = u.per_trajectory.iter().fold((0.0f64, 0usize), |(s, c), a| {
+                (
+                    s + a.column(k).iter().map(|v| v * v).sum::<f64>(),
+                    c + a.nrows(),
+                )
+            });
+            let rms = (sq / count.max(1) as f64).sqrt();
+            if rms > 0.0 {
+                rms as f32
+            } else {
+                1.0
+            }
+        })
+        .collect()
+}
+
+/// Normalized rows of `ds` (see [`Normalization::normalize`]) with the
+/// inputs u / `input_scale` appended to each state row: (rows x (2n + m),
+/// targets rows x 2n). With an empty `input_scale` exactly
+/// [`Normalization::normalize`].
+pub fn stack_inputs(
+    norm: &Normalization,
+    ds: &Dataset,
+    u: Option<&Inputs>,
+    input_scale: &[f32],
+) -> Result<(Array2<f32>, Array2<f32>)> {
+    let n = ds.dof;
+    let m = input_scale.len();
+    let (z, t) = norm.normalize(ds);
+    if m == 0 {
+        return Ok((z, t));
+    }
+    let Some(u) = u.filter(|u| u.count == m) else {
+        bail!("the training data has {m} input columns; the validation data must too");
+    };
+    let mut zu = Array2::zeros((z.nrows(), 2 * n + m));
+    zu.slice_mut(s![.., ..2 * n]).assign(&z);
+    let mut r = 0;
+    for a in &u.per_trajectory {
+        for row in a.rows() {
+            if r >= z.nrows() {
+                bail!("more input rows than state rows ({})", z.nrows());
+            }
+            for k in 0..m {
+                zu[[r, 2 * n + k]] = (row[k] / input_scale[k] as f64) as f32;
+            }
+            r += 1;
+        }
+    }
+    if r != z.nrows() {
+        bail!(
+            "input rows ({r}) do not match the state rows ({})",
+            z.nrows()
+        );
+    }
+    Ok((zu, t))
+}
+
 /// Fit a damped and/or driven model (see [`PortObjective`]): R = L L^T on
 /// the momentum block if `terms.dissipation`, G if `inputs` (one input array
 /// per training trajectory), each constant or a network of q as `terms`
@@ -250,23 +316,7 @@ pub fn fit_port(
     let n = train.dof;
     let norm = Normalization::from_data(train, quadratic)?;
     let m = inputs.map_or(0, |u| u.count);
-    let input_scale: Vec<f32> = (0..m)
-        .map(|k| {
-            let u = inputs.expect("m > 0");
-            let (sq, count) = u.per_trajectory.iter().fold((0.0f64, 0usize), |(s, c), a| {
-                (
-                    s + a.column(k).iter().map(|v| v * v).sum::<f64>(),
-                    c + a.nrows(),
-                )
-            });
-            let rms = (sq / count.max(1) as f64).sqrt();
-            if rms > 0.0 {
-                rms as f32
-            } else {
-                1.0
-            }
-        })
-        .collect();
+    let input_scale = input_scales(inputs);
     let with_inputs = |ds: &Dataset, u: Option<&Inputs>| -> Result<(Array2<f32>, Array2<f32>)> {
         if ds.dof != n {
             bail!(
@@ -274,31 +324,7 @@ pub fn fit_port(
                 ds.dof
             );
         }
-        let (z, t) = norm.normalize(ds);
-        if m == 0 {
-            return Ok((z, t));
-        }
-        let Some(u) = u.filter(|u| u.count == m) else {
-            bail!("the training data has {m} input columns; the validation data must too");
-        };
-        let mut zu = Array2::zeros((z.nrows(), 2 * n + m));
-        zu.slice_mut(s![.., ..2 * n]).assign(&z);
-        let mut r = 0;
-        for a in &u.per_trajectory {
-            for row in a.rows() {
-                for k in 0..m {
-                    zu[[r, 2 * n + k]] = (row[k] / input_scale[k] as f64) as f32;
-                }
-                r += 1;
-            }
-        }
-        if r != z.nrows() {
-            bail!(
-                "input rows ({r}) do not match the state rows ({})",
-                z.nrows()
-            );
-        }
-        Ok((zu, t))
+        stack_inputs(&norm, ds, u, &input_scale)
     };
     let (z, t) = with_inputs(train, inputs)?;
     let validation = match val {
@@ -339,21 +365,60 @@ pub fn fit_baseline(
     activation: Activation,
     settings: &FitSettings,
 ) -> Result<Fitted<BaselineModel>> {
+    fit_baseline_driven(
+        train,
+        None,
+        val.map(|v| (v, None)),
+        hidden,
+        activation,
+        settings,
+    )
+}
+
+/// [`fit_baseline`] for data with inputs u1..um (one array per training
+/// trajectory): the network takes the normalized state and the normalized
+/// inputs u / input_scale (RMS over the training data) and gives dx/dt.
+/// Without inputs exactly [`fit_baseline`]. Validation inputs must be given
+/// when the training data has inputs.
+pub fn fit_baseline_driven(
+    train: &Dataset,
+    inputs: Option<&Inputs>,
+    val: Option<(&Dataset, Option<&Inputs>)>,
+    hidden: &[usize],
+    activation: Activation,
+    settings: &FitSettings,
+) -> Result<Fitted<BaselineModel>> {
     let norm = Normalization::from_data(train, false)?;
     let d = 2 * train.dof;
-    let shape = MlpShape::new(d, hidden, d, activation);
+    let input_scale = input_scales(inputs);
+    let shape = MlpShape::new(d + input_scale.len(), hidden, d, activation);
     let obj = BaselineObjective {
         shape: shape.clone(),
     };
     let mut init = Vec::new();
     shape.init(&mut ChaCha8Rng::seed_from_u64(settings.seed), &mut init);
-    let (params, report) = run(&obj, init, &norm, train, val, settings)?;
+    if let Some((v, _)) = val {
+        if v.dof != train.dof {
+            bail!(
+                "validation data has {} degrees of freedom, training data {}",
+                v.dof,
+                train.dof
+            );
+        }
+    }
+    let (z, t) = stack_inputs(&norm, train, inputs, &input_scale)?;
+    let validation = match val {
+        Some((v, u)) => Some(stack_inputs(&norm, v, u, &input_scale)?),
+        None => None,
+    };
+    let (params, report) = run_arrays(&obj, init, z, t, validation, settings)?;
     Ok(Fitted {
         model: BaselineModel {
             dof: train.dof,
             shape,
             norm,
             params,
+            input_scale,
         },
         report,
     })

@@ -416,10 +416,12 @@ pub struct BaselineWork {
 }
 
 /// The baseline: a plain network f(z) with 2n outputs fitted to the
-/// normalized targets by mean squared error.
+/// normalized targets by mean squared error. For driven data the rows of
+/// `z` hold the 2n normalized coordinates followed by the m normalized
+/// inputs u / input_scale (the network then has 2n + m inputs).
 #[derive(Debug, Clone)]
 pub struct BaselineObjective {
-    /// The network, 2n inputs and 2n outputs.
+    /// The network, 2n (+ m) inputs and 2n outputs.
     pub shape: MlpShape,
 }
 
@@ -543,25 +545,48 @@ impl EnergyModel {
     }
 }
 
-/// A fitted baseline vector field, physical units in and out.
+/// A fitted baseline vector field, physical units in and out. A driven
+/// baseline (fitted on data with inputs u1..um) also takes the inputs,
+/// normalized by `input_scale`; it is stepped by RK4 with u held constant
+/// over the step.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct BaselineModel {
     /// Degrees of freedom n.
     pub dof: usize,
-    /// The network (2n in, 2n out).
+    /// The network (2n + m in, 2n out).
     pub shape: MlpShape,
     /// Normalization shared with the energy model's data.
     pub norm: Normalization,
     /// Trained parameters.
     pub params: Vec<f32>,
+    /// RMS of each input over the training data (1 where it is zero);
+    /// empty for a baseline without inputs.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub input_scale: Vec<f32>,
 }
 
 impl BaselineModel {
-    /// dx/dt at state `x` (length 2n).
+    /// Number of inputs m the baseline takes.
+    pub fn inputs(&self) -> usize {
+        self.input_scale.len()
+    }
+
+    /// dx/dt at state `x` (length 2n), inputs at zero.
     pub fn vector_field(&self, x: &[f32]) -> Vec<f32> {
+        self.vector_field_driven(x, &[])
+    }
+
+    /// dx/dt at state `x` (length 2n) and inputs `u` (length m; missing
+    /// entries count as zero).
+    pub fn vector_field_driven(&self, x: &[f32], u: &[f32]) -> Vec<f32> {
         let d = 2 * self.dof;
-        let z = Array2::from_shape_fn((1, d), |(_, i)| {
-            (x[i] - self.norm.offset[i]) / self.norm.scale[i]
+        let m = self.inputs();
+        let z = Array2::from_shape_fn((1, d + m), |(_, i)| {
+            if i < d {
+                (x[i] - self.norm.offset[i]) / self.norm.scale[i]
+            } else {
+                u.get(i - d).copied().unwrap_or(0.0) / self.input_scale[i - d]
+            }
         });
         let mut work = MlpWork::default();
         net::forward(&self.shape, &self.params, z.view(), &mut work);
@@ -574,12 +599,17 @@ impl BaselineModel {
     /// One classical Runge-Kutta-4 step of size `dt` (the usual way to roll
     /// out a learned vector field).
     pub fn step_rk4(&self, x: &mut [f32], dt: f32) {
+        self.step_rk4_driven(x, &[], dt);
+    }
+
+    /// [`Self::step_rk4`] with the inputs `u` held constant over the step.
+    pub fn step_rk4_driven(&self, x: &mut [f32], u: &[f32], dt: f32) {
         let d = x.len();
-        let k1 = self.vector_field(x);
+        let k1 = self.vector_field_driven(x, u);
         let at = |k: &[f32], h: f32| -> Vec<f32> { (0..d).map(|i| x[i] + h * k[i]).collect() };
-        let k2 = self.vector_field(&at(&k1, 0.5 * dt));
-        let k3 = self.vector_field(&at(&k2, 0.5 * dt));
-        let k4 = self.vector_field(&at(&k3, dt));
+        let k2 = self.vector_field_driven(&at(&k1, 0.5 * dt), u);
+        let k3 = self.vector_field_driven(&at(&k2, 0.5 * dt), u);
+        let k4 = self.vector_field_driven(&at(&k3, dt), u);
         for i in 0..d {
             x[i] += dt / 6.0 * (k1[i] + 2.0 * k2[i] + 2.0 * k3[i] + k4[i]);
         }

@@ -112,6 +112,37 @@ pub struct ModelSection {
     pub integrator: Option<MethodArg>,
     /// Time step in seconds (default: the log's median sampling interval).
     pub dt: Option<f32>,
+    /// Learn a constant dissipation R = L L^T on the momenta (default
+    /// false). With it, or with input columns u1..um in the training log,
+    /// the project fits a damped and/or driven model (integrator default
+    /// `discrete-gradient`; `verlet` and `yoshida4` are refused).
+    #[serde(skip_serializing_if = "std::ops::Not::not")]
+    pub dissipation: bool,
+    /// Hidden widths making L (of R = L L^T) a network of q instead of a
+    /// constant (default none; implies `dissipation`).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub dissipation_net: Vec<usize>,
+    /// Hidden widths making the input coupling G a network of q instead of
+    /// a constant (default none; needs input columns).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub input_net: Vec<usize>,
+}
+
+impl ModelSection {
+    /// Whether the project learns a damped model.
+    pub fn damped(&self) -> bool {
+        self.dissipation || !self.dissipation_net.is_empty()
+    }
+
+    /// The port terms asked for (the input count comes from the data).
+    pub fn port_terms(&self) -> crate::hnn::PortArch {
+        crate::hnn::PortArch {
+            dissipation: self.damped(),
+            inputs: 0,
+            dissipation_hidden: self.dissipation_net.clone(),
+            input_hidden: self.input_net.clone(),
+        }
+    }
 }
 
 impl Default for ModelSection {
@@ -123,6 +154,9 @@ impl Default for ModelSection {
             activation: ActivationName::Tanh,
             integrator: None,
             dt: None,
+            dissipation: false,
+            dissipation_net: Vec::new(),
+            input_net: Vec::new(),
         }
     }
 }
@@ -330,6 +364,26 @@ flash_bytes = 65536
         assert_eq!(p.model.arch, Arch::General);
         assert_eq!(p.exports[0].weights, WeightKind::Int8);
         assert_eq!(p.model.integrator, Some(MethodArg::Midpoint));
+        assert!(!p.model.dissipation);
+        let p = Project::parse("[model]\ndissipation = true\nintegrator = \"discrete-gradient\"\n")
+            .unwrap();
+        assert!(p.model.dissipation);
+        assert_eq!(p.model.integrator, Some(MethodArg::DiscreteGradient));
+    }
+
+    #[test]
+    fn the_dissipation_switch_leaves_conservative_settings_hashes_alone() {
+        // keel run hashes the serialized [model] section to decide whether
+        // to refit: a project without the switch must serialize as before.
+        let json = serde_json::to_string(&ModelSection::default()).unwrap();
+        assert!(!json.contains("dissipation"), "{json}");
+        let on = ModelSection {
+            dissipation: true,
+            ..ModelSection::default()
+        };
+        assert!(serde_json::to_string(&on)
+            .unwrap()
+            .contains("\"dissipation\":true"));
     }
 
     #[test]

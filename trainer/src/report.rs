@@ -1,13 +1,15 @@
 //! The practitioner's report of `keel run`: one serializable [`RunReport`]
 //! (written as `report.json`) and its rendering as a self-contained HTML page
-//! with inline SVG charts — no scripts, no network. Every number on the page
+//! with inline SVG charts — no scripts, no network. Damped or driven
+//! projects carry a [`PortReport`] (damping per mode, response to held-out
+//! input sequences) instead of the conservative energy-drift check. Every number on the page
 //! is printed through [`Html::num`], tagged with its JSON path, so a test can
 //! prove the page shows exactly what `report.json` holds.
 
 use serde::Serialize;
 use serde_json::Value;
 
-use crate::check::CheckReport;
+use crate::check::{CheckReport, ModeDamping};
 use crate::cmd_export::ExportReport;
 use crate::project::DeviceBudget;
 
@@ -47,6 +49,13 @@ pub struct DataSummary {
     pub derivatives: String,
     /// Per coordinate.
     pub coordinates: Vec<CoordinateSummary>,
+    /// Input columns u1..um of the logs (0 for an undriven system).
+    #[serde(skip_serializing_if = "is_zero")]
+    pub inputs: usize,
+}
+
+fn is_zero(v: &usize) -> bool {
+    *v == 0
 }
 
 /// One fitting run.
@@ -106,8 +115,55 @@ pub struct DeviceBlob {
     pub emulator_instructions_per_step: Option<f64>,
     /// Golden rollout files for the device check.
     pub golden: Vec<String>,
+    /// The input sequence the golden rollouts replay (driven models), CSV
+    /// `t,u1..um`, row k held over step k.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub golden_inputs: Option<String>,
     /// Budget verdict.
     pub budget: BudgetVerdict,
+}
+
+/// One held-out trajectory driven by its logged inputs: model and baseline.
+#[derive(Debug, Clone, Serialize)]
+pub struct DrivenComparison {
+    /// Trajectory id.
+    pub id: String,
+    /// Samples (the rollout takes one step fewer).
+    pub samples: usize,
+    /// State error of the model's rollout (each coordinate's RMS error over
+    /// its RMS, averaged in square).
+    pub model_state_rel_rmse: f64,
+    /// The same for the baseline (RK4, input held over each step).
+    pub baseline_state_rel_rmse: Option<f64>,
+    /// Why the model's rollout stopped early.
+    pub model_failure: Option<String>,
+    /// Why the baseline's rollout stopped early.
+    pub baseline_failure: Option<String>,
+}
+
+/// What `keel run` found for a damped or driven model.
+#[derive(Debug, Clone, Serialize)]
+pub struct PortReport {
+    /// Inputs u1..um the model takes.
+    pub inputs: usize,
+    /// Whether a dissipation R = L L^T was learned.
+    pub dissipation: bool,
+    /// The model's rest state (unforced field zero), q then p.
+    pub rest: Vec<f64>,
+    /// Largest |f(rest)| over the RMS rates of the data.
+    pub rest_residual: f64,
+    /// Learned damping per mode of the linearization at rest.
+    pub modes: Vec<ModeDamping>,
+    /// The reference system's modes at rest (simulated data only).
+    pub reference_modes: Option<Vec<ModeDamping>>,
+    /// Per held-out trajectory.
+    pub driven: Vec<DrivenComparison>,
+    /// Median over trajectories of the model's state error.
+    pub median_model_state_rel_rmse: f64,
+    /// Median over trajectories of the baseline's state error.
+    pub median_baseline_state_rel_rmse: Option<f64>,
+    /// Golden rollouts' input sequence: which held-out trajectory's inputs.
+    pub golden_input_trajectory: String,
 }
 
 /// Everything `keel run` found.
@@ -125,8 +181,13 @@ pub struct RunReport {
     pub fit: FitSummary,
     /// The baseline's fit.
     pub baseline_fit: Option<FitSummary>,
-    /// Model vs baseline on the validation trajectories.
-    pub check: CheckReport,
+    /// Model vs baseline on the validation trajectories (conservative
+    /// models).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub check: Option<CheckReport>,
+    /// Damping and driven response (damped or driven models).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub port: Option<PortReport>,
     /// Device blobs.
     pub devices: Vec<DeviceBlob>,
     /// The budget judged against.
@@ -242,6 +303,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         ("sampling interval (s)", "data/sample_interval_s"),
         ("time derivatives", "data/derivatives"),
     ];
+    let rows: Vec<(&str, &str)> = rows
+        .into_iter()
+        .chain((report.data.inputs > 0).then_some(("input columns (u1..um)", "data/inputs")))
+        .collect();
     h.p("<table>");
     for (k, path) in rows {
         let cell = h.num(path);
@@ -284,54 +349,11 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     }
     h.p("</table>");
 
-    // Check.
-    let energy = if report.check.system.is_some() {
-        "true-energy drift"
-    } else {
-        "learned-energy drift"
-    };
-    let ek = if report.check.system.is_some() {
-        "true_energy_drift"
-    } else {
-        "learned_energy_drift"
-    };
-    h.p("<h2>Energy model versus plain baseline</h2>");
-    h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value). Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon{}.</p>",
-        h.num("check/integrator"),
-        if report.check.system.is_some() { " of the true energy of the reference system" } else { " of the learned energy, over its spread on the data" }));
-    h.p(&format!("<table><tr><th>trajectory</th><th>vector-field error, model</th><th>baseline</th><th>state error, model</th><th>baseline</th><th>{energy}, model</th><th>baseline</th></tr>"));
-    for i in 0..report.check.trajectories.len() {
-        let t = |f: &str| h.num(&format!("check/trajectories/{i}/{f}"));
-        let row = format!(
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-            t("id"),
-            t("model/vector_field_rel_rmse"),
-            t("baseline/vector_field_rel_rmse"),
-            t("model/state_rel_rmse"),
-            t("baseline/state_rel_rmse"),
-            t(&format!("model/{ek}")),
-            t(&format!("baseline/{ek}")),
-        );
-        h.p(&row);
+    if report.check.is_some() {
+        conservative_section(&mut h, report, charts);
     }
-    let m = |f: &str| h.num(&format!("check/median_model/{f}"));
-    let b = |f: &str| h.num(&format!("check/median_baseline/{f}"));
-    let row = format!(
-        "<tr><th>median</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th></tr></table>",
-        m("vector_field_rel_rmse"),
-        b("vector_field_rel_rmse"),
-        m("state_rel_rmse"),
-        b("state_rel_rmse"),
-        m(ek),
-        b(ek)
-    );
-    h.p(&row);
-    h.p("<p class=\"note\">How to read it: the energy model should match or beat the baseline on vector-field and state error, and its energy drift should stay small and bounded while the baseline's grows. A large state error with a small energy drift usually means a phase error (slightly wrong frequency), which grows linearly with time.</p>");
-    for (caption, svg) in charts {
-        h.p(&format!(
-            "<figure>{svg}<figcaption>{}</figcaption></figure>",
-            esc(caption)
-        ));
+    if let Some(port) = &report.port {
+        port_section(&mut h, port, charts);
     }
 
     // Devices.
@@ -398,6 +420,161 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         h.num("keel_version")
     ));
     h.out
+}
+
+/// The conservative model's check: drift, state and vector-field error
+/// against the baseline.
+fn conservative_section(h: &mut Html<'_>, report: &RunReport, charts: &[(String, String)]) {
+    let Some(check) = &report.check else {
+        return;
+    };
+    // Check.
+    let energy = if check.system.is_some() {
+        "true-energy drift"
+    } else {
+        "learned-energy drift"
+    };
+    let ek = if check.system.is_some() {
+        "true_energy_drift"
+    } else {
+        "learned_energy_drift"
+    };
+    h.p("<h2>Energy model versus plain baseline</h2>");
+    h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value). Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon{}.</p>",
+        h.num("check/integrator"),
+        if check.system.is_some() { " of the true energy of the reference system" } else { " of the learned energy, over its spread on the data" }));
+    h.p(&format!("<table><tr><th>trajectory</th><th>vector-field error, model</th><th>baseline</th><th>state error, model</th><th>baseline</th><th>{energy}, model</th><th>baseline</th></tr>"));
+    for i in 0..check.trajectories.len() {
+        let t = |f: &str| h.num(&format!("check/trajectories/{i}/{f}"));
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            t("id"),
+            t("model/vector_field_rel_rmse"),
+            t("baseline/vector_field_rel_rmse"),
+            t("model/state_rel_rmse"),
+            t("baseline/state_rel_rmse"),
+            t(&format!("model/{ek}")),
+            t(&format!("baseline/{ek}")),
+        );
+        h.p(&row);
+    }
+    let m = |f: &str| h.num(&format!("check/median_model/{f}"));
+    let b = |f: &str| h.num(&format!("check/median_baseline/{f}"));
+    let row = format!(
+        "<tr><th>median</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th><th>{}</th></tr></table>",
+        m("vector_field_rel_rmse"),
+        b("vector_field_rel_rmse"),
+        m("state_rel_rmse"),
+        b("state_rel_rmse"),
+        m(ek),
+        b(ek)
+    );
+    h.p(&row);
+    h.p("<p class=\"note\">How to read it: the energy model should match or beat the baseline on vector-field and state error, and its energy drift should stay small and bounded while the baseline's grows. A large state error with a small energy drift usually means a phase error (slightly wrong frequency), which grows linearly with time.</p>");
+    for (caption, svg) in charts {
+        h.p(&format!(
+            "<figure>{svg}<figcaption>{}</figcaption></figure>",
+            esc(caption)
+        ));
+    }
+}
+
+/// A damped or driven model's check: learned damping per mode and the
+/// response to held-out input sequences, model against baseline.
+fn port_section(h: &mut Html<'_>, port: &PortReport, charts: &[(String, String)]) {
+    h.p("<h2>Damping per mode</h2>");
+    h.p(&format!(
+        "<p>The learned field dx/dt = (J - R) dH/dx + G u ({} input(s), dissipation learned: {}) is linearized at its rest state (u = 0; largest residual {} of the RMS rates) and its eigenvalues give each mode's undamped natural frequency |&lambda;| / 2&pi; and damping ratio -Re &lambda; / |&lambda;| (1 for a real, decaying mode; rigid-body modes with &lambda; = 0 are left out).</p>",
+        h.num("port/inputs"),
+        h.num("port/dissipation"),
+        h.num("port/rest_residual"),
+    ));
+    let reference = port.reference_modes.as_ref();
+    h.p(&format!(
+        "<table><tr><th>mode</th><th>natural frequency (Hz)</th><th>damping ratio</th><th>Re &lambda; (1/s)</th><th>Im &lambda; (rad/s)</th>{}</tr>",
+        if reference.is_some() {
+            "<th>reference system: natural frequency (Hz)</th><th>damping ratio</th>"
+        } else {
+            ""
+        }
+    ));
+    for i in 0..port.modes.len() {
+        let m = |f: &str| h.num(&format!("port/modes/{i}/{f}"));
+        let mut row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>",
+            i + 1,
+            m("natural_hz"),
+            m("damping_ratio"),
+            m("real"),
+            m("imag")
+        );
+        if let Some(r) = reference {
+            if i < r.len() {
+                row.push_str(&format!(
+                    "<td>{}</td><td>{}</td>",
+                    h.num(&format!("port/reference_modes/{i}/natural_hz")),
+                    h.num(&format!("port/reference_modes/{i}/damping_ratio"))
+                ));
+            } else {
+                row.push_str("<td>-</td><td>-</td>");
+            }
+        }
+        row.push_str("</tr>");
+        h.p(&row);
+    }
+    h.p("</table>");
+    if reference.is_some() {
+        h.p("<p class=\"note\">Reference modes: the built-in system the data were simulated from, linearized at rest with its exact R and energy; modes are matched by rank of natural frequency.</p>");
+    }
+    h.p("<h2>Response to held-out input sequences</h2>");
+    h.p("<p>Each validation trajectory is rolled out from its first state with its own logged inputs (input row k held over step k): the model with its integrator, the baseline (a plain network of the same hidden sizes taking state and input, predicting dx/dt) with RK4. Error: each coordinate's RMS error over its RMS, averaged in square.</p>");
+    h.p("<table><tr><th>trajectory</th><th>samples</th><th>state error, model</th><th>baseline</th></tr>");
+    for i in 0..port.driven.len() {
+        let t = |f: &str| h.num(&format!("port/driven/{i}/{f}"));
+        let row = format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            t("id"),
+            t("samples"),
+            t("model_state_rel_rmse"),
+            t("baseline_state_rel_rmse")
+        );
+        h.p(&row);
+    }
+    let row = format!(
+        "<tr><th>median</th><th></th><th>{}</th><th>{}</th></tr></table>",
+        h.num("port/median_model_state_rel_rmse"),
+        h.num("port/median_baseline_state_rel_rmse")
+    );
+    h.p(&row);
+    for (i, d) in port.driven.iter().enumerate() {
+        for (who, f) in [
+            ("model", &d.model_failure),
+            ("baseline", &d.baseline_failure),
+        ] {
+            if f.is_some() {
+                let field = if who == "model" {
+                    "model_failure"
+                } else {
+                    "baseline_failure"
+                };
+                let text = h.num(&format!("port/driven/{i}/{field}"));
+                h.p(&format!(
+                    "<p class=\"fail\">{who} rollout of trajectory {} stopped early: {text}</p>",
+                    esc(&d.id)
+                ));
+            }
+        }
+    }
+    h.p(&format!(
+        "<p class=\"note\">The golden rollouts kept for the device check replay the inputs of held-out trajectory {} (file golden/&lt;blob&gt;-inputs.csv).</p>",
+        h.num("port/golden_input_trajectory")
+    ));
+    for (caption, svg) in charts {
+        h.p(&format!(
+            "<figure>{svg}<figcaption>{}</figcaption></figure>",
+            esc(caption)
+        ));
+    }
 }
 
 /// Every `data-k` tag in a page with the text it shows (for tests).

@@ -124,6 +124,41 @@ const DEMOS: &[(&str, &[Log])] = &[
             ),
         ],
     ),
+    (
+        "servo-drivetrain",
+        &[
+            (
+                "train.csv",
+                &[
+                    "--system",
+                    "drivetrain",
+                    "--trajectories",
+                    "10",
+                    "--duration",
+                    "4",
+                    "--rate",
+                    "200",
+                    "--seed",
+                    "41",
+                ],
+            ),
+            (
+                "val.csv",
+                &[
+                    "--system",
+                    "drivetrain",
+                    "--trajectories",
+                    "3",
+                    "--duration",
+                    "4",
+                    "--rate",
+                    "200",
+                    "--seed",
+                    "42",
+                ],
+            ),
+        ],
+    ),
 ];
 
 fn keel(exe: &Path, args: &[&str], extra: &[&Path]) -> Result<()> {

@@ -98,7 +98,8 @@ fn file_cases(blobs: &[PathBuf]) -> Result<Vec<DeviceCase>> {
                     .with_context(|| format!("{}: cannot derive initial states", path.display()))?;
                 (plan, None)
             } else {
-                let (plan, golden) = golden_csv::read(&golden_files)?;
+                let inputs = golden_csv::inputs_file_for(path);
+                let (plan, golden) = golden_csv::read(&golden_files, inputs.as_deref())?;
                 (plan, Some(golden))
             };
             let name = path
@@ -295,6 +296,7 @@ fn swap_check(work: &Path, cases: &[DeviceCase], host: &dyn HostRollout) -> Resu
         c.plan.dof == first.plan.dof
             && c.plan.steps == first.plan.steps
             && c.plan.initial_states == first.plan.initial_states
+            && c.plan.inputs == first.plan.inputs
     };
     let Some(other) = rest.iter().find(same_plan) else {
         println!("  model swap: skipped (no second blob with the same initial states)");

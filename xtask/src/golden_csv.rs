@@ -2,7 +2,10 @@
 //! (`<dir>/golden/<blob stem>-<k>.csv`, columns `t,q1..qn,p1..pn`, values as
 //! `0x`-prefixed `f32` bit patterns or decimal numbers). When present they
 //! supply the device check's initial states and step count, and serve as a
-//! second reference beside the in-process rollout.
+//! second reference beside the in-process rollout. A driven model's golden
+//! rollouts replay one input sequence, kept beside them as
+//! `<dir>/golden/<blob stem>-inputs.csv` (columns `t,u1..um`, row k held
+//! over step k); it becomes the run plan's inputs.
 
 use std::path::{Path, PathBuf};
 
@@ -21,6 +24,68 @@ pub fn files_for(blob: &Path) -> Vec<PathBuf> {
         .map(|k| dir.join("golden").join(format!("{stem}-{k}.csv")))
         .take_while(|p| p.is_file())
         .collect()
+}
+
+/// The input sequence of `blob`'s golden rollouts, when it has one.
+pub fn inputs_file_for(blob: &Path) -> Option<PathBuf> {
+    let (dir, stem) = (blob.parent()?, blob.file_stem()?);
+    let path = dir
+        .join("golden")
+        .join(format!("{}-inputs.csv", stem.to_string_lossy()));
+    path.is_file().then_some(path)
+}
+
+/// An input sequence file: one row of m values per step (the `t` column
+/// dropped). Errors name the file, line and column.
+pub fn read_inputs(path: &Path) -> Result<Vec<Vec<f32>>> {
+    let text =
+        std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines
+        .next()
+        .with_context(|| format!("{}: empty file", path.display()))?
+        .split(',')
+        .collect();
+    let well_formed = header.len() >= 2
+        && header[0] == "t"
+        && header[1..]
+            .iter()
+            .enumerate()
+            .all(|(i, h)| *h == format!("u{}", i + 1));
+    if !well_formed {
+        bail!(
+            "{}:1: header `{}` is not `t,u1..um`",
+            path.display(),
+            header.join(",")
+        );
+    }
+    let mut rows = Vec::new();
+    for (i, line) in lines.enumerate() {
+        let fields: Vec<&str> = line.split(',').collect();
+        if fields.len() != header.len() {
+            bail!(
+                "{}:{}: {} fields, the header has {}",
+                path.display(),
+                i + 2,
+                fields.len(),
+                header.len()
+            );
+        }
+        let mut row = Vec::with_capacity(header.len() - 1);
+        for (c, f) in fields.iter().enumerate().skip(1) {
+            let v = parse_value(f.trim()).map(f32::from_bits).with_context(|| {
+                format!(
+                    "{}:{}: column `{}`: `{f}` is neither 0x-hex bits nor a number",
+                    path.display(),
+                    i + 2,
+                    header[c]
+                )
+            })?;
+            row.push(v);
+        }
+        rows.push(row);
+    }
+    Ok(rows)
 }
 
 fn parse_value(text: &str) -> Option<u32> {
@@ -79,8 +144,9 @@ pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
     Ok(((columns - 1) / 2, rows))
 }
 
-/// Read all golden files of a blob: the run plan they imply and their states.
-pub fn read(files: &[PathBuf]) -> Result<(RunPlan, Trajectories)> {
+/// Read all golden files of a blob and, for a driven model, their input
+/// sequence: the run plan they imply and their states.
+pub fn read(files: &[PathBuf], inputs: Option<&Path>) -> Result<(RunPlan, Trajectories)> {
     let mut dof = 0;
     let mut steps = None;
     let mut trajectories = Vec::new();
@@ -96,14 +162,29 @@ pub fn read(files: &[PathBuf]) -> Result<(RunPlan, Trajectories)> {
         dof = n;
         trajectories.push(rows);
     }
+    let steps = steps.context("no golden files")?;
+    let inputs = match inputs {
+        Some(path) => {
+            let rows = read_inputs(path)?;
+            if rows.len() != steps as usize {
+                bail!(
+                    "{}: {} input rows, the golden rollouts take {steps} steps",
+                    path.display(),
+                    rows.len()
+                );
+            }
+            rows
+        }
+        None => Vec::new(),
+    };
     let plan = RunPlan {
         dof,
-        steps: steps.context("no golden files")?,
+        steps,
         initial_states: trajectories
             .iter()
             .map(|t| t[0].iter().map(|b| f32::from_bits(*b)).collect())
             .collect(),
-        inputs: Vec::new(),
+        inputs,
     };
     Ok((plan, trajectories))
 }
@@ -130,5 +211,39 @@ mod tests {
         std::fs::remove_dir_all(&dir).ok();
         assert!(err.contains("m-0.csv:3"), "{err}");
         assert!(err.contains("column `p1`"), "{err}");
+    }
+
+    #[test]
+    fn a_driven_golden_set_carries_its_inputs_into_the_plan() {
+        let dir = std::env::temp_dir().join(format!("xtask-golden-u-{}", std::process::id()));
+        std::fs::create_dir_all(dir.join("golden")).unwrap();
+        let blob = dir.join("m.keel");
+        std::fs::write(&blob, b"").unwrap();
+        std::fs::write(
+            dir.join("golden/m-0.csv"),
+            "t,q1,p1\n0,0x3f000000,0x0\n0.1,0x3f000000,0x0\n0.2,0x3f000000,0x0\n",
+        )
+        .unwrap();
+        // IEEE 754 binary32: -1.5 = 0xBFC0_0000; 0.1 as shortest decimal.
+        std::fs::write(dir.join("golden/m-inputs.csv"), "t,u1\n0,-1.5\n0.1,0.1\n").unwrap();
+        let files = files_for(&blob);
+        let inputs = inputs_file_for(&blob);
+        let (plan, states) = read(&files, inputs.as_deref()).unwrap();
+        std::fs::write(dir.join("golden/m-inputs.csv"), "t,u1\n0,-1.5\n").unwrap();
+        let short = format!("{:#}", read(&files, inputs.as_deref()).unwrap_err());
+        std::fs::write(dir.join("golden/m-inputs.csv"), "t,u2\n0,1\n0,1\n").unwrap();
+        let bad_header = format!("{:#}", read(&files, inputs.as_deref()).unwrap_err());
+        std::fs::remove_dir_all(&dir).ok();
+        assert_eq!(files.len(), 1, "the inputs file is not a rollout");
+        assert_eq!(plan.steps, 2);
+        assert_eq!(states[0].len(), 3);
+        assert_eq!(plan.inputs.len(), 2);
+        assert_eq!(plan.inputs[0][0].to_bits(), 0xBFC0_0000);
+        assert_eq!(plan.inputs[1][0], 0.1f32);
+        assert!(
+            short.contains("1 input rows") && short.contains("2 steps"),
+            "{short}"
+        );
+        assert!(bad_header.contains("m-inputs.csv:1"), "{bad_header}");
     }
 }

@@ -71,6 +71,8 @@ pub fn run() -> Result<bool> {
                         "--release",
                         "--test",
                         "port_checks",
+                        "--test",
+                        "port_project",
                     ])?)
             },
         ),

@@ -1,0 +1,394 @@
+//! Damped and driven models through `keel fit` and `keel run`:
+//! * `keel fit --dissipation --baseline --json` on driven data writes the
+//!   run summary and a baseline that takes the input; a driven baseline learns
+//!   the drivetrain's input matrix G = (0, 0, 1, 0)^T (the motor torque is
+//!   the rate of the motor's angular momentum, Newton's second law for a
+//!   rotating body: dp1/dt = ... + u, so d(dp1/dt)/du = 1 and
+//!   d(dp2/dt)/du = 0);
+//! * `keel run` on a driven project: the report shows exactly the numbers
+//!   of report.json (damping per mode, response to held-out inputs), the
+//!   golden rollouts replay the held-out trajectory's logged inputs, and
+//!   `keel rollout --inputs` on the golden input file reproduces them bit
+//!   for bit (what the device check does);
+//! * a port model with Stormer-Verlet is refused before anything is written;
+//! * the reference modes of the built-in systems equal their closed forms:
+//!   an undamped two-inertia chain oscillates at
+//!   sqrt(k (1/Jm + 1/Jl)) (any vibration text, e.g. Thomson & Dahleh,
+//!   "Theory of Vibration with Applications", two-degree-of-freedom
+//!   systems; from memory), and a damped oscillator
+//!   m x'' + c x' + k x = 0 has |lambda| = sqrt(k / m) and damping ratio
+//!   -Re(lambda) / |lambda| = zeta exactly (textbook closed form).
+
+use std::path::Path;
+use std::process::Command;
+
+use clap::Parser;
+use keel_trainer::check::reference_modes;
+use keel_trainer::cmd_fit;
+use keel_trainer::fit::{fit_baseline_driven, ArchChoice, FitSettings};
+use keel_trainer::hnn::PortArch;
+use keel_trainer::net::Activation;
+use keel_trainer::report::{fmt_num, lookup, tagged_values};
+use keel_trainer::simulate::{simulate_port, SimulationSpec};
+use keel_trainer::systems::build_port_system;
+
+fn keel(args: &[&str]) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_keel"))
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+fn simulate(out: &Path, seed: &str, trajectories: &str, duration: &str) {
+    let o = keel(&[
+        "simulate",
+        "--system",
+        "drivetrain",
+        "--trajectories",
+        trajectories,
+        "--duration",
+        duration,
+        "--rate",
+        "200",
+        "--seed",
+        seed,
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}
+
+#[derive(Parser)]
+struct Cli {
+    #[command(flatten)]
+    args: cmd_fit::Args,
+}
+
+#[test]
+fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path();
+    simulate(&p.join("train.csv"), "5", "6", "2");
+    let out = p.join("m.keel");
+    let json = p.join("m.json");
+    let args = Cli::try_parse_from([
+        "keel-fit",
+        "--data",
+        p.join("train.csv").to_str().unwrap(),
+        "--dissipation",
+        "--baseline",
+        "--hidden",
+        "16,16",
+        "--epochs",
+        "5",
+        "--quiet",
+        "--json",
+        json.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ])
+    .unwrap()
+    .args;
+    cmd_fit::run(args).unwrap();
+
+    let summary: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap();
+    let arch = ArchChoice {
+        hidden: vec![16, 16],
+        ..ArchChoice::default()
+    }
+    .build(2)
+    .unwrap();
+    let port = PortArch {
+        dissipation: true,
+        inputs: 1,
+        ..PortArch::default()
+    };
+    assert_eq!(
+        summary["parameters"].as_u64().unwrap() as usize,
+        arch.param_count(2) + port.param_count(2)
+    );
+    let loss = summary["final_train_loss"].as_f64().unwrap();
+    assert!(loss.is_finite() && loss > 0.0, "{summary}");
+    assert!(summary["steps"].as_u64().unwrap() > 0);
+
+    let base = keel_trainer::export::read_baseline(&cmd_fit::baseline_path(&out)).unwrap();
+    assert_eq!(base.inputs(), 1);
+    assert_eq!(base.shape.inputs(), 5);
+    assert_eq!(base.shape.outputs(), 4);
+}
+
+#[test]
+#[cfg_attr(
+    debug_assertions,
+    ignore = "trains for about 2 s in release but minutes in debug; run with --release"
+)]
+fn the_driven_baseline_learns_the_input_matrix_of_the_drivetrain() {
+    let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
+    let spec = SimulationSpec {
+        trajectories: 10,
+        duration: 4.0,
+        rate: 200.0,
+        seed: 41,
+    };
+    let (ds, u) = simulate_port(system.as_ref(), &spec).unwrap();
+    let u = u.unwrap();
+    let settings = FitSettings {
+        epochs: 150,
+        quiet: true,
+        ..FitSettings::default()
+    };
+    let base = fit_baseline_driven(&ds, Some(&u), None, &[32, 32], Activation::Tanh, &settings)
+        .unwrap()
+        .model;
+    // d(dx/dt)/du by central differences (step: the input's RMS) at logged
+    // states and inputs, averaged.
+    let h = base.input_scale[0];
+    let (mut g1, mut g2, mut count) = (0.0f64, 0.0f64, 0usize);
+    for (t, ut) in ds.trajectories.iter().zip(&u.per_trajectory) {
+        for r in (0..t.t.len()).step_by(40) {
+            let x: Vec<f32> = t.x.row(r).iter().map(|v| *v as f32).collect();
+            let u0 = ut[[r, 0]] as f32;
+            let plus = base.vector_field_driven(&x, &[u0 + h]);
+            let minus = base.vector_field_driven(&x, &[u0 - h]);
+            g1 += ((plus[2] - minus[2]) / (2.0 * h)) as f64;
+            g2 += ((plus[3] - minus[3]) / (2.0 * h)) as f64;
+            count += 1;
+        }
+    }
+    let (g1, g2) = (g1 / count as f64, g2 / count as f64);
+    println!(
+        "baseline input gains over {count} states: d(dp1/dt)/du {g1:.4}, d(dp2/dt)/du {g2:.4}"
+    );
+    assert!((g1 - 1.0).abs() < 0.1, "d(dp1/dt)/du = {g1}, closed form 1");
+    assert!(g2.abs() < 0.1, "d(dp2/dt)/du = {g2}, closed form 0");
+
+    // Held constant over an RK4 step, the input moves p1 by about u dt
+    // from rest (dp1/dt = u at zero twist and speed; exact to first order).
+    let mut x = vec![0.0f32; 4];
+    let (tau, dt) = (0.01f32, 1e-3f32);
+    base.step_rk4_driven(&mut x, &[tau], dt);
+    let mut x0 = vec![0.0f32; 4];
+    base.step_rk4_driven(&mut x0, &[0.0], dt);
+    let dp1 = (x[2] - x0[2]) as f64;
+    let want = (tau * dt) as f64;
+    println!(
+        "p1 after one step with u = {tau}: {dp1:.4e} beyond the unforced step (u dt = {want:.4e})"
+    );
+    assert!((dp1 - want).abs() / want < 0.1, "{dp1} vs {want}");
+}
+
+const PROJECT: &str = r#"
+name = "tiny drivetrain"
+[data]
+train = "data/train.csv"
+validation = "data/val.csv"
+[model]
+hidden = [8]
+dissipation = true
+[fit]
+epochs = 15
+[check]
+horizon_steps = 200
+golden_steps = 120
+reference_system = "drivetrain"
+[[export]]
+name = "tiny-dgrad"
+[[export]]
+name = "tiny-midpoint"
+integrator = "midpoint"
+"#;
+
+/// A golden CSV's rows as bit patterns, and the input file's rows.
+fn read_rows(path: &Path) -> Vec<Vec<String>> {
+    std::fs::read_to_string(path)
+        .unwrap()
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').map(str::to_string).collect())
+        .collect()
+}
+
+#[test]
+fn run_reports_damping_and_replays_the_held_out_inputs() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path();
+    std::fs::create_dir_all(p.join("data")).unwrap();
+    simulate(&p.join("data/train.csv"), "1", "4", "1");
+    simulate(&p.join("data/val.csv"), "2", "2", "1");
+    std::fs::write(p.join("keel.toml"), PROJECT).unwrap();
+
+    let o = keel(&["run", "--quiet", p.to_str().unwrap()]);
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        o.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(stdout.contains("not a safety function"), "{stdout}");
+
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
+    assert!(json.get("check").is_none(), "no conservative drift check");
+    assert_eq!(json["data"]["inputs"], 1);
+    let port = &json["port"];
+    assert_eq!(port["inputs"], 1);
+    assert_eq!(port["dissipation"], true);
+    assert_eq!(port["driven"].as_array().unwrap().len(), 2);
+    assert!(port["median_baseline_state_rel_rmse"].as_f64().is_some());
+    // The reference system's shaft mode: near the undamped two-inertia
+    // frequency sqrt(k (1/Jm + 1/Jl)) / (2 pi) = 12.33 Hz (defaults
+    // k = 1 N m/rad, Jm = 2e-4, Jl = 1e-3 kg m^2); the shaft damper and the
+    // friction move |lambda| by 0.1 % here, so 1 % is asserted.
+    let f_undamped = (1.0f64 * (1.0 / 2e-4 + 1.0 / 1e-3)).sqrt() / (2.0 * std::f64::consts::PI);
+    let reference = port["reference_modes"].as_array().unwrap();
+    let shaft = reference
+        .iter()
+        .find(|m| m["imag"].as_f64().unwrap() > 0.0)
+        .unwrap();
+    let f = shaft["natural_hz"].as_f64().unwrap();
+    assert!(
+        (f - f_undamped).abs() / f_undamped < 0.01,
+        "{f} vs {f_undamped}"
+    );
+
+    let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
+    let tags = tagged_values(&html);
+    assert!(tags.len() > 40, "only {} tagged numbers", tags.len());
+    for (key, shown) in &tags {
+        let v = lookup(&json, key)
+            .cloned()
+            .unwrap_or(serde_json::Value::Null);
+        assert_eq!(
+            &fmt_num(&v),
+            shown,
+            "page and report.json disagree at {key}"
+        );
+    }
+    assert!(tags.iter().any(|(k, _)| k == "port/modes/0/damping_ratio"));
+    assert!(tags
+        .iter()
+        .any(|(k, _)| k == "port/driven/0/baseline_state_rel_rmse"));
+    assert!(html.contains("Damping per mode") && html.contains("held-out input"));
+    assert!(html.matches("<svg").count() >= 4, "inputs, p1, p2, loss");
+
+    // The golden input file is the first held-out trajectory's logged u1,
+    // one row per step.
+    let val = read_rows(&p.join("data/val.csv"));
+    let inputs = read_rows(&p.join("out/golden/tiny-dgrad-inputs.csv"));
+    assert_eq!(inputs.len(), 120);
+    let first = json["port"]["golden_input_trajectory"].as_str().unwrap();
+    let logged: Vec<f32> = val
+        .iter()
+        .filter(|r| r[0] == first)
+        .map(|r| r.last().unwrap().parse::<f64>().unwrap() as f32)
+        .take(120)
+        .collect();
+    let golden: Vec<f32> = inputs.iter().map(|r| r[1].parse().unwrap()).collect();
+    assert_eq!(golden, logged);
+
+    // Replaying the golden inputs with `keel rollout` gives the golden
+    // states bit for bit, for both exported methods.
+    for name in ["tiny-dgrad", "tiny-midpoint"] {
+        let golden = read_rows(&p.join(format!("out/golden/{name}-0.csv")));
+        assert_eq!(golden.len(), 121);
+        let x0: Vec<f32> = golden[0][1..]
+            .iter()
+            .map(|h| f32::from_bits(u32::from_str_radix(&h[2..], 16).unwrap()))
+            .collect();
+        let init = format!("q1={},q2={},p1={},p2={}", x0[0], x0[1], x0[2], x0[3]);
+        let host = p.join(format!("{name}-host.csv"));
+        let o = keel(&[
+            "rollout",
+            "--model",
+            p.join(format!("out/{name}.keel")).to_str().unwrap(),
+            "--init",
+            &init,
+            "--steps",
+            "120",
+            "--inputs",
+            p.join(format!("out/golden/{name}-inputs.csv"))
+                .to_str()
+                .unwrap(),
+            "--bits",
+            "--out",
+            host.to_str().unwrap(),
+        ]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let replay = read_rows(&host);
+        let states = |rows: &[Vec<String>]| -> Vec<Vec<String>> {
+            rows.iter().map(|r| r[1..].to_vec()).collect()
+        };
+        assert_eq!(states(&replay), states(&golden), "{name}");
+    }
+}
+
+#[test]
+fn a_port_project_with_verlet_is_refused_before_anything_is_written() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path();
+    std::fs::create_dir_all(p.join("data")).unwrap();
+    simulate(&p.join("data/train.csv"), "1", "3", "0.5");
+    std::fs::write(
+        p.join("keel.toml"),
+        "[model]\ndissipation = true\nintegrator = \"verlet\"\n",
+    )
+    .unwrap();
+    let o = keel(&["run", p.to_str().unwrap()]);
+    assert!(!o.status.success());
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("\"verlet\"") && err.contains("discrete-gradient") && err.contains("midpoint"),
+        "{err}"
+    );
+    assert!(!p.join("out").exists());
+
+    // The same for an export target.
+    std::fs::write(
+        p.join("keel.toml"),
+        "[model]\ndissipation = true\n[[export]]\nname = \"x\"\nintegrator = \"yoshida4\"\n",
+    )
+    .unwrap();
+    let o = keel(&["run", p.to_str().unwrap()]);
+    assert!(!o.status.success());
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("[[export]] x") && err.contains("\"yoshida4\""),
+        "{err}"
+    );
+    assert!(!p.join("out").exists());
+}
+
+#[test]
+fn reference_modes_equal_the_closed_forms() {
+    // Undamped two-inertia chain (c = b = 0): one oscillatory mode at
+    // sqrt(k (1/Jm + 1/Jl)), damping ratio 0; the rigid rotation is left
+    // out.
+    // (The catalog takes positive values only: 1e-12 is zero to the
+    // asserted digits.)
+    let params = vec![("c".to_string(), 1e-12), ("b".to_string(), 1e-12)];
+    let system = build_port_system("drivetrain", &params).unwrap().unwrap();
+    let modes = reference_modes(system.as_ref());
+    assert_eq!(modes.len(), 1, "{modes:?}");
+    let w = (1.0f64 * (1.0 / 2e-4 + 1.0 / 1e-3)).sqrt();
+    let f = w / (2.0 * std::f64::consts::PI);
+    assert!(
+        (modes[0].natural_hz - f).abs() / f < 1e-6,
+        "{modes:?} vs {f}"
+    );
+    assert!(modes[0].damping_ratio.abs() < 1e-6, "{modes:?}");
+
+    // Damped flexure (defaults k = 20 N/m, m = 0.05 kg) with zeta = 0.05.
+    let params = vec![("zeta".to_string(), 0.05)];
+    let system = build_port_system("flexure-damped", &params)
+        .unwrap()
+        .unwrap();
+    let modes = reference_modes(system.as_ref());
+    assert_eq!(modes.len(), 1, "{modes:?}");
+    let f = (20.0f64 / 0.05).sqrt() / (2.0 * std::f64::consts::PI);
+    assert!(
+        (modes[0].natural_hz - f).abs() / f < 1e-6,
+        "{modes:?} vs {f}"
+    );
+    assert!((modes[0].damping_ratio - 0.05).abs() < 1e-6, "{modes:?}");
+}

@@ -369,6 +369,19 @@ flash_bytes = 65536
             .unwrap();
         assert!(p.model.dissipation);
         assert_eq!(p.model.integrator, Some(MethodArg::DiscreteGradient));
+        // Port networks: L(q) implies a damped model; G(q) is kept for the
+        // inputs the data brings.
+        let p = Project::parse("[model]
+dissipation_net = [16]
+input_net = [8]
+").unwrap();
+        assert!(p.model.damped() && !p.model.dissipation);
+        let terms = p.model.port_terms();
+        assert!(terms.dissipation);
+        assert_eq!(terms.dissipation_hidden, vec![16]);
+        assert_eq!(terms.input_hidden, vec![8]);
+        let json = serde_json::to_string(&ModelSection::default()).unwrap();
+        assert!(!json.contains("_net"), "{json}");
     }
 
     #[test]

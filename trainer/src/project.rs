@@ -371,10 +371,7 @@ flash_bytes = 65536
         assert_eq!(p.model.integrator, Some(MethodArg::DiscreteGradient));
         // Port networks: L(q) implies a damped model; G(q) is kept for the
         // inputs the data brings.
-        let p = Project::parse("[model]
-dissipation_net = [16]
-input_net = [8]
-").unwrap();
+        let p = Project::parse("[model]\ndissipation_net = [16]\ninput_net = [8]\n").unwrap();
         assert!(p.model.damped() && !p.model.dissipation);
         let terms = p.model.port_terms();
         assert!(terms.dissipation);

@@ -347,10 +347,6 @@ pub fn run(args: Args) -> Result<()> {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
-    if model.has_port_terms() {
-        return run_port(&args, &model, &bytes, &opts);
-    }
-    let data = load_csv(&args.data, &opts)?;
     let base_path = args
         .baseline
         .clone()
@@ -359,6 +355,10 @@ pub fn run(args: Args) -> Result<()> {
         .as_deref()
         .map(crate::export::read_baseline)
         .transpose()?;
+    if model.has_port_terms() {
+        return run_port(&args, &model, &bytes, &opts, baseline.as_ref());
+    }
+    let data = load_csv(&args.data, &opts)?;
     let system = args
         .system
         .as_deref()
@@ -406,8 +406,24 @@ pub fn run(args: Args) -> Result<()> {
     Ok(())
 }
 
-/// `run` for a damped or driven model.
-fn run_port(args: &Args, model: &HostModel<'_>, bytes: &[u8], opts: &LoadOptions) -> Result<()> {
+/// The JSON report of a damped or driven model: the model's checks and,
+/// with a baseline, its driven rollouts of the same trajectories.
+#[derive(serde::Serialize)]
+struct PortJson<'a> {
+    #[serde(flatten)]
+    model: &'a crate::check::PortCheckReport,
+    baseline_rollouts: Option<Vec<crate::check::DrivenRollout>>,
+}
+
+/// `run` for a damped or driven model (`baseline`: a plain network taking
+/// the state and the inputs, from `keel fit --baseline`).
+fn run_port(
+    args: &Args,
+    model: &HostModel<'_>,
+    bytes: &[u8],
+    opts: &LoadOptions,
+    baseline: Option<&crate::hnn::BaselineModel>,
+) -> Result<()> {
     let blob = crate::blob::BlobModel::from_bytes(bytes)
         .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
     let (data, inputs) = crate::data::load_csv_with_inputs(&args.data, opts)?;
@@ -428,6 +444,17 @@ fn run_port(args: &Args, model: &HostModel<'_>, bytes: &[u8], opts: &LoadOptions
         );
     }
     let r = crate::check::check_port(model, &blob, &data, inputs.as_ref())?;
+    if let Some(b) = baseline {
+        if b.dof != blob.dof || b.inputs() != m {
+            anyhow::bail!(
+                "the baseline has {} degrees of freedom and {} inputs, the model {} and {m}",
+                b.dof,
+                b.inputs(),
+                blob.dof
+            );
+        }
+    }
+    let base = baseline.map(|b| crate::check::driven_baseline(b, &data, inputs.as_ref()));
     let rest: Vec<String> = r.rest.iter().map(|v| format!("{v:.4e}")).collect();
     println!(
         "rest state ({}), residual {} of the RMS rates",
@@ -448,18 +475,23 @@ fn run_port(args: &Args, model: &HostModel<'_>, bytes: &[u8], opts: &LoadOptions
         );
     }
     println!(
-        "{:<10} {:>28}",
-        "trajectory", "driven-rollout state rel. RMSE"
+        "{:<10} {:>28} {:>12}",
+        "trajectory", "driven-rollout state rel. RMSE", "baseline"
     );
-    for t in &r.rollouts {
-        let value = match &t.failure {
-            Some(f) => format!("failed ({f})"),
-            None => sci(t.state_rel_rmse),
-        };
-        println!("{:<10} {:>28}", t.id, value);
+    let value = |t: &crate::check::DrivenRollout| match &t.failure {
+        Some(f) => format!("failed ({f})"),
+        None => sci(t.state_rel_rmse),
+    };
+    for (k, t) in r.rollouts.iter().enumerate() {
+        let b = base.as_ref().map_or("-".to_string(), |b| value(&b[k]));
+        println!("{:<10} {:>28} {:>12}", t.id, value(t), b);
     }
     if let Some(p) = &args.report {
-        write_atomic(p, serde_json::to_string_pretty(&r)?.as_bytes())?;
+        let json = PortJson {
+            model: &r,
+            baseline_rollouts: base,
+        };
+        write_atomic(p, serde_json::to_string_pretty(&json)?.as_bytes())?;
         println!("report: {}", p.display());
     }
     println!("{}", crate::CAUTION);

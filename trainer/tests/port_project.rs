@@ -116,6 +116,42 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     assert_eq!(base.inputs(), 1);
     assert_eq!(base.shape.inputs(), 5);
     assert_eq!(base.shape.outputs(), 4);
+
+    // `keel check` finds the baseline beside the model and rolls it out
+    // with the logged inputs next to the model: its JSON numbers are those
+    // of the library's driven baseline rollout.
+    let report = p.join("check.json");
+    let o = keel(&[
+        "check",
+        "--model",
+        out.to_str().unwrap(),
+        "--data",
+        p.join("train.csv").to_str().unwrap(),
+        "--report",
+        report.to_str().unwrap(),
+    ]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert!(stdout.contains("baseline"), "{stdout}");
+    let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&report).unwrap()).unwrap();
+    let (ds, inputs) = keel_trainer::data::load_csv_with_inputs(
+        &p.join("train.csv"),
+        &keel_trainer::data::LoadOptions::default(),
+    )
+    .unwrap();
+    let expected = keel_trainer::check::driven_baseline(&base, &ds, inputs.as_ref());
+    let got = r["baseline_rollouts"].as_array().unwrap();
+    assert_eq!(got.len(), ds.trajectories.len());
+    assert_eq!(r["rollouts"].as_array().unwrap().len(), got.len());
+    for (g, e) in got.iter().zip(&expected) {
+        assert_eq!(g["id"].as_str().unwrap(), e.id);
+        if e.failure.is_none() {
+            // serde_json's default float parser may land one ulp off (its
+            // `float_roundtrip` feature is off), hence the ulp-level bound.
+            let v = g["state_rel_rmse"].as_f64().unwrap();
+            assert!((v - e.state_rel_rmse).abs() <= 2.0 * f64::EPSILON * v.abs());
+        }
+    }
 }
 
 #[test]

@@ -159,6 +159,41 @@ const DEMOS: &[(&str, &[Log])] = &[
             ),
         ],
     ),
+    (
+        "trolley-crane",
+        &[
+            (
+                "train.csv",
+                &[
+                    "--system",
+                    "crane-trolley",
+                    "--trajectories",
+                    "20",
+                    "--duration",
+                    "10",
+                    "--rate",
+                    "50",
+                    "--seed",
+                    "51",
+                ],
+            ),
+            (
+                "val.csv",
+                &[
+                    "--system",
+                    "crane-trolley",
+                    "--trajectories",
+                    "4",
+                    "--duration",
+                    "10",
+                    "--rate",
+                    "50",
+                    "--seed",
+                    "52",
+                ],
+            ),
+        ],
+    ),
 ];
 
 fn keel(exe: &Path, args: &[&str], extra: &[&Path]) -> Result<()> {

@@ -574,18 +574,11 @@ fn run_port(
 /// The port terms asked for on the command line (the input count comes
 /// from the data).
 fn port_terms(args: &Args) -> Result<PortArch> {
-    let hidden = |name: &str, v: &Option<Vec<usize>>| -> Result<Vec<usize>> {
-        let v = v.clone().unwrap_or_default();
-        if v.contains(&0) || v.len() > 3 {
-            bail!("--{name} takes one to three hidden widths, each at least 1");
-        }
-        Ok(v)
-    };
-    let dissipation_hidden = hidden("dissipation-net", &args.dissipation_net)?;
-    Ok(PortArch {
-        dissipation: args.dissipation || args.dissipation_net.is_some(),
-        inputs: 0,
-        input_hidden: hidden("input-net", &args.input_net)?,
-        dissipation_hidden,
-    })
+    let none = Vec::new();
+    PortArch::with_networks(
+        args.dissipation,
+        args.dissipation_net.as_ref().unwrap_or(&none),
+        args.input_net.as_ref().unwrap_or(&none),
+        |name| format!("--{name}-net"),
+    )
 }

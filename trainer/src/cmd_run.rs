@@ -471,6 +471,10 @@ pub fn run(args: Args) -> Result<()> {
             dir.join("keel.toml").display()
         );
     }
+    let terms = project
+        .model
+        .port_terms()
+        .with_context(|| dir.join("keel.toml").display().to_string())?;
     let (train, val) = (&logs.train, &logs.val);
     let data = data_summary(
         &project.data.train.display().to_string(),
@@ -490,7 +494,7 @@ pub fn run(args: Args) -> Result<()> {
                 "; damped/driven model: {inputs} input(s), {}",
                 crate::hnn::PortArch {
                     inputs,
-                    ..project.model.port_terms()
+                    ..terms.clone()
                 }
                 .label(data.dof)
             )
@@ -582,7 +586,7 @@ pub fn run(args: Args) -> Result<()> {
                     logs.train_u.as_ref(),
                     Some((val, logs.val_u.as_ref())),
                     &arch,
-                    &project.model.port_terms(),
+                    &terms,
                     &settings,
                 )?
             } else {

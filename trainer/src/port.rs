@@ -43,7 +43,43 @@ const NET_OUTPUT_GAIN: f32 = 0.1;
 /// Initial L = 0.3 I (a non-zero L so its gradient is not zero).
 const INITIAL_L_DIAGONAL: f32 = 0.3;
 
+/// Most hidden layers of a port network (a small correction, and the
+/// blob's layer limit leaves room for the output layer).
+pub const MAX_PORT_HIDDEN_LAYERS: usize = 3;
+/// Widest hidden layer of a port network.
+pub const MAX_PORT_HIDDEN_WIDTH: usize = 64;
+
 impl PortArch {
+    /// The terms asked for: damping when `dissipation` or a dissipation
+    /// network is given, each network's hidden widths checked (one to
+    /// three layers of 1..=64 units); the input count comes from the data
+    /// later. Errors name the setting as `what` gives it.
+    pub fn with_networks(
+        dissipation: bool,
+        dissipation_hidden: &[usize],
+        input_hidden: &[usize],
+        what: impl Fn(&str) -> String,
+    ) -> anyhow::Result<Self> {
+        for (name, hidden) in [("dissipation", dissipation_hidden), ("input", input_hidden)] {
+            let bad_width = hidden
+                .iter()
+                .any(|w| !(1..=MAX_PORT_HIDDEN_WIDTH).contains(w));
+            if hidden.len() > MAX_PORT_HIDDEN_LAYERS || bad_width {
+                anyhow::bail!(
+                    "{}: {hidden:?}: a port network takes 1 to {MAX_PORT_HIDDEN_LAYERS} hidden \
+                     widths, each 1..={MAX_PORT_HIDDEN_WIDTH}",
+                    what(name)
+                );
+            }
+        }
+        Ok(Self {
+            dissipation: dissipation || !dissipation_hidden.is_empty(),
+            inputs: 0,
+            dissipation_hidden: dissipation_hidden.to_vec(),
+            input_hidden: input_hidden.to_vec(),
+        })
+    }
+
     /// Entries of L: n (n + 1) / 2, row by row.
     fn l_entries(dof: usize) -> usize {
         dof * (dof + 1) / 2

@@ -134,14 +134,15 @@ impl ModelSection {
         self.dissipation || !self.dissipation_net.is_empty()
     }
 
-    /// The port terms asked for (the input count comes from the data).
-    pub fn port_terms(&self) -> crate::hnn::PortArch {
-        crate::hnn::PortArch {
-            dissipation: self.damped(),
-            inputs: 0,
-            dissipation_hidden: self.dissipation_net.clone(),
-            input_hidden: self.input_net.clone(),
-        }
+    /// The port terms asked for, widths checked (the input count comes from
+    /// the data).
+    pub fn port_terms(&self) -> anyhow::Result<crate::hnn::PortArch> {
+        crate::hnn::PortArch::with_networks(
+            self.dissipation,
+            &self.dissipation_net,
+            &self.input_net,
+            |name| format!("[model] {name}_net"),
+        )
     }
 }
 
@@ -373,12 +374,18 @@ flash_bytes = 65536
         // inputs the data brings.
         let p = Project::parse("[model]\ndissipation_net = [16]\ninput_net = [8]\n").unwrap();
         assert!(p.model.damped() && !p.model.dissipation);
-        let terms = p.model.port_terms();
+        let terms = p.model.port_terms().unwrap();
         assert!(terms.dissipation);
         assert_eq!(terms.dissipation_hidden, vec![16]);
         assert_eq!(terms.input_hidden, vec![8]);
         let json = serde_json::to_string(&ModelSection::default()).unwrap();
         assert!(!json.contains("_net"), "{json}");
+        let p = Project::parse("[model]\ninput_net = [8, 0]\n").unwrap();
+        let err = p.model.port_terms().unwrap_err().to_string();
+        assert!(
+            err.contains("[model] input_net") && err.contains("[8, 0]"),
+            "{err}"
+        );
     }
 
     #[test]

@@ -106,6 +106,42 @@ fn export(model: &EnergyModel, dt: f32) -> Vec<u8> {
     blob.to_bytes().unwrap()
 }
 
+/// Largest difference between the runtime's field (J - R) dH/dx + G u of
+/// the exported blob and the trainer's prediction, over 500 states within
+/// 1.5 scales of the data and one input uniform in +-`u_amplitude` each,
+/// relative to each component's RMS rate.
+fn field_difference(
+    model: &EnergyModel,
+    runtime: &HostModel<'_>,
+    u_amplitude: f32,
+    seed: u64,
+) -> f64 {
+    let n = model.dof;
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let states = sample_states(&model.norm.offset, &model.norm.scale, 1.5, 500, 3);
+    let us: Vec<f32> = (0..states.len())
+        .map(|_| rng.random_range(-u_amplitude..u_amplitude))
+        .collect();
+    let x = Array2::from_shape_fn((states.len(), 2 * n), |(r, i)| states[r][i]);
+    let ua = Array2::from_shape_fn((states.len(), 1), |(r, _)| us[r]);
+    let trainer = model.vector_field_driven(x.view(), ua.view());
+    let mut worst = 0.0f64;
+    for (r, s) in states.iter().enumerate() {
+        let st = State::new(&s[..n], &s[n..]).unwrap();
+        let (mut dq, mut dp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
+        runtime
+            .vector_field_driven(&st, &[us[r]], &mut dq, &mut dp)
+            .unwrap();
+        for i in 0..2 * n {
+            let v = if i < n { dq[i] } else { dp[i - n] };
+            let err = (v as f64 - trainer[[r, i]] as f64).abs() / model.norm.rate_scale[i] as f64;
+            worst = worst.max(err);
+        }
+    }
+    println!("runtime vs trainer field: worst error {worst:.2e} of the RMS rate");
+    worst
+}
+
 /// Successive positive peaks of a sampled signal (parabolic interpolation
 /// through the three samples around each local maximum).
 fn positive_peaks(x: &[f64]) -> Vec<f64> {
@@ -268,30 +304,7 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
     }
 
     // The runtime's field equals the trainer's prediction (physical units).
-    let mut rng = ChaCha8Rng::seed_from_u64(5);
-    let states = sample_states(&model.norm.offset, &model.norm.scale, 1.5, 500, 3);
-    let us: Vec<f32> = (0..states.len())
-        .map(|_| rng.random_range(-0.04f32..0.04))
-        .collect();
-    let x = Array2::from_shape_fn((states.len(), 4), |(r, i)| states[r][i]);
-    let ua = Array2::from_shape_fn((states.len(), 1), |(r, _)| us[r]);
-    let trainer = model.vector_field_driven(x.view(), ua.view());
-    let mut worst = 0.0f64;
-    for (r, s) in states.iter().enumerate() {
-        let st = State::new(&s[..2], &s[2..]).unwrap();
-        let (mut dq, mut dp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
-        runtime
-            .vector_field_driven(&st, &[us[r]], &mut dq, &mut dp)
-            .unwrap();
-        let rt = [dq[0], dq[1], dp[0], dp[1]];
-        for i in 0..4 {
-            // Relative to the component's typical size (its RMS rate).
-            let scale = model.norm.rate_scale[i] as f64;
-            let err = (rt[i] as f64 - trainer[[r, i]] as f64).abs() / scale;
-            worst = worst.max(err);
-        }
-    }
-    println!("runtime vs trainer field: worst error {worst:.2e} of the RMS rate");
+    let worst = field_difference(&model, &runtime, 0.04, 5);
     assert!(
         worst < 1e-4,
         "runtime field differs from the trainer's by {worst}"
@@ -395,28 +408,8 @@ fn crane_under_a_trolley_settles_at_the_effective_gravity_angle() {
     );
 
     // The runtime's field equals the trainer's prediction with the input
-    // network too (physical units, relative to the RMS rates).
-    let mut rng = ChaCha8Rng::seed_from_u64(8);
-    let states = sample_states(&model.norm.offset, &model.norm.scale, 1.5, 300, 4);
-    let us: Vec<f32> = (0..states.len())
-        .map(|_| rng.random_range(-5.0f32..5.0))
-        .collect();
-    let x = Array2::from_shape_fn((states.len(), 2), |(r, i)| states[r][i]);
-    let ua = Array2::from_shape_fn((states.len(), 1), |(r, _)| us[r]);
-    let trainer = model.vector_field_driven(x.view(), ua.view());
-    let mut worst_field = 0.0f64;
-    for (r, s) in states.iter().enumerate() {
-        let st = State::new(&s[..1], &s[1..]).unwrap();
-        let (mut dq, mut dp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
-        runtime
-            .vector_field_driven(&st, &[us[r]], &mut dq, &mut dp)
-            .unwrap();
-        for (i, v) in [dq[0], dp[0]].iter().enumerate() {
-            let err = (*v as f64 - trainer[[r, i]] as f64).abs() / model.norm.rate_scale[i] as f64;
-            worst_field = worst_field.max(err);
-        }
-    }
-    println!("runtime vs trainer field: worst error {worst_field:.2e} of the RMS rate");
+    // network too.
+    let worst_field = field_difference(&model, &runtime, 5.0, 8);
     assert!(worst_field < 1e-4);
 }
 

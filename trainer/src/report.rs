@@ -598,3 +598,16 @@ pub fn tagged_values(html: &str) -> Vec<(String, String)> {
     }
     out
 }
+
+/// The tagged numbers of a page whose text differs from what `report`
+/// (the run's report.json) holds at their key: (key, page text, report
+/// text). Empty when the page shows exactly the report's numbers.
+pub fn page_disagreements(html: &str, report: &Value) -> Vec<(String, String, String)> {
+    tagged_values(html)
+        .into_iter()
+        .filter_map(|(key, shown)| {
+            let want = fmt_num(lookup(report, &key).unwrap_or(&Value::Null));
+            (want != shown).then_some((key, shown, want))
+        })
+        .collect()
+}

@@ -35,68 +35,15 @@ pub fn inputs_file_for(blob: &Path) -> Option<PathBuf> {
     path.is_file().then_some(path)
 }
 
-/// An input sequence file: one row of m values per step (the `t` column
-/// dropped). Errors name the file, line and column.
-pub fn read_inputs(path: &Path) -> Result<Vec<Vec<f32>>> {
-    let text =
-        std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
-    let mut lines = text.lines();
-    let header: Vec<&str> = lines
-        .next()
-        .with_context(|| format!("{}: empty file", path.display()))?
-        .split(',')
-        .collect();
-    let well_formed = header.len() >= 2
-        && header[0] == "t"
-        && header[1..]
-            .iter()
-            .enumerate()
-            .all(|(i, h)| *h == format!("u{}", i + 1));
-    if !well_formed {
-        bail!(
-            "{}:1: header `{}` is not `t,u1..um`",
-            path.display(),
-            header.join(",")
-        );
-    }
-    let mut rows = Vec::new();
-    for (i, line) in lines.enumerate() {
-        let fields: Vec<&str> = line.split(',').collect();
-        if fields.len() != header.len() {
-            bail!(
-                "{}:{}: {} fields, the header has {}",
-                path.display(),
-                i + 2,
-                fields.len(),
-                header.len()
-            );
-        }
-        let mut row = Vec::with_capacity(header.len() - 1);
-        for (c, f) in fields.iter().enumerate().skip(1) {
-            let v = parse_value(f.trim()).map(f32::from_bits).with_context(|| {
-                format!(
-                    "{}:{}: column `{}`: `{f}` is neither 0x-hex bits nor a number",
-                    path.display(),
-                    i + 2,
-                    header[c]
-                )
-            })?;
-            row.push(v);
-        }
-        rows.push(row);
-    }
-    Ok(rows)
-}
-
-fn parse_value(text: &str) -> Option<u32> {
-    match text.strip_prefix("0x") {
-        Some(hex) => u32::from_str_radix(hex, 16).ok(),
-        None => text.parse::<f32>().ok().map(f32::to_bits),
-    }
-}
-
-/// One file: the dof and every row's bit patterns (the `t` column dropped).
-pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
+/// A table of `0x`-hex bit patterns or decimal numbers under a header that
+/// `header_ok` accepts (`expected` describes it in the error): the header
+/// and every row's bit patterns, the first (`t`) column dropped. Errors
+/// name the file, line and column.
+fn read_table(
+    path: &Path,
+    header_ok: impl Fn(&[&str]) -> bool,
+    expected: &str,
+) -> Result<(usize, Vec<Vec<u32>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
     let mut lines = text.lines();
@@ -106,9 +53,9 @@ pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
         .split(',')
         .collect();
     let columns = header.len();
-    if columns < 3 || columns.is_multiple_of(2) || header[0] != "t" {
+    if columns < 2 || header[0] != "t" || !header_ok(&header) {
         bail!(
-            "{}:1: header `{}` is not `t,q1..qn,p1..pn`",
+            "{}:1: header `{}` is not `{expected}`",
             path.display(),
             header.join(",")
         );
@@ -138,6 +85,36 @@ pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
         }
         rows.push(row);
     }
+    Ok((columns, rows))
+}
+
+/// An input sequence file: one row of m values per step (the `t` column
+/// dropped). Errors name the file, line and column.
+pub fn read_inputs(path: &Path) -> Result<Vec<Vec<f32>>> {
+    let inputs_header = |h: &[&str]| {
+        h[1..]
+            .iter()
+            .enumerate()
+            .all(|(i, c)| *c == format!("u{}", i + 1))
+    };
+    let (_, rows) = read_table(path, inputs_header, "t,u1..um")?;
+    Ok(rows
+        .into_iter()
+        .map(|r| r.into_iter().map(f32::from_bits).collect())
+        .collect())
+}
+
+fn parse_value(text: &str) -> Option<u32> {
+    match text.strip_prefix("0x") {
+        Some(hex) => u32::from_str_radix(hex, 16).ok(),
+        None => text.parse::<f32>().ok().map(f32::to_bits),
+    }
+}
+
+/// One file: the dof and every row's bit patterns (the `t` column dropped).
+pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
+    let states_header = |h: &[&str]| h.len() >= 3 && !h.len().is_multiple_of(2);
+    let (columns, rows) = read_table(path, states_header, "t,q1..qn,p1..pn")?;
     if rows.is_empty() {
         bail!("{}: no rows", path.display());
     }

@@ -730,7 +730,7 @@ pub const PORT_CATALOG: &[PortEntry] = &[
         name: "flexure-squeeze",
         summary: "sensor mass on a flexure beside a fixed plate: squeeze-film damping that grows as the gap closes, no input, 1 dof",
         params: FLEXURE_SQUEEZE_PARAMS,
-        build: FlexureSqueeze::build,
+        build: FlexureDamped::build_squeeze,
     },
     PortEntry {
         name: "crane-trolley",
@@ -776,39 +776,67 @@ const FLEXURE_DAMPED_PARAMS: &[ParamSpec] = &[
     },
 ];
 
-/// Sensor mass on a flexure with a viscous damper c = 2 zeta sqrt(k m):
-/// H = p^2/(2m) + k q^2/2, R = diag(0, c), no input.
+/// Sensor mass on a flexure with a viscous damper: H = p^2/(2m) + k q^2/2,
+/// R (momentum block) = c(q), no input. `flexure-damped` has a constant
+/// c = 2 zeta sqrt(k m). `flexure-squeeze` moves its face against a fixed
+/// plate across an air film (q = displacement towards the plate): the
+/// squeeze-film damping of parallel plates grows as the gap h - q closes,
+/// c(q) = c0 (h / (h - q))^3 (Reynolds lubrication theory; from memory),
+/// c0 = 2 zeta0 sqrt(k m).
 #[derive(Debug)]
 pub struct FlexureDamped {
+    name: &'static str,
     params: ParamValues,
     m: f64,
     k: f64,
     c: f64,
+    /// Gap h to the plate (infinite: no squeeze film).
+    gap: f64,
     amp: f64,
 }
 
 impl FlexureDamped {
     fn build(params: ParamValues) -> Box<dyn PortSystem> {
-        let (m, k) = (params.get("m"), params.get("k"));
         let zeta = params.get("zeta").min(0.999);
+        Self::with(params, "flexure-damped", zeta, f64::INFINITY)
+    }
+
+    fn build_squeeze(params: ParamValues) -> Box<dyn PortSystem> {
+        let (zeta0, gap) = (params.get("zeta0"), params.get("gap"));
+        Self::with(params, "flexure-squeeze", zeta0, gap)
+    }
+
+    fn with(params: ParamValues, name: &'static str, zeta: f64, gap: f64) -> Box<dyn PortSystem> {
+        let (m, k) = (params.get("m"), params.get("k"));
         Box::new(FlexureDamped {
+            name,
             m,
             k,
             c: 2.0 * zeta * (k * m).sqrt(),
-            amp: params.get("amp"),
+            gap,
+            amp: params.get("amp").min(0.9 * gap),
             params,
         })
     }
 
-    /// The viscous damping coefficient c in N s/m.
+    /// The damping coefficient at rest, c in N s/m.
     pub fn damping(&self) -> f64 {
         self.c
+    }
+
+    /// The damping coefficient at displacement q, N s/m.
+    pub fn damping_at(&self, q: f64) -> f64 {
+        if self.gap.is_infinite() {
+            return self.c;
+        }
+        let ratio = self.gap / (self.gap - q).max(1e-3 * self.gap);
+        self.c * ratio * ratio * ratio
     }
 }
 
 impl PortSystem for FlexureDamped {
     fn name(&self) -> &'static str {
-        "flexure-damped"
+        self.name
     }
     fn dof(&self) -> usize {
         1
@@ -826,8 +854,8 @@ impl PortSystem for FlexureDamped {
         g[0] = self.k * x[0];
         g[1] = x[1] / self.m;
     }
-    fn dissipation(&self, _x: &[f64]) -> Vec<f64> {
-        vec![0.0, 0.0, 0.0, self.c]
+    fn dissipation(&self, x: &[f64]) -> Vec<f64> {
+        vec![0.0, 0.0, 0.0, self.damping_at(x[0])]
     }
     fn input_matrix(&self, _x: &[f64]) -> Vec<f64> {
         Vec::new()
@@ -1124,74 +1152,3 @@ const FLEXURE_SQUEEZE_PARAMS: &[ParamSpec] = &[
         meaning: "largest initial amplitude (below the gap)",
     },
 ];
-
-/// Sensor mass on a flexure whose face moves against a fixed plate across
-/// an air film: q = displacement towards the plate (m), p = m dq/dt. The
-/// squeeze-film damping of parallel plates grows as the gap h - q closes,
-/// c(q) = c0 (h / (h - q))^3 (Reynolds lubrication theory; from memory),
-/// with c0 = 2 zeta0 sqrt(k m). H = p^2/(2m) + k q^2/2, R (momentum
-/// block) = c(q), no input.
-#[derive(Debug)]
-pub struct FlexureSqueeze {
-    params: ParamValues,
-    m: f64,
-    k: f64,
-    gap: f64,
-    c0: f64,
-    amp: f64,
-}
-
-impl FlexureSqueeze {
-    fn build(params: ParamValues) -> Box<dyn PortSystem> {
-        let (m, k, gap) = (params.get("m"), params.get("k"), params.get("gap"));
-        Box::new(FlexureSqueeze {
-            m,
-            k,
-            gap,
-            c0: 2.0 * params.get("zeta0") * (k * m).sqrt(),
-            amp: params.get("amp").clamp(0.0, 0.9 * gap),
-            params,
-        })
-    }
-
-    /// The squeeze-film damping coefficient at displacement q, N s/m.
-    pub fn damping_at(&self, q: f64) -> f64 {
-        let ratio = self.gap / (self.gap - q).max(1e-3 * self.gap);
-        self.c0 * ratio * ratio * ratio
-    }
-}
-
-impl PortSystem for FlexureSqueeze {
-    fn name(&self) -> &'static str {
-        "flexure-squeeze"
-    }
-    fn dof(&self) -> usize {
-        1
-    }
-    fn inputs(&self) -> usize {
-        0
-    }
-    fn params(&self) -> &ParamValues {
-        &self.params
-    }
-    fn hamiltonian(&self, x: &[f64]) -> f64 {
-        x[1] * x[1] / (2.0 * self.m) + 0.5 * self.k * x[0] * x[0]
-    }
-    fn gradient(&self, x: &[f64], g: &mut [f64]) {
-        g[0] = self.k * x[0];
-        g[1] = x[1] / self.m;
-    }
-    fn dissipation(&self, x: &[f64]) -> Vec<f64> {
-        vec![0.0, 0.0, 0.0, self.damping_at(x[0])]
-    }
-    fn input_matrix(&self, _x: &[f64]) -> Vec<f64> {
-        Vec::new()
-    }
-    /// Released from rest at a displacement uniform in +-amp.
-    fn sample_initial_state(&self, rng: &mut ChaCha8Rng) -> Vec<f64> {
-        vec![uniform(rng, -1.0, 1.0) * self.amp, 0.0]
-    }
-    fn sample_excitation(&self, _rng: &mut ChaCha8Rng) -> Multisine {
-        Multisine::none()
-    }
-}

@@ -435,9 +435,10 @@ fn squeeze_film_damping_is_learned_as_a_function_of_the_gap() {
     assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 3);
     let runtime = HostModel::from_bytes(&bytes).unwrap();
     // R_pp(q) through the runtime: dp/dt = -dH/dq - R_pp dH/dp, where the
-    // logs see the mass move fast: released from rest at up to 1.2 mm, it
-    // passes +-0.6 mm at most of its peak speed, while near the turning
-    // points v = 0 and the damping force c v, hence c, is unobservable.
+    // logs see the mass move fast: swinging with amplitudes of up to
+    // 1.2 mm, it passes +-0.6 mm at most of its peak speed, while near the
+    // turning points v = 0 and the damping force c v, hence c, is
+    // unobservable.
     let mut worst = 0.0f64;
     let (lo, hi) = (-0.6e-3, 0.6e-3);
     for i in 0..=20 {

@@ -1,6 +1,6 @@
 //! `keel simulate`: write reference trajectories of a built-in system to CSV.
 
-use crate::data::{write_csv, write_csv_with_inputs};
+use crate::data::write_csv_with_inputs;
 use crate::simulate::{
     add_noise, max_relative_energy_drift, simulate, simulate_port, SimulationSpec,
 };
@@ -91,6 +91,48 @@ fn after_help() -> String {
     text
 }
 
+/// The checked noise level and the simulation settings of `args`.
+fn spec_of(args: &Args) -> anyhow::Result<SimulationSpec> {
+    anyhow::ensure!(
+        args.noise.is_finite() && args.noise >= 0.0,
+        "--noise must be a finite non-negative number (got {})",
+        args.noise
+    );
+    Ok(SimulationSpec {
+        trajectories: args.trajectories,
+        duration: args.duration,
+        rate: args.rate,
+        seed: args.seed,
+    })
+}
+
+/// Noise (when asked), then the CSV; returns whether derivative columns
+/// were written and the summary line's common part.
+fn write_log(
+    args: &Args,
+    ds: &mut crate::dataset::Dataset,
+    inputs: Option<&crate::dataset::Inputs>,
+    name: &str,
+    params: &crate::systems::ParamValues,
+) -> anyhow::Result<String> {
+    add_noise(ds, args.noise, args.seed)?;
+    let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
+    write_csv_with_inputs(&args.out, ds, inputs, with_derivatives)?;
+    let params: Vec<String> = params
+        .iter()
+        .map(|(k, v, u)| format!("{k}={v} {u}"))
+        .collect();
+    Ok(format!(
+        "wrote {} trajectories x {} samples of '{name}' ({}; {} Hz, noise {}, derivatives {}",
+        ds.trajectories.len(),
+        ds.trajectories.first().map_or(0, |t| t.t.len()),
+        params.join(", "),
+        args.rate,
+        args.noise,
+        if with_derivatives { "exact" } else { "omitted" },
+    ))
+}
+
 /// Run the command.
 pub fn run(args: Args) -> anyhow::Result<()> {
     if let Some(system) = build_port_system(&args.system, &args.params) {
@@ -103,75 +145,32 @@ pub fn run(args: Args) -> anyhow::Result<()> {
         }
         other => other,
     })?;
-    anyhow::ensure!(
-        args.noise.is_finite() && args.noise >= 0.0,
-        "--noise must be a finite non-negative number (got {})",
-        args.noise
-    );
-    let spec = SimulationSpec {
-        trajectories: args.trajectories,
-        duration: args.duration,
-        rate: args.rate,
-        seed: args.seed,
-    };
+    let spec = spec_of(&args)?;
     let mut ds = simulate(system.as_ref(), &spec)?;
     let drift = max_relative_energy_drift(system.as_ref(), &ds);
-    add_noise(&mut ds, args.noise, args.seed)?;
-    let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
-    write_csv(&args.out, &ds, with_derivatives)?;
-    let params: Vec<String> = system
-        .params()
-        .iter()
-        .map(|(k, v, u)| format!("{k}={v} {u}"))
-        .collect();
+    let line = write_log(&args, &mut ds, None, system.name(), system.params())?;
     println!(
-        "wrote {} trajectories x {} samples of '{}' ({}; {} Hz, noise {}, derivatives {}) to {}; max relative energy drift {:.1e}",
-        ds.trajectories.len(),
-        ds.trajectories.first().map_or(0, |t| t.t.len()),
-        system.name(),
-        params.join(", "),
-        spec.rate,
-        args.noise,
-        if with_derivatives { "exact" } else { "omitted" },
-        args.out.display(),
-        drift
+        "{line}) to {}; max relative energy drift {drift:.1e}",
+        args.out.display()
     );
     Ok(())
 }
 
 /// `run` for a damped or driven system.
 fn run_port(args: &Args, system: &dyn crate::systems::PortSystem) -> anyhow::Result<()> {
-    anyhow::ensure!(
-        args.noise.is_finite() && args.noise >= 0.0,
-        "--noise must be a finite non-negative number (got {})",
-        args.noise
-    );
-    let spec = SimulationSpec {
-        trajectories: args.trajectories,
-        duration: args.duration,
-        rate: args.rate,
-        seed: args.seed,
-    };
+    let spec = spec_of(args)?;
     let (mut ds, inputs) = simulate_port(system, &spec)?;
-    add_noise(&mut ds, args.noise, args.seed)?;
-    let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
-    write_csv_with_inputs(&args.out, &ds, inputs.as_ref(), with_derivatives)?;
-    let params: Vec<String> = system
-        .params()
-        .iter()
-        .map(|(k, v, u)| format!("{k}={v} {u}"))
-        .collect();
-    println!(
-        "wrote {} trajectories x {} samples of '{}' ({}; {} Hz, noise {}, derivatives {}, {} input columns) to {}",
-        ds.trajectories.len(),
-        ds.trajectories.first().map_or(0, |t| t.t.len()),
+    let line = write_log(
+        args,
+        &mut ds,
+        inputs.as_ref(),
         system.name(),
-        params.join(", "),
-        spec.rate,
-        args.noise,
-        if with_derivatives { "exact" } else { "omitted" },
+        system.params(),
+    )?;
+    println!(
+        "{line}, {} input columns) to {}",
         system.inputs(),
-        args.out.display(),
+        args.out.display()
     );
     Ok(())
 }

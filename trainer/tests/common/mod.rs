@@ -95,3 +95,31 @@ pub fn central_difference(
     let minus: Vec<f32> = p.iter().zip(d).map(|(a, b)| a - h * b).collect();
     (loss_f32(obj, &plus, z, t) - loss_f32(obj, &minus, z, t)) / (2.0 * h as f64)
 }
+
+/// The trainer's analytic gradient of `obj`'s loss at `p`.
+pub fn loss_gradient(
+    obj: &impl Objective,
+    p: &[f32],
+    z: &Array2<f32>,
+    t: &Array2<f32>,
+) -> Vec<f32> {
+    let mut grad = vec![0.0f32; p.len()];
+    let mut work = Default::default();
+    obj.loss_sum(p, z.view(), t.view(), &mut work, Some(&mut grad));
+    grad
+}
+
+/// From the products g_i d_i of a gradient and a direction: the
+/// directional derivative g . d and its difference from `reference`
+/// relative to sum |g_i d_i| (the scale of the sum's rounding).
+pub fn directional_error(products: impl Iterator<Item = f64>, reference: f64) -> (f64, f64) {
+    let (mut analytic, mut magnitude) = (0.0f64, 0.0f64);
+    for v in products {
+        analytic += v;
+        magnitude += v.abs();
+    }
+    (
+        analytic,
+        (analytic - reference).abs() / magnitude.max(1e-12),
+    )
+}

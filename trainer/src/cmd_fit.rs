@@ -522,30 +522,30 @@ fn run_port(
     let interrupt = interrupt_flag();
     let settings = fit_settings(args, interrupt.clone());
     let m = train_u.as_ref().map_or(0, |u| u.count);
-    println!(
-        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, {}",
-        train.samples(),
-        train.trajectories.len(),
-        val.as_ref().map_or(0, |(v, _)| v.samples()),
-        m,
-        PortArch {
-            inputs: m,
-            ..port_terms(args)?
-        }
-        .label(train.dof),
-    );
     if m == 0 && args.input_net.is_some() {
         bail!(
             "--input-net: {} has no input columns u1..um, so there is no G to learn",
             args.data.display()
         );
     }
+    let terms = PortArch {
+        inputs: m,
+        ..port_terms(args)?
+    };
+    println!(
+        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, {}",
+        train.samples(),
+        train.trajectories.len(),
+        val.as_ref().map_or(0, |(v, _)| v.samples()),
+        m,
+        terms.label(train.dof),
+    );
     let fitted = fit::fit_port(
         &train,
         train_u.as_ref(),
         val.as_ref().map(|(v, u)| (v, u.as_ref())),
         &arch,
-        &port_terms(args)?,
+        &terms,
         &settings,
     )?;
     write_model(args, &fitted, integrator)?;

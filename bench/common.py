@@ -1,5 +1,5 @@
 """Shared parts of the reference trainers: command line, CSV loading, the
-normalization and loss weights of Keel's energy-model loss (mirrored from
+normalization and loss weights of Visviva's energy-model loss (mirrored from
 trainer/src/hnn.rs), Glorot-uniform initialization, the learning-rate
 schedule (linear warm-up, then cosine decay to a floor; trainer/src/optim.rs)
 and the JSON summary. Framework-independent: NumPy only."""
@@ -13,7 +13,7 @@ import tempfile
 
 import numpy as np
 
-# Settings Keel's trainer uses by default (trainer/src/fit.rs FitSettings).
+# Settings Visviva's trainer uses by default (trainer/src/fit.rs FitSettings).
 WARMUP_FRACTION = 0.02
 LR_FLOOR = 0.01
 CLIP_NORM = 10.0
@@ -32,7 +32,7 @@ def parse_args(description):
     ap.add_argument("--threads", type=int, default=1)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--json", required=True, help="summary output (JSON)")
-    ap.add_argument("--init", help="initial parameters (Keel's, written by cargo xtask bench)")
+    ap.add_argument("--init", help="initial parameters (Visviva's, written by cargo xtask bench)")
     a = ap.parse_args()
     a.hidden = [int(w) for w in a.hidden.split(",") if w]
     return a
@@ -60,7 +60,7 @@ def load_log(path):
 
 
 def normalize(x, dx):
-    """Keel's normalization for a general energy model (hnn.rs,
+    """Visviva's normalization for a general energy model (hnn.rs,
     Normalization::from_data with momenta_at_zero = false, then normalize and
     gains): z = (x - mean) / std, targets dx / rms(dx), and the gains that
     turn dE/dz into normalized J dH/dx. Returns float32 z, t, gains and the
@@ -91,7 +91,7 @@ def normalize(x, dx):
 
 def glorot_init(sizes, seed):
     """Glorot/Xavier uniform weights U(-a, a), a = sqrt(6 / (in + out))
-    (Glorot & Bengio, 2010), zero biases; W is [outputs][inputs] as in Keel."""
+    (Glorot & Bengio, 2010), zero biases; W is [outputs][inputs] as in Visviva."""
     rng = np.random.default_rng(seed)
     params = []
     for i, o in zip(sizes[:-1], sizes[1:]):
@@ -102,7 +102,7 @@ def glorot_init(sizes, seed):
 
 
 def initial_params(args, sizes):
-    """Keel's initial parameters from --init (three lines per layer:
+    """Visviva's initial parameters from --init (three lines per layer:
     `outputs inputs`, weights row by row, biases), else Glorot-uniform."""
     if not args.init:
         return glorot_init(sizes, args.seed)
@@ -122,7 +122,7 @@ def initial_params(args, sizes):
 
 
 def warmup_steps(total):
-    # Keel: ((total as f32 * 0.02) as usize).max(1)
+    # Visviva: ((total as f32 * 0.02) as usize).max(1)
     return max(int(np.float32(total) * np.float32(WARMUP_FRACTION)), 1)
 
 
@@ -139,7 +139,7 @@ def lr_at(step, peak, total):
 
 def epoch_orders(rows, batch, steps, seed):
     """Row indices of every step: a fresh permutation per epoch, cut into
-    consecutive batches (as Keel's loop does; the generator differs)."""
+    consecutive batches (as Visviva's loop does; the generator differs)."""
     rng = np.random.default_rng(seed ^ 0x9E3779B9)
     out = []
     while len(out) < steps:

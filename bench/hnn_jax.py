@@ -1,6 +1,6 @@
 """Reference trainer on JAX (CPU): the same Hamiltonian-network loss as
-Keel's energy model and hnn_torch.py, gradients by nested jax.grad (double
-backpropagation), global-norm clipping at 10 and Adam with Keel's warm-up +
+Visviva's energy model and hnn_torch.py, gradients by nested jax.grad (double
+backpropagation), global-norm clipping at 10 and Adam with Visviva's warm-up +
 cosine schedule, the whole training step (batch gather, loss, gradient,
 clipping, schedule, Adam) compiled by jax.jit ahead of the timed loop.
 Writes a JSON summary (see common.write_summary)."""

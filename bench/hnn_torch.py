@@ -1,8 +1,8 @@
 """Reference trainer on PyTorch (CPU, eager mode): the Hamiltonian-network
-loss of Keel's energy model (MSE between the normalized J dH/dx and the
+loss of Visviva's energy model (MSE between the normalized J dH/dx and the
 normalized target derivatives, per sample the mean over components, then the
 batch mean), parameter gradients by autograd double backpropagation, global
-norm clipping at 10, Adam with Keel's warm-up + cosine schedule. Prints
+norm clipping at 10, Adam with Visviva's warm-up + cosine schedule. Prints
 nothing on success; writes a JSON summary (see common.write_summary)."""
 
 import os

@@ -1,5 +1,5 @@
 //! Build script: hands `memory.x` to the linker and makes the build depend on
-//! the model blob and run plan named by `KEEL_BLOB` and `KEEL_RUN_PLAN`.
+//! the model blob and run plan named by `VISVIVA_BLOB` and `VISVIVA_RUN_PLAN`.
 use std::{env, fs, path::PathBuf};
 
 fn main() {
@@ -7,15 +7,15 @@ fn main() {
     fs::write(out.join("memory.x"), include_bytes!("memory.x")).expect("write memory.x");
     println!("cargo:rustc-link-search={}", out.display());
     println!("cargo:rerun-if-changed=memory.x");
-    for var in ["KEEL_BLOB", "KEEL_RUN_PLAN"] {
+    for var in ["VISVIVA_BLOB", "VISVIVA_RUN_PLAN"] {
         println!("cargo:rerun-if-env-changed={var}");
         match env::var_os(var) {
             Some(path) => println!("cargo:rerun-if-changed={}", PathBuf::from(path).display()),
             None => panic!(
-                "{var} is not set: point it at a file (KEEL_BLOB: a model blob, KEEL_RUN_PLAN: a \
+                "{var} is not set: point it at a file (VISVIVA_BLOB: a model blob, VISVIVA_RUN_PLAN: a \
                  run plan); `cargo xtask device` sets both"
             ),
         }
     }
-    println!("cargo:rerun-if-env-changed=KEEL_DRILL");
+    println!("cargo:rerun-if-env-changed=VISVIVA_DRILL");
 }

@@ -1,6 +1,6 @@
 //! Ending the program: success and failure exits through semihosting, the
 //! panic handler, the HardFault handler, and the deliberate fault drills
-//! (`KEEL_DRILL=panic|hardfault` at build time) that prove both handlers
+//! (`VISVIVA_DRILL=panic|hardfault` at build time) that prove both handlers
 //! make QEMU exit with a non-zero status.
 
 use cortex_m::peripheral::SCB;
@@ -23,19 +23,19 @@ pub fn exit_failure() -> ! {
 
 /// Log `what` as an error and exit with a non-zero status.
 pub fn fail(what: &str) -> ! {
-    defmt::error!("keel-fw error: {=str}", what);
+    defmt::error!("visviva-fw error: {=str}", what);
     exit_failure()
 }
 
-/// Trigger the fault named by `KEEL_DRILL` (set when building), if any.
+/// Trigger the fault named by `VISVIVA_DRILL` (set when building), if any.
 pub fn run_drill_if_requested() {
-    match option_env!("KEEL_DRILL") {
+    match option_env!("VISVIVA_DRILL") {
         Some("panic") => {
-            defmt::println!("keel-fw drill: panic");
+            defmt::println!("visviva-fw drill: panic");
             panic!("deliberate panic drill");
         }
         Some("hardfault") => {
-            defmt::println!("keel-fw drill: hardfault");
+            defmt::println!("visviva-fw drill: hardfault");
             // A permanently undefined instruction: UsageFault, escalated to
             // HardFault because UsageFault is not enabled separately.
             cortex_m::asm::udf();
@@ -46,14 +46,14 @@ pub fn run_drill_if_requested() {
 
 #[panic_handler]
 fn panic(info: &core::panic::PanicInfo) -> ! {
-    defmt::error!("keel-fw error: panic: {}", defmt::Display2Format(info));
+    defmt::error!("visviva-fw error: panic: {}", defmt::Display2Format(info));
     exit_failure()
 }
 
 #[exception]
 unsafe fn HardFault(frame: &ExceptionFrame) -> ! {
     defmt::error!(
-        "keel-fw error: hard fault at pc={=u32:#010x} lr={=u32:#010x}",
+        "visviva-fw error: hard fault at pc={=u32:#010x} lr={=u32:#010x}",
         frame.pc(),
         frame.lr()
     );

@@ -1,5 +1,5 @@
-//! Example Cortex-M4F firmware for Keel: parses the one model blob placed in
-//! the `.keel_model` flash region, steps it from fixed initial states, and
+//! Example Cortex-M4F firmware for Visviva: parses the one model blob placed in
+//! the `.vv_model` flash region, steps it from fixed initial states, and
 //! logs every state's exact `f32` bit patterns over defmt (semihosting), plus
 //! instruction counts, FPU status and the stack high-water mark.
 //!
@@ -16,7 +16,7 @@ mod stack_watermark;
 
 use cortex_m_rt::entry;
 use defmt_semihosting as _;
-use keel_runtime::{Model, State};
+use visviva_runtime::{Model, State};
 
 /// Most degrees of freedom this firmware accepts; a blob with more is refused.
 pub const MAX_DOF: usize = 4;
@@ -32,7 +32,7 @@ const CPACR: *const u32 = 0xE000_ED88 as *const u32;
 #[entry]
 fn main() -> ! {
     defmt::println!(
-        "keel-fw bounds max_dof={=u32} max_width={=u32}",
+        "visviva-fw bounds max_dof={=u32} max_width={=u32}",
         MAX_DOF as u32,
         MAX_WIDTH as u32
     );
@@ -41,7 +41,7 @@ fn main() -> ! {
     // SAFETY: CPACR is an always-readable System Control Block register.
     let cpacr = unsafe { core::ptr::read_volatile(CPACR) };
     defmt::println!(
-        "keel-fw fpu cpacr={=u32:#010x} cp10_cp11_full_access={=bool}",
+        "visviva-fw fpu cpacr={=u32:#010x} cp10_cp11_full_access={=bool}",
         cpacr,
         (cpacr >> 20) & 0xF == 0xF
     );
@@ -52,7 +52,7 @@ fn main() -> ! {
     let clock = instr_clock::InstrClock::start(peripherals.SYST);
     let calib = clock.calibrate();
     defmt::println!(
-        "keel-fw calib loop_instructions={=u32} ticks={=u32} overhead_ticks={=u32}",
+        "visviva-fw calib loop_instructions={=u32} ticks={=u32} overhead_ticks={=u32}",
         calib.loop_instructions,
         calib.loop_ticks,
         calib.overhead_ticks
@@ -63,7 +63,7 @@ fn main() -> ! {
         Ok(m) => m,
         Err(e) => {
             defmt::error!(
-                "keel-fw error: blob refused: {} ({})",
+                "visviva-fw error: blob refused: {} ({})",
                 e,
                 defmt::Display2Format(&e)
             );
@@ -71,9 +71,9 @@ fn main() -> ! {
         }
     };
     let cost = model.cost();
-    let dof = keel_runtime::Hamiltonian::dof(&model);
+    let dof = visviva_runtime::Hamiltonian::dof(&model);
     defmt::println!(
-        "keel-fw model dof={=u32} parameters={=u32} macs_per_step={=u32} blob_bytes={=u32}",
+        "visviva-fw model dof={=u32} parameters={=u32} macs_per_step={=u32} blob_bytes={=u32}",
         dof as u32,
         cost.parameters,
         cost.macs_per_step,
@@ -83,20 +83,20 @@ fn main() -> ! {
     let plan = match run_plan::RunPlan::parse(run_plan::EMBEDDED_PLAN) {
         Ok(p) => p,
         Err(e) => {
-            defmt::error!("keel-fw error: run plan refused: {}", e);
+            defmt::error!("visviva-fw error: run plan refused: {}", e);
             faults::exit_failure()
         }
     };
     if plan.dof() != dof {
         defmt::error!(
-            "keel-fw error: run plan has {=u32} dof, model {=u32}",
+            "visviva-fw error: run plan has {=u32} dof, model {=u32}",
             plan.dof() as u32,
             dof as u32
         );
         faults::exit_failure();
     }
     defmt::println!(
-        "keel-fw plan states={=u32} steps={=u32}",
+        "visviva-fw plan states={=u32} steps={=u32}",
         plan.states() as u32,
         plan.steps()
     );
@@ -110,7 +110,7 @@ fn main() -> ! {
         let mut x = match State::<MAX_DOF>::new(&q[..dof], &p[..dof]) {
             Ok(x) => x,
             Err(e) => {
-                defmt::error!("keel-fw error: initial state {=u32}: {}", s as u32, e);
+                defmt::error!("visviva-fw error: initial state {=u32}: {}", s as u32, e);
                 faults::exit_failure()
             }
         };
@@ -125,7 +125,7 @@ fn main() -> ! {
             step_ticks += u64::from(clock.elapsed(t0, t1));
             if let Err(e) = r {
                 defmt::error!(
-                    "keel-fw error: step {=u32} of state {=u32} failed: {} ({})",
+                    "visviva-fw error: step {=u32} of state {=u32} failed: {} ({})",
                     k,
                     s as u32,
                     e,
@@ -138,18 +138,18 @@ fn main() -> ! {
     }
     let total_steps = plan.steps() * plan.states() as u32;
     defmt::println!(
-        "keel-fw timing steps={=u32} ticks={=u64}",
+        "visviva-fw timing steps={=u32} ticks={=u64}",
         total_steps,
         step_ticks
     );
 
     let stack = stack_watermark::measure();
     defmt::println!(
-        "keel-fw stack used={=u32} size={=u32}",
+        "visviva-fw stack used={=u32} size={=u32}",
         stack.used_bytes,
         stack.region_bytes
     );
-    defmt::println!("keel-fw done");
+    defmt::println!("visviva-fw done");
     faults::exit_success()
 }
 

@@ -1,32 +1,32 @@
 //! The model blob in its own flash region. `memory.x` reserves the region
-//! `KEEL_MODEL` and places the output section `.keel_model` at its start;
-//! this build puts the blob named by `KEEL_BLOB` there, but the firmware
+//! `VV_MODEL` and places the output section `.vv_model` at its start;
+//! this build puts the blob named by `VISVIVA_BLOB` there, but the firmware
 //! reads the region through its linker symbols, never through the embedded
 //! array, so a board can be re-flashed with other weights (written at the
 //! region's address) without rebuilding. The blob's length comes from its own
 //! header; erased or foreign bytes are refused by the runtime's checks.
 
-use keel_runtime::format::{HEADER_LEN, TRAILER_LEN};
+use visviva_runtime::format::{HEADER_LEN, TRAILER_LEN};
 
-/// The blob chosen at build time, placed in `.keel_model` (kept by the
+/// The blob chosen at build time, placed in `.vv_model` (kept by the
 /// linker script even though no code refers to it).
 #[used]
-#[link_section = ".keel_model"]
-static EMBEDDED_BLOB: [u8; include_bytes!(env!("KEEL_BLOB")).len()] =
-    *include_bytes!(env!("KEEL_BLOB"));
+#[link_section = ".vv_model"]
+static EMBEDDED_BLOB: [u8; include_bytes!(env!("VISVIVA_BLOB")).len()] =
+    *include_bytes!(env!("VISVIVA_BLOB"));
 
 extern "C" {
-    static __keel_model_start: u8;
-    static __keel_model_end: u8;
+    static __vv_model_start: u8;
+    static __vv_model_end: u8;
 }
 
 /// The whole reserved region, as flashed.
 fn region() -> &'static [u8] {
-    let start = core::ptr::addr_of!(__keel_model_start);
-    let end = core::ptr::addr_of!(__keel_model_end);
+    let start = core::ptr::addr_of!(__vv_model_start);
+    let end = core::ptr::addr_of!(__vv_model_end);
     let len = (end as usize).saturating_sub(start as usize);
     // SAFETY: the linker script defines both symbols as the bounds of the
-    // KEEL_MODEL flash region, which is mapped, read-only and never written
+    // VV_MODEL flash region, which is mapped, read-only and never written
     // while the firmware runs.
     unsafe { core::slice::from_raw_parts(start, len) }
 }

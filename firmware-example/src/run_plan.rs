@@ -1,10 +1,10 @@
 //! The run plan: initial states, step count and, for a driven model, the
-//! input sequence, chosen at build time (`KEEL_RUN_PLAN` names the file).
+//! input sequence, chosen at build time (`VISVIVA_RUN_PLAN` names the file).
 //! Layout, all little-endian:
 //!
 //! ```text
 //! offset  size            field
-//! 0       4               tag b"KRUN"
+//! 0       4               tag b"VRUN"
 //! 4       4               layout version (u32): 1, or 2 with inputs
 //! 8       4               degrees of freedom n (u32)
 //! 12      4               number of initial states S (u32)
@@ -17,11 +17,11 @@
 //! H is 20 for version 1 and 24 for version 2.
 
 /// The plan embedded in this build.
-pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!("KEEL_RUN_PLAN"));
+pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!("VISVIVA_RUN_PLAN"));
 
-const TAG: [u8; 4] = *b"KRUN";
+const TAG: [u8; 4] = *b"VRUN";
 /// Inputs per step the firmware can hold.
-pub const MAX_INPUTS: usize = keel_runtime::format::MAX_INPUTS;
+pub const MAX_INPUTS: usize = visviva_runtime::format::MAX_INPUTS;
 
 /// Why a plan was refused.
 #[derive(Debug, Clone, Copy, defmt::Format)]

@@ -11,11 +11,11 @@ use std::hint::black_box;
 use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion};
-use keel_runtime::format::{
+use visviva_runtime::format::{
     encode, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
     MlpDesc, ModelDesc, WeightsDesc,
 };
-use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
 
 const WIDTHS: [usize; 4] = [16, 32, 64, 128];
 

@@ -3,13 +3,13 @@
 //! architecture) with f32 and int8 weights. Weights are seeded fixtures: only
 //! the shapes matter here.
 //!
-//! Run: `cargo run -p keel-runtime --example model_cost`
+//! Run: `cargo run -p visviva-runtime --example model_cost`
 
-use keel_runtime::format::{
+use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, LayerDesc, MlpDesc,
     ModelDesc, WeightsDesc,
 };
-use keel_runtime::{Integrator, Method, Model};
+use visviva_runtime::{Integrator, Method, Model};
 
 fn main() {
     let sizes = [2usize, 64, 64, 1];

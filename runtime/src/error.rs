@@ -81,11 +81,11 @@ impl fmt::Display for BlobError {
             Self::Truncated { needed, found } => {
                 write!(f, "blob truncated: needs {needed} bytes, has {found}")
             }
-            Self::BadMagic => f.write_str("not a Keel model blob (magic tag missing)"),
+            Self::BadMagic => f.write_str("not a Visviva model blob (magic tag missing)"),
             Self::UnsupportedVersion { found, supported } => write!(
                 f,
                 "blob format version {found} is not supported (this runtime reads version {supported}); \
-                 re-export the model with a matching keel version"
+                 re-export the model with a matching visviva version"
             ),
             Self::CrcMismatch { stored, computed } => write!(
                 f,

@@ -3,7 +3,7 @@
 //!
 //! ```text
 //! offset  size  field
-//! 0       4     magic tag b"KEEL"
+//! 0       4     magic tag b"VVMB"
 //! 4       2     format version (u16): 1; 2 with constant port terms;
 //!                3 with port terms that are networks of q
 //! 6       4     payload length L (u32)
@@ -23,7 +23,7 @@ use crate::error::BlobError;
 use crate::integrate::Integrator;
 
 /// First four bytes of every blob.
-pub const MAGIC: [u8; 4] = *b"KEEL";
+pub const MAGIC: [u8; 4] = *b"VVMB";
 /// The newest format version this runtime reads and writes. Version 2 added
 /// the dissipation and input sections, version 3 their network variants
 /// (R and G as functions of q). A blob is always written with the oldest

@@ -1,4 +1,4 @@
-//! # keel-runtime
+//! # visviva-runtime
 //!
 //! Evaluates a learned Hamiltonian energy model H(q, p) and steps it in time,
 //! on a microcontroller or on the host, with the same arithmetic bit for bit.

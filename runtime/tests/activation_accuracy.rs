@@ -3,7 +3,7 @@
 //! are the platform libm's, accurate to about 1 ulp). The measured maxima are
 //! the numbers quoted in `runtime/src/math.rs` and DEVELOPERS.md.
 
-use keel_runtime::math;
+use visviva_runtime::math;
 
 fn sweep(lo: f64, hi: f64, n: usize) -> impl Iterator<Item = f32> {
     (0..=n).map(move |k| (lo + (hi - lo) * k as f64 / n as f64) as f32)

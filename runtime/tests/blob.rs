@@ -4,8 +4,8 @@
 mod common;
 
 use common::*;
-use keel_runtime::format::{self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION};
-use keel_runtime::{BlobError, Integrator, Method, Model, Section, State, StepError};
+use visviva_runtime::format::{self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION};
+use visviva_runtime::{BlobError, Integrator, Method, Model, Section, State, StepError};
 
 fn sample() -> OwnedModel {
     separable(

@@ -5,8 +5,8 @@
 mod common;
 
 use common::*;
-use keel_runtime::format::Activation;
-use keel_runtime::{Integrator, Method, Model};
+use visviva_runtime::format::Activation;
+use visviva_runtime::{Integrator, Method, Model};
 
 #[test]
 fn macs_and_sizes_of_a_2_64_64_1_model() {

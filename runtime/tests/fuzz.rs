@@ -9,8 +9,8 @@
 mod common;
 
 use common::*;
-use keel_runtime::format::{Activation, HEADER_LEN};
-use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_runtime::format::{Activation, HEADER_LEN};
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
 use proptest::prelude::{any, proptest, ProptestConfig};
 
 fn seeds() -> Vec<Vec<u8>> {
@@ -175,7 +175,7 @@ proptest! {
     #[test]
     fn arbitrary_bytes_never_panic(bytes in proptest::collection::vec(any::<u8>(), 0..400)) {
         let _ = Model::<8, 16>::from_bytes(&bytes);
-        let mut with_magic = b"KEEL\x01\x00".to_vec();
+        let mut with_magic = b"VVMB\x01\x00".to_vec();
         with_magic.extend_from_slice(&bytes);
         let _ = Model::<8, 16>::from_bytes(&with_magic);
         reseal(&mut with_magic);

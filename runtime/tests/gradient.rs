@@ -9,8 +9,8 @@
 mod common;
 
 use common::*;
-use keel_runtime::format::Activation;
-use keel_runtime::{Hamiltonian, Method, Model, State};
+use visviva_runtime::format::Activation;
+use visviva_runtime::{Hamiltonian, Method, Model, State};
 use num_dual::{Dual64, DualNum};
 
 /// The reference computes in f64 dual numbers.

@@ -11,7 +11,7 @@
 //!   momentum q x p exactly, a quadratic invariant (Hairer, Lubich & Wanner,
 //!   ch. IV and VI), so in f32 it may change only by round-off.
 
-use keel_runtime::{Hamiltonian, Integrator, Method, State, StepError};
+use visviva_runtime::{Hamiltonian, Integrator, Method, State, StepError};
 
 fn sci(v: &[f64]) -> String {
     v.iter()

@@ -19,8 +19,8 @@
 mod common;
 
 use common::*;
-use keel_runtime::format::{self, Activation, OLDEST_READABLE_VERSION};
-use keel_runtime::{BlobError, Hamiltonian, Integrator, Method, Model, State, StepError};
+use visviva_runtime::format::{self, Activation, OLDEST_READABLE_VERSION};
+use visviva_runtime::{BlobError, Hamiltonian, Integrator, Method, Model, State, StepError};
 
 /// m q'' + c q' + k q = F: H = p^2/(2m) + k q^2/2, R = diag(0, c),
 /// G = (0, 1)^T (a force on the momentum).
@@ -336,7 +336,7 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
     assert!(matches!(
         Model::<4, 16>::from_bytes(&wrong.blob()),
         Err(BlobError::ShapeMismatch {
-            section: keel_runtime::error::Section::Dissipation,
+            section: visviva_runtime::error::Section::Dissipation,
             ..
         })
     ));

@@ -1,10 +1,10 @@
 //! Cross-crate checks live in `tests/tests/`; this library holds shared
 //! helpers: textbook reference values (complete elliptic integral, pendulum
 //! period, symmetric 2x2 eigenvalues) and measurements taken on any
-//! `keel-runtime` Hamiltonian (periods from rollouts, Hessians from the
+//! `visviva-runtime` Hamiltonian (periods from rollouts, Hessians from the
 //! runtime's own gradient).
 
-use keel_runtime::{Hamiltonian, Integrator, State, StepError};
+use visviva_runtime::{Hamiltonian, Integrator, State, StepError};
 
 /// Complete elliptic integral of the first kind K(k) (modulus k, 0 <= k < 1)
 /// by the arithmetic-geometric mean: K(k) = pi / (2 AGM(1, sqrt(1 - k^2)))

@@ -1,15 +1,15 @@
 //! Gantry-crane payload sway (a rigid pendulum, q = angle, p = m L^2 dq/dt)
 //! at large amplitude: an energy model fitted on simulated logs with sway
-//! amplitudes up to 100 degrees, exported and stepped by keel-runtime, swings
+//! amplitudes up to 100 degrees, exported and stepped by visviva-runtime, swings
 //! with the exact large-amplitude period T = 4 sqrt(L/g) K(sin(a/2)).
 
-use keel_runtime::{Integrator, Method, State};
-use keel_tests::{elliptic_k, momentum_sign_changes, pendulum_period, period_from_crossings};
-use keel_trainer::blob::{HostModel, WeightKind};
-use keel_trainer::export::energy_blob;
-use keel_trainer::fit::{fit_energy, ArchChoice, FitSettings};
-use keel_trainer::simulate::{simulate, SimulationSpec};
-use keel_trainer::systems::build_system;
+use visviva_runtime::{Integrator, Method, State};
+use visviva_tests::{elliptic_k, momentum_sign_changes, pendulum_period, period_from_crossings};
+use visviva_trainer::blob::{HostModel, WeightKind};
+use visviva_trainer::export::energy_blob;
+use visviva_trainer::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::simulate::{simulate, SimulationSpec};
+use visviva_trainer::systems::build_system;
 
 #[test]
 fn elliptic_period_formula_reduces_to_small_amplitude_period() {
@@ -31,7 +31,7 @@ fn fitted_crane_model_has_the_large_amplitude_pendulum_period() {
     let system = build_system("crane", &overrides).unwrap();
     let (l, g) = (system.params().get("l"), system.params().get("g"));
     let t0 = system.small_amplitude_period();
-    // Logs as `keel simulate --system crane --param max_angle_deg=100`
+    // Logs as `visviva simulate --system crane --param max_angle_deg=100`
     // would write them, but noise-free and with exact derivatives.
     let spec = |trajectories, seed| SimulationSpec {
         trajectories,

@@ -1,18 +1,18 @@
 //! Sensor mass on a flexure (mass-spring, H = p^2/(2m) + k q^2/2), exact
 //! derivatives, no noise: the fitted energy model, exported as a blob and
-//! stepped by keel-runtime, keeps the TRUE energy over 100 periods from
+//! stepped by visviva-runtime, keeps the TRUE energy over 100 periods from
 //! held-out initial states, and the plain vector-field baseline fitted on the
 //! same data and rolled out with RK4 at the same step drifts far more.
 
 use std::f64::consts::PI;
 
-use keel_runtime::{Integrator, Method, State};
-use keel_trainer::blob::{HostModel, WeightKind};
-use keel_trainer::export::energy_blob;
-use keel_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
-use keel_trainer::net::Activation;
-use keel_trainer::simulate::{simulate, SimulationSpec};
-use keel_trainer::systems::{build_system, ReferenceSystem};
+use visviva_runtime::{Integrator, Method, State};
+use visviva_trainer::blob::{HostModel, WeightKind};
+use visviva_trainer::export::energy_blob;
+use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::net::Activation;
+use visviva_trainer::simulate::{simulate, SimulationSpec};
+use visviva_trainer::systems::{build_system, ReferenceSystem};
 
 /// Steps of the rollout per period of the true system.
 const STEPS_PER_PERIOD: usize = 100;

@@ -1,18 +1,18 @@
 //! Two-stage vibration-isolation mount with equal masses m and equal
 //! stiffnesses k (the `mount` system's defaults): the fitted energy model's
 //! two natural frequencies, from the Hessian of its learned H at rest (central
-//! differences of keel-runtime's own gradient), match the textbook result
+//! differences of visviva-runtime's own gradient), match the textbook result
 //! w = sqrt(k/m) (sqrt(5) -+ 1)/2.
 
-use keel_runtime::{Integrator, Method};
-use keel_tests::{
+use visviva_runtime::{Integrator, Method};
+use visviva_tests::{
     hessian_by_gradient_differences, real_2x2_eigenvalues, symmetric_2x2_eigenvalues,
 };
-use keel_trainer::blob::{HostModel, WeightKind};
-use keel_trainer::export::energy_blob;
-use keel_trainer::fit::{fit_energy, ArchChoice, FitSettings};
-use keel_trainer::simulate::{simulate, SimulationSpec};
-use keel_trainer::systems::build_system;
+use visviva_trainer::blob::{HostModel, WeightKind};
+use visviva_trainer::export::energy_blob;
+use visviva_trainer::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::simulate::{simulate, SimulationSpec};
+use visviva_trainer::systems::build_system;
 
 /// Two equal masses in series on two equal springs from a fixed base:
 /// w = sqrt(k/m) (sqrt 5 -+ 1)/2 (textbook two-degree-of-freedom result,

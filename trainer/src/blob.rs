@@ -1,17 +1,17 @@
-//! An owned, editable mirror of a `keel-runtime` blob, for the host tools
+//! An owned, editable mirror of a `visviva-runtime` blob, for the host tools
 //! that read, transform and write blobs (export, quantization, inspection).
 //! Decoding goes through the runtime's own parser and validator, encoding
 //! through its own encoder, so the host never has a second format.
 
 use anyhow::{anyhow, bail, Context, Result};
-use keel_runtime::format::{
+use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
     MlpDesc, ModelDesc, WeightsDesc,
 };
-use keel_runtime::{Integrator, Model};
+use visviva_runtime::{Integrator, Model};
 
 /// Bounds used to validate blobs on the host: the largest the runtime takes.
-pub const HOST_MAX_DOF: usize = keel_runtime::MAX_DOF_SUPPORTED;
+pub const HOST_MAX_DOF: usize = visviva_runtime::MAX_DOF_SUPPORTED;
 /// Widest layer the host tools accept.
 pub const HOST_MAX_WIDTH: usize = 128;
 /// The model type host tools evaluate.
@@ -203,7 +203,7 @@ impl Mlp {
         }
     }
 
-    /// Weight kind of the first layer (all layers share one in Keel blobs).
+    /// Weight kind of the first layer (all layers share one in Visviva blobs).
     pub fn weight_kind(&self) -> WeightKind {
         match self.layers.first().map(|l| &l.weights) {
             Some(Weights::Int8 { .. }) => WeightKind::Int8,
@@ -332,7 +332,7 @@ impl Bytes {
 
 impl BlobModel {
     /// Parse and fully validate a blob (with the host's bounds).
-    pub fn from_bytes(bytes: &[u8]) -> Result<Self, keel_runtime::BlobError> {
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self, visviva_runtime::BlobError> {
         HostModel::from_bytes(bytes)?;
         let d = format::decode(bytes)?;
         let energy = match &d.energy {

@@ -1,4 +1,4 @@
-//! The evidence before deploying: roll the model (through `keel-runtime`,
+//! The evidence before deploying: roll the model (through `visviva-runtime`,
 //! with the blob's integrator) and the plain baseline (RK4 on its vector
 //! field) from each validation trajectory's first state, and measure
 //! vector-field error, state error over the trajectory, and energy drift over
@@ -7,7 +7,7 @@
 //! the linearization at rest and driven rollouts with the logged inputs.
 
 use anyhow::{anyhow, Result};
-use keel_runtime::{Hamiltonian, Integrator};
+use visviva_runtime::{Hamiltonian, Integrator};
 use serde::Serialize;
 
 use crate::blob::{HostModel, HOST_MAX_DOF};
@@ -186,7 +186,7 @@ pub fn integrator_for(base: Integrator, dt: f64) -> Integrator {
         dt: dt as f32,
         substeps: (sub as u16)
             .saturating_mul(base.substeps.max(1))
-            .clamp(1, keel_runtime::integrate::MAX_SUBSTEPS),
+            .clamp(1, visviva_runtime::integrate::MAX_SUBSTEPS),
         ..base
     }
 }

@@ -1,4 +1,4 @@
-//! `keel check`: the evidence a user needs before deploying — the model
+//! `visviva check`: the evidence a user needs before deploying — the model
 //! against the plain baseline on held-out trajectories — as a terminal
 //! table, a JSON report and SVG plots. Damped or driven models (blobs with
 //! R or G) get their own table: damping per mode at rest and driven
@@ -7,7 +7,7 @@
 use std::path::PathBuf;
 
 use anyhow::{anyhow, Context, Result};
-use keel_runtime::Hamiltonian;
+use visviva_runtime::Hamiltonian;
 
 use crate::atomic::write_atomic;
 use crate::blob::HostModel;
@@ -16,23 +16,23 @@ use crate::data::{load_csv, LoadOptions};
 use crate::svgplot::{Chart, Series, PALETTE};
 use crate::systems::{build_system, parse_param, ReferenceSystem};
 
-/// Arguments of `keel check`.
+/// Arguments of `visviva check`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The model blob.
     #[arg(long)]
     pub model: PathBuf,
-    /// Held-out trajectories (CSV, same columns as for `keel fit`).
+    /// Held-out trajectories (CSV, same columns as for `visviva fit`).
     #[arg(long)]
     pub data: PathBuf,
-    /// The baseline written by `keel fit --baseline` (default: next to the
+    /// The baseline written by `visviva fit --baseline` (default: next to the
     /// model as MODEL.baseline.json, when present).
     #[arg(long)]
     pub baseline: Option<PathBuf>,
     /// The built-in system the data came from, to measure true-energy drift.
     #[arg(long)]
     pub system: Option<String>,
-    /// Parameters of that system, as for `keel simulate`.
+    /// Parameters of that system, as for `visviva simulate`.
     #[arg(long = "param", value_parser = parse_param)]
     pub params: Vec<(String, f64)>,
     /// Masses m1,..,mn for logs with velocity columns.
@@ -42,7 +42,7 @@ pub struct Args {
     /// 10000).
     #[arg(long)]
     pub horizon: Option<usize>,
-    /// Fit history (JSON from `keel fit --history`) for the loss plot.
+    /// Fit history (JSON from `visviva fit --history`) for the loss plot.
     #[arg(long)]
     pub history: Option<PathBuf>,
     /// Write the numbers as JSON here.
@@ -139,7 +139,7 @@ pub fn print_table(r: &CheckReport) {
     }
 }
 
-/// Loss history as written by `keel fit --history`.
+/// Loss history as written by `visviva fit --history`.
 #[derive(Debug, Clone, Default, serde::Deserialize)]
 pub struct HistoryFile {
     /// Training loss per epoch.
@@ -416,7 +416,7 @@ struct PortJson<'a> {
 }
 
 /// `run` for a damped or driven model (`baseline`: a plain network taking
-/// the state and the inputs, from `keel fit --baseline`).
+/// the state and the inputs, from `visviva fit --baseline`).
 fn run_port(
     args: &Args,
     model: &HostModel<'_>,

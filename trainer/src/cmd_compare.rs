@@ -1,4 +1,4 @@
-//! `keel compare`: two trajectory CSVs, value by value — bit for bit by
+//! `visviva compare`: two trajectory CSVs, value by value — bit for bit by
 //! default, or within a relative tolerance — naming the first difference.
 //! Exit status 1 on a mismatch, 2 on unreadable input.
 
@@ -6,7 +6,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
 
-/// Arguments of `keel compare`.
+/// Arguments of `visviva compare`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// First CSV (e.g. the host rollout).
@@ -44,7 +44,7 @@ pub enum Verdict {
 
 /// A value as written: `0x…` bit patterns are f32 bits, anything else a
 /// decimal number rounded to the nearest f32 (the runtime's precision; the
-/// shortest round-trip decimals `keel rollout` writes parse back exactly).
+/// shortest round-trip decimals `visviva rollout` writes parse back exactly).
 fn value(s: &str, path: &Path, line: usize, col: &str) -> Result<f64> {
     let t = s.trim();
     if let Some(hex) = t.strip_prefix("0x") {

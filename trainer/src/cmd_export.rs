@@ -1,4 +1,4 @@
-//! `keel export`: turn a fitted model into a device blob — choose the weight
+//! `visviva export`: turn a fitted model into a device blob — choose the weight
 //! storage (f32 or int8) and the integrator — and measure what that costs in
 //! bytes and in accuracy before anything is flashed.
 
@@ -12,10 +12,10 @@ use crate::blob::{BlobModel, HostModel, WeightKind};
 use crate::integrator_args::{method_name, IntegratorArgs};
 use crate::rollout::{roll, sample_states};
 
-/// Arguments of `keel export`.
+/// Arguments of `visviva export`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// The fitted model (a blob written by `keel fit`).
+    /// The fitted model (a blob written by `visviva fit`).
     #[arg(long)]
     pub model: PathBuf,
     /// Weight storage on the device.

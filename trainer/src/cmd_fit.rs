@@ -1,4 +1,4 @@
-//! `keel fit`: load a motion log, fit an energy model (and optionally the
+//! `visviva fit`: load a motion log, fit an energy model (and optionally the
 //! plain vector-field baseline), and write the model blob atomically.
 //! Logs with input columns `u1..um`, or `--dissipation`, give a damped
 //! and/or driven model dx/dt = (J - R) dH/dx + G u (stepped by the
@@ -10,7 +10,7 @@ use std::sync::Arc;
 
 use anyhow::{bail, Context, Result};
 use clap::ValueEnum;
-use keel_runtime::{Integrator, Method};
+use visviva_runtime::{Integrator, Method};
 
 use crate::blob::WeightKind;
 use crate::data::{self, LoadOptions};
@@ -50,7 +50,7 @@ pub enum ActivationArg {
     Relu,
 }
 
-/// Arguments of `keel fit`.
+/// Arguments of `visviva fit`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Motion log (CSV) to fit.
@@ -150,7 +150,7 @@ pub struct Args {
     #[arg(long, short)]
     pub quiet: bool,
     /// Output model blob.
-    #[arg(long, value_name = "MODEL.keel")]
+    #[arg(long, value_name = "MODEL.vvb")]
     pub out: PathBuf,
 }
 

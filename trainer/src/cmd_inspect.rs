@@ -1,17 +1,17 @@
-//! `keel inspect`: what a blob holds and what it costs on a device — format
+//! `visviva inspect`: what a blob holds and what it costs on a device — format
 //! version, CRC status, architecture, weight storage, bytes per section,
 //! runtime RAM and multiply-accumulates — as a table or JSON.
 
 use std::path::PathBuf;
 
 use anyhow::{anyhow, Context, Result};
-use keel_runtime::format::{self, EnergyDesc, KineticDesc};
+use visviva_runtime::format::{self, EnergyDesc, KineticDesc};
 use serde::Serialize;
 
 use crate::blob::{BlobModel, HostModel};
 use crate::integrator_args::method_name;
 
-/// Arguments of `keel inspect`.
+/// Arguments of `visviva inspect`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The blob to inspect.

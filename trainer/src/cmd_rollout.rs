@@ -1,4 +1,4 @@
-//! `keel rollout`: step a blob on the host through `keel-runtime` — the
+//! `visviva rollout`: step a blob on the host through `visviva-runtime` — the
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
 //! f32 bit patterns for bit-for-bit comparison with a board.
 
@@ -12,7 +12,7 @@ use crate::blob::HostModel;
 use crate::integrator_args::IntegratorArgs;
 use crate::rollout::{parse_init, read_inputs, roll_driven};
 
-/// Arguments of `keel rollout`.
+/// Arguments of `visviva rollout`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The blob to step.
@@ -71,9 +71,9 @@ pub fn run(args: Args) -> Result<()> {
     let model = model
         .with_integrator(args.integrator.apply(model.integrator()))
         .map_err(|e| anyhow!("{e}"))?;
-    let dof = keel_runtime::Hamiltonian::dof(&model);
+    let dof = visviva_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;
-    let m = keel_runtime::Hamiltonian::inputs(&model);
+    let m = visviva_runtime::Hamiltonian::inputs(&model);
     let inputs = match &args.inputs {
         Some(p) => {
             let rows = read_inputs(p, m)?;

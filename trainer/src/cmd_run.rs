@@ -1,5 +1,5 @@
-//! `keel run DIR`: the whole path from logs to device blobs in one command,
-//! driven by `DIR/keel.toml`. Produces `DIR/out/`: the fitted model and
+//! `visviva run DIR`: the whole path from logs to device blobs in one command,
+//! driven by `DIR/visviva.toml`. Produces `DIR/out/`: the fitted model and
 //! baseline, one blob per export target, golden rollouts for the device
 //! check, `report.json` and `report.html`. Steps whose inputs did not change
 //! since the last run are reused (their inputs and settings are hashed).
@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::{anyhow, bail, Context, Result};
-use keel_runtime::{Hamiltonian, Integrator, Method};
+use visviva_runtime::{Hamiltonian, Integrator, Method};
 use serde::{de::DeserializeOwned, Serialize};
 use sha2::{Digest, Sha256};
 
@@ -37,10 +37,10 @@ use crate::report::{
 };
 use crate::rollout::{roll_driven, sample_states};
 
-/// Arguments of `keel run`.
+/// Arguments of `visviva run`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Project folder holding keel.toml.
+    /// Project folder holding visviva.toml.
     pub dir: PathBuf,
     /// Refit and re-export even when nothing changed.
     #[arg(long)]
@@ -309,7 +309,7 @@ fn golden_inputs(val: &Dataset, val_u: Option<&Inputs>, steps: usize) -> (String
 }
 
 /// The input sequence as CSV `t,u1..um` (t = k dt, row k held over step
-/// k), shortest round-trip decimals: `keel rollout --inputs` reads it back
+/// k), shortest round-trip decimals: `visviva rollout --inputs` reads it back
 /// bit for bit.
 fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
     let m = rows.first().map_or(0, Vec::len);
@@ -453,7 +453,7 @@ pub fn run(args: Args) -> Result<()> {
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    println!("keel run: {name} ({})", dir.join("keel.toml").display());
+    println!("visviva run: {name} ({})", dir.join("visviva.toml").display());
 
     // 1. Data.
     println!("[1/5] data");
@@ -468,13 +468,13 @@ pub fn run(args: Args) -> Result<()> {
     if inputs == 0 && !project.model.input_net.is_empty() {
         bail!(
             "{}: [model] input_net: the training log has no input columns u1..um, so there is no G to learn",
-            dir.join("keel.toml").display()
+            dir.join("visviva.toml").display()
         );
     }
     let terms = project
         .model
         .port_terms()
-        .with_context(|| dir.join("keel.toml").display().to_string())?;
+        .with_context(|| dir.join("visviva.toml").display().to_string())?;
     let (train, val) = (&logs.train, &logs.val);
     let data = data_summary(
         &project.data.train.display().to_string(),
@@ -545,7 +545,7 @@ pub fn run(args: Args) -> Result<()> {
         env!("CARGO_PKG_VERSION"),
     ))?;
     let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
-    let model_path = out.join("model.keel");
+    let model_path = out.join("model.vvb");
     let baseline_path = out.join("model.baseline.json");
     let fit_path = out.join("fit.json");
     let hash_path = out.join("fit.sha256");
@@ -735,7 +735,7 @@ pub fn run(args: Args) -> Result<()> {
             substeps: t.substeps,
             ..IntegratorArgs::default()
         };
-        let blob_path = out.join(format!("{}.keel", t.name));
+        let blob_path = out.join(format!("{}.vvb", t.name));
         let meta_path = out.join(format!("{}.export.json", t.name));
         let target_json =
             serde_json::to_vec(&(t, &project.check.golden_steps, &project.check.golden_states))?;
@@ -819,7 +819,7 @@ pub fn run(args: Args) -> Result<()> {
         );
         devices.push(DeviceBlob {
             name: t.name.clone(),
-            file: format!("{}.keel", t.name),
+            file: format!("{}.vvb", t.name),
             ram_bytes: ins.runtime_ram_bytes,
             emulator_instructions_per_step: measured
                 .as_ref()
@@ -837,7 +837,7 @@ pub fn run(args: Args) -> Result<()> {
     let budget_pass = devices.iter().all(|d| d.budget.pass);
     let report = RunReport {
         project: name.clone(),
-        keel_version: env!("CARGO_PKG_VERSION").into(),
+        visviva_version: env!("CARGO_PKG_VERSION").into(),
         architecture: src.architecture(),
         data,
         fit,

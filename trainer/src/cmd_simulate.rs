@@ -1,4 +1,4 @@
-//! `keel simulate`: write reference trajectories of a built-in system to CSV.
+//! `visviva simulate`: write reference trajectories of a built-in system to CSV.
 
 use crate::data::write_csv_with_inputs;
 use crate::simulate::{

@@ -270,13 +270,13 @@ fn parse_layout(
     } else {
         Vec::new()
     };
-    if u.len() > keel_runtime::format::MAX_INPUTS {
+    if u.len() > visviva_runtime::format::MAX_INPUTS {
         return Err(err(
-            &format!("u{}", keel_runtime::format::MAX_INPUTS + 1),
+            &format!("u{}", visviva_runtime::format::MAX_INPUTS + 1),
             DataProblem::MismatchedDimensions(format!(
                 "{} input columns; the runtime takes at most {}",
                 u.len(),
-                keel_runtime::format::MAX_INPUTS
+                visviva_runtime::format::MAX_INPUTS
             )),
         ));
     }

@@ -1,4 +1,4 @@
-//! Writing fitted models: the energy model as a `keel-runtime` blob (through
+//! Writing fitted models: the energy model as a `visviva-runtime` blob (through
 //! the owned blob mirror [`crate::blob::BlobModel`], the one encoder on the
 //! host), and the baseline vector field as a trainer-only JSON file so it can
 //! be rolled out for comparison later.
@@ -6,7 +6,7 @@
 use std::path::Path;
 
 use anyhow::{bail, Context, Result};
-use keel_runtime::Integrator;
+use visviva_runtime::Integrator;
 
 use crate::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
 use crate::hnn::{

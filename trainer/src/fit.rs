@@ -105,12 +105,12 @@ impl Default for ArchChoice {
 impl ArchChoice {
     /// The network structure for `dof` degrees of freedom.
     pub fn build(&self, dof: usize) -> Result<EnergyArch> {
-        if self.hidden.len() + 1 > keel_runtime::format::MAX_LAYERS {
+        if self.hidden.len() + 1 > visviva_runtime::format::MAX_LAYERS {
             bail!(
                 "{} hidden layers give {} layers; the runtime allows at most {}",
                 self.hidden.len(),
                 self.hidden.len() + 1,
-                keel_runtime::format::MAX_LAYERS
+                visviva_runtime::format::MAX_LAYERS
             );
         }
         if let Some(w) = self.hidden.iter().find(|w| **w == 0 || **w > 128) {

@@ -1,7 +1,7 @@
 //! Command-line overrides of a blob's integrator settings, shared by every
 //! command that steps a model (`export`, `rollout`, `check`).
 
-use keel_runtime::{Integrator, Method};
+use visviva_runtime::{Integrator, Method};
 
 /// Integration method names on the command line.
 #[derive(

@@ -1,8 +1,8 @@
-//! # keel-trainer
+//! # visviva-trainer
 //!
-//! Host side of Keel: reference data from built-in systems, loading and
+//! Host side of Visviva: reference data from built-in systems, loading and
 //! checking motion logs, fitting Hamiltonian energy networks (and a plain
-//! vector-field baseline), and writing `keel-runtime` blobs.
+//! vector-field baseline), and writing `visviva-runtime` blobs.
 //!
 //! Module map (see DEVELOPERS.md for the whole workspace):
 //! * [`dataset`]: in-memory trajectories shared by every stage.
@@ -13,8 +13,8 @@
 //!   gradients, the optimizer and the training loop.
 //! * [`export`]: writing runtime blobs from fitted models.
 //! * [`blob`]: an owned, editable mirror of a blob (quantization, inspection).
-//! * [`rollout`], [`integrator_args`]: host rollouts through `keel-runtime`.
-//! * `cmd_*`: one module per `keel` subcommand.
+//! * [`rollout`], [`integrator_args`]: host rollouts through `visviva-runtime`.
+//! * `cmd_*`: one module per `visviva` subcommand.
 
 pub mod atomic;
 pub mod blob;

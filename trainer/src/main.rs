@@ -1,15 +1,15 @@
-//! `keel`: the host command line. Each subcommand lives in its own `cmd_*`
+//! `visviva`: the host command line. Each subcommand lives in its own `cmd_*`
 //! module of the library; this file only dispatches.
 
 use clap::{Parser, Subcommand};
-use keel_trainer::{
+use visviva_trainer::{
     cmd_check, cmd_compare, cmd_export, cmd_fit, cmd_inspect, cmd_rollout, cmd_run, cmd_simulate,
 };
 
-/// Keel: from logged motion to a verified energy-consistent predictor on a
+/// Visviva: from logged motion to a verified energy-consistent predictor on a
 /// microcontroller.
 #[derive(Debug, Parser)]
-#[command(name = "keel", version, about)]
+#[command(name = "visviva", version, about)]
 struct Cli {
     #[command(subcommand)]
     command: Command,

@@ -39,10 +39,10 @@ pub enum Activation {
 
 impl Activation {
     /// The runtime's matching activation.
-    pub fn to_runtime(self) -> keel_runtime::format::Activation {
+    pub fn to_runtime(self) -> visviva_runtime::format::Activation {
         match self {
-            Self::Tanh => keel_runtime::format::Activation::Tanh,
-            Self::Softplus => keel_runtime::format::Activation::Softplus,
+            Self::Tanh => visviva_runtime::format::Activation::Tanh,
+            Self::Softplus => visviva_runtime::format::Activation::Softplus,
         }
     }
 

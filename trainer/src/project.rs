@@ -1,5 +1,5 @@
-//! The project file `keel.toml`: a rig described once — data, model, fitting,
-//! export targets and device budget — so `keel run DIR` can redo the whole
+//! The project file `visviva.toml`: a rig described once — data, model, fitting,
+//! export targets and device budget — so `visviva run DIR` can redo the whole
 //! path after every new log. Unknown keys are errors with their line; every
 //! key has a default, documented here and in the README.
 
@@ -268,9 +268,9 @@ pub struct DeviceBudget {
 }
 
 impl Project {
-    /// Read `dir/keel.toml`. Errors name the file, line and key.
+    /// Read `dir/visviva.toml`. Errors name the file, line and key.
     pub fn load(dir: &Path) -> Result<Self> {
-        let path = dir.join("keel.toml");
+        let path = dir.join("visviva.toml");
         let text = std::fs::read_to_string(&path)
             .with_context(|| format!("{}: cannot read", path.display()))?;
         Self::parse(&text).map_err(|e| anyhow!("{}: {e}", path.display()))
@@ -390,7 +390,7 @@ flash_bytes = 65536
 
     #[test]
     fn the_dissipation_switch_leaves_conservative_settings_hashes_alone() {
-        // keel run hashes the serialized [model] section to decide whether
+        // visviva run hashes the serialized [model] section to decide whether
         // to refit: a project without the switch must serialize as before.
         let json = serde_json::to_string(&ModelSection::default()).unwrap();
         assert!(!json.contains("dissipation"), "{json}");

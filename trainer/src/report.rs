@@ -1,4 +1,4 @@
-//! The practitioner's report of `keel run`: one serializable [`RunReport`]
+//! The practitioner's report of `visviva run`: one serializable [`RunReport`]
 //! (written as `report.json`) and its rendering as a self-contained HTML page
 //! with inline SVG charts — no scripts, no network. Damped or driven
 //! projects carry a [`PortReport`] (damping per mode, response to held-out
@@ -31,7 +31,7 @@ pub struct CoordinateSummary {
 /// What the data looked like.
 #[derive(Debug, Clone, Serialize)]
 pub struct DataSummary {
-    /// Training log path as given in keel.toml.
+    /// Training log path as given in visviva.toml.
     pub train_file: String,
     /// Degrees of freedom.
     pub dof: usize,
@@ -79,7 +79,7 @@ pub struct FitSummary {
     pub train_loss: Vec<f64>,
     /// Validation loss per epoch.
     pub validation_loss: Vec<f64>,
-    /// Whether this run was reused from a previous `keel run`.
+    /// Whether this run was reused from a previous `visviva run`.
     pub reused: bool,
 }
 
@@ -141,7 +141,7 @@ pub struct DrivenComparison {
     pub baseline_failure: Option<String>,
 }
 
-/// What `keel run` found for a damped or driven model.
+/// What `visviva run` found for a damped or driven model.
 #[derive(Debug, Clone, Serialize)]
 pub struct PortReport {
     /// Inputs u1..um the model takes.
@@ -166,13 +166,13 @@ pub struct PortReport {
     pub golden_input_trajectory: String,
 }
 
-/// Everything `keel run` found.
+/// Everything `visviva run` found.
 #[derive(Debug, Clone, Serialize)]
 pub struct RunReport {
     /// Project name.
     pub project: String,
-    /// Keel version.
-    pub keel_version: String,
+    /// Visviva version.
+    pub visviva_version: String,
     /// Model architecture.
     pub architecture: String,
     /// Data.
@@ -273,10 +273,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     };
     h.p("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">");
     h.p(&format!(
-        "<title>Keel report: {}</title><style>{STYLE}</style></head><body>",
+        "<title>Visviva report: {}</title><style>{STYLE}</style></head><body>",
         esc(&report.project)
     ));
-    h.p(&format!("<h1>Keel report: {}</h1>", esc(&report.project)));
+    h.p(&format!("<h1>Visviva report: {}</h1>", esc(&report.project)));
     h.p(&format!(
         "<p class=\"caution\">{}</p>",
         esc(&report.caution)
@@ -416,8 +416,8 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         esc(&report.caution)
     ));
     h.p(&format!(
-        "<p class=\"note\">Keel {}.</p></body></html>",
-        h.num("keel_version")
+        "<p class=\"note\">Visviva {}.</p></body></html>",
+        h.num("visviva_version")
     ));
     h.out
 }

@@ -1,9 +1,9 @@
-//! Host rollouts through `keel-runtime`, the very arithmetic the device
+//! Host rollouts through `visviva-runtime`, the very arithmetic the device
 //! runs, plus the helpers around them: parsing initial states, sampling
 //! test states inside a model's normalization range, and drift measures.
 
 use anyhow::{bail, Context, Result};
-use keel_runtime::{Hamiltonian, State, StepError};
+use visviva_runtime::{Hamiltonian, State, StepError};
 use rand::{Rng, SeedableRng};
 
 use crate::blob::{HostModel, HOST_MAX_DOF};

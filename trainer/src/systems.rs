@@ -1,5 +1,5 @@
 //! Built-in reference systems with exactly known energy: the source of
-//! clean reference data for `keel simulate` and of checks for fitted models.
+//! clean reference data for `visviva simulate` and of checks for fitted models.
 //!
 //! Every system implements [`ReferenceSystem`] and is listed once in
 //! [`CATALOG`]; adding a system means one `impl` plus one catalog entry.

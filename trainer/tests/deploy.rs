@@ -4,11 +4,11 @@
 
 use std::process::Command;
 
-use keel_runtime::format::Activation;
-use keel_runtime::{Integrator, Method};
-use keel_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
-use keel_trainer::cmd_compare::{compare, Verdict};
-use keel_trainer::integrator_args::IntegratorArgs;
+use visviva_runtime::format::Activation;
+use visviva_runtime::{Integrator, Method};
+use visviva_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
+use visviva_trainer::cmd_compare::{compare, Verdict};
+use visviva_trainer::integrator_args::IntegratorArgs;
 use rand::{Rng, SeedableRng};
 
 fn mlp(rng: &mut rand_chacha::ChaCha8Rng, sizes: &[usize]) -> Mlp {
@@ -94,11 +94,11 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     let net_bytes = net.to_bytes().unwrap();
     assert_eq!(
         u16::from_le_bytes([net_bytes[4], net_bytes[5]]),
-        keel_runtime::format::FORMAT_VERSION
+        visviva_runtime::format::FORMAT_VERSION
     );
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
-    let (net_i8, r) = keel_trainer::cmd_export::export(
+    let (net_i8, r) = visviva_trainer::cmd_export::export(
         &net,
         WeightKind::Int8,
         &IntegratorArgs::default(),
@@ -113,7 +113,7 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     assert_eq!(g.weight_kind(), WeightKind::Int8);
     assert_eq!(r.failed_rollouts, 0);
     let (i8_bytes, r) =
-        keel_trainer::cmd_export::export(&m, WeightKind::Int8, &IntegratorArgs::default(), 200, 2)
+        visviva_trainer::cmd_export::export(&m, WeightKind::Int8, &IntegratorArgs::default(), 200, 2)
             .unwrap();
     let q = BlobModel::from_bytes(&i8_bytes).unwrap();
     assert_eq!(
@@ -123,16 +123,16 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     assert_eq!(r.failed_rollouts, 0);
     // An explicit symplectic method would drop R and G: refused.
     let ia = IntegratorArgs {
-        integrator: Some(keel_trainer::integrator_args::MethodArg::Verlet),
+        integrator: Some(visviva_trainer::integrator_args::MethodArg::Verlet),
         ..Default::default()
     };
-    assert!(keel_trainer::cmd_export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
+    assert!(visviva_trainer::cmd_export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
 }
 
 #[test]
 fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
     let src = fixture(false);
-    let (f32_bytes, r32) = keel_trainer::cmd_export::export(
+    let (f32_bytes, r32) = visviva_trainer::cmd_export::export(
         &src,
         WeightKind::F32,
         &IntegratorArgs::default(),
@@ -140,7 +140,7 @@ fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
         4,
     )
     .unwrap();
-    let (i8_bytes, r8) = keel_trainer::cmd_export::export(
+    let (i8_bytes, r8) = visviva_trainer::cmd_export::export(
         &src,
         WeightKind::Int8,
         &IntegratorArgs::default(),
@@ -187,10 +187,10 @@ fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
 fn export_refuses_an_explicit_method_for_a_general_model() {
     let src = fixture(true);
     let ia = IntegratorArgs {
-        integrator: Some(keel_trainer::integrator_args::MethodArg::Verlet),
+        integrator: Some(visviva_trainer::integrator_args::MethodArg::Verlet),
         ..Default::default()
     };
-    let err = keel_trainer::cmd_export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
+    let err = visviva_trainer::cmd_export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
     assert!(format!("{err:#}").contains("separable"), "{err:#}");
 }
 
@@ -200,26 +200,26 @@ fn inspect_counts_match_the_shapes() {
         .converted(WeightKind::Int8)
         .to_bytes()
         .unwrap();
-    let r = keel_trainer::cmd_inspect::inspect(&bytes).unwrap();
+    let r = visviva_trainer::cmd_inspect::inspect(&bytes).unwrap();
     let forward = 2 * 32 + 32 * 32 + 32;
     assert_eq!(r.macs_per_gradient as usize, 2 * forward);
     assert_eq!(r.weights, "int8");
     assert_eq!(r.sections.iter().map(|s| s.1).sum::<usize>(), bytes.len());
 }
 
-fn keel() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_keel"))
+fn visviva() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_visviva"))
 }
 
 #[test]
 fn rollout_csv_compares_bit_for_bit_and_names_the_first_difference() {
     let dir = tempfile::tempdir().unwrap();
-    let blob = dir.path().join("m.keel");
+    let blob = dir.path().join("m.vvb");
     std::fs::write(&blob, fixture(false).to_bytes().unwrap()).unwrap();
     let a = dir.path().join("a.csv");
     let b = dir.path().join("b.csv");
     for (out, bits) in [(&a, true), (&b, false)] {
-        let mut cmd = keel();
+        let mut cmd = visviva();
         cmd.args(["rollout", "--model"])
             .arg(&blob)
             .args(["--init", "q1=0.5,p1=-0.1", "--steps", "200", "--out"])
@@ -248,18 +248,18 @@ fn rollout_csv_compares_bit_for_bit_and_names_the_first_difference() {
         compare(&a, &b, Some(1e-6)).unwrap(),
         Verdict::Same { .. }
     ));
-    let st = keel().arg("compare").arg(&a).arg(&b).status().unwrap();
+    let st = visviva().arg("compare").arg(&a).arg(&b).status().unwrap();
     assert_eq!(st.code(), Some(1));
 }
 
 #[test]
 fn rollout_rejects_bad_init_and_writes_nothing() {
     let dir = tempfile::tempdir().unwrap();
-    let blob = dir.path().join("m.keel");
+    let blob = dir.path().join("m.vvb");
     std::fs::write(&blob, fixture(false).to_bytes().unwrap()).unwrap();
     let out = dir.path().join("o.csv");
     for init in ["q1=0.5", "q1=0.5,p1=x", "q1=1,p1=0,q2=3", "q1=1,q1=2,p1=0"] {
-        let o = keel()
+        let o = visviva()
             .args(["rollout", "--model"])
             .arg(&blob)
             .args(["--init", init, "--steps", "5", "--out"])
@@ -282,7 +282,7 @@ fn rollout_takes_an_input_sequence_for_driven_models() {
     m.integrator = Integrator::new(Method::DiscreteGradient, 0.01);
     m.dissipation = Some(PortTerm::Constant(vec![0.0, 0.0, 0.3]));
     m.input = Some((1, PortTerm::Constant(vec![0.0, 1.0])));
-    let blob = dir.path().join("driven.keel");
+    let blob = dir.path().join("driven.vvb");
     std::fs::write(&blob, m.to_bytes().unwrap()).unwrap();
     let inputs = dir.path().join("u.csv");
     let rows: String = (0..50)
@@ -290,7 +290,7 @@ fn rollout_takes_an_input_sequence_for_driven_models() {
         .collect();
     std::fs::write(&inputs, format!("t,u1\n{rows}")).unwrap();
     let run = |extra: &[&str]| {
-        keel()
+        visviva()
             .args(["rollout", "--model"])
             .arg(&blob)
             .args(["--init", "q1=0.1,p1=0", "--steps", "50"])

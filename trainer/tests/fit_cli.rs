@@ -1,12 +1,12 @@
-//! `keel fit` from the library entry point: a small mass-spring log (exact
+//! `visviva fit` from the library entry point: a small mass-spring log (exact
 //! textbook solution q = A cos t, p = -A sin t) is fitted and the blob parses
-//! in keel-runtime; ReLU, impossible integrator choices and broken logs are
+//! in visviva-runtime; ReLU, impossible integrator choices and broken logs are
 //! refused without leaving an output file.
 
 use clap::Parser;
-use keel_runtime::{Hamiltonian, Model};
-use keel_trainer::cmd_fit;
-use keel_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_runtime::{Hamiltonian, Model};
+use visviva_trainer::cmd_fit;
+use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
 use ndarray::Array2;
 
 #[derive(Parser)]
@@ -16,7 +16,7 @@ struct Cli {
 }
 
 fn run(args: &[&str]) -> anyhow::Result<()> {
-    let mut all = vec!["keel-fit"];
+    let mut all = vec!["visviva-fit"];
     all.extend_from_slice(args);
     cmd_fit::run(Cli::try_parse_from(all)?.args)
 }
@@ -49,7 +49,7 @@ fn write_log(path: &std::path::Path) {
         trajectories,
         derivatives: DerivativeSource::Given,
     };
-    keel_trainer::data::write_csv(path, &ds, true).unwrap();
+    visviva_trainer::data::write_csv(path, &ds, true).unwrap();
 }
 
 #[test]
@@ -57,7 +57,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     let dir = tempfile::tempdir().unwrap();
     let log = dir.path().join("flexure.csv");
     write_log(&log);
-    let out = dir.path().join("m.keel");
+    let out = dir.path().join("m.vvb");
     let (log_s, out_s) = (log.to_str().unwrap(), out.to_str().unwrap());
 
     run(&[
@@ -78,7 +78,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     assert!(model.is_separable());
     assert!(cmd_fit::baseline_path(&out).exists());
 
-    let relu = dir.path().join("relu.keel");
+    let relu = dir.path().join("relu.vvb");
     let err = run(&[
         "--data",
         log_s,
@@ -92,7 +92,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     assert!(err.contains("piecewise"), "{err}");
     assert!(!relu.exists());
 
-    let gen = dir.path().join("gen.keel");
+    let gen = dir.path().join("gen.vvb");
     let err = run(&[
         "--data",
         log_s,
@@ -116,7 +116,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     lines[3] = fields.join(",");
     let broken = dir.path().join("broken.csv");
     std::fs::write(&broken, lines.join("\n")).unwrap();
-    let bad_out = dir.path().join("bad.keel");
+    let bad_out = dir.path().join("bad.vvb");
     let err = run(&[
         "--data",
         broken.to_str().unwrap(),

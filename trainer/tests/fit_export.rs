@@ -1,17 +1,17 @@
 //! Exported blobs evaluate like the trainer: a briefly trained model of a
 //! two-stage vibration-isolation mount (two masses on two springs in series)
-//! is written as a blob, parsed by keel-runtime, and its energy and gradient
+//! is written as a blob, parsed by visviva-runtime, and its energy and gradient
 //! dH/dx compared with the trainer's own f32 computation at random states.
 //! The two use different tanh/softplus implementations (std vs the runtime's
 //! deterministic ones, both within ~2.5e-7 of the true value), so agreement is
 //! expected to f32 rounding level, checked at relative 1e-4.
 
-use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
-use keel_trainer::blob::WeightKind;
-use keel_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use keel_trainer::export::{energy_blob, read_baseline, write_baseline};
-use keel_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
-use keel_trainer::net::Activation;
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_trainer::blob::WeightKind;
+use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_trainer::export::{energy_blob, read_baseline, write_baseline};
+use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::net::Activation;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;

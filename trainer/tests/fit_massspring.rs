@@ -1,6 +1,6 @@
 //! End to end on an ideal mass-spring (a sensor mass on a flexure, m = k = 1,
 //! H = p^2/2 + q^2/2, period 2 pi) with exact derivatives: the fitted energy
-//! model, exported and stepped by keel-runtime with Stormer-Verlet, keeps the
+//! model, exported and stepped by visviva-runtime with Stormer-Verlet, keeps the
 //! true energy over 100 periods, while the baseline vector field rolled out
 //! with RK4 drifts far more. Greydanus, Dzamba & Yosinski (2019, Table 1)
 //! report the energy error of the Hamiltonian network orders of magnitude
@@ -8,12 +8,12 @@
 
 use std::f64::consts::PI;
 
-use keel_runtime::{Hamiltonian, Integrator, Method, Model, State};
-use keel_trainer::blob::WeightKind;
-use keel_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use keel_trainer::export::energy_blob;
-use keel_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
-use keel_trainer::net::Activation;
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_trainer::blob::WeightKind;
+use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_trainer::export::energy_blob;
+use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
+use visviva_trainer::net::Activation;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;

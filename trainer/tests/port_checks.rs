@@ -23,25 +23,25 @@
 //!   (Reynolds lubrication theory for parallel plates; from memory) within
 //!   5 % where the logs see the mass move (c changes by a factor of 6
 //!   there);
-//! * `keel check`'s damping per mode (linearization at rest) agrees with
+//! * `visviva check`'s damping per mode (linearization at rest) agrees with
 //!   the simulated damping ratio and natural frequency;
 //! * the runtime's field (J - R) dH/dx + G u equals the trainer's
 //!   prediction on random states and inputs (relative 1e-4).
 //!
 //! Release build: each fit takes a few seconds; in debug builds (about 2.5
 //! minutes) the two fitting tests are ignored: `cargo test --release -p
-//! keel-trainer --test port_checks` runs them.
+//! visviva-trainer --test port_checks` runs them.
 
-use keel_runtime::{Hamiltonian, Integrator, Method, State};
-use keel_trainer::blob::{BlobModel, HostModel, HOST_MAX_DOF};
-use keel_trainer::check::{check_port, eigenvalues};
-use keel_trainer::dataset::{Dataset, Inputs};
-use keel_trainer::export::blob_model;
-use keel_trainer::fit::{fit_port, ArchChoice, FitSettings};
-use keel_trainer::hnn::{EnergyModel, PortArch};
-use keel_trainer::rollout::{roll_driven, sample_states};
-use keel_trainer::simulate::{simulate_port, SimulationSpec};
-use keel_trainer::systems::build_port_system;
+use visviva_runtime::{Hamiltonian, Integrator, Method, State};
+use visviva_trainer::blob::{BlobModel, HostModel, HOST_MAX_DOF};
+use visviva_trainer::check::{check_port, eigenvalues};
+use visviva_trainer::dataset::{Dataset, Inputs};
+use visviva_trainer::export::blob_model;
+use visviva_trainer::fit::{fit_port, ArchChoice, FitSettings};
+use visviva_trainer::hnn::{EnergyModel, PortArch};
+use visviva_trainer::rollout::{roll_driven, sample_states};
+use visviva_trainer::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::systems::build_port_system;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -190,7 +190,7 @@ fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
     );
     assert!(rel < 0.05, "fitted zeta {fitted_zeta} vs {zeta}");
 
-    // `keel check`'s damping per mode (eigenvalues of the linearization at
+    // `visviva check`'s damping per mode (eigenvalues of the linearization at
     // rest) gives the same ratio and the undamped natural frequency
     // sqrt(k / m) / (2 pi) = 3.183 Hz (textbook closed form).
     let blob = BlobModel::from_bytes(&bytes).unwrap();

@@ -18,9 +18,9 @@
 //!   support; any analytical-mechanics text, from memory), plus the
 //!   viscous term -c q' / (m l), on every logged sample.
 
-use keel_trainer::data::{load_csv, load_csv_with_inputs, write_csv_with_inputs, LoadOptions};
-use keel_trainer::simulate::{simulate_port, SimulationSpec};
-use keel_trainer::systems::build_port_system;
+use visviva_trainer::data::{load_csv, load_csv_with_inputs, write_csv_with_inputs, LoadOptions};
+use visviva_trainer::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::systems::build_port_system;
 
 fn spec(trajectories: usize, duration: f64, rate: f64, seed: u64) -> SimulationSpec {
     SimulationSpec {

@@ -11,10 +11,10 @@
 mod common;
 
 use common::{central_difference, directional_error, energy_generic, loss_gradient, mlp_generic};
-use keel_trainer::hnn::{
+use visviva_trainer::hnn::{
     tri_index, EnergyArch, HnnObjective, KineticArch, Objective, PortArch, PortObjective,
 };
-use keel_trainer::net::{Activation, MlpShape};
+use visviva_trainer::net::{Activation, MlpShape};
 use ndarray::Array2;
 use num_dual::{Dual64, HyperDual64};
 use rand::{Rng, SeedableRng};

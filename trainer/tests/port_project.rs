@@ -1,14 +1,14 @@
-//! Damped and driven models through `keel fit` and `keel run`:
-//! * `keel fit --dissipation --baseline --json` on driven data writes the
+//! Damped and driven models through `visviva fit` and `visviva run`:
+//! * `visviva fit --dissipation --baseline --json` on driven data writes the
 //!   run summary and a baseline that takes the input; a driven baseline learns
 //!   the drivetrain's input matrix G = (0, 0, 1, 0)^T (the motor torque is
 //!   the rate of the motor's angular momentum, Newton's second law for a
 //!   rotating body: dp1/dt = ... + u, so d(dp1/dt)/du = 1 and
 //!   d(dp2/dt)/du = 0);
-//! * `keel run` on a driven project: the report shows exactly the numbers
+//! * `visviva run` on a driven project: the report shows exactly the numbers
 //!   of report.json (damping per mode, response to held-out inputs), the
 //!   golden rollouts replay the held-out trajectory's logged inputs, and
-//!   `keel rollout --inputs` on the golden input file reproduces them bit
+//!   `visviva rollout --inputs` on the golden input file reproduces them bit
 //!   for bit (what the device check does);
 //! * a port model with Stormer-Verlet is refused before anything is written;
 //! * the reference modes of the built-in systems equal their closed forms:
@@ -23,24 +23,24 @@ use std::path::Path;
 use std::process::Command;
 
 use clap::Parser;
-use keel_trainer::check::reference_modes;
-use keel_trainer::cmd_fit;
-use keel_trainer::fit::{fit_baseline_driven, ArchChoice, FitSettings};
-use keel_trainer::hnn::PortArch;
-use keel_trainer::net::Activation;
-use keel_trainer::report::{page_disagreements, tagged_values};
-use keel_trainer::simulate::{simulate_port, SimulationSpec};
-use keel_trainer::systems::build_port_system;
+use visviva_trainer::check::reference_modes;
+use visviva_trainer::cmd_fit;
+use visviva_trainer::fit::{fit_baseline_driven, ArchChoice, FitSettings};
+use visviva_trainer::hnn::PortArch;
+use visviva_trainer::net::Activation;
+use visviva_trainer::report::{page_disagreements, tagged_values};
+use visviva_trainer::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::systems::build_port_system;
 
-fn keel(args: &[&str]) -> std::process::Output {
-    Command::new(env!("CARGO_BIN_EXE_keel"))
+fn visviva(args: &[&str]) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_visviva"))
         .args(args)
         .output()
         .unwrap()
 }
 
 fn simulate(out: &Path, seed: &str, trajectories: &str, duration: &str) {
-    let o = keel(&[
+    let o = visviva(&[
         "simulate",
         "--system",
         "drivetrain",
@@ -69,10 +69,10 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     let dir = tempfile::tempdir().unwrap();
     let p = dir.path();
     simulate(&p.join("train.csv"), "5", "6", "2");
-    let out = p.join("m.keel");
+    let out = p.join("m.vvb");
     let json = p.join("m.json");
     let args = Cli::try_parse_from([
-        "keel-fit",
+        "visviva-fit",
         "--data",
         p.join("train.csv").to_str().unwrap(),
         "--dissipation",
@@ -112,16 +112,16 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     assert!(loss.is_finite() && loss > 0.0, "{summary}");
     assert!(summary["steps"].as_u64().unwrap() > 0);
 
-    let base = keel_trainer::export::read_baseline(&cmd_fit::baseline_path(&out)).unwrap();
+    let base = visviva_trainer::export::read_baseline(&cmd_fit::baseline_path(&out)).unwrap();
     assert_eq!(base.inputs(), 1);
     assert_eq!(base.shape.inputs(), 5);
     assert_eq!(base.shape.outputs(), 4);
 
-    // `keel check` finds the baseline beside the model and rolls it out
+    // `visviva check` finds the baseline beside the model and rolls it out
     // with the logged inputs next to the model: its JSON numbers are those
     // of the library's driven baseline rollout.
     let report = p.join("check.json");
-    let o = keel(&[
+    let o = visviva(&[
         "check",
         "--model",
         out.to_str().unwrap(),
@@ -134,12 +134,12 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(stdout.contains("baseline"), "{stdout}");
     let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&report).unwrap()).unwrap();
-    let (ds, inputs) = keel_trainer::data::load_csv_with_inputs(
+    let (ds, inputs) = visviva_trainer::data::load_csv_with_inputs(
         &p.join("train.csv"),
-        &keel_trainer::data::LoadOptions::default(),
+        &visviva_trainer::data::LoadOptions::default(),
     )
     .unwrap();
-    let expected = keel_trainer::check::driven_baseline(&base, &ds, inputs.as_ref());
+    let expected = visviva_trainer::check::driven_baseline(&base, &ds, inputs.as_ref());
     let got = r["baseline_rollouts"].as_array().unwrap();
     assert_eq!(got.len(), ds.trajectories.len());
     assert_eq!(r["rollouts"].as_array().unwrap().len(), got.len());
@@ -252,9 +252,9 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
     std::fs::create_dir_all(p.join("data")).unwrap();
     simulate(&p.join("data/train.csv"), "1", "4", "1");
     simulate(&p.join("data/val.csv"), "2", "2", "1");
-    std::fs::write(p.join("keel.toml"), PROJECT).unwrap();
+    std::fs::write(p.join("visviva.toml"), PROJECT).unwrap();
 
-    let o = keel(&["run", "--quiet", p.to_str().unwrap()]);
+    let o = visviva(&["run", "--quiet", p.to_str().unwrap()]);
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(
         o.status.success(),
@@ -318,7 +318,7 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
     let golden: Vec<f32> = inputs.iter().map(|r| r[1].parse().unwrap()).collect();
     assert_eq!(golden, logged);
 
-    // Replaying the golden inputs with `keel rollout` gives the golden
+    // Replaying the golden inputs with `visviva rollout` gives the golden
     // states bit for bit, for both exported methods.
     for name in ["tiny-dgrad", "tiny-midpoint"] {
         let golden = read_rows(&p.join(format!("out/golden/{name}-0.csv")));
@@ -329,10 +329,10 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
             .collect();
         let init = format!("q1={},q2={},p1={},p2={}", x0[0], x0[1], x0[2], x0[3]);
         let host = p.join(format!("{name}-host.csv"));
-        let o = keel(&[
+        let o = visviva(&[
             "rollout",
             "--model",
-            p.join(format!("out/{name}.keel")).to_str().unwrap(),
+            p.join(format!("out/{name}.vvb")).to_str().unwrap(),
             "--init",
             &init,
             "--steps",
@@ -361,11 +361,11 @@ fn a_port_project_with_verlet_is_refused_before_anything_is_written() {
     std::fs::create_dir_all(p.join("data")).unwrap();
     simulate(&p.join("data/train.csv"), "1", "3", "0.5");
     std::fs::write(
-        p.join("keel.toml"),
+        p.join("visviva.toml"),
         "[model]\ndissipation = true\nintegrator = \"verlet\"\n",
     )
     .unwrap();
-    let o = keel(&["run", p.to_str().unwrap()]);
+    let o = visviva(&["run", p.to_str().unwrap()]);
     assert!(!o.status.success());
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(
@@ -376,11 +376,11 @@ fn a_port_project_with_verlet_is_refused_before_anything_is_written() {
 
     // The same for an export target.
     std::fs::write(
-        p.join("keel.toml"),
+        p.join("visviva.toml"),
         "[model]\ndissipation = true\n[[export]]\nname = \"x\"\nintegrator = \"yoshida4\"\n",
     )
     .unwrap();
-    let o = keel(&["run", p.to_str().unwrap()]);
+    let o = visviva(&["run", p.to_str().unwrap()]);
     assert!(!o.status.success());
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(

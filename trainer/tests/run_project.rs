@@ -1,4 +1,4 @@
-//! `keel run` end to end on a tiny project: the HTML report shows exactly
+//! `visviva run` end to end on a tiny project: the HTML report shows exactly
 //! the numbers of report.json, reruns reuse unchanged steps (editing only the
 //! export section does not refit), and a bad project file is refused with
 //! its line and no output.
@@ -6,10 +6,10 @@
 use std::path::Path;
 use std::process::Command;
 
-use keel_trainer::report::{page_disagreements, tagged_values};
+use visviva_trainer::report::{page_disagreements, tagged_values};
 
-fn keel(args: &[&str], dir: &Path) -> std::process::Output {
-    Command::new(env!("CARGO_BIN_EXE_keel"))
+fn visviva(args: &[&str], dir: &Path) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_visviva"))
         .args(args)
         .arg(dir)
         .output()
@@ -17,7 +17,7 @@ fn keel(args: &[&str], dir: &Path) -> std::process::Output {
 }
 
 fn simulate(out: &Path, seed: &str, n: &str) {
-    let st = Command::new(env!("CARGO_BIN_EXE_keel"))
+    let st = Command::new(env!("CARGO_BIN_EXE_visviva"))
         .args([
             "simulate",
             "--system",
@@ -68,9 +68,9 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     std::fs::create_dir_all(p.join("data")).unwrap();
     simulate(&p.join("data/train.csv"), "1", "6");
     simulate(&p.join("data/val.csv"), "2", "2");
-    std::fs::write(p.join("keel.toml"), PROJECT).unwrap();
+    std::fs::write(p.join("visviva.toml"), PROJECT).unwrap();
 
-    let o = keel(&["run", "--quiet"], p);
+    let o = visviva(&["run", "--quiet"], p);
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(
         o.status.success(),
@@ -108,15 +108,15 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
         "name = \"tiny-f32\"",
         "name = \"tiny-int8\"\nweights = \"int8\"",
     );
-    std::fs::write(p.join("keel.toml"), edited).unwrap();
-    let o = keel(&["run", "--quiet"], p);
+    std::fs::write(p.join("visviva.toml"), edited).unwrap();
+    let o = visviva(&["run", "--quiet"], p);
     assert!(o.status.success());
     assert!(String::from_utf8_lossy(&o.stdout).contains("inputs unchanged, reusing"));
     let json: serde_json::Value =
         serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
     assert_eq!(json["fit"]["reused"], true);
     assert_eq!(json["devices"][0]["export"]["weights"], "int8");
-    assert!(p.join("out/tiny-int8.keel").exists());
+    assert!(p.join("out/tiny-int8.vvb").exists());
     assert!(p.join("out/golden/tiny-int8-0.csv").exists());
 }
 
@@ -125,15 +125,15 @@ fn a_bad_project_file_names_its_line_and_writes_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let p = dir.path();
     std::fs::write(
-        p.join("keel.toml"),
+        p.join("visviva.toml"),
         "[data]\ntrain = \"x.csv\"\n[fit]\nepochz = 3\n",
     )
     .unwrap();
-    let o = keel(&["run"], p);
+    let o = visviva(&["run"], p);
     assert!(!o.status.success());
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(
-        err.contains("keel.toml") && err.contains("line 4") && err.contains("epochz"),
+        err.contains("visviva.toml") && err.contains("line 4") && err.contains("epochz"),
         "{err}"
     );
     assert!(!p.join("out").exists());

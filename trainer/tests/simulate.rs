@@ -1,14 +1,14 @@
-//! Checks of the reference-data generator (`keel simulate`) against outside
+//! Checks of the reference-data generator (`visviva simulate`) against outside
 //! sources: an independent general-purpose ODE solver, exact energy
 //! conservation, and the closed-form large-amplitude pendulum period.
 
-use keel_trainer::cmd_simulate;
-use keel_trainer::data::{load_csv, LoadOptions};
-use keel_trainer::dataset::DerivativeSource;
-use keel_trainer::simulate::{
+use visviva_trainer::cmd_simulate;
+use visviva_trainer::data::{load_csv, LoadOptions};
+use visviva_trainer::dataset::DerivativeSource;
+use visviva_trainer::simulate::{
     add_noise, integrate, max_relative_energy_drift, simulate, SimulationSpec,
 };
-use keel_trainer::systems::{build_system, ReferenceSystem, CATALOG};
+use visviva_trainer::systems::{build_system, ReferenceSystem, CATALOG};
 use ode_solvers::{DVector, Dop853, OutputType};
 use std::path::Path;
 
@@ -291,10 +291,10 @@ fn command_line_exit_status_and_summary() {
     // stderr and no output file; good input prints a one-line summary.
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("run.csv");
-    let keel = env!("CARGO_BIN_EXE_keel");
+    let visviva = env!("CARGO_BIN_EXE_visviva");
     let base = ["simulate", "--system", "flexure", "--trajectories", "2"];
     let rest = ["--duration", "1", "--rate", "20", "--out"];
-    let bad = std::process::Command::new(keel)
+    let bad = std::process::Command::new(visviva)
         .args(base)
         .args(["--param", "mass=1"])
         .args(rest)
@@ -305,7 +305,7 @@ fn command_line_exit_status_and_summary() {
     let stderr = String::from_utf8_lossy(&bad.stderr);
     assert!(stderr.contains("valid keys: m, k, amp"), "{stderr}");
     assert!(!out.exists());
-    let good = std::process::Command::new(keel)
+    let good = std::process::Command::new(visviva)
         .args(base)
         .args(rest)
         .arg(&out)

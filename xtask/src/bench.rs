@@ -1,4 +1,4 @@
-//! `cargo xtask bench`: training throughput of Keel's trainer against our
+//! `cargo xtask bench`: training throughput of Visviva's trainer against our
 //! reference trainers of the same problem on general-purpose frameworks
 //! (`bench/hnn_torch.py`, `bench/hnn_jax.py`, CPU only).
 //!
@@ -18,7 +18,7 @@ use std::process::Command;
 
 use anyhow::{bail, Context, Result};
 
-const USAGE: &str = "usage: cargo xtask bench [--rounds N] [--steps N] [--only keel,torch,jax]";
+const USAGE: &str = "usage: cargo xtask bench [--rounds N] [--steps N] [--only visviva,torch,jax]";
 
 /// Trajectories in the generated log.
 const TRAJECTORIES: usize = 64;
@@ -39,17 +39,17 @@ struct Options {
 
 #[derive(Clone, Copy, PartialEq, Eq, Debug)]
 enum Impl {
-    Keel,
+    Visviva,
     Torch,
     Jax,
 }
 
 impl Impl {
-    const ALL: [Impl; 3] = [Impl::Keel, Impl::Torch, Impl::Jax];
+    const ALL: [Impl; 3] = [Impl::Visviva, Impl::Torch, Impl::Jax];
 
     fn name(self) -> &'static str {
         match self {
-            Impl::Keel => "keel",
+            Impl::Visviva => "visviva",
             Impl::Torch => "torch",
             Impl::Jax => "jax",
         }
@@ -152,7 +152,7 @@ fn ensure_venv(root: &Path) -> Result<PathBuf> {
     let reqs_path = root.join("bench").join("requirements.txt");
     let reqs = std::fs::read_to_string(&reqs_path)
         .with_context(|| format!("reading {}", reqs_path.display()))?;
-    let marker = venv.join("keel-bench-installed.txt");
+    let marker = venv.join("visviva-bench-installed.txt");
     if std::fs::read_to_string(&marker).ok().as_deref() == Some(reqs.as_str()) && python.exists() {
         return Ok(python);
     }
@@ -187,17 +187,17 @@ fn ensure_venv(root: &Path) -> Result<PathBuf> {
     Ok(python)
 }
 
-fn build_keel(root: &Path) -> Result<PathBuf> {
+fn build_visviva(root: &Path) -> Result<PathBuf> {
     let ok = Command::new(crate::tools::cargo())
-        .args(["build", "--release", "-p", "keel-trainer", "--bin", "keel"])
+        .args(["build", "--release", "-p", "visviva-trainer", "--bin", "visviva"])
         .current_dir(root)
         .status()
         .context("starting cargo build")?
         .success();
     if !ok {
-        bail!("cargo build --release -p keel-trainer failed");
+        bail!("cargo build --release -p visviva-trainer failed");
     }
-    Ok(target_dir(root).join("release").join("keel"))
+    Ok(target_dir(root).join("release").join("visviva"))
 }
 
 /// One configuration of the benchmark.
@@ -231,10 +231,10 @@ fn json_number(text: &str, key: &str) -> Option<f64> {
 }
 
 struct Tools {
-    keel: PathBuf,
+    visviva: PathBuf,
     python: Option<PathBuf>,
     taskset: bool,
-    /// Keel's initial parameters for the references (`--init`).
+    /// Visviva's initial parameters for the references (`--init`).
     init: Option<PathBuf>,
 }
 
@@ -264,8 +264,8 @@ fn run_one(
     );
     let mut args: Vec<String> = Vec::new();
     let program = match imp {
-        Impl::Keel => {
-            let model = work.join("keel-model.keel");
+        Impl::Visviva => {
+            let model = work.join("visviva-model.vvb");
             for a in [
                 "fit",
                 "--data",
@@ -293,7 +293,7 @@ fn run_one(
             ] {
                 args.push(a.into());
             }
-            tools.keel.clone()
+            tools.visviva.clone()
         }
         Impl::Torch | Impl::Jax => {
             let script = root
@@ -372,17 +372,17 @@ fn run_one(
     })
 }
 
-/// Keel's seeded initial parameters, so the references start from the very
-/// same network: `keel fit` for one step at a learning rate of 1e-30 (the
+/// Visviva's seeded initial parameters, so the references start from the very
+/// same network: `visviva fit` for one step at a learning rate of 1e-30 (the
 /// first Adam update moves each parameter by about 1e-30, below f32
 /// resolution for every nonzero weight), the blob decoded with
-/// `keel_runtime::format::decode`, and each layer written as three lines:
+/// `visviva_runtime::format::decode`, and each layer written as three lines:
 /// `outputs inputs`, the weights row by row, the biases. Rust prints each f32
 /// as the shortest decimal that reads back to the same value.
 fn write_initial_weights(tools: &Tools, work: &Path, data: &Path) -> Result<PathBuf> {
-    let blob = work.join("keel-init.keel");
+    let blob = work.join("visviva-init.vvb");
     let hidden = HIDDEN.map(|w| w.to_string()).join(",");
-    let out = Command::new(&tools.keel)
+    let out = Command::new(&tools.visviva)
         .args(["fit", "--data"])
         .arg(data)
         .args([
@@ -398,24 +398,24 @@ fn write_initial_weights(tools: &Tools, work: &Path, data: &Path) -> Result<Path
         ])
         .arg(&blob)
         .output()
-        .context("starting keel fit for the initial weights")?;
+        .context("starting visviva fit for the initial weights")?;
     if !out.status.success() {
         bail!(
-            "keel fit (initial weights) failed:\n{}",
+            "visviva fit (initial weights) failed:\n{}",
             String::from_utf8_lossy(&out.stderr)
         );
     }
     let bytes = std::fs::read(&blob).with_context(|| format!("reading {}", blob.display()))?;
-    let desc = keel_runtime::format::decode(&bytes)
+    let desc = visviva_runtime::format::decode(&bytes)
         .map_err(|e| anyhow::anyhow!("{}: {e:?}", blob.display()))?;
-    let keel_runtime::format::EnergyDesc::General(mlp) = &desc.energy else {
+    let visviva_runtime::format::EnergyDesc::General(mlp) = &desc.energy else {
         bail!("{}: expected a general energy network", blob.display());
     };
     let join =
         |it: &mut dyn Iterator<Item = f32>| it.map(|v| v.to_string()).collect::<Vec<_>>().join(" ");
     let mut text = String::new();
     for layer in &mlp.layers {
-        let keel_runtime::format::WeightsDesc::F32(w) = layer.weights else {
+        let visviva_runtime::format::WeightsDesc::F32(w) = layer.weights else {
             bail!("{}: expected f32 weights", blob.display());
         };
         let _ = writeln!(text, "{} {}", layer.outputs, layer.inputs);
@@ -441,7 +441,7 @@ fn median(mut v: Vec<f64>) -> f64 {
 }
 
 /// Floating-point operations per training sample of one optimizer step of
-/// Keel's trainer for the general energy network `sizes`
+/// Visviva's trainer for the general energy network `sizes`
 /// (`[inputs, hidden.., 1]`), counted from trainer/src/net.rs and hnn.rs:
 /// a multiply-add is 2, every other arithmetic operation 1, tanh 1. Returns
 /// (per-sample work, per-step work shared by the batch).
@@ -528,9 +528,9 @@ pub fn run(args: &[String]) -> Result<bool> {
     std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
     let data = work.join("mass-spring.csv");
     write_file(&data, &mass_spring_csv())?;
-    let needs_python = o.impls.iter().any(|i| *i != Impl::Keel);
+    let needs_python = o.impls.iter().any(|i| *i != Impl::Visviva);
     let mut tools = Tools {
-        keel: build_keel(&root)?,
+        visviva: build_visviva(&root)?,
         python: if needs_python {
             Some(ensure_venv(&root)?)
         } else {
@@ -613,16 +613,16 @@ pub fn run(args: &[String]) -> Result<bool> {
         let mut line = format!("train {}:", cfg.label());
         let mut parts = Vec::new();
         for (ii, imp) in o.impls.iter().enumerate() {
-            parts.push(if *imp == Impl::Keel {
+            parts.push(if *imp == Impl::Visviva {
                 format!(" {} {:.0} samples/s", imp.name(), med_rate(ci, ii))
             } else {
                 format!(" {} {:.0}", imp.name(), med_rate(ci, ii))
             });
         }
-        if let Some(k) = pos(Impl::Keel) {
+        if let Some(k) = pos(Impl::Visviva) {
             for other in [Impl::Torch, Impl::Jax] {
                 if let Some(x) = pos(other) {
-                    parts.push(format!(" keel/{} {:.2}", other.name(), paired(ci, k, x)));
+                    parts.push(format!(" visviva/{} {:.2}", other.name(), paired(ci, k, x)));
                 }
             }
         }
@@ -679,7 +679,7 @@ pub fn run(args: &[String]) -> Result<bool> {
             );
         }
     }
-    if let Some(k) = pos(Impl::Keel) {
+    if let Some(k) = pos(Impl::Visviva) {
         let mut sizes = vec![2];
         sizes.extend_from_slice(&HIDDEN);
         sizes.push(1);
@@ -692,7 +692,7 @@ pub fn run(args: &[String]) -> Result<bool> {
         let fma = if cpu.fma { 2.0 } else { 1.0 };
         let peak = cpu.mhz / 1000.0 * lanes * fma * 2.0;
         println!(
-            "flops: keel step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
+            "flops: visviva step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
              (Adam, clipping); peak assumption {peak:.1} GFLOP/s per core = {:.2} GHz x {} f32 \
              lanes ({}) x {} (FMA) x 2 FMA units{}",
             cpu.mhz / 1000.0,
@@ -710,7 +710,7 @@ pub fn run(args: &[String]) -> Result<bool> {
             let gflops = rate * (per_sample + per_step / cfg.batch as f64) / 1e9;
             let cores_peak = peak * cfg.threads as f64;
             println!(
-                "flops {}: keel {gflops:.2} GFLOP/s achieved of {cores_peak:.1} peak ({:.1} %)",
+                "flops {}: visviva {gflops:.2} GFLOP/s achieved of {cores_peak:.1} peak ({:.1} %)",
                 cfg.label(),
                 100.0 * gflops / cores_peak
             );

@@ -1,5 +1,5 @@
 //! `cargo xtask device`: for every device blob (the generated fixtures plus
-//! any demo blob exported by `keel run` with golden rollouts, or the blobs
+//! any demo blob exported by `visviva run` with golden rollouts, or the blobs
 //! given with `--blob`), build the example firmware
 //! with it, run it in QEMU, and compare every logged state bit for bit with
 //! the host rollout; check that defective blobs and faults end the firmware
@@ -15,7 +15,7 @@ use crate::device_log::{self, DeviceLog};
 use crate::elf_size::{self, ElfSize};
 use crate::fixtures;
 use crate::golden_csv;
-use crate::host_rollout::{self, HostRollout, KeelCommand, Trajectories};
+use crate::host_rollout::{self, HostRollout, VisvivaCommand, Trajectories};
 use crate::model_swap;
 use crate::qemu_run::{self, ICOUNT_SHIFT, SYSTICK_NS};
 use crate::run_plan::RunPlan;
@@ -34,7 +34,7 @@ struct DeviceCase {
     name: String,
     blob: PathBuf,
     plan: RunPlan,
-    /// Golden rollouts from `keel run`, when the blob has them.
+    /// Golden rollouts from `visviva run`, when the blob has them.
     golden: Option<Trajectories>,
 }
 
@@ -54,7 +54,7 @@ struct ReportRow {
 fn fixture_cases(work: &Path) -> Result<Vec<DeviceCase>> {
     let mut cases = Vec::new();
     for blob in fixtures::good_fixtures()? {
-        let path = work.join(format!("{}.keel", blob.name));
+        let path = work.join(format!("{}.vvb", blob.name));
         std::fs::write(&path, &blob.bytes)?;
         let initial_states = if blob.name.contains("separable") {
             vec![vec![0.3, -0.2, 0.0, 0.1], vec![-0.5, 0.4, 0.2, -0.1]]
@@ -84,7 +84,7 @@ fn fixture_cases(work: &Path) -> Result<Vec<DeviceCase>> {
     Ok(cases)
 }
 
-/// Blobs given on the command line (e.g. `keel export` outputs), with
+/// Blobs given on the command line (e.g. `visviva export` outputs), with
 /// initial states spread over each model's normalization range.
 fn file_cases(blobs: &[PathBuf]) -> Result<Vec<DeviceCase>> {
     blobs
@@ -116,8 +116,8 @@ fn file_cases(blobs: &[PathBuf]) -> Result<Vec<DeviceCase>> {
         .collect()
 }
 
-/// Blobs exported by `keel run` in the demo projects
-/// (`models-demo/*/out/*.keel` that have golden rollout files), sorted.
+/// Blobs exported by `visviva run` in the demo projects
+/// (`models-demo/*/out/*.vvb` that have golden rollout files), sorted.
 fn exported_demo_blobs(root: &Path) -> Vec<PathBuf> {
     let mut found = Vec::new();
     let Ok(projects) = std::fs::read_dir(root.join("models-demo")) else {
@@ -129,7 +129,7 @@ fn exported_demo_blobs(root: &Path) -> Vec<PathBuf> {
         };
         for entry in outputs.flatten() {
             let path = entry.path();
-            if path.extension().is_some_and(|e| e == "keel")
+            if path.extension().is_some_and(|e| e == "visviva")
                 && !golden_csv::files_for(&path).is_empty()
             {
                 found.push(path);
@@ -261,9 +261,9 @@ fn run_good_case(
     Ok((same, row))
 }
 
-/// For a blob exported by `keel run` (in `<project>/out/`), write what the
+/// For a blob exported by `visviva run` (in `<project>/out/`), write what the
 /// emulator measured to `<project>/out/device/<blob>.json`, where the next
-/// `keel run` picks it up for its report.
+/// `visviva run` picks it up for its report.
 fn record_measurement(case: &DeviceCase, row: &ReportRow) {
     if case.golden.is_none() || row.name != case.name {
         return;
@@ -285,7 +285,7 @@ fn record_measurement(case: &DeviceCase, row: &ReportRow) {
 }
 
 /// Re-flash check: take the first case's built ELF, write the blob of a
-/// later case with the same run plan into its `.keel_model` section (no
+/// later case with the same run plan into its `.vv_model` section (no
 /// rebuild), run it and compare with the host rollout of that blob. Ok(true)
 /// also when no pair of cases qualifies (reported).
 fn swap_check(work: &Path, cases: &[DeviceCase], host: &dyn HostRollout) -> Result<bool> {
@@ -314,7 +314,7 @@ fn swap_check(work: &Path, cases: &[DeviceCase], host: &dyn HostRollout) -> Resu
     let expected = other.plan.state_count();
     let ok = same == expected && outcome.exit_code == Some(0) && log.done;
     println!(
-        "  model swap (no rebuild): {} written into the .keel_model section of {}.elf: {same} of {expected} states bit-identical{}",
+        "  model swap (no rebuild): {} written into the .vv_model section of {}.elf: {same} of {expected} states bit-identical{}",
         other.name,
         first.name,
         if ok { "" } else { " - FAILED" }
@@ -374,7 +374,7 @@ fn print_report(rows: &[ReportRow]) {
             r.seconds
         );
     }
-    println!("  flash = .vector_table + .text + .rodata + .data image (the blob is separate, in .keel_model);");
+    println!("  flash = .vector_table + .text + .rodata + .data image (the blob is separate, in .vv_model);");
     println!(
         "  RAM = .data + .bss + .uninit (static); stack = high-water mark of the painted stack."
     );
@@ -398,7 +398,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     let started = Instant::now();
     tools::ensure_all()?;
     let root = crate::workspace_root();
-    let work = root.join("firmware-example/target/keel-device");
+    let work = root.join("firmware-example/target/visviva-device");
     std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
 
     let cases = if blobs.is_empty() {
@@ -412,7 +412,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     } else {
         file_cases(&blobs)?
     };
-    let host = KeelCommand::build(&root, &work)?;
+    let host = VisvivaCommand::build(&root, &work)?;
     println!("device check: host reference = {}", host.describe());
     let mut total = 0usize;
     let mut matched = 0usize;
@@ -450,9 +450,9 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     }
     .write(&probe_plan)?;
     for bad in fixtures::bad_fixtures(FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH)? {
-        let path = work.join(format!("{}.keel", bad.blob.name));
+        let path = work.join(format!("{}.vvb", bad.blob.name));
         std::fs::write(&path, &bad.blob.bytes)?;
-        let host_view = keel_runtime::Model::<FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH>::from_bytes(
+        let host_view = visviva_runtime::Model::<FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH>::from_bytes(
             &bad.blob.bytes,
         )
         .err()

@@ -67,13 +67,13 @@ pub fn parse(text: &str) -> Result<DeviceLog> {
             let (key, words) = parse_state(line)
                 .with_context(|| format!("device log line {}: `{line}`", i + 1))?;
             log.states.insert(key, words);
-        } else if line.starts_with("keel-fw error") {
+        } else if line.starts_with("visviva-fw error") {
             log.errors.push(line.to_string());
-        } else if line.starts_with("keel-fw bounds") {
+        } else if line.starts_with("visviva-fw bounds") {
             log.bounds = field(line, "max_dof").zip(field(line, "max_width"));
-        } else if line.starts_with("keel-fw fpu") {
+        } else if line.starts_with("visviva-fw fpu") {
             log.fpu_enabled = field(line, "cp10_cp11_full_access");
-        } else if line.starts_with("keel-fw calib") {
+        } else if line.starts_with("visviva-fw calib") {
             log.calibration = match (
                 field(line, "loop_instructions"),
                 field(line, "ticks"),
@@ -82,13 +82,13 @@ pub fn parse(text: &str) -> Result<DeviceLog> {
                 (Some(a), Some(b), Some(c)) => Some((a, b, c)),
                 _ => None,
             };
-        } else if line.starts_with("keel-fw model") {
+        } else if line.starts_with("visviva-fw model") {
             log.macs_per_step = field(line, "macs_per_step");
-        } else if line.starts_with("keel-fw timing") {
+        } else if line.starts_with("visviva-fw timing") {
             log.timing = field(line, "steps").zip(field(line, "ticks"));
-        } else if line.starts_with("keel-fw stack") {
+        } else if line.starts_with("visviva-fw stack") {
             log.stack = field(line, "used").zip(field(line, "size"));
-        } else if line == "keel-fw done" {
+        } else if line == "visviva-fw done" {
             log.done = true;
         }
     }
@@ -103,7 +103,7 @@ mod tests {
     fn state_bytes_become_ieee754_bit_patterns() {
         // IEEE 754 binary32: 1.0 = 0x3F80_0000, -2.0 = 0xC000_0000; the
         // firmware sends each value as little-endian bytes.
-        let log = parse("x 1 7 [0, 0, 128, 63, 0, 0, 0, 192]\nkeel-fw done\n").unwrap();
+        let log = parse("x 1 7 [0, 0, 128, 63, 0, 0, 0, 192]\nvisviva-fw done\n").unwrap();
         let words = &log.states[&(1, 7)];
         assert_eq!(words, &vec![0x3F80_0000, 0xC000_0000]);
         assert_eq!(f32::from_bits(words[0]), 1.0);
@@ -113,9 +113,9 @@ mod tests {
 
     #[test]
     fn key_value_lines_and_errors_are_read() {
-        let text = "keel-fw calib loop_instructions=200000 ticks=320001 overhead_ticks=3\n\
-                    keel-fw timing steps=20000 ticks=1650116524\n\
-                    keel-fw error: blob refused: BadMagic (not a Keel model blob)\n";
+        let text = "visviva-fw calib loop_instructions=200000 ticks=320001 overhead_ticks=3\n\
+                    visviva-fw timing steps=20000 ticks=1650116524\n\
+                    visviva-fw error: blob refused: BadMagic (not a Visviva model blob)\n";
         let log = parse(text).unwrap();
         assert_eq!(log.calibration, Some((200_000, 320_001, 3)));
         assert_eq!(log.timing, Some((20_000, 1_650_116_524)));
@@ -125,7 +125,7 @@ mod tests {
 
     #[test]
     fn a_torn_state_line_is_an_error_naming_the_line() {
-        let err = parse("keel-fw done\nx 0 1 [1, 2, 3]\n").unwrap_err();
+        let err = parse("visviva-fw done\nx 0 1 [1, 2, 3]\n").unwrap_err();
         assert!(format!("{err:#}").contains("line 2"));
     }
 }

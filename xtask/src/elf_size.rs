@@ -15,7 +15,7 @@ pub struct ElfSize {
     pub data: u64,
     /// `.bss` + `.uninit`.
     pub bss: u64,
-    /// `.keel_model` (the blob in its own flash region).
+    /// `.vv_model` (the blob in its own flash region).
     pub model_region: u64,
 }
 
@@ -43,7 +43,7 @@ pub fn read(elf: &Path) -> Result<ElfSize> {
             ".vector_table" | ".text" | ".rodata" => size.flash_code += n,
             ".data" => size.data += n,
             ".bss" | ".uninit" => size.bss += n,
-            ".keel_model" => size.model_region += n,
+            ".vv_model" => size.model_region += n,
             _ => {}
         }
     }

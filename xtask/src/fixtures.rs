@@ -1,5 +1,5 @@
 //! FIXTURE blobs for the device check: deterministic, seeded pseudo-random
-//! weights (NOT trained models) encoded with `keel_runtime::format::encode`,
+//! weights (NOT trained models) encoded with `visviva_runtime::format::encode`,
 //! plus deliberately defective blobs the firmware must refuse.
 //!
 //! Good fixtures: a separable 2-dof model (2-32-32-1 tanh potential,
@@ -12,11 +12,11 @@
 //! rollout's largest |x|.
 
 use anyhow::{anyhow, Result};
-use keel_runtime::format::{
+use visviva_runtime::format::{
     self, Activation, EnergyDesc, F32Bytes, KineticDesc, LayerDesc, MlpDesc, ModelDesc,
     WeightsDesc, FORMAT_VERSION, HEADER_LEN, MAX_LAYERS, TRAILER_LEN,
 };
-use keel_runtime::{Integrator, Method};
+use visviva_runtime::{Integrator, Method};
 
 /// A named blob.
 pub struct NamedBlob {

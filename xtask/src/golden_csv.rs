@@ -1,4 +1,4 @@
-//! Golden rollouts written by `keel run` next to an exported blob
+//! Golden rollouts written by `visviva run` next to an exported blob
 //! (`<dir>/golden/<blob stem>-<k>.csv`, columns `t,q1..qn,p1..pn`, values as
 //! `0x`-prefixed `f32` bit patterns or decimal numbers). When present they
 //! supply the device check's initial states and step count, and serve as a
@@ -194,7 +194,7 @@ mod tests {
     fn a_driven_golden_set_carries_its_inputs_into_the_plan() {
         let dir = std::env::temp_dir().join(format!("xtask-golden-u-{}", std::process::id()));
         std::fs::create_dir_all(dir.join("golden")).unwrap();
-        let blob = dir.join("m.keel");
+        let blob = dir.join("m.vvb");
         std::fs::write(&blob, b"").unwrap();
         std::fs::write(
             dir.join("golden/m-0.csv"),

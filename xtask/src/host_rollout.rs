@@ -1,8 +1,8 @@
 //! The host side of the device check: the reference rollout every device
 //! state is compared with, bit for bit.
 //!
-//! [`HostRollout`] is the seam: [`KeelCommand`] runs the user-facing
-//! `keel rollout --bits` command (the path a user follows) and parses its
+//! [`HostRollout`] is the seam: [`VisvivaCommand`] runs the user-facing
+//! `visviva rollout --bits` command (the path a user follows) and parses its
 //! CSV (Rust prints `f32` bit patterns exactly with `--bits`).
 
 use std::path::{Path, PathBuf};
@@ -23,18 +23,18 @@ pub trait HostRollout {
     fn rollout(&self, blob: &Path, plan: &RunPlan) -> Result<Trajectories>;
 }
 
-/// The `keel rollout` command of this workspace (built in release by
-/// [`KeelCommand::build`]), one run per initial state, exact bit patterns.
-pub struct KeelCommand {
+/// The `visviva rollout` command of this workspace (built in release by
+/// [`VisvivaCommand::build`]), one run per initial state, exact bit patterns.
+pub struct VisvivaCommand {
     exe: PathBuf,
     work: PathBuf,
 }
 
-impl KeelCommand {
-    /// Build `keel` in release and use it, writing CSVs into `work`.
+impl VisvivaCommand {
+    /// Build `visviva` in release and use it, writing CSVs into `work`.
     pub fn build(root: &Path, work: &Path) -> Result<Self> {
         Ok(Self {
-            exe: crate::tools::build_keel(root)?,
+            exe: crate::tools::build_visviva(root)?,
             work: work.to_path_buf(),
         })
     }
@@ -54,7 +54,7 @@ fn init_spec(init: &[f32], n: usize) -> String {
     parts.join(",")
 }
 
-impl HostRollout for KeelCommand {
+impl HostRollout for VisvivaCommand {
     fn describe(&self) -> String {
         format!(
             "`{} rollout --bits` ({})",
@@ -104,7 +104,7 @@ impl HostRollout for KeelCommand {
                 .with_context(|| format!("starting {}", self.exe.display()))?;
             if !o.status.success() {
                 bail!(
-                    "keel rollout of {} from state {s} failed: {}",
+                    "visviva rollout of {} from state {s} failed: {}",
                     blob.display(),
                     String::from_utf8_lossy(&o.stderr).trim()
                 );
@@ -122,7 +122,7 @@ impl HostRollout for KeelCommand {
 /// A plan for a blob without its own: a few states spread over the model's
 /// normalization range (offset + c * scale, c in {0.5, -0.8, 1.2}).
 pub fn default_plan(blob: &[u8], steps: u32) -> Result<RunPlan> {
-    let desc = keel_runtime::format::decode(blob).map_err(|e| anyhow!("{e}"))?;
+    let desc = visviva_runtime::format::decode(blob).map_err(|e| anyhow!("{e}"))?;
     let n = desc.dof as usize;
     let offset: Vec<f32> = desc.offset.iter().collect();
     let scale: Vec<f32> = desc.scale.iter().collect();
@@ -141,11 +141,11 @@ pub fn default_plan(blob: &[u8], steps: u32) -> Result<RunPlan> {
         })
         .collect();
     let inputs = match &desc.input {
-        keel_runtime::format::InputDesc::Constant { inputs, .. }
-        | keel_runtime::format::InputDesc::Network { inputs, .. } => {
+        visviva_runtime::format::InputDesc::Constant { inputs, .. }
+        | visviva_runtime::format::InputDesc::Network { inputs, .. } => {
             crate::run_plan::two_tone_inputs(steps, *inputs as usize, desc.integrator.dt)
         }
-        keel_runtime::format::InputDesc::None => Vec::new(),
+        visviva_runtime::format::InputDesc::None => Vec::new(),
     };
     Ok(RunPlan {
         dof: n,

@@ -7,8 +7,8 @@
 //!   (`--data` also rewrites their logs; `--verify` checks that logs and
 //!   blobs reproduce bit for bit).
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
-//!   Keel against PyTorch and JAX references (see `bench/README.md`).
-//! * `cargo xtask device [--blob FILE.keel]...`: installs missing tools, runs
+//!   Visviva against PyTorch and JAX references (see `bench/README.md`).
+//! * `cargo xtask device [--blob FILE.vvb]...`: installs missing tools, runs
 //!   the example firmware in QEMU for every device blob and compares every
 //!   state bit for bit with the host rollout.
 
@@ -34,7 +34,7 @@ const USAGE: &str = "usage: cargo xtask <task>
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
                             (default: the generated fixture blobs)
-  bench [--rounds N] [--steps N] [--only keel,torch,jax]
+  bench [--rounds N] [--steps N] [--only visviva,torch,jax]
                             training throughput against PyTorch and JAX (CPU)";
 
 fn main() -> ExitCode {

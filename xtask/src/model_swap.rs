@@ -1,5 +1,5 @@
 //! Changing the weights without rebuilding: write another blob over the
-//! `.keel_model` section of a built ELF, the way a flash write at the
+//! `.vv_model` section of a built ELF, the way a flash write at the
 //! region's address would on a board (bytes after the blob are set to the
 //! erased-flash value 0xFF; the firmware takes the blob's length from its
 //! header).
@@ -9,7 +9,7 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use object::{Object, ObjectSection};
 
-/// Copy `elf_in` to `elf_out` with `blob` written into `.keel_model`.
+/// Copy `elf_in` to `elf_out` with `blob` written into `.vv_model`.
 pub fn patch_model_section(elf_in: &Path, blob: &[u8], elf_out: &Path) -> Result<()> {
     let mut bytes =
         std::fs::read(elf_in).with_context(|| format!("reading {}", elf_in.display()))?;
@@ -17,17 +17,17 @@ pub fn patch_model_section(elf_in: &Path, blob: &[u8], elf_out: &Path) -> Result
         let file = object::File::parse(&*bytes)
             .with_context(|| format!("parsing {}", elf_in.display()))?;
         let section = file
-            .section_by_name(".keel_model")
-            .with_context(|| format!("{} has no .keel_model section", elf_in.display()))?;
+            .section_by_name(".vv_model")
+            .with_context(|| format!("{} has no .vv_model section", elf_in.display()))?;
         section
             .file_range()
-            .context(".keel_model has no file contents")?
+            .context(".vv_model has no file contents")?
     };
     let (offset, size) = (offset as usize, size as usize);
     if blob.len() > size {
         bail!(
-            "blob of {} bytes does not fit the {size}-byte .keel_model section of {} \
-             (on a board the whole KEEL_MODEL region is available)",
+            "blob of {} bytes does not fit the {size}-byte .vv_model section of {} \
+             (on a board the whole VV_MODEL region is available)",
             blob.len(),
             elf_in.display()
         );

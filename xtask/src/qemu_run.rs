@@ -52,15 +52,15 @@ pub fn build_firmware(
         .args(["build", "--release", "--quiet", "--target", TARGET])
         .arg("--target-dir")
         .arg(&target_dir)
-        .env("KEEL_BLOB", &blob)
-        .env("KEEL_RUN_PLAN", &plan)
+        .env("VISVIVA_BLOB", &blob)
+        .env("VISVIVA_RUN_PLAN", &plan)
         .env_remove("CARGO_TARGET_DIR")
         .env_remove("RUSTFLAGS")
         .env_remove("CARGO_ENCODED_RUSTFLAGS")
         .env_remove("CARGO_BUILD_TARGET");
     match drill {
-        Some(d) => cmd.env("KEEL_DRILL", d),
-        None => cmd.env_remove("KEEL_DRILL"),
+        Some(d) => cmd.env("VISVIVA_DRILL", d),
+        None => cmd.env_remove("VISVIVA_DRILL"),
     };
     let status = cmd.status().context("starting cargo for the firmware")?;
     if !status.success() {
@@ -69,7 +69,7 @@ pub fn build_firmware(
     let built = target_dir
         .join(TARGET)
         .join("release")
-        .join("keel-firmware-example");
+        .join("visviva-firmware-example");
     let elf = work.join(format!("{name}.elf"));
     std::fs::copy(&built, &elf)
         .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;

@@ -1,4 +1,4 @@
-//! The run plan handed to the firmware at build time (`KEEL_RUN_PLAN`): the
+//! The run plan handed to the firmware at build time (`VISVIVA_RUN_PLAN`): the
 //! initial states and the number of steps. The byte layout is documented in
 //! `firmware-example/src/run_plan.rs`; this module writes it.
 
@@ -51,7 +51,7 @@ impl RunPlan {
             self.steps
         );
         let mut out = Vec::new();
-        out.extend_from_slice(b"KRUN");
+        out.extend_from_slice(b"VRUN");
         out.extend_from_slice(&(if m > 0 { 2u32 } else { 1u32 }).to_le_bytes());
         out.extend_from_slice(&(self.dof as u32).to_le_bytes());
         out.extend_from_slice(&(self.initial_states.len() as u32).to_le_bytes());

@@ -46,14 +46,14 @@ pub fn run() -> Result<bool> {
             },
         ),
         (
-            "cargo test --workspace --exclude keel-tests (keel-tests run in release below)",
-            &|| cargo_stage(&["test", "--workspace", "--exclude", "keel-tests"]),
+            "cargo test --workspace --exclude visviva-tests (visviva-tests run in release below)",
+            &|| cargo_stage(&["test", "--workspace", "--exclude", "visviva-tests"]),
         ),
         (
-            "cargo build -p keel-runtime --target thumbv7em-none-eabihf",
+            "cargo build -p visviva-runtime --target thumbv7em-none-eabihf",
             &|| {
                 tools::ensure_target()?;
-                cargo_stage(&["build", "-p", "keel-runtime", "--target", TARGET])
+                cargo_stage(&["build", "-p", "visviva-runtime", "--target", TARGET])
             },
         ),
         (
@@ -61,13 +61,13 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test --release: keel-tests and the trainer's port checks (outside references)",
+            "cargo test --release: visviva-tests and the trainer's port checks (outside references)",
             &|| {
-                Ok(cargo_stage(&["test", "-p", "keel-tests", "--release"])?
+                Ok(cargo_stage(&["test", "-p", "visviva-tests", "--release"])?
                     && cargo_stage(&[
                         "test",
                         "-p",
-                        "keel-trainer",
+                        "visviva-trainer",
                         "--release",
                         "--test",
                         "port_checks",

@@ -114,28 +114,28 @@ pub fn ensure_defmt_print() -> Result<()> {
     Ok(())
 }
 
-/// Build the `keel` command in release and return its path.
-pub fn build_keel(root: &std::path::Path) -> Result<std::path::PathBuf> {
+/// Build the `visviva` command in release and return its path.
+pub fn build_visviva(root: &std::path::Path) -> Result<std::path::PathBuf> {
     let status = Command::new(cargo())
         .args([
             "build",
             "--release",
             "--quiet",
             "-p",
-            "keel-trainer",
+            "visviva-trainer",
             "--bin",
-            "keel",
+            "visviva",
         ])
         .current_dir(root)
         .status()
-        .context("starting cargo build -p keel-trainer")?;
+        .context("starting cargo build -p visviva-trainer")?;
     if !status.success() {
-        bail!("building keel failed ({status})");
+        bail!("building visviva failed ({status})");
     }
     let target = std::env::var_os("CARGO_TARGET_DIR")
         .map(std::path::PathBuf::from)
         .unwrap_or_else(|| root.join("target"));
-    Ok(target.join("release").join("keel"))
+    Ok(target.join("release").join("visviva"))
 }
 
 /// Everything the device check needs.

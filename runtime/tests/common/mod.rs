@@ -2,11 +2,11 @@
 //! with random weights (test fixtures, not trained models).
 #![allow(dead_code)]
 
-use keel_runtime::format::{
+use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
     MlpDesc, ModelDesc, WeightsDesc,
 };
-use keel_runtime::{Integrator, Method};
+use visviva_runtime::{Integrator, Method};
 
 /// xorshift64* (Vigna, 2016): small, seeded, good enough for fixtures.
 pub struct Rng(pub u64);

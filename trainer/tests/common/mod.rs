@@ -1,8 +1,8 @@
 //! Shared by the gradient tests: an independent f64 re-implementation of
 //! the trainer's networks and energies over any `num-dual` number type.
 
-use keel_trainer::hnn::{tri_index, EnergyArch, KineticArch, Objective};
-use keel_trainer::net::{Activation, MlpShape};
+use visviva_trainer::hnn::{tri_index, EnergyArch, KineticArch, Objective};
+use visviva_trainer::net::{Activation, MlpShape};
 use ndarray::Array2;
 use num_dual::DualNum;
 

@@ -4,7 +4,9 @@
 mod common;
 
 use common::*;
-use visviva_runtime::format::{self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION};
+use visviva_runtime::format::{
+    self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION,
+};
 use visviva_runtime::{BlobError, Integrator, Method, Model, Section, State, StepError};
 
 fn sample() -> OwnedModel {

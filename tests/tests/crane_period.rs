@@ -5,11 +5,11 @@
 
 use visviva_runtime::{Integrator, Method, State};
 use visviva_tests::{elliptic_k, momentum_sign_changes, pendulum_period, period_from_crossings};
-use visviva_trainer::blob::{HostModel, WeightKind};
-use visviva_trainer::export::energy_blob;
-use visviva_trainer::fit::{fit_energy, ArchChoice, FitSettings};
-use visviva_trainer::simulate::{simulate, SimulationSpec};
-use visviva_trainer::systems::build_system;
+use visviva_trainer::deploy::blob::{HostModel, WeightKind};
+use visviva_trainer::deploy::fitted_blob::energy_blob;
+use visviva_trainer::learn::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
+use visviva_trainer::reference::systems::build_system;
 
 #[test]
 fn elliptic_period_formula_reduces_to_small_amplitude_period() {

@@ -7,12 +7,12 @@
 use std::f64::consts::PI;
 
 use visviva_runtime::{Integrator, Method, State};
-use visviva_trainer::blob::{HostModel, WeightKind};
-use visviva_trainer::export::energy_blob;
-use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
-use visviva_trainer::net::Activation;
-use visviva_trainer::simulate::{simulate, SimulationSpec};
-use visviva_trainer::systems::{build_system, ReferenceSystem};
+use visviva_trainer::deploy::blob::{HostModel, WeightKind};
+use visviva_trainer::deploy::fitted_blob::energy_blob;
+use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::net::Activation;
+use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
+use visviva_trainer::reference::systems::{build_system, ReferenceSystem};
 
 /// Steps of the rollout per period of the true system.
 const STEPS_PER_PERIOD: usize = 100;

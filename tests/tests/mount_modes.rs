@@ -8,11 +8,11 @@ use visviva_runtime::{Integrator, Method};
 use visviva_tests::{
     hessian_by_gradient_differences, real_2x2_eigenvalues, symmetric_2x2_eigenvalues,
 };
-use visviva_trainer::blob::{HostModel, WeightKind};
-use visviva_trainer::export::energy_blob;
-use visviva_trainer::fit::{fit_energy, ArchChoice, FitSettings};
-use visviva_trainer::simulate::{simulate, SimulationSpec};
-use visviva_trainer::systems::build_system;
+use visviva_trainer::deploy::blob::{HostModel, WeightKind};
+use visviva_trainer::deploy::fitted_blob::energy_blob;
+use visviva_trainer::learn::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
+use visviva_trainer::reference::systems::build_system;
 
 /// Two equal masses in series on two equal springs from a fixed base:
 /// w = sqrt(k/m) (sqrt 5 -+ 1)/2 (textbook two-degree-of-freedom result,

@@ -4,45 +4,25 @@
 //! checking motion logs, fitting Hamiltonian energy networks (and a plain
 //! vector-field baseline), and writing `visviva-runtime` blobs.
 //!
-//! Module map (see DEVELOPERS.md for the whole workspace):
-//! * [`dataset`]: in-memory trajectories shared by every stage.
+//! Module map (one folder per stage; see DEVELOPERS.md for the whole
+//! workspace):
+//! * [`data`]: motion logs in and out, splitting, derivative estimation.
+//! * [`reference`]: built-in reference systems and their simulation.
+//! * [`learn`]: networks, energy model, port terms, baseline, training loop.
+//! * [`deploy`]: blobs, export, inspection, host rollouts.
+//! * [`evidence`]: checks against held-out logs, charts, the report page.
+//! * [`project`]: the project file and the stages `visviva run` chains.
+//! * [`cli`]: the command line (the only place clap types live).
 //! * [`atomic`]: all-or-nothing file writes.
-//! * [`systems`], [`simulate`]: built-in reference systems and their data.
-//! * [`data`], [`derivative`]: CSV logs in, validated; derivative estimation.
-//! * [`net`], [`hnn`], [`optim`], [`fit`]: the energy network, its loss and
-//!   gradients, the optimizer and the training loop.
-//! * [`export`]: writing runtime blobs from fitted models.
-//! * [`blob`]: an owned, editable mirror of a blob (quantization, inspection).
-//! * [`rollout`], [`integrator_args`]: host rollouts through `visviva-runtime`.
-//! * `cmd_*`: one module per `visviva` subcommand.
 
 pub mod atomic;
-pub mod blob;
-pub mod check;
-pub mod cmd_check;
-pub mod cmd_compare;
-pub mod cmd_export;
-pub mod cmd_fit;
-pub mod cmd_inspect;
-pub mod cmd_rollout;
-pub mod cmd_run;
-pub mod cmd_simulate;
+pub mod cli;
 pub mod data;
-pub mod dataset;
-pub mod derivative;
-pub mod export;
-pub mod fit;
-pub mod hnn;
-pub mod integrator_args;
-pub mod net;
-pub mod optim;
-pub mod port;
+pub mod deploy;
+pub mod evidence;
+pub mod learn;
 pub mod project;
-pub mod report;
-pub mod rollout;
-pub mod simulate;
-pub mod svgplot;
-pub mod systems;
+pub mod reference;
 
 /// Printed by every command whose output predicts motion.
 pub const CAUTION: &str = "Caution: a learned model is not a safety function. Validate it on the real \

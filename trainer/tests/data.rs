@@ -2,11 +2,13 @@
 //! 1-based line (header = 1) and the column; velocity logs convert with
 //! p = m v; splitting keeps trajectories whole.
 
-use visviva_trainer::data::{load_csv, split_by_trajectory, write_csv, DataProblem, LoadOptions};
-use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
 use ndarray::Array2;
 use proptest::prelude::*;
 use std::path::PathBuf;
+use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_trainer::data::log::{
+    load_csv, split_by_trajectory, write_csv, DataProblem, LoadOptions,
+};
 
 fn fixture(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))

@@ -4,12 +4,14 @@
 
 use std::process::Command;
 
+use rand::{Rng, SeedableRng};
 use visviva_runtime::format::Activation;
 use visviva_runtime::{Integrator, Method};
-use visviva_trainer::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
-use visviva_trainer::cmd_compare::{compare, Verdict};
-use visviva_trainer::integrator_args::IntegratorArgs;
-use rand::{Rng, SeedableRng};
+use visviva_trainer::deploy::blob::{
+    BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights,
+};
+use visviva_trainer::deploy::compare::{compare, Verdict};
+use visviva_trainer::deploy::integrator::IntegratorOverrides;
 
 fn mlp(rng: &mut rand_chacha::ChaCha8Rng, sizes: &[usize]) -> Mlp {
     let layers = sizes
@@ -98,10 +100,10 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     );
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
-    let (net_i8, r) = visviva_trainer::cmd_export::export(
+    let (net_i8, r) = visviva_trainer::deploy::export::export(
         &net,
         WeightKind::Int8,
-        &IntegratorArgs::default(),
+        &IntegratorOverrides::default(),
         200,
         2,
     )
@@ -112,9 +114,14 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     };
     assert_eq!(g.weight_kind(), WeightKind::Int8);
     assert_eq!(r.failed_rollouts, 0);
-    let (i8_bytes, r) =
-        visviva_trainer::cmd_export::export(&m, WeightKind::Int8, &IntegratorArgs::default(), 200, 2)
-            .unwrap();
+    let (i8_bytes, r) = visviva_trainer::deploy::export::export(
+        &m,
+        WeightKind::Int8,
+        &IntegratorOverrides::default(),
+        200,
+        2,
+    )
+    .unwrap();
     let q = BlobModel::from_bytes(&i8_bytes).unwrap();
     assert_eq!(
         (q.dissipation.clone(), q.input.clone()),
@@ -122,28 +129,28 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     );
     assert_eq!(r.failed_rollouts, 0);
     // An explicit symplectic method would drop R and G: refused.
-    let ia = IntegratorArgs {
-        integrator: Some(visviva_trainer::integrator_args::MethodArg::Verlet),
+    let ia = IntegratorOverrides {
+        integrator: Some(visviva_trainer::deploy::integrator::MethodName::Verlet),
         ..Default::default()
     };
-    assert!(visviva_trainer::cmd_export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
+    assert!(visviva_trainer::deploy::export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
 }
 
 #[test]
 fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
     let src = fixture(false);
-    let (f32_bytes, r32) = visviva_trainer::cmd_export::export(
+    let (f32_bytes, r32) = visviva_trainer::deploy::export::export(
         &src,
         WeightKind::F32,
-        &IntegratorArgs::default(),
+        &IntegratorOverrides::default(),
         1000,
         4,
     )
     .unwrap();
-    let (i8_bytes, r8) = visviva_trainer::cmd_export::export(
+    let (i8_bytes, r8) = visviva_trainer::deploy::export::export(
         &src,
         WeightKind::Int8,
-        &IntegratorArgs::default(),
+        &IntegratorOverrides::default(),
         1000,
         4,
     )
@@ -186,11 +193,12 @@ fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
 #[test]
 fn export_refuses_an_explicit_method_for_a_general_model() {
     let src = fixture(true);
-    let ia = IntegratorArgs {
-        integrator: Some(visviva_trainer::integrator_args::MethodArg::Verlet),
+    let ia = IntegratorOverrides {
+        integrator: Some(visviva_trainer::deploy::integrator::MethodName::Verlet),
         ..Default::default()
     };
-    let err = visviva_trainer::cmd_export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
+    let err =
+        visviva_trainer::deploy::export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
     assert!(format!("{err:#}").contains("separable"), "{err:#}");
 }
 
@@ -200,7 +208,7 @@ fn inspect_counts_match_the_shapes() {
         .converted(WeightKind::Int8)
         .to_bytes()
         .unwrap();
-    let r = visviva_trainer::cmd_inspect::inspect(&bytes).unwrap();
+    let r = visviva_trainer::deploy::inspect::inspect(&bytes).unwrap();
     let forward = 2 * 32 + 32 * 32 + 32;
     assert_eq!(r.macs_per_gradient as usize, 2 * forward);
     assert_eq!(r.weights, "int8");

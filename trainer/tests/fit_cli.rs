@@ -4,21 +4,21 @@
 //! refused without leaving an output file.
 
 use clap::Parser;
-use visviva_runtime::{Hamiltonian, Model};
-use visviva_trainer::cmd_fit;
-use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
 use ndarray::Array2;
+use visviva_runtime::{Hamiltonian, Model};
+use visviva_trainer::cli::fit;
+use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
 
 #[derive(Parser)]
 struct Cli {
     #[command(flatten)]
-    args: cmd_fit::Args,
+    args: fit::Args,
 }
 
 fn run(args: &[&str]) -> anyhow::Result<()> {
     let mut all = vec!["visviva-fit"];
     all.extend_from_slice(args);
-    cmd_fit::run(Cli::try_parse_from(all)?.args)
+    fit::run(Cli::try_parse_from(all)?.args)
 }
 
 fn write_log(path: &std::path::Path) {
@@ -49,7 +49,7 @@ fn write_log(path: &std::path::Path) {
         trajectories,
         derivatives: DerivativeSource::Given,
     };
-    visviva_trainer::data::write_csv(path, &ds, true).unwrap();
+    visviva_trainer::data::log::write_csv(path, &ds, true).unwrap();
 }
 
 #[test]
@@ -76,7 +76,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     let bytes = std::fs::read(&out).unwrap();
     let model = Model::<8, 128>::from_bytes(&bytes).unwrap();
     assert!(model.is_separable());
-    assert!(cmd_fit::baseline_path(&out).exists());
+    assert!(fit::baseline_path(&out).exists());
 
     let relu = dir.path().join("relu.vvb");
     let err = run(&[

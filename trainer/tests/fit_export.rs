@@ -6,15 +6,15 @@
 //! deterministic ones, both within ~2.5e-7 of the true value), so agreement is
 //! expected to f32 rounding level, checked at relative 1e-4.
 
-use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
-use visviva_trainer::blob::WeightKind;
-use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use visviva_trainer::export::{energy_blob, read_baseline, write_baseline};
-use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
-use visviva_trainer::net::Activation;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_trainer::deploy::blob::WeightKind;
+use visviva_trainer::deploy::fitted_blob::{energy_blob, read_baseline, write_baseline};
+use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::net::Activation;
 
 const M: [f64; 2] = [0.2, 0.5];
 const K: [f64; 2] = [50.0, 30.0];

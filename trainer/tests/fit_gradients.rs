@@ -11,12 +11,12 @@
 mod common;
 
 use common::{central_difference, directional_error, energy_generic, loss_gradient, mlp_generic};
-use visviva_trainer::hnn::{BaselineObjective, EnergyArch, HnnObjective, KineticArch};
-use visviva_trainer::net::{Activation, MlpShape};
 use ndarray::Array2;
 use num_dual::{Dual64, HyperDual64};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use visviva_trainer::learn::hnn::{BaselineObjective, EnergyArch, HnnObjective, KineticArch};
+use visviva_trainer::learn::net::{Activation, MlpShape};
 
 /// d/ds of the loss at p + s d, by hyper-dual forward mode (num-dual).
 fn loss_directional_dual(

@@ -8,15 +8,15 @@
 
 use std::f64::consts::PI;
 
-use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
-use visviva_trainer::blob::WeightKind;
-use visviva_trainer::dataset::{Dataset, DerivativeSource, Trajectory};
-use visviva_trainer::export::energy_blob;
-use visviva_trainer::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
-use visviva_trainer::net::Activation;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
+use visviva_trainer::deploy::blob::WeightKind;
+use visviva_trainer::deploy::fitted_blob::energy_blob;
+use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
+use visviva_trainer::learn::net::Activation;
 
 /// Exact solution q = A cos(t + phi), p = -A sin(t + phi) (textbook), with
 /// dq/dt = p, dp/dt = -q.

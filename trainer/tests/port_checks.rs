@@ -32,19 +32,19 @@
 //! minutes) the two fitting tests are ignored: `cargo test --release -p
 //! visviva-trainer --test port_checks` runs them.
 
-use visviva_runtime::{Hamiltonian, Integrator, Method, State};
-use visviva_trainer::blob::{BlobModel, HostModel, HOST_MAX_DOF};
-use visviva_trainer::check::{check_port, eigenvalues};
-use visviva_trainer::dataset::{Dataset, Inputs};
-use visviva_trainer::export::blob_model;
-use visviva_trainer::fit::{fit_port, ArchChoice, FitSettings};
-use visviva_trainer::hnn::{EnergyModel, PortArch};
-use visviva_trainer::rollout::{roll_driven, sample_states};
-use visviva_trainer::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::systems::build_port_system;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use visviva_runtime::{Hamiltonian, Integrator, Method, State};
+use visviva_trainer::data::dataset::{Dataset, Inputs};
+use visviva_trainer::deploy::blob::{BlobModel, HostModel, HOST_MAX_DOF};
+use visviva_trainer::deploy::fitted_blob::blob_model;
+use visviva_trainer::deploy::rollout::{roll_driven, sample_states};
+use visviva_trainer::evidence::check::{check_port, eigenvalues};
+use visviva_trainer::learn::fit::{fit_port, ArchChoice, FitSettings};
+use visviva_trainer::learn::hnn::{EnergyModel, PortArch};
+use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::reference::systems::build_port_system;
 
 fn simulate(
     name: &str,

@@ -18,9 +18,11 @@
 //!   support; any analytical-mechanics text, from memory), plus the
 //!   viscous term -c q' / (m l), on every logged sample.
 
-use visviva_trainer::data::{load_csv, load_csv_with_inputs, write_csv_with_inputs, LoadOptions};
-use visviva_trainer::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::systems::build_port_system;
+use visviva_trainer::data::log::{
+    load_csv, load_csv_with_inputs, write_csv_with_inputs, LoadOptions,
+};
+use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::reference::systems::build_port_system;
 
 fn spec(trajectories: usize, duration: f64, rate: f64, seed: u64) -> SimulationSpec {
     SimulationSpec {

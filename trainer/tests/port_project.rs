@@ -23,14 +23,14 @@ use std::path::Path;
 use std::process::Command;
 
 use clap::Parser;
-use visviva_trainer::check::reference_modes;
-use visviva_trainer::cmd_fit;
-use visviva_trainer::fit::{fit_baseline_driven, ArchChoice, FitSettings};
-use visviva_trainer::hnn::PortArch;
-use visviva_trainer::net::Activation;
-use visviva_trainer::report::{page_disagreements, tagged_values};
-use visviva_trainer::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::systems::build_port_system;
+use visviva_trainer::cli::fit;
+use visviva_trainer::evidence::check::reference_modes;
+use visviva_trainer::evidence::report::{page_disagreements, tagged_values};
+use visviva_trainer::learn::fit::{fit_baseline_driven, ArchChoice, FitSettings};
+use visviva_trainer::learn::hnn::PortArch;
+use visviva_trainer::learn::net::Activation;
+use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
+use visviva_trainer::reference::systems::build_port_system;
 
 fn visviva(args: &[&str]) -> std::process::Output {
     Command::new(env!("CARGO_BIN_EXE_visviva"))
@@ -61,7 +61,7 @@ fn simulate(out: &Path, seed: &str, trajectories: &str, duration: &str) {
 #[derive(Parser)]
 struct Cli {
     #[command(flatten)]
-    args: cmd_fit::Args,
+    args: fit::Args,
 }
 
 #[test]
@@ -89,7 +89,7 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     ])
     .unwrap()
     .args;
-    cmd_fit::run(args).unwrap();
+    fit::run(args).unwrap();
 
     let summary: serde_json::Value =
         serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap();
@@ -112,7 +112,8 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     assert!(loss.is_finite() && loss > 0.0, "{summary}");
     assert!(summary["steps"].as_u64().unwrap() > 0);
 
-    let base = visviva_trainer::export::read_baseline(&cmd_fit::baseline_path(&out)).unwrap();
+    let base =
+        visviva_trainer::deploy::fitted_blob::read_baseline(&fit::baseline_path(&out)).unwrap();
     assert_eq!(base.inputs(), 1);
     assert_eq!(base.shape.inputs(), 5);
     assert_eq!(base.shape.outputs(), 4);
@@ -134,12 +135,12 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(stdout.contains("baseline"), "{stdout}");
     let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&report).unwrap()).unwrap();
-    let (ds, inputs) = visviva_trainer::data::load_csv_with_inputs(
+    let (ds, inputs) = visviva_trainer::data::log::load_csv_with_inputs(
         &p.join("train.csv"),
-        &visviva_trainer::data::LoadOptions::default(),
+        &visviva_trainer::data::log::LoadOptions::default(),
     )
     .unwrap();
-    let expected = visviva_trainer::check::driven_baseline(&base, &ds, inputs.as_ref());
+    let expected = visviva_trainer::evidence::check::driven_baseline(&base, &ds, inputs.as_ref());
     let got = r["baseline_rollouts"].as_array().unwrap();
     assert_eq!(got.len(), ds.trajectories.len());
     assert_eq!(r["rollouts"].as_array().unwrap().len(), got.len());

@@ -6,7 +6,7 @@
 use std::path::Path;
 use std::process::Command;
 
-use visviva_trainer::report::{page_disagreements, tagged_values};
+use visviva_trainer::evidence::report::{page_disagreements, tagged_values};
 
 fn visviva(args: &[&str], dir: &Path) -> std::process::Output {
     Command::new(env!("CARGO_BIN_EXE_visviva"))

@@ -2,15 +2,15 @@
 //! sources: an independent general-purpose ODE solver, exact energy
 //! conservation, and the closed-form large-amplitude pendulum period.
 
-use visviva_trainer::cmd_simulate;
-use visviva_trainer::data::{load_csv, LoadOptions};
-use visviva_trainer::dataset::DerivativeSource;
-use visviva_trainer::simulate::{
-    add_noise, integrate, max_relative_energy_drift, simulate, SimulationSpec,
-};
-use visviva_trainer::systems::{build_system, ReferenceSystem, CATALOG};
 use ode_solvers::{DVector, Dop853, OutputType};
 use std::path::Path;
+use visviva_trainer::cli::simulate;
+use visviva_trainer::data::dataset::DerivativeSource;
+use visviva_trainer::data::log::{load_csv, LoadOptions};
+use visviva_trainer::reference::simulate::{
+    add_noise, integrate, max_relative_energy_drift, simulate, SimulationSpec,
+};
+use visviva_trainer::reference::systems::{build_system, ReferenceSystem, CATALOG};
 
 /// Adapter so the `ode_solvers` crate integrates our vector field.
 struct Reference<'a>(&'a dyn ReferenceSystem);
@@ -174,7 +174,7 @@ fn crane_large_swing_period_matches_elliptic_integral() {
 }
 
 fn run_cli(out: &Path, system: &str, noise: f64, keep: bool, seed: u64) -> anyhow::Result<()> {
-    cmd_simulate::run(cmd_simulate::Args {
+    simulate::run(simulate::Args {
         system: system.into(),
         params: vec![("k".into(), 25.0)],
         trajectories: 3,

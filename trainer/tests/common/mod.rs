@@ -1,10 +1,10 @@
 //! Shared by the gradient tests: an independent f64 re-implementation of
 //! the trainer's networks and energies over any `num-dual` number type.
 
-use visviva_trainer::hnn::{tri_index, EnergyArch, KineticArch, Objective};
-use visviva_trainer::net::{Activation, MlpShape};
 use ndarray::Array2;
 use num_dual::DualNum;
+use visviva_trainer::learn::hnn::{tri_index, EnergyArch, KineticArch, Objective};
+use visviva_trainer::learn::net::{Activation, MlpShape};
 
 /// Generic dense network, the same layout as the trainer's flat vector:
 /// per layer W row-major [out][in], then b.

@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context, Result};
 use serde::{Deserialize, Serialize};
 
-use crate::blob::WeightKind;
-use crate::integrator_args::MethodArg;
+use crate::deploy::blob::WeightKind;
+use crate::deploy::integrator::MethodName;
 
 /// The whole project file.
 #[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq)]
@@ -109,7 +109,7 @@ pub struct ModelSection {
     pub activation: ActivationName,
     /// Integration method stored in the fitted model (default: `verlet` for
     /// separable, `midpoint` for general).
-    pub integrator: Option<MethodArg>,
+    pub integrator: Option<MethodName>,
     /// Time step in seconds (default: the log's median sampling interval).
     pub dt: Option<f32>,
     /// Learn a constant dissipation R = L L^T on the momenta (default
@@ -136,8 +136,8 @@ impl ModelSection {
 
     /// The port terms asked for, widths checked (the input count comes from
     /// the data).
-    pub fn port_terms(&self) -> anyhow::Result<crate::hnn::PortArch> {
-        crate::hnn::PortArch::with_networks(
+    pub fn port_terms(&self) -> anyhow::Result<crate::learn::hnn::PortArch> {
+        crate::learn::hnn::PortArch::with_networks(
             self.dissipation,
             &self.dissipation_net,
             &self.input_net,
@@ -236,7 +236,7 @@ pub struct ExportTarget {
     pub weights: WeightKind,
     /// Method (default: the model's).
     #[serde(default)]
-    pub integrator: Option<MethodArg>,
+    pub integrator: Option<MethodName>,
     /// Time step in seconds (default: the model's).
     #[serde(default)]
     pub dt: Option<f32>,
@@ -364,12 +364,12 @@ flash_bytes = 65536
         let p = Project::parse(text).unwrap();
         assert_eq!(p.model.arch, Arch::General);
         assert_eq!(p.exports[0].weights, WeightKind::Int8);
-        assert_eq!(p.model.integrator, Some(MethodArg::Midpoint));
+        assert_eq!(p.model.integrator, Some(MethodName::Midpoint));
         assert!(!p.model.dissipation);
         let p = Project::parse("[model]\ndissipation = true\nintegrator = \"discrete-gradient\"\n")
             .unwrap();
         assert!(p.model.dissipation);
-        assert_eq!(p.model.integrator, Some(MethodArg::DiscreteGradient));
+        assert_eq!(p.model.integrator, Some(MethodName::DiscreteGradient));
         // Port networks: L(q) implies a damped model; G(q) is kept for the
         // inputs the data brings.
         let p = Project::parse("[model]\ndissipation_net = [16]\ninput_net = [8]\n").unwrap();

@@ -18,8 +18,8 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::hnn::{tri_index, EnergyArch, HnnObjective, HnnWork, Normalization, Objective};
-use crate::net::{self, Activation, MlpShape, MlpWork};
+use crate::learn::hnn::{tri_index, EnergyArch, HnnObjective, HnnWork, Normalization, Objective};
+use crate::learn::net::{self, Activation, MlpShape, MlpWork};
 
 /// Which port terms a damped or driven model learns.
 #[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
@@ -197,7 +197,7 @@ pub enum PhysicalTerm {
     Network {
         /// Its shape.
         shape: MlpShape,
-        /// Its parameters (layout of [`crate::net`]).
+        /// Its parameters (layout of [`crate::learn::net`]).
         params: Vec<f32>,
     },
 }

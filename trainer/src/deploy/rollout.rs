@@ -2,11 +2,13 @@
 //! runs, plus the helpers around them: parsing initial states, sampling
 //! test states inside a model's normalization range, and drift measures.
 
-use anyhow::{bail, Context, Result};
-use visviva_runtime::{Hamiltonian, State, StepError};
-use rand::{Rng, SeedableRng};
+use std::fmt::Write as _;
 
-use crate::blob::{HostModel, HOST_MAX_DOF};
+use anyhow::{bail, Context, Result};
+use rand::{Rng, SeedableRng};
+use visviva_runtime::{Hamiltonian, State, StepError};
+
+use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
 
 /// A trajectory computed on the host.
 #[derive(Debug, Clone)]
@@ -188,4 +190,27 @@ pub fn sample_states(
                 .collect()
         })
         .collect()
+}
+
+/// Render a rollout as CSV `t,q1..qn,p1..pn`.
+pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
+    let mut s = String::from("t");
+    for k in ["q", "p"] {
+        for i in 1..=dof {
+            let _ = write!(s, ",{k}{i}");
+        }
+    }
+    s.push('\n');
+    for (k, x) in states.iter().enumerate() {
+        let _ = write!(s, "{}", k as f64 * dt as f64);
+        for v in x {
+            if bits {
+                let _ = write!(s, ",{:#010x}", v.to_bits());
+            } else {
+                let _ = write!(s, ",{v}");
+            }
+        }
+        s.push('\n');
+    }
+    s
 }

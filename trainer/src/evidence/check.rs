@@ -7,14 +7,14 @@
 //! the linearization at rest and driven rollouts with the logged inputs.
 
 use anyhow::{anyhow, Result};
-use visviva_runtime::{Hamiltonian, Integrator};
 use serde::Serialize;
+use visviva_runtime::{Hamiltonian, Integrator};
 
-use crate::blob::{HostModel, HOST_MAX_DOF};
-use crate::dataset::{Dataset, Trajectory};
-use crate::hnn::BaselineModel;
-use crate::rollout::state_of;
-use crate::systems::ReferenceSystem;
+use crate::data::dataset::{Dataset, Trajectory};
+use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
+use crate::deploy::rollout::state_of;
+use crate::learn::hnn::BaselineModel;
+use crate::reference::systems::ReferenceSystem;
 
 /// Check settings.
 #[derive(Debug, Clone)]
@@ -367,8 +367,8 @@ pub fn check(
                 let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
                 let s = state_of(&v).expect("state of data dimension");
                 let (mut fq, mut fp) = (
-                    [0.0f32; crate::blob::HOST_MAX_DOF],
-                    [0.0f32; crate::blob::HOST_MAX_DOF],
+                    [0.0f32; crate::deploy::blob::HOST_MAX_DOF],
+                    [0.0f32; crate::deploy::blob::HOST_MAX_DOF],
                 );
                 let ok = model.vector_field(&s, &mut fq, &mut fp).is_ok();
                 let n = data.dof;
@@ -440,7 +440,7 @@ pub fn check(
     let median_model = summarize(&out.iter().map(|t| &t.model).collect::<Vec<_>>());
     let bs: Vec<&Metrics> = out.iter().filter_map(|t| t.baseline.as_ref()).collect();
     Ok(CheckReport {
-        integrator: crate::integrator_args::method_name(model.integrator().method).into(),
+        integrator: crate::deploy::integrator::method_name(model.integrator().method).into(),
         system: system.map(|s| s.name().to_string()),
         median_baseline: (!bs.is_empty()).then(|| summarize(&bs)),
         median_model,
@@ -496,7 +496,7 @@ fn driven_rel_rmse(states: &[Vec<f32>], traj: &Trajectory) -> f64 {
 }
 
 /// Logged inputs of trajectory `k` as f32 rows (empty without inputs).
-fn input_rows(inputs: Option<&crate::dataset::Inputs>, k: usize) -> Vec<Vec<f32>> {
+fn input_rows(inputs: Option<&crate::data::dataset::Inputs>, k: usize) -> Vec<Vec<f32>> {
     match inputs {
         Some(u) => u.per_trajectory[k]
             .rows()
@@ -513,7 +513,7 @@ fn input_rows(inputs: Option<&crate::dataset::Inputs>, k: usize) -> Vec<Vec<f32>
 pub fn driven_baseline(
     baseline: &BaselineModel,
     data: &Dataset,
-    inputs: Option<&crate::dataset::Inputs>,
+    inputs: Option<&crate::data::dataset::Inputs>,
 ) -> Vec<DrivenRollout> {
     let mut out = Vec::new();
     for (k, traj) in data.trajectories.iter().enumerate() {
@@ -737,7 +737,7 @@ fn modes_of(a: &[Vec<f64>]) -> Vec<ModeDamping> {
 /// rest state): A = (J - R) Hess H, the Hessian by central differences of
 /// the exact gradient (steps 1e-6, exact for the quadratic energies of the
 /// built-in systems up to rounding).
-pub fn reference_modes(system: &dyn crate::systems::PortSystem) -> Vec<ModeDamping> {
+pub fn reference_modes(system: &dyn crate::reference::systems::PortSystem) -> Vec<ModeDamping> {
     let n = system.dof();
     let d = 2 * n;
     let r = system.dissipation(&vec![0.0; d]);
@@ -780,9 +780,9 @@ pub fn reference_modes(system: &dyn crate::systems::PortSystem) -> Vec<ModeDampi
 /// trajectory; `None` for an undriven model).
 pub fn check_port(
     model: &HostModel<'_>,
-    blob: &crate::blob::BlobModel,
+    blob: &crate::deploy::blob::BlobModel,
     data: &Dataset,
-    inputs: Option<&crate::dataset::Inputs>,
+    inputs: Option<&crate::data::dataset::Inputs>,
 ) -> Result<PortCheckReport> {
     let d = 2 * blob.dof;
     let scale: Vec<f64> = blob.scale.iter().map(|v| *v as f64).collect();
@@ -823,7 +823,7 @@ pub fn check_port(
         let u = input_rows(inputs, k);
         let x0: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
         let steps = traj.t.len() - 1;
-        let out = crate::rollout::roll_driven(&stepped, &x0, steps, &u)?;
+        let out = crate::deploy::rollout::roll_driven(&stepped, &x0, steps, &u)?;
         rollouts.push(DrivenRollout {
             id: traj.id.clone(),
             state_rel_rmse: driven_rel_rmse(&out.states, traj),

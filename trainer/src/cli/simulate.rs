@@ -1,10 +1,12 @@
 //! `visviva simulate`: write reference trajectories of a built-in system to CSV.
 
-use crate::data::write_csv_with_inputs;
-use crate::simulate::{
+use crate::data::log::write_csv_with_inputs;
+use crate::reference::simulate::{
     add_noise, max_relative_energy_drift, simulate, simulate_port, SimulationSpec,
 };
-use crate::systems::{build_port_system, build_system, parse_param, CATALOG, PORT_CATALOG};
+use crate::reference::systems::{
+    build_port_system, build_system, parse_param, CATALOG, PORT_CATALOG,
+};
 use std::path::PathBuf;
 
 /// Generate reference trajectories from a built-in system. The list of
@@ -110,10 +112,10 @@ fn spec_of(args: &Args) -> anyhow::Result<SimulationSpec> {
 /// were written and the summary line's common part.
 fn write_log(
     args: &Args,
-    ds: &mut crate::dataset::Dataset,
-    inputs: Option<&crate::dataset::Inputs>,
+    ds: &mut crate::data::dataset::Dataset,
+    inputs: Option<&crate::data::dataset::Inputs>,
     name: &str,
-    params: &crate::systems::ParamValues,
+    params: &crate::reference::systems::ParamValues,
 ) -> anyhow::Result<String> {
     add_noise(ds, args.noise, args.seed)?;
     let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
@@ -139,9 +141,9 @@ pub fn run(args: Args) -> anyhow::Result<()> {
         return run_port(&args, system?.as_ref());
     }
     let system = build_system(&args.system, &args.params).map_err(|e| match e {
-        crate::systems::SystemError::UnknownSystem { name, mut valid } => {
+        crate::reference::systems::SystemError::UnknownSystem { name, mut valid } => {
             valid.extend(PORT_CATALOG.iter().map(|p| p.name));
-            crate::systems::SystemError::UnknownSystem { name, valid }
+            crate::reference::systems::SystemError::UnknownSystem { name, valid }
         }
         other => other,
     })?;
@@ -157,7 +159,7 @@ pub fn run(args: Args) -> anyhow::Result<()> {
 }
 
 /// `run` for a damped or driven system.
-fn run_port(args: &Args, system: &dyn crate::systems::PortSystem) -> anyhow::Result<()> {
+fn run_port(args: &Args, system: &dyn crate::reference::systems::PortSystem) -> anyhow::Result<()> {
     let spec = spec_of(args)?;
     let (mut ds, inputs) = simulate_port(system, &spec)?;
     let line = write_log(

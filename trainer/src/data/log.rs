@@ -12,12 +12,12 @@
 //! strictly and evenly: a step may differ from the trajectory's median step
 //! by at most [`LoadOptions::step_tolerance`] (1 % by default) of that median.
 //! Without derivative columns the derivatives are estimated with a
-//! Savitzky-Golay filter ([`crate::derivative`]), so every trajectory needs at
+//! Savitzky-Golay filter ([`crate::data::derivative`]), so every trajectory needs at
 //! least the filter's window of samples.
 
 use crate::atomic::write_atomic_with;
-use crate::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
-use crate::derivative::SavitzkyGolay;
+use crate::data::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
+use crate::data::derivative::SavitzkyGolay;
 use ndarray::Array2;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;

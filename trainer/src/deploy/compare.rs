@@ -1,25 +1,9 @@
-//! `visviva compare`: two trajectory CSVs, value by value — bit for bit by
-//! default, or within a relative tolerance — naming the first difference.
-//! Exit status 1 on a mismatch, 2 on unreadable input.
+//! Comparison of two trajectory CSVs value by value (bit for bit, or within
+//! a relative tolerance), naming the first difference.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use anyhow::{bail, Context, Result};
-
-/// Arguments of `visviva compare`.
-#[derive(Debug, clap::Args)]
-pub struct Args {
-    /// First CSV (e.g. the host rollout).
-    pub a: PathBuf,
-    /// Second CSV (e.g. the device's).
-    pub b: PathBuf,
-    /// Require identical bits (the default).
-    #[arg(long, conflicts_with = "rel")]
-    pub bits: bool,
-    /// Accept |a - b| <= REL * max(|a|, |b|) instead of identical bits.
-    #[arg(long)]
-    pub rel: Option<f64>,
-}
 
 /// Outcome of a comparison.
 #[derive(Debug, PartialEq)]
@@ -125,27 +109,4 @@ pub fn compare(a: &Path, b: &Path, rel: Option<f64>) -> Result<Verdict> {
         });
     }
     Ok(Verdict::Same { rows: ra.len() })
-}
-
-/// Run the command; `Ok(false)` means the files differ.
-pub fn run(args: Args) -> Result<bool> {
-    if let Some(t) = args.rel {
-        if !(t.is_finite() && t >= 0.0) {
-            bail!("--rel must be a finite number >= 0");
-        }
-    }
-    match compare(&args.a, &args.b, args.rel)? {
-        Verdict::Same { rows } => {
-            let how = match args.rel {
-                None => "bit-identical".to_string(),
-                Some(t) => format!("equal within relative {t:e}"),
-            };
-            println!("{rows} rows {how}");
-            Ok(true)
-        }
-        Verdict::Differs { step, column, a, b } => {
-            println!("first difference at step {step}, column {column}: {a} vs {b}");
-            Ok(false)
-        }
-    }
 }

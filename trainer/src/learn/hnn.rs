@@ -16,7 +16,7 @@
 //! components of the squared difference between J dH/dx = (dH/dp, -dH/dq)
 //! and the target dx/dt, both divided by `rate_scale`.
 //!
-//! Damped, driven systems ([`PortObjective`], in [`crate::port`]) predict
+//! Damped, driven systems ([`PortObjective`], in [`crate::learn::port`]) predict
 //! the port-Hamiltonian field (J - R) dH/dx + G u instead.
 
 use anyhow::{bail, Result};
@@ -25,9 +25,9 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-use crate::dataset::Dataset;
-use crate::net::{self, Activation, MlpShape, MlpWork};
-pub use crate::port::{PhysicalTerm, PortArch, PortModel, PortObjective};
+use crate::data::dataset::Dataset;
+use crate::learn::net::{self, Activation, MlpShape, MlpWork};
+pub use crate::learn::port::{PhysicalTerm, PortArch, PortModel, PortObjective};
 
 /// Kinetic term of a separable energy.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]

@@ -12,14 +12,14 @@ use anyhow::{bail, Context, Result};
 use clap::ValueEnum;
 use visviva_runtime::{Integrator, Method};
 
-use crate::blob::WeightKind;
-use crate::data::{self, LoadOptions};
-use crate::dataset::{Dataset, Inputs};
-use crate::export;
-use crate::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
-use crate::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
-use crate::integrator_args::MethodArg;
-use crate::net::Activation;
+use crate::data::dataset::{Dataset, Inputs};
+use crate::data::log::{self, LoadOptions};
+use crate::deploy::blob::WeightKind;
+use crate::deploy::fitted_blob;
+use crate::deploy::integrator::MethodName;
+use crate::learn::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::learn::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
+use crate::learn::net::Activation;
 
 /// Energy structure.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -134,7 +134,7 @@ pub struct Args {
     /// Integration method stored in the model (default: verlet for
     /// separable, midpoint for general models).
     #[arg(long, value_enum)]
-    pub integrator: Option<MethodArg>,
+    pub integrator: Option<MethodName>,
     /// Time step stored in the model, in seconds (default: the log's median
     /// sample interval).
     #[arg(long, value_name = "S")]
@@ -362,7 +362,8 @@ fn write_model(
     integrator: Integrator,
 ) -> Result<()> {
     print_report("energy model", &fitted.report);
-    let bytes = export::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
+    let bytes =
+        fitted_blob::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
     println!(
         "wrote {} ({bytes} bytes, {:?}, dt = {} s)",
         args.out.display(),
@@ -396,13 +397,13 @@ pub fn run(args: Args) -> Result<()> {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
-    let (all, all_inputs) = data::load_csv_with_inputs(&args.data, &opts)?;
+    let (all, all_inputs) = log::load_csv_with_inputs(&args.data, &opts)?;
     if all_inputs.is_some() || args.dissipation || args.dissipation_net.is_some() {
         return run_port(&args, act, all, all_inputs, &opts);
     }
     let (train, val) = match &args.val {
         Some(path) => {
-            let v = data::load_csv(path, &opts)?;
+            let v = log::load_csv(path, &opts)?;
             if v.dof != all.dof {
                 bail!(
                     "{}: {} degrees of freedom, but {} has {}",
@@ -415,7 +416,7 @@ pub fn run(args: Args) -> Result<()> {
             (all, Some(v))
         }
         None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => {
-            let (t, v) = data::split_by_trajectory(&all, args.val_fraction, args.seed);
+            let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
             if v.trajectories.is_empty() {
                 (t, None)
             } else {
@@ -455,7 +456,7 @@ pub fn run(args: Args) -> Result<()> {
         let base = fit::fit_baseline(&train, val.as_ref(), &choice.hidden, act, &settings)?;
         print_report("baseline", &base.report);
         let path = baseline_path(&args.out);
-        export::write_baseline(&path, &base.model)?;
+        fitted_blob::write_baseline(&path, &base.model)?;
         println!("wrote {}", path.display());
     }
     println!("{}", crate::CAUTION);
@@ -473,7 +474,7 @@ fn run_port(
     type Split = (Dataset, Option<Inputs>);
     let ((train, train_u), val): (Split, Option<Split>) = match &args.val {
         Some(path) => {
-            let (v, vu) = data::load_csv_with_inputs(path, opts)?;
+            let (v, vu) = log::load_csv_with_inputs(path, opts)?;
             if v.dof != all.dof {
                 bail!(
                     "{}: {} degrees of freedom, but {} has {}",
@@ -499,11 +500,11 @@ fn run_port(
         None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => match &all_inputs {
             Some(u) => {
                 let ((t, tu), (v, vu)) =
-                    data::split_with_inputs(&all, u, args.val_fraction, args.seed);
+                    log::split_with_inputs(&all, u, args.val_fraction, args.seed);
                 ((t, Some(tu)), Some((v, Some(vu))))
             }
             None => {
-                let (t, v) = data::split_by_trajectory(&all, args.val_fraction, args.seed);
+                let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
                 ((t, None), Some((v, None)))
             }
         },
@@ -564,7 +565,7 @@ fn run_port(
         )?;
         print_report("baseline", &base.report);
         let path = baseline_path(&args.out);
-        export::write_baseline(&path, &base.model)?;
+        fitted_blob::write_baseline(&path, &base.model)?;
         println!("wrote {}", path.display());
     }
     println!("{}", crate::CAUTION);

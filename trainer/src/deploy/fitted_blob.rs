@@ -1,5 +1,5 @@
 //! Writing fitted models: the energy model as a `visviva-runtime` blob (through
-//! the owned blob mirror [`crate::blob::BlobModel`], the one encoder on the
+//! the owned blob mirror [`crate::deploy::blob::BlobModel`], the one encoder on the
 //! host), and the baseline vector field as a trainer-only JSON file so it can
 //! be rolled out for comparison later.
 
@@ -8,12 +8,12 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use visviva_runtime::Integrator;
 
-use crate::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
-use crate::hnn::{
+use crate::deploy::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
+use crate::learn::hnn::{
     cholesky_from_params, tri_index, BaselineModel, EnergyArch, EnergyModel, KineticArch,
     PhysicalTerm,
 };
-use crate::net::MlpShape;
+use crate::learn::net::MlpShape;
 
 fn blob_mlp(shape: &MlpShape, params: &[f32]) -> Mlp {
     let layers = (0..shape.layers())

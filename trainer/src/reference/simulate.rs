@@ -14,8 +14,8 @@
 //! the input u(t) evaluated inside the right-hand side at each stage time,
 //! so smooth (multisine) inputs are integrated to the same accuracy.
 
-use crate::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
-use crate::systems::{port_field, PortSystem, ReferenceSystem};
+use crate::data::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
+use crate::reference::systems::{port_field, PortSystem, ReferenceSystem};
 use ndarray::Array2;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;

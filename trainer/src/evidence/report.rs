@@ -9,9 +9,9 @@
 use serde::Serialize;
 use serde_json::Value;
 
-use crate::check::{CheckReport, ModeDamping};
-use crate::cmd_export::ExportReport;
-use crate::project::DeviceBudget;
+use crate::deploy::export::ExportReport;
+use crate::evidence::check::{CheckReport, ModeDamping};
+use crate::project::file::DeviceBudget;
 
 /// Per-coordinate data summary.
 #[derive(Debug, Clone, Serialize)]
@@ -276,7 +276,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         "<title>Visviva report: {}</title><style>{STYLE}</style></head><body>",
         esc(&report.project)
     ));
-    h.p(&format!("<h1>Visviva report: {}</h1>", esc(&report.project)));
+    h.p(&format!(
+        "<h1>Visviva report: {}</h1>",
+        esc(&report.project)
+    ));
     h.p(&format!(
         "<p class=\"caution\">{}</p>",
         esc(&report.caution)

@@ -16,12 +16,12 @@ use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
-use crate::dataset::{Dataset, Inputs};
-use crate::hnn::{
+use crate::data::dataset::{Dataset, Inputs};
+use crate::learn::hnn::{
     BaselineModel, BaselineObjective, EnergyArch, EnergyModel, HnnObjective, KineticArch,
     Normalization, Objective, PortArch, PortModel, PortObjective,
 };
-use crate::net::{Activation, MlpShape};
+use crate::learn::net::{Activation, MlpShape};
 
 /// Settings of one training run.
 #[derive(Debug, Clone)]
@@ -589,14 +589,14 @@ fn run_arrays<O: Objective>(
     let per_epoch = rows.div_ceil(batch);
     let total = s.steps.unwrap_or(s.epochs * per_epoch).max(1);
     let epochs = total.div_ceil(per_epoch);
-    let schedule = crate::optim::Schedule {
+    let schedule = crate::learn::optim::Schedule {
         peak: s.lr,
         warmup: ((total as f32 * s.warmup_fraction) as usize).max(1),
         total,
         floor: s.lr_floor,
     };
     let np = obj.param_count();
-    let mut adam = crate::optim::Adam::new(np);
+    let mut adam = crate::learn::optim::Adam::new(np);
     let mut lanes = Lanes::<O::Work>::new(threads, np);
     let mut grad = vec![0.0f32; np];
     let mut zb = Array2::<f32>::zeros((batch, z.ncols()));
@@ -648,7 +648,7 @@ fn run_arrays<O: Objective>(
             let inv = 1.0 / b as f32;
             grad.iter_mut().for_each(|g| *g *= inv);
             let loss = sum / b as f64;
-            let norm = crate::optim::clip_global_norm(&mut grad, s.clip);
+            let norm = crate::learn::optim::clip_global_norm(&mut grad, s.clip);
             if !loss.is_finite() || !norm.is_finite() {
                 stop = StopReason::NonFinite { step };
                 params.clone_from(&last_good);

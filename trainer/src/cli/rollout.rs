@@ -2,15 +2,14 @@
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
 //! f32 bit patterns for bit-for-bit comparison with a board.
 
-use std::fmt::Write as _;
 use std::path::PathBuf;
 
 use anyhow::{anyhow, bail, Result};
 
 use crate::atomic::write_atomic;
-use crate::blob::HostModel;
-use crate::integrator_args::IntegratorArgs;
-use crate::rollout::{parse_init, read_inputs, roll_driven};
+use crate::cli::integrator_args::IntegratorArgs;
+use crate::deploy::blob::HostModel;
+use crate::deploy::rollout::{parse_init, read_inputs, roll_driven, to_csv};
 
 /// Arguments of `visviva rollout`.
 #[derive(Debug, clap::Args)]
@@ -39,29 +38,6 @@ pub struct Args {
     pub out: Option<PathBuf>,
 }
 
-/// Render a rollout as CSV `t,q1..qn,p1..pn`.
-pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
-    let mut s = String::from("t");
-    for k in ["q", "p"] {
-        for i in 1..=dof {
-            let _ = write!(s, ",{k}{i}");
-        }
-    }
-    s.push('\n');
-    for (k, x) in states.iter().enumerate() {
-        let _ = write!(s, "{}", k as f64 * dt as f64);
-        for v in x {
-            if bits {
-                let _ = write!(s, ",{:#010x}", v.to_bits());
-            } else {
-                let _ = write!(s, ",{v}");
-            }
-        }
-        s.push('\n');
-    }
-    s
-}
-
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let bytes = std::fs::read(&args.model)
@@ -69,7 +45,7 @@ pub fn run(args: Args) -> Result<()> {
     let model =
         HostModel::from_bytes(&bytes).map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
     let model = model
-        .with_integrator(args.integrator.apply(model.integrator()))
+        .with_integrator(args.integrator.overrides().apply(model.integrator()))
         .map_err(|e| anyhow!("{e}"))?;
     let dof = visviva_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;

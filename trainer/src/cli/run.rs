@@ -13,29 +13,30 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::{anyhow, bail, Context, Result};
-use visviva_runtime::{Hamiltonian, Integrator, Method};
 use serde::{de::DeserializeOwned, Serialize};
 use sha2::{Digest, Sha256};
+use visviva_runtime::{Hamiltonian, Integrator, Method};
 
 use crate::atomic::write_atomic;
-use crate::blob::{BlobModel, HostModel};
-use crate::check::{check, CheckSettings};
-use crate::cmd_check::{charts, units, HistoryFile};
-use crate::cmd_export::export;
-use crate::cmd_inspect::inspect;
-use crate::cmd_rollout::to_csv;
-use crate::data::{load_csv_with_inputs, split_by_trajectory, split_with_inputs, LoadOptions};
-use crate::dataset::{Dataset, DerivativeSource, Inputs};
-use crate::fit::{
-    fit_baseline_driven, fit_energy, fit_port, ArchChoice, FitSettings, StopReason, TrainReport,
-};
-use crate::integrator_args::{IntegratorArgs, MethodArg};
-use crate::project::{ActivationName, Arch, DeviceBudget, KineticKind, Project};
-use crate::report::{
+use crate::cli::integrator_args::IntegratorArgs;
+use crate::data::dataset::{Dataset, DerivativeSource, Inputs};
+use crate::data::log::{load_csv_with_inputs, split_by_trajectory, split_with_inputs, LoadOptions};
+use crate::deploy::blob::{BlobModel, HostModel};
+use crate::deploy::export::export;
+use crate::deploy::inspect::inspect;
+use crate::deploy::integrator::MethodName;
+use crate::deploy::rollout::to_csv;
+use crate::deploy::rollout::{roll_driven, sample_states};
+use crate::evidence::charts::{charts, units, HistoryFile};
+use crate::evidence::check::{check, CheckSettings};
+use crate::evidence::report::{
     render_html, BudgetVerdict, CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison,
     FitSummary, PortReport, RunReport,
 };
-use crate::rollout::{roll_driven, sample_states};
+use crate::learn::fit::{
+    fit_baseline_driven, fit_energy, fit_port, ArchChoice, FitSettings, StopReason, TrainReport,
+};
+use crate::project::file::{ActivationName, Arch, DeviceBudget, KineticKind, Project};
 
 /// Arguments of `visviva run`.
 #[derive(Debug, clap::Args)]
@@ -78,7 +79,7 @@ fn data_summary(
     inputs: usize,
 ) -> DataSummary {
     let n2 = 2 * train.dof;
-    let names = crate::data::column_names(train.dof, false);
+    let names = crate::data::log::column_names(train.dof, false);
     let mut dts: Vec<f64> = train
         .trajectories
         .iter()
@@ -194,7 +195,7 @@ fn budget_verdict(b: &DeviceBudget, bytes: usize, ram: usize, macs_per_step: u32
     }
 }
 
-fn method_of(m: Option<MethodArg>, separable: bool, port: bool) -> Method {
+fn method_of(m: Option<MethodName>, separable: bool, port: bool) -> Method {
     match m {
         Some(m) => m.into(),
         None if port => Method::DiscreteGradient,
@@ -210,7 +211,7 @@ fn check_port_method(method: Method, whence: &str) -> Result<()> {
             "{whence} integrator = \"{}\" cannot step a damped or driven model: it steps only J dH/dx \
              and would drop the dissipation R and the inputs G u; use \"discrete-gradient\" (the \
              default; exact energy balance) or \"midpoint\"",
-            crate::integrator_args::method_name(method)
+            crate::deploy::integrator::method_name(method)
         );
     }
     Ok(())
@@ -342,15 +343,16 @@ fn median(mut v: Vec<f64>) -> f64 {
 fn port_check(
     model: &HostModel<'_>,
     blob: &BlobModel,
-    baseline: Option<&crate::hnn::BaselineModel>,
+    baseline: Option<&crate::learn::hnn::BaselineModel>,
     logs: &Logs,
-    reference: Option<&dyn crate::systems::PortSystem>,
+    reference: Option<&dyn crate::reference::systems::PortSystem>,
     dissipation: bool,
     golden_input_trajectory: String,
     history: &HistoryFile,
 ) -> Result<(PortReport, Vec<(String, String)>)> {
-    let r = crate::check::check_port(model, blob, &logs.val, logs.val_u.as_ref())?;
-    let base = baseline.map(|b| crate::check::driven_baseline(b, &logs.val, logs.val_u.as_ref()));
+    let r = crate::evidence::check::check_port(model, blob, &logs.val, logs.val_u.as_ref())?;
+    let base = baseline
+        .map(|b| crate::evidence::check::driven_baseline(b, &logs.val, logs.val_u.as_ref()));
     let driven: Vec<DrivenComparison> = r
         .rollouts
         .iter()
@@ -371,9 +373,9 @@ fn port_check(
     if let (Some(t), Some(m)) = (logs.val.trajectories.first(), r.rollouts.first()) {
         let u = logs.val_u.as_ref().map(|u| &u.per_trajectory[0]);
         let b = base.as_ref().map(|b| b[0].states.as_slice());
-        figs = crate::cmd_check::driven_charts(t, u, &m.states, b, 1500);
+        figs = crate::evidence::charts::driven_charts(t, u, &m.states, b, 1500);
     }
-    figs.push(("loss".into(), crate::cmd_check::loss_chart(history)));
+    figs.push(("loss".into(), crate::evidence::charts::loss_chart(history)));
     let report = PortReport {
         inputs: model.inputs(),
         dissipation,
@@ -386,7 +388,7 @@ fn port_check(
         rest: r.rest,
         rest_residual: r.rest_residual,
         modes: r.modes,
-        reference_modes: reference.map(crate::check::reference_modes),
+        reference_modes: reference.map(crate::evidence::check::reference_modes),
         driven,
         golden_input_trajectory,
     };
@@ -396,50 +398,6 @@ fn port_check(
             .map(|(_, c)| (c.title.clone(), c.to_svg()))
             .collect(),
     ))
-}
-
-/// Print the damped or driven model's check.
-fn print_port(r: &PortReport) {
-    println!(
-        "      {:<6} {:>18} {:>14} {:>30}",
-        "mode", "natural freq (Hz)", "damping ratio", "reference system (Hz, ratio)"
-    );
-    for (k, m) in r.modes.iter().enumerate() {
-        let reference = r
-            .reference_modes
-            .as_ref()
-            .and_then(|v| v.get(k))
-            .map_or("-".into(), |m| {
-                format!("{:.4}, {:.4}", m.natural_hz, m.damping_ratio)
-            });
-        println!(
-            "      {:<6} {:>18.4} {:>14.4} {:>30}",
-            k + 1,
-            m.natural_hz,
-            m.damping_ratio,
-            reference
-        );
-    }
-    println!(
-        "      {:<10} {:>26} {:>12}",
-        "trajectory", "driven state rel. RMSE", "baseline"
-    );
-    for d in &r.driven {
-        let show = |v: f64, f: &Option<String>| {
-            if f.is_some() {
-                "failed".to_string()
-            } else {
-                format!("{v:.2e}")
-            }
-        };
-        println!(
-            "      {:<10} {:>26} {:>12}",
-            d.id,
-            show(d.model_state_rel_rmse, &d.model_failure),
-            d.baseline_state_rel_rmse
-                .map_or("-".into(), |b| show(b, &d.baseline_failure)),
-        );
-    }
 }
 
 /// Run the command.
@@ -453,7 +411,10 @@ pub fn run(args: Args) -> Result<()> {
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    println!("visviva run: {name} ({})", dir.join("visviva.toml").display());
+    println!(
+        "visviva run: {name} ({})",
+        dir.join("visviva.toml").display()
+    );
 
     // 1. Data.
     println!("[1/5] data");
@@ -492,7 +453,7 @@ pub fn run(args: Args) -> Result<()> {
         if port {
             format!(
                 "; damped/driven model: {inputs} input(s), {}",
-                crate::hnn::PortArch {
+                crate::learn::hnn::PortArch {
                     inputs,
                     ..terms.clone()
                 }
@@ -507,8 +468,8 @@ pub fn run(args: Args) -> Result<()> {
     let m = &project.model;
     let separable = m.arch == Arch::Separable;
     let activation = match m.activation {
-        ActivationName::Tanh => crate::net::Activation::Tanh,
-        ActivationName::Softplus => crate::net::Activation::Softplus,
+        ActivationName::Tanh => crate::learn::net::Activation::Tanh,
+        ActivationName::Softplus => crate::learn::net::Activation::Softplus,
         ActivationName::Relu => bail!("relu is refused for energy networks"),
     };
     let choice = ArchChoice {
@@ -592,10 +553,10 @@ pub fn run(args: Args) -> Result<()> {
             } else {
                 fit_energy(train, Some(val), &arch, &settings)?
             };
-            let bytes = crate::export::energy_blob(
+            let bytes = crate::deploy::fitted_blob::energy_blob(
                 &fitted.model,
                 integrator,
-                crate::blob::WeightKind::F32,
+                crate::deploy::blob::WeightKind::F32,
             )?;
             write_atomic(&model_path, &bytes)?;
             let params = arch.param_count(train.dof)
@@ -618,7 +579,7 @@ pub fn run(args: Args) -> Result<()> {
                     activation,
                     &settings,
                 )?;
-                crate::export::write_baseline(&baseline_path, &base.model)?;
+                crate::deploy::fitted_blob::write_baseline(&baseline_path, &base.model)?;
                 let params = base.model.params.len();
                 Some(fit_summary(&base.report, params))
             } else {
@@ -643,7 +604,7 @@ pub fn run(args: Args) -> Result<()> {
     let model = HostModel::from_bytes(&model_bytes)
         .map_err(|e| anyhow!("{}: {e}", model_path.display()))?;
     let baseline = if project.fit.baseline {
-        Some(crate::export::read_baseline(&baseline_path)?)
+        Some(crate::deploy::fitted_blob::read_baseline(&baseline_path)?)
     } else {
         None
     };
@@ -656,18 +617,18 @@ pub fn run(args: Args) -> Result<()> {
     let reference = project.check.reference_system.as_deref();
     let system = match reference {
         Some(s) if !port => Some(
-            crate::systems::build_system(s, &params)
+            crate::reference::systems::build_system(s, &params)
                 .map_err(|e| anyhow!("[check] reference_system: {e}"))?,
         ),
         _ => None,
     };
     let port_system = match reference {
         Some(s) if port => Some(
-            crate::systems::build_port_system(s, &params)
+            crate::reference::systems::build_port_system(s, &params)
                 .ok_or_else(|| {
                     anyhow!(
                         "[check] reference_system = \"{s}\" is not a damped or driven system; a damped or driven project needs one of {}",
-                        crate::systems::PORT_CATALOG
+                        crate::reference::systems::PORT_CATALOG
                             .iter()
                             .map(|p| p.name)
                             .collect::<Vec<_>>()
@@ -695,7 +656,7 @@ pub fn run(args: Args) -> Result<()> {
             golden_id,
             &history,
         )?;
-        print_port(&r);
+        crate::cli::tables::print_port(&r);
         (None, Some(r), figs)
     } else {
         let r = check(
@@ -708,7 +669,7 @@ pub fn run(args: Args) -> Result<()> {
                 ..CheckSettings::default()
             },
         )?;
-        crate::cmd_check::print_table(&r);
+        crate::cli::tables::print_table(&r);
         let figs: Vec<(String, String)> = charts(&r, Some(&history), units(system.as_deref()))
             .into_iter()
             .map(|(_, c)| (c.title.clone(), c.to_svg()))
@@ -745,7 +706,7 @@ pub fn run(args: Args) -> Result<()> {
             && std::fs::read_to_string(&hash_path).ok().as_deref() == Some(hash.as_str())
             && blob_path.exists();
         let report = match reuse
-            .then(|| read_json::<crate::cmd_export::ExportReport>(&meta_path))
+            .then(|| read_json::<crate::deploy::export::ExportReport>(&meta_path))
             .flatten()
         {
             Some(r) => {
@@ -753,7 +714,13 @@ pub fn run(args: Args) -> Result<()> {
                 r
             }
             None => {
-                let (bytes, r) = export(&src, t.weights, &ia, project.check.horizon_steps, 8)?;
+                let (bytes, r) = export(
+                    &src,
+                    t.weights,
+                    &ia.overrides(),
+                    project.check.horizon_steps,
+                    8,
+                )?;
                 write_atomic(&blob_path, &bytes)?;
                 write_json(&meta_path, &r)?;
                 write_atomic(&hash_path, hash.as_bytes())?;

@@ -160,9 +160,7 @@ pub struct BlobModel {
 }
 
 /// Precision of stored weight matrices.
-#[derive(
-    Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, serde::Serialize, serde::Deserialize,
-)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum WeightKind {
     /// Little-endian f32.

@@ -1,0 +1,216 @@
+//! `visviva check`: the evidence a user needs before deploying — the model
+//! against the plain baseline on held-out trajectories — as a terminal
+//! table, a JSON report and SVG plots. Damped or driven models (blobs with
+//! R or G) get their own table: damping per mode at rest and driven
+//! rollouts of the held-out trajectories with their logged inputs.
+
+use std::path::PathBuf;
+
+use anyhow::{anyhow, Context, Result};
+use visviva_runtime::Hamiltonian;
+
+use crate::atomic::write_atomic;
+use crate::cli::tables::{print_table, sci};
+use crate::data::log::{load_csv, LoadOptions};
+use crate::deploy::blob::HostModel;
+use crate::evidence::charts::{charts, units, HistoryFile};
+use crate::evidence::check::{check, CheckSettings};
+use crate::reference::systems::{build_system, parse_param};
+
+/// Arguments of `visviva check`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The model blob.
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Held-out trajectories (CSV, same columns as for `visviva fit`).
+    #[arg(long)]
+    pub data: PathBuf,
+    /// The baseline written by `visviva fit --baseline` (default: next to the
+    /// model as MODEL.baseline.json, when present).
+    #[arg(long)]
+    pub baseline: Option<PathBuf>,
+    /// The built-in system the data came from, to measure true-energy drift.
+    #[arg(long)]
+    pub system: Option<String>,
+    /// Parameters of that system, as for `visviva simulate`.
+    #[arg(long = "param", value_parser = parse_param)]
+    pub params: Vec<(String, f64)>,
+    /// Masses m1,..,mn for logs with velocity columns.
+    #[arg(long, value_delimiter = ',')]
+    pub mass: Option<Vec<f64>>,
+    /// Long-horizon steps (default: 100 periods of a built-in system, else
+    /// 10000).
+    #[arg(long)]
+    pub horizon: Option<usize>,
+    /// Fit history (JSON from `visviva fit --history`) for the loss plot.
+    #[arg(long)]
+    pub history: Option<PathBuf>,
+    /// Write the numbers as JSON here.
+    #[arg(long)]
+    pub report: Option<PathBuf>,
+    /// Write SVG plots into this folder.
+    #[arg(long)]
+    pub plots: Option<PathBuf>,
+}
+
+/// Run the command.
+pub fn run(args: Args) -> Result<()> {
+    let bytes = std::fs::read(&args.model)
+        .with_context(|| format!("{}: cannot read", args.model.display()))?;
+    let model =
+        HostModel::from_bytes(&bytes).map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
+    let opts = LoadOptions {
+        masses: args.mass.clone(),
+        ..LoadOptions::default()
+    };
+    let base_path = args
+        .baseline
+        .clone()
+        .or_else(|| Some(args.model.with_extension("baseline.json")).filter(|p| p.exists()));
+    let baseline = base_path
+        .as_deref()
+        .map(crate::deploy::fitted_blob::read_baseline)
+        .transpose()?;
+    if model.has_port_terms() {
+        return run_port(&args, &model, &bytes, &opts, baseline.as_ref());
+    }
+    let data = load_csv(&args.data, &opts)?;
+    let system = args
+        .system
+        .as_deref()
+        .map(|s| build_system(s, &args.params))
+        .transpose()
+        .map_err(|e| anyhow!("{e}"))?;
+    let history = args
+        .history
+        .as_deref()
+        .map(|p| -> Result<HistoryFile> {
+            let t = std::fs::read_to_string(p)
+                .with_context(|| format!("{}: cannot read", p.display()))?;
+            serde_json::from_str(&t).map_err(|e| anyhow!("{}: line {}: {e}", p.display(), e.line()))
+        })
+        .transpose()?;
+    let settings = CheckSettings {
+        horizon_steps: args.horizon,
+        ..CheckSettings::default()
+    };
+    let r = check(
+        &model,
+        baseline.as_ref(),
+        &data,
+        system.as_deref(),
+        &settings,
+    )?;
+    print_table(&r);
+    if data.derivatives == crate::data::dataset::DerivativeSource::Estimated {
+        println!("note: the log has no derivative columns; vector-field errors use Savitzky-Golay estimates");
+    }
+    if let Some(p) = &args.report {
+        write_atomic(p, serde_json::to_string_pretty(&r)?.as_bytes())?;
+        println!("report: {}", p.display());
+    }
+    if let Some(dir) = &args.plots {
+        std::fs::create_dir_all(dir)
+            .with_context(|| format!("{}: cannot create", dir.display()))?;
+        for (name, chart) in charts(&r, history.as_ref(), units(system.as_deref())) {
+            let p = dir.join(format!("{name}.svg"));
+            write_atomic(&p, chart.to_svg().as_bytes())?;
+        }
+        println!("plots: {}", dir.display());
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}
+
+/// The JSON report of a damped or driven model: the model's checks and,
+/// with a baseline, its driven rollouts of the same trajectories.
+#[derive(serde::Serialize)]
+struct PortJson<'a> {
+    #[serde(flatten)]
+    model: &'a crate::evidence::check::PortCheckReport,
+    baseline_rollouts: Option<Vec<crate::evidence::check::DrivenRollout>>,
+}
+
+/// `run` for a damped or driven model (`baseline`: a plain network taking
+/// the state and the inputs, from `visviva fit --baseline`).
+fn run_port(
+    args: &Args,
+    model: &HostModel<'_>,
+    bytes: &[u8],
+    opts: &LoadOptions,
+    baseline: Option<&crate::learn::hnn::BaselineModel>,
+) -> Result<()> {
+    let blob = crate::deploy::blob::BlobModel::from_bytes(bytes)
+        .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
+    let (data, inputs) = crate::data::log::load_csv_with_inputs(&args.data, opts)?;
+    if data.dof != blob.dof {
+        anyhow::bail!(
+            "{}: {} degrees of freedom, but the model has {}",
+            args.data.display(),
+            data.dof,
+            blob.dof
+        );
+    }
+    let m = model.inputs();
+    let got = inputs.as_ref().map_or(0, |u| u.count);
+    if got != m {
+        anyhow::bail!(
+            "{}: {got} input columns, but the model takes {m} inputs (u1..u{m})",
+            args.data.display()
+        );
+    }
+    let r = crate::evidence::check::check_port(model, &blob, &data, inputs.as_ref())?;
+    if let Some(b) = baseline {
+        if b.dof != blob.dof || b.inputs() != m {
+            anyhow::bail!(
+                "the baseline has {} degrees of freedom and {} inputs, the model {} and {m}",
+                b.dof,
+                b.inputs(),
+                blob.dof
+            );
+        }
+    }
+    let base = baseline.map(|b| crate::evidence::check::driven_baseline(b, &data, inputs.as_ref()));
+    let rest: Vec<String> = r.rest.iter().map(|v| format!("{v:.4e}")).collect();
+    println!(
+        "rest state ({}), residual {} of the RMS rates",
+        rest.join(", "),
+        sci(r.rest_residual)
+    );
+    println!(
+        "{:<6} {:>16} {:>14} {:>22}",
+        "mode", "natural freq (Hz)", "damping ratio", "eigenvalue (1/s)"
+    );
+    for (k, mode) in r.modes.iter().enumerate() {
+        println!(
+            "{:<6} {:>16.4} {:>14.4} {:>22}",
+            k + 1,
+            mode.natural_hz,
+            mode.damping_ratio,
+            format!("{:.3} {:+.3}i", mode.real, mode.imag)
+        );
+    }
+    println!(
+        "{:<10} {:>28} {:>12}",
+        "trajectory", "driven-rollout state rel. RMSE", "baseline"
+    );
+    let value = |t: &crate::evidence::check::DrivenRollout| match &t.failure {
+        Some(f) => format!("failed ({f})"),
+        None => sci(t.state_rel_rmse),
+    };
+    for (k, t) in r.rollouts.iter().enumerate() {
+        let b = base.as_ref().map_or("-".to_string(), |b| value(&b[k]));
+        println!("{:<10} {:>28} {:>12}", t.id, value(t), b);
+    }
+    if let Some(p) = &args.report {
+        let json = PortJson {
+            model: &r,
+            baseline_rollouts: base,
+        };
+        write_atomic(p, serde_json::to_string_pretty(&json)?.as_bytes())?;
+        println!("report: {}", p.display());
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}

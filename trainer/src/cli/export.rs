@@ -1,0 +1,90 @@
+//! `visviva export`: turn a fitted model into a device blob — choose the weight
+//! storage (f32 or int8) and the integrator — and measure what that costs in
+//! bytes and in accuracy before anything is flashed.
+
+use std::path::PathBuf;
+
+use anyhow::{bail, Result};
+
+use crate::atomic::write_atomic;
+use crate::cli::integrator_args::IntegratorArgs;
+use crate::deploy::blob::{BlobModel, WeightKind};
+use crate::deploy::export::export;
+
+/// Arguments of `visviva export`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The fitted model (a blob written by `visviva fit`).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// Weight storage on the device.
+    #[arg(long, value_enum, default_value = "f32")]
+    pub weights: WeightKind,
+    #[command(flatten)]
+    pub integrator: IntegratorArgs,
+    /// Steps of the rollouts that measure the accuracy price.
+    #[arg(long, default_value_t = 10_000)]
+    pub check_steps: usize,
+    /// Number of initial states for those rollouts.
+    #[arg(long, default_value_t = 8)]
+    pub check_states: usize,
+    /// Write the measurements as JSON to this file.
+    #[arg(long)]
+    pub json: Option<PathBuf>,
+    /// Where to write the device blob.
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+/// Run the command.
+pub fn run(args: Args) -> Result<()> {
+    let src = BlobModel::read(&args.model)?;
+    if args.check_states == 0 {
+        bail!("--check-states must be at least 1");
+    }
+    let (bytes, r) = export(
+        &src,
+        args.weights,
+        &args.integrator.overrides(),
+        args.check_steps,
+        args.check_states,
+    )?;
+    write_atomic(&args.out, &bytes)?;
+    if let Some(j) = &args.json {
+        write_atomic(j, serde_json::to_string_pretty(&r)?.as_bytes())?;
+    }
+    println!("wrote {} ({} bytes)", args.out.display(), r.bytes);
+    println!(
+        "  weights {}, {} parameters, {:.2} bytes/parameter",
+        format!("{:?}", r.weights).to_lowercase(),
+        r.parameters,
+        r.bytes_per_parameter
+    );
+    println!(
+        "  integrator {} dt {} s x {} substeps; {} MAC/gradient, {} MAC/step{}",
+        r.integrator,
+        r.dt,
+        r.substeps,
+        r.macs_per_gradient,
+        r.macs_per_step,
+        if r.integrator == "midpoint" {
+            " (at the iteration limit)"
+        } else {
+            ""
+        }
+    );
+    println!(
+        "  accuracy price over {} steps from {} states: max state deviation from the f32 model {:.3e} \
+         (in normalization scales); learned-energy drift {:.3e} (f32) vs {:.3e} (exported), in energy scales",
+        r.check_steps, args.check_states, r.max_state_deviation, r.energy_drift_reference, r.energy_drift_exported
+    );
+    if r.failed_rollouts > 0 {
+        println!(
+            "  warning: {} of {} check rollouts stopped early (step too large or the model left its range)",
+            r.failed_rollouts,
+            2 * args.check_states
+        );
+    }
+    println!("{}", crate::CAUTION);
+    Ok(())
+}

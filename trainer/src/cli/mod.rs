@@ -1,0 +1,76 @@
+//! The `visviva` command line: the only place where clap types live. Each
+//! command's file parses its arguments, calls the stage functions of the
+//! library and prints; no module outside `cli/` imports anything from here.
+
+use clap::{Parser, Subcommand};
+
+pub mod check;
+pub mod compare;
+pub mod export;
+pub mod fit;
+pub mod inspect;
+pub mod integrator_args;
+pub mod rollout;
+pub mod run;
+pub mod simulate;
+
+/// Visviva: from logged motion to a verified energy-consistent predictor on a
+/// microcontroller.
+#[derive(Debug, Parser)]
+#[command(name = "visviva", version, about)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// The whole path for a project folder: data, fit, check, export, report.
+    Run(run::Args),
+    /// Generate reference trajectories from a built-in system.
+    Simulate(simulate::Args),
+    /// Fit an energy model to trajectories and write a model blob.
+    Fit(fit::Args),
+    /// Compare the model with the baseline on held-out trajectories.
+    Check(check::Args),
+    /// Write a device blob: weight storage, integrator, and what it costs.
+    Export(export::Args),
+    /// Show what a blob holds and what it costs on a device.
+    Inspect(inspect::Args),
+    /// Step a blob on the host with the device's arithmetic; CSV out.
+    Rollout(rollout::Args),
+    /// Compare two trajectory CSVs bit for bit (exit 1 on a difference).
+    Compare(compare::Args),
+}
+
+/// Parse the command line, run the command, and map its result to the exit
+/// status: 0 on success, 1 on failure (for `compare`: 1 on a difference, 2
+/// on unreadable input).
+pub fn main() -> std::process::ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Run(a) => run::run(a),
+        Command::Simulate(a) => simulate::run(a),
+        Command::Fit(a) => fit::run(a),
+        Command::Check(a) => check::run(a),
+        Command::Export(a) => export::run(a),
+        Command::Inspect(a) => inspect::run(a),
+        Command::Rollout(a) => rollout::run(a),
+        Command::Compare(a) => match compare::run(a) {
+            Ok(true) => Ok(()),
+            Ok(false) => return std::process::ExitCode::from(1),
+            Err(e) => {
+                eprintln!("error: {e:#}");
+                return std::process::ExitCode::from(2);
+            }
+        },
+    };
+    match result {
+        Ok(()) => std::process::ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("error: {e:#}");
+            std::process::ExitCode::FAILURE
+        }
+    }
+}
+pub mod tables;

@@ -1,0 +1,10 @@
+//! From a fitted model to a device: blob building and its owned mirror,
+//! export with its measured cost, host rollouts through the runtime.
+
+pub mod blob;
+pub mod compare;
+pub mod export;
+pub mod fitted_blob;
+pub mod inspect;
+pub mod integrator;
+pub mod rollout;

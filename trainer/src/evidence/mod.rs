@@ -1,0 +1,7 @@
+//! The evidence before deploying: the model against the baseline on held-out
+//! logs, modes and damping, charts, and the report page.
+
+pub mod charts;
+pub mod check;
+pub mod report;
+pub mod svgplot;

@@ -1,0 +1,8 @@
+//! Learning: the networks, the energy model and its port terms, the plain
+//! baseline, the optimizer and the training loop.
+
+pub mod fit;
+pub mod hnn;
+pub mod net;
+pub mod optim;
+pub mod port;

@@ -1,0 +1,4 @@
+//! A rig described once: the project file and the pipeline of stages that
+//! `visviva run` and the single-stage commands share.
+
+pub mod file;

@@ -7,7 +7,7 @@ use visviva_runtime::{Integrator, Method, State};
 use visviva_tests::{elliptic_k, momentum_sign_changes, pendulum_period, period_from_crossings};
 use visviva_trainer::deploy::blob::{HostModel, WeightKind};
 use visviva_trainer::deploy::fitted_blob::energy_blob;
-use visviva_trainer::learn::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 use visviva_trainer::reference::systems::build_system;
 
@@ -53,7 +53,14 @@ fn fitted_crane_model_has_the_large_amplitude_pendulum_period() {
         seed: 5,
         ..FitSettings::default()
     };
-    let fitted = fit_energy(&train, Some(&val), &arch.build(1).unwrap(), &settings).unwrap();
+    let fitted = fit_model(
+        &train,
+        Some(&val),
+        &arch.build(1).unwrap(),
+        &Default::default(),
+        &settings,
+    )
+    .unwrap();
     println!(
         "fit: val loss {:.3e} after {} steps",
         fitted.report.best_val, fitted.report.steps

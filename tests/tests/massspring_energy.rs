@@ -9,7 +9,7 @@ use std::f64::consts::PI;
 use visviva_runtime::{Integrator, Method, State};
 use visviva_trainer::deploy::blob::{HostModel, WeightKind};
 use visviva_trainer::deploy::fitted_blob::energy_blob;
-use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings};
 use visviva_trainer::learn::net::Activation;
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 use visviva_trainer::reference::systems::{build_system, ReferenceSystem};
@@ -56,7 +56,14 @@ fn energy_model_keeps_true_energy_over_100_periods_and_baseline_drifts() {
         seed: 7,
         ..FitSettings::default()
     };
-    let fitted = fit_energy(&train, Some(&val), &arch.build(1).unwrap(), &settings).unwrap();
+    let fitted = fit_model(
+        &train,
+        Some(&val),
+        &arch.build(1).unwrap(),
+        &Default::default(),
+        &settings,
+    )
+    .unwrap();
     let base = fit_baseline(
         &train,
         Some(&val),

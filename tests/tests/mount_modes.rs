@@ -10,7 +10,7 @@ use visviva_tests::{
 };
 use visviva_trainer::deploy::blob::{HostModel, WeightKind};
 use visviva_trainer::deploy::fitted_blob::energy_blob;
-use visviva_trainer::learn::fit::{fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 use visviva_trainer::reference::systems::build_system;
 
@@ -74,7 +74,14 @@ fn fitted_mount_model_has_the_two_natural_frequencies() {
         seed: 3,
         ..FitSettings::default()
     };
-    let fitted = fit_energy(&train, Some(&val), &arch.build(2).unwrap(), &settings).unwrap();
+    let fitted = fit_model(
+        &train,
+        Some(&val),
+        &arch.build(2).unwrap(),
+        &Default::default(),
+        &settings,
+    )
+    .unwrap();
     println!(
         "fit: val loss {:.3e} after {} steps",
         fitted.report.best_val, fitted.report.steps

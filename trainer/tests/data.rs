@@ -248,10 +248,12 @@ fn dataset_with(count: usize, samples: usize) -> Dataset {
             t: (0..samples).map(|i| i as f64 * 0.5).collect(),
             x: Array2::from_shape_fn((samples, 2), |(i, c)| (k * 100 + i * 2 + c) as f64),
             dx: Array2::from_shape_fn((samples, 2), |(i, c)| -((k * 100 + i * 2 + c) as f64)),
+            u: Array2::zeros((samples, 0)),
         })
         .collect();
     Dataset {
         dof: 1,
+        inputs: 0,
         trajectories,
         derivatives: DerivativeSource::Given,
     }

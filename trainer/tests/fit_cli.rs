@@ -42,10 +42,12 @@ fn write_log(path: &std::path::Path) {
             t,
             x,
             dx,
+            u: Array2::zeros((60, 0)),
         });
     }
     let ds = Dataset {
         dof: 1,
+        inputs: 0,
         trajectories,
         derivatives: DerivativeSource::Given,
     };

@@ -13,7 +13,7 @@ use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
 use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
 use visviva_trainer::deploy::blob::WeightKind;
 use visviva_trainer::deploy::fitted_blob::{energy_blob, read_baseline, write_baseline};
-use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings};
 use visviva_trainer::learn::net::Activation;
 
 const M: [f64; 2] = [0.2, 0.5];
@@ -49,11 +49,13 @@ fn random_states(count: usize, seed: u64) -> Dataset {
     }
     Dataset {
         dof: 2,
+        inputs: 0,
         trajectories: vec![Trajectory {
             id: "mount".into(),
             t: (0..count).map(|i| i as f64 * 1e-3).collect(),
             x,
             dx,
+            u: Array2::zeros((count, 0)),
         }],
         derivatives: DerivativeSource::Given,
     }
@@ -79,7 +81,14 @@ fn runtime_matches_trainer_for_every_structure() {
                 hidden: vec![32, 24],
                 activation,
             };
-            let fitted = fit_energy(&data, None, &choice.build(2).unwrap(), &settings).unwrap();
+            let fitted = fit_model(
+                &data,
+                None,
+                &choice.build(2).unwrap(),
+                &Default::default(),
+                &settings,
+            )
+            .unwrap();
             let method = if separable {
                 Method::StormerVerlet
             } else {

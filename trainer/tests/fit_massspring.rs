@@ -15,7 +15,7 @@ use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
 use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
 use visviva_trainer::deploy::blob::WeightKind;
 use visviva_trainer::deploy::fitted_blob::energy_blob;
-use visviva_trainer::learn::fit::{fit_baseline, fit_energy, ArchChoice, FitSettings, StopReason};
+use visviva_trainer::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings, StopReason};
 use visviva_trainer::learn::net::Activation;
 
 /// Exact solution q = A cos(t + phi), p = -A sin(t + phi) (textbook), with
@@ -42,10 +42,12 @@ fn mass_spring(trajectories: usize, samples: usize, seed: u64) -> Dataset {
             t,
             x,
             dx,
+            u: Array2::zeros((samples, 0)),
         });
     }
     Dataset {
         dof: 1,
+        inputs: 0,
         trajectories: out,
         derivatives: DerivativeSource::Given,
     }
@@ -74,7 +76,14 @@ fn energy_model_conserves_energy_and_baseline_drifts() {
         ..ArchChoice::default()
     };
     let s = settings();
-    let fitted = fit_energy(&train, Some(&val), &arch.build(1).unwrap(), &s).unwrap();
+    let fitted = fit_model(
+        &train,
+        Some(&val),
+        &arch.build(1).unwrap(),
+        &Default::default(),
+        &s,
+    )
+    .unwrap();
     let base = fit_baseline(&train, Some(&val), &arch.hidden, Activation::Tanh, &s).unwrap();
     println!(
         "energy model: val loss {:.3e}, {} steps, {:.0} samples/s; baseline: val loss {:.3e}",
@@ -145,8 +154,8 @@ fn same_seed_same_threads_gives_identical_parameters() {
             seed: 9,
             ..FitSettings::default()
         };
-        let a = fit_energy(&train, None, &arch, &s).unwrap();
-        let b = fit_energy(&train, None, &arch, &s).unwrap();
+        let a = fit_model(&train, None, &arch, &Default::default(), &s).unwrap();
+        let b = fit_model(&train, None, &arch, &Default::default(), &s).unwrap();
         assert_eq!(a.model.params, b.model.params, "threads {threads}");
         assert_eq!(a.report.history, b.report.history);
     }
@@ -170,7 +179,7 @@ fn non_finite_loss_stops_and_keeps_finite_parameters() {
         quiet: true,
         ..FitSettings::default()
     };
-    let fitted = fit_energy(&train, None, &arch, &s).unwrap();
+    let fitted = fit_model(&train, None, &arch, &Default::default(), &s).unwrap();
     assert!(
         matches!(fitted.report.stop, StopReason::NonFinite { .. }),
         "{:?}",
@@ -196,7 +205,7 @@ fn interrupt_flag_stops_training() {
         interrupt: Some(Arc::new(AtomicBool::new(true))),
         ..FitSettings::default()
     };
-    let fitted = fit_energy(&train, None, &arch, &s).unwrap();
+    let fitted = fit_model(&train, None, &arch, &Default::default(), &s).unwrap();
     assert_eq!(fitted.report.stop, StopReason::Interrupted);
     assert_eq!(fitted.report.steps, 0);
     // Nothing trained yet: the seeded initial parameters are kept.

@@ -36,12 +36,12 @@ use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use visviva_runtime::{Hamiltonian, Integrator, Method, State};
-use visviva_trainer::data::dataset::{Dataset, Inputs};
+use visviva_trainer::data::dataset::Dataset;
 use visviva_trainer::deploy::blob::{BlobModel, HostModel, HOST_MAX_DOF};
 use visviva_trainer::deploy::fitted_blob::blob_model;
 use visviva_trainer::deploy::rollout::{roll_driven, sample_states};
 use visviva_trainer::evidence::check::{check_port, eigenvalues};
-use visviva_trainer::learn::fit::{fit_port, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::learn::hnn::{EnergyModel, PortArch};
 use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
 use visviva_trainer::reference::systems::build_port_system;
@@ -53,7 +53,7 @@ fn simulate(
     duration: f64,
     rate: f64,
     seed: u64,
-) -> (Dataset, Option<Inputs>) {
+) -> Dataset {
     let system = build_port_system(name, params).unwrap().unwrap();
     let spec = SimulationSpec {
         trajectories,
@@ -64,21 +64,15 @@ fn simulate(
     simulate_port(system.as_ref(), &spec).unwrap()
 }
 
-fn fit(ds: &Dataset, inputs: Option<&Inputs>, hidden: &[usize], epochs: usize) -> EnergyModel {
+fn fit(ds: &Dataset, hidden: &[usize], epochs: usize) -> EnergyModel {
     let terms = PortArch {
         dissipation: true,
         ..PortArch::default()
     };
-    fit_terms(ds, inputs, hidden, epochs, &terms)
+    fit_terms(ds, hidden, epochs, &terms)
 }
 
-fn fit_terms(
-    ds: &Dataset,
-    inputs: Option<&Inputs>,
-    hidden: &[usize],
-    epochs: usize,
-    terms: &PortArch,
-) -> EnergyModel {
+fn fit_terms(ds: &Dataset, hidden: &[usize], epochs: usize, terms: &PortArch) -> EnergyModel {
     let arch = ArchChoice {
         hidden: hidden.to_vec(),
         ..ArchChoice::default()
@@ -92,7 +86,7 @@ fn fit_terms(
         lr: 3e-3,
         ..FitSettings::default()
     };
-    let fitted = fit_port(ds, inputs, None, &arch, terms, &settings).unwrap();
+    let fitted = fit_model(ds, None, &arch, terms, &settings).unwrap();
     println!(
         "fitted: final training loss {:.3e}",
         fitted.report.history.train.last().unwrap()
@@ -167,9 +161,9 @@ fn positive_peaks(x: &[f64]) -> Vec<f64> {
 fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
     let zeta = 0.05;
     let params = vec![("zeta".to_string(), zeta)];
-    let (ds, inputs) = simulate("flexure-damped", &params, 30, 3.0, 100.0, 7);
-    assert!(inputs.is_none());
-    let model = fit(&ds, None, &[32, 32], 300);
+    let ds = simulate("flexure-damped", &params, 30, 3.0, 100.0, 7);
+    assert!(!ds.driven());
+    let model = fit(&ds, &[32, 32], 300);
     let bytes = export(&model, 0.002);
     let runtime = HostModel::from_bytes(&bytes).unwrap();
     // Free decay from 0.8 of the largest simulated amplitude (5 mm default),
@@ -194,7 +188,7 @@ fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
     // rest) gives the same ratio and the undamped natural frequency
     // sqrt(k / m) / (2 pi) = 3.183 Hz (textbook closed form).
     let blob = BlobModel::from_bytes(&bytes).unwrap();
-    let report = check_port(&runtime, &blob, &ds, None).unwrap();
+    let report = check_port(&runtime, &blob, &ds).unwrap();
     println!("modes at rest: {:?}", report.modes);
     assert_eq!(report.modes.len(), 1);
     let mode = &report.modes[0];
@@ -238,9 +232,9 @@ fn eigenvalues_of_a_damped_oscillator_match_the_closed_form() {
     ignore = "trains for about 3 s in release but minutes in debug; run with --release"
 )]
 fn drivetrain_steady_speed_is_torque_over_friction() {
-    let (ds, inputs) = simulate("drivetrain", &[], 16, 4.0, 400.0, 11);
-    let inputs = inputs.unwrap();
-    let model = fit(&ds, Some(&inputs), &[32, 32], 60);
+    let ds = simulate("drivetrain", &[], 16, 4.0, 400.0, 11);
+    assert!(ds.driven());
+    let model = fit(&ds, &[32, 32], 60);
     let dt = 0.0025f32;
     let bytes = export(&model, dt);
     let runtime = HostModel::from_bytes(&bytes).unwrap();
@@ -287,7 +281,7 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
         .collect();
     exact_modes.sort_by(|a, b| a.0.hypot(a.1).total_cmp(&b.0.hypot(b.1)));
     let blob = BlobModel::from_bytes(&bytes).unwrap();
-    let report = check_port(&runtime, &blob, &ds, Some(&inputs)).unwrap();
+    let report = check_port(&runtime, &blob, &ds).unwrap();
     println!("modes at rest: {:?}; exact {exact_modes:?}", report.modes);
     assert_eq!(report.modes.len(), exact_modes.len());
     for (mode, (er, ei)) in report.modes.iter().zip(&exact_modes) {
@@ -335,14 +329,14 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
 )]
 fn crane_under_a_trolley_settles_at_the_effective_gravity_angle() {
     let (m, l, g) = (2.0f64, 1.0f64, 9.81f64); // the scenario's defaults
-    let (ds, inputs) = simulate("crane-trolley", &[], 30, 12.0, 50.0, 3);
-    let inputs = inputs.unwrap();
+    let ds = simulate("crane-trolley", &[], 30, 12.0, 50.0, 3);
+    assert!(ds.driven());
     let terms = PortArch {
         dissipation: true,
         input_hidden: vec![8],
         ..PortArch::default()
     };
-    let model = fit_terms(&ds, Some(&inputs), &[32, 32], 200, &terms);
+    let model = fit_terms(&ds, &[32, 32], 200, &terms);
     let dt = 0.02f32;
     let bytes = export(&model, dt);
     assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 3);
@@ -423,14 +417,14 @@ fn squeeze_film_damping_is_learned_as_a_function_of_the_gap() {
     let (m, k, gap, zeta0) = (0.05f64, 20.0f64, 0.002f64, 0.05f64);
     let c0 = 2.0 * zeta0 * (k * m).sqrt();
     let law = |q: f64| c0 * (gap / (gap - q)).powi(3);
-    let (ds, inputs) = simulate("flexure-squeeze", &[], 30, 3.0, 100.0, 7);
-    assert!(inputs.is_none());
+    let ds = simulate("flexure-squeeze", &[], 30, 3.0, 100.0, 7);
+    assert!(!ds.driven());
     let terms = PortArch {
         dissipation: true,
         dissipation_hidden: vec![16],
         ..PortArch::default()
     };
-    let model = fit_terms(&ds, None, &[32, 32], 600, &terms);
+    let model = fit_terms(&ds, &[32, 32], 600, &terms);
     let bytes = export(&model, 0.002);
     assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 3);
     let runtime = HostModel::from_bytes(&bytes).unwrap();

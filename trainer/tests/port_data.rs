@@ -18,9 +18,7 @@
 //!   support; any analytical-mechanics text, from memory), plus the
 //!   viscous term -c q' / (m l), on every logged sample.
 
-use visviva_trainer::data::log::{
-    load_csv, load_csv_with_inputs, write_csv_with_inputs, LoadOptions,
-};
+use visviva_trainer::data::log::{load_csv, write_csv, LoadOptions};
 use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
 use visviva_trainer::reference::systems::build_port_system;
 
@@ -36,18 +34,16 @@ fn spec(trajectories: usize, duration: f64, rate: f64, seed: u64) -> SimulationS
 #[test]
 fn inputs_round_trip_through_csv() {
     let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
-    let (ds, inputs) = simulate_port(system.as_ref(), &spec(3, 0.5, 200.0, 4)).unwrap();
-    let inputs = inputs.unwrap();
+    let ds = simulate_port(system.as_ref(), &spec(3, 0.5, 200.0, 4)).unwrap();
+    assert!(ds.driven());
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("drive.csv");
-    write_csv_with_inputs(&path, &ds, Some(&inputs), true).unwrap();
+    write_csv(&path, &ds, true).unwrap();
     let text = std::fs::read_to_string(&path).unwrap();
     assert!(text.starts_with("traj,t,q1,q2,p1,p2,dq1,dq2,dp1,dp2,u1\n"));
-    let (back, back_inputs) = load_csv_with_inputs(&path, &LoadOptions::default()).unwrap();
+    let back = load_csv(&path, &LoadOptions::default()).unwrap();
+    assert_eq!(back.inputs, 1);
     assert_eq!(back, ds);
-    assert_eq!(back_inputs.unwrap(), inputs);
-    // The conservative loader ignores the inputs and reads the same states.
-    assert_eq!(load_csv(&path, &LoadOptions::default()).unwrap(), ds);
 }
 
 #[test]
@@ -64,7 +60,7 @@ fn bad_input_fields_name_file_line_and_column() {
         text.push_str(&format!("a,{},0.1,0.2,0.3,{u2}\n", k as f64 * 0.01));
     }
     std::fs::write(&path, text).unwrap();
-    let err = load_csv_with_inputs(&path, &LoadOptions::default()).unwrap_err();
+    let err = load_csv(&path, &LoadOptions::default()).unwrap_err();
     assert_eq!(err.line, 8);
     assert_eq!(err.column.as_deref(), Some("u2"));
     let message = err.to_string();
@@ -73,7 +69,7 @@ fn bad_input_fields_name_file_line_and_column() {
     // A gap in the numbering (u1, u3) is refused, naming the stray column.
     let gap = dir.path().join("gap.csv");
     std::fs::write(&gap, "traj,t,q1,p1,u1,u3\na,0,0,0,0,0\n").unwrap();
-    let err = load_csv_with_inputs(&gap, &LoadOptions::default()).unwrap_err();
+    let err = load_csv(&gap, &LoadOptions::default()).unwrap_err();
     assert_eq!((err.line, err.column.as_deref()), (1, Some("u3")));
 }
 
@@ -81,8 +77,8 @@ fn bad_input_fields_name_file_line_and_column() {
 fn damped_flexure_matches_the_closed_form_free_decay() {
     let (m, k, zeta) = (0.05f64, 20.0f64, 0.05f64);
     let system = build_port_system("flexure-damped", &[]).unwrap().unwrap();
-    let (ds, inputs) = simulate_port(system.as_ref(), &spec(3, 3.0, 200.0, 2)).unwrap();
-    assert!(inputs.is_none());
+    let ds = simulate_port(system.as_ref(), &spec(3, 3.0, 200.0, 2)).unwrap();
+    assert!(!ds.driven());
     let w = (k / m).sqrt();
     let wd = w * (1.0 - zeta * zeta).sqrt();
     let mut worst = 0.0f64;
@@ -103,8 +99,8 @@ fn damped_flexure_matches_the_closed_form_free_decay() {
 fn drivetrain_log_satisfies_the_power_balance() {
     let (jm, jl, kk, c, b) = (2e-4f64, 1e-3f64, 1.0f64, 2e-3f64, 1e-2f64);
     let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
-    let (ds, inputs) = simulate_port(system.as_ref(), &spec(2, 2.0, 2000.0, 5)).unwrap();
-    let inputs = inputs.unwrap();
+    let ds = simulate_port(system.as_ref(), &spec(2, 2.0, 2000.0, 5)).unwrap();
+    assert!(ds.driven());
     let h = |x: &[f64]| {
         let tw = x[0] - x[1];
         x[2] * x[2] / (2.0 * jm) + x[3] * x[3] / (2.0 * jl) + 0.5 * kk * tw * tw
@@ -116,7 +112,8 @@ fn drivetrain_log_satisfies_the_power_balance() {
     };
     let mut worst = 0.0f64;
     let mut peak = 0.0f64;
-    for (traj, u) in ds.trajectories.iter().zip(&inputs.per_trajectory) {
+    for traj in &ds.trajectories {
+        let u = &traj.u;
         for i in 1..traj.t.len() {
             let (a, z) = (traj.x.row(i - 1).to_vec(), traj.x.row(i).to_vec());
             let dt = traj.t[i] - traj.t[i - 1];
@@ -140,11 +137,12 @@ fn crane_trolley_log_follows_the_moving_support_pendulum_equation() {
     let (m, l, g, zeta) = (2.0f64, 1.0f64, 9.81f64, 0.05f64); // defaults
     let c = 2.0 * zeta * m * l * l * (g / l).sqrt();
     let system = build_port_system("crane-trolley", &[]).unwrap().unwrap();
-    let (ds, inputs) = simulate_port(system.as_ref(), &spec(4, 6.0, 100.0, 6)).unwrap();
-    let inputs = inputs.unwrap();
+    let ds = simulate_port(system.as_ref(), &spec(4, 6.0, 100.0, 6)).unwrap();
+    assert!(ds.driven());
     let mut worst = 0.0f64;
     let mut largest_angle = 0.0f64;
-    for (traj, u) in ds.trajectories.iter().zip(&inputs.per_trajectory) {
+    for traj in &ds.trajectories {
+        let u = &traj.u;
         for i in 0..traj.t.len() {
             let (q, p) = (traj.x[[i, 0]], traj.x[[i, 1]]);
             let qdot = p / (m * l * l);

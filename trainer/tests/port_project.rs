@@ -26,7 +26,7 @@ use clap::Parser;
 use visviva_trainer::cli::fit;
 use visviva_trainer::evidence::check::reference_modes;
 use visviva_trainer::evidence::report::{page_disagreements, tagged_values};
-use visviva_trainer::learn::fit::{fit_baseline_driven, ArchChoice, FitSettings};
+use visviva_trainer::learn::fit::{fit_baseline, ArchChoice, FitSettings};
 use visviva_trainer::learn::hnn::PortArch;
 use visviva_trainer::learn::net::Activation;
 use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
@@ -135,12 +135,12 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(stdout.contains("baseline"), "{stdout}");
     let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&report).unwrap()).unwrap();
-    let (ds, inputs) = visviva_trainer::data::log::load_csv_with_inputs(
+    let ds = visviva_trainer::data::log::load_csv(
         &p.join("train.csv"),
         &visviva_trainer::data::log::LoadOptions::default(),
     )
     .unwrap();
-    let expected = visviva_trainer::evidence::check::driven_baseline(&base, &ds, inputs.as_ref());
+    let expected = visviva_trainer::evidence::check::driven_baseline(&base, &ds);
     let got = r["baseline_rollouts"].as_array().unwrap();
     assert_eq!(got.len(), ds.trajectories.len());
     assert_eq!(r["rollouts"].as_array().unwrap().len(), got.len());
@@ -168,21 +168,21 @@ fn the_driven_baseline_learns_the_input_matrix_of_the_drivetrain() {
         rate: 200.0,
         seed: 41,
     };
-    let (ds, u) = simulate_port(system.as_ref(), &spec).unwrap();
-    let u = u.unwrap();
+    let ds = simulate_port(system.as_ref(), &spec).unwrap();
     let settings = FitSettings {
         epochs: 150,
         quiet: true,
         ..FitSettings::default()
     };
-    let base = fit_baseline_driven(&ds, Some(&u), None, &[32, 32], Activation::Tanh, &settings)
+    let base = fit_baseline(&ds, None, &[32, 32], Activation::Tanh, &settings)
         .unwrap()
         .model;
     // d(dx/dt)/du by central differences (step: the input's RMS) at logged
     // states and inputs, averaged.
     let h = base.input_scale[0];
     let (mut g1, mut g2, mut count) = (0.0f64, 0.0f64, 0usize);
-    for (t, ut) in ds.trajectories.iter().zip(&u.per_trajectory) {
+    for t in &ds.trajectories {
+        let ut = &t.u;
         for r in (0..t.t.len()).step_by(40) {
             let x: Vec<f32> = t.x.row(r).iter().map(|v| *v as f32).collect();
             let u0 = ut[[r, 0]] as f32;

@@ -285,7 +285,7 @@ fn run_one(
                 &hidden,
                 "--batch",
                 &batch,
-                "--steps",
+                "--optimizer-steps",
                 &steps_s,
                 "--lr",
                 LR,
@@ -316,7 +316,7 @@ fn run_one(
                 &hidden,
                 "--batch",
                 &batch,
-                "--steps",
+                "--optimizer-steps",
                 &steps_s,
                 "--lr",
                 LR,
@@ -401,7 +401,14 @@ fn write_initial_weights(tools: &Tools, work: &Path, data: &Path) -> Result<Path
             &hidden,
         ])
         .args([
-            "--batch", "4096", "--steps", "1", "--lr", "1e-30", "--quiet", "--out",
+            "--batch",
+            "4096",
+            "--optimizer-steps",
+            "1",
+            "--lr",
+            "1e-30",
+            "--quiet",
+            "--out",
         ])
         .arg(&blob)
         .output()

@@ -212,7 +212,7 @@ fn blobs(out: &Path) -> Result<Vec<(PathBuf, Vec<u8>)>> {
     let mut v = Vec::new();
     for e in std::fs::read_dir(out).with_context(|| format!("reading {}", out.display()))? {
         let p = e?.path();
-        if p.extension().is_some_and(|x| x == "visviva") {
+        if p.extension().is_some_and(|x| x == "vvb") {
             let b = std::fs::read(&p)?;
             v.push((p, b));
         }

@@ -129,7 +129,7 @@ fn exported_demo_blobs(root: &Path) -> Vec<PathBuf> {
         };
         for entry in outputs.flatten() {
             let path = entry.path();
-            if path.extension().is_some_and(|e| e == "visviva")
+            if path.extension().is_some_and(|e| e == "vvb")
                 && !golden_csv::files_for(&path).is_empty()
             {
                 found.push(path);

@@ -24,7 +24,7 @@ pub struct Args {
     #[arg(long)]
     pub model: PathBuf,
     /// Held-out trajectories (CSV, same columns as for `visviva fit`).
-    #[arg(long)]
+    #[arg(long = "validation", visible_alias = "data", value_name = "FILE.csv")]
     pub data: PathBuf,
     /// The baseline written by `visviva fit --baseline` (default: next to the
     /// model as MODEL.baseline.json, when present).
@@ -37,11 +37,16 @@ pub struct Args {
     #[arg(long = "param", value_parser = parse_param)]
     pub params: Vec<(String, f64)>,
     /// Masses m1,..,mn for logs with velocity columns.
-    #[arg(long, value_delimiter = ',')]
+    #[arg(
+        long = "masses",
+        visible_alias = "mass",
+        value_delimiter = ',',
+        value_name = "M1,.."
+    )]
     pub mass: Option<Vec<f64>>,
     /// Long-horizon steps (default: 100 periods of a built-in system, else
     /// 10000).
-    #[arg(long)]
+    #[arg(long = "horizon-steps", visible_alias = "horizon", value_name = "N")]
     pub horizon: Option<usize>,
     /// Fit history (JSON from `visviva fit --history`) for the loss plot.
     #[arg(long)]
@@ -143,7 +148,7 @@ fn run_port(
 ) -> Result<()> {
     let blob = crate::deploy::blob::BlobModel::from_bytes(bytes)
         .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
-    let (data, inputs) = crate::data::log::load_csv_with_inputs(&args.data, opts)?;
+    let data = load_csv(&args.data, opts)?;
     if data.dof != blob.dof {
         anyhow::bail!(
             "{}: {} degrees of freedom, but the model has {}",
@@ -153,14 +158,14 @@ fn run_port(
         );
     }
     let m = model.inputs();
-    let got = inputs.as_ref().map_or(0, |u| u.count);
+    let got = data.inputs;
     if got != m {
         anyhow::bail!(
             "{}: {got} input columns, but the model takes {m} inputs (u1..u{m})",
             args.data.display()
         );
     }
-    let r = crate::evidence::check::check_port(model, &blob, &data, inputs.as_ref())?;
+    let r = crate::evidence::check::check_port(model, &blob, &data)?;
     if let Some(b) = baseline {
         if b.dof != blob.dof || b.inputs() != m {
             anyhow::bail!(
@@ -171,7 +176,7 @@ fn run_port(
             );
         }
     }
-    let base = baseline.map(|b| crate::evidence::check::driven_baseline(b, &data, inputs.as_ref()));
+    let base = baseline.map(|b| crate::evidence::check::driven_baseline(b, &data));
     let rest: Vec<String> = r.rest.iter().map(|v| format!("{v:.4e}")).collect();
     println!(
         "rest state ({}), residual {} of the RMS rates",

@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use anyhow::{bail, Result};
 
 use crate::atomic::write_atomic;
-use crate::cli::integrator_args::IntegratorArgs;
+use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, WeightKind};
 use crate::deploy::export::export;
 

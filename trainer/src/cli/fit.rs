@@ -5,71 +5,40 @@
 //! discrete-gradient method).
 
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::Arc;
 
 use anyhow::{bail, Context, Result};
-use clap::ValueEnum;
-use visviva_runtime::{Integrator, Method};
 
-use crate::data::dataset::{Dataset, Inputs};
+use crate::data::dataset::Dataset;
 use crate::data::log::{self, LoadOptions};
-use crate::deploy::blob::WeightKind;
 use crate::deploy::fitted_blob;
 use crate::deploy::integrator::MethodName;
-use crate::learn::fit::{self, ArchChoice, FitSettings, StopReason, TrainReport};
+use crate::learn::fit::{self, FitSettings, TrainReport};
 use crate::learn::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
-use crate::learn::net::Activation;
-
-/// Energy structure.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
-pub enum ArchArg {
-    /// E = V(q) + T(p): explicit symplectic stepping on the device.
-    Separable,
-    /// E(q, p) over all coordinates: needs implicit midpoint on the device.
-    General,
-}
-
-/// Kinetic term of a separable model.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
-pub enum KineticArg {
-    /// T = 1/2 p^T M^-1 p with a learned constant inverse mass matrix.
-    Quadratic,
-    /// T(p) as a network.
-    Network,
-}
-
-/// Hidden-layer activation.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
-pub enum ActivationArg {
-    /// Hyperbolic tangent.
-    Tanh,
-    /// Softplus ln(1 + e^x).
-    Softplus,
-    /// Refused: see the error message.
-    Relu,
-}
+use crate::learn::stage::{
+    fit_stage, interrupt_flag, plan_model, stop_text, FitOutcome, ModelPlan, SettingNames,
+};
+use crate::learn::structure::{arch_choice, ActivationName, Arch, KineticKind};
 
 /// Arguments of `visviva fit`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Motion log (CSV) to fit.
-    #[arg(long, value_name = "FILE.csv")]
+    #[arg(long = "train", visible_alias = "data", value_name = "FILE.csv")]
     pub data: PathBuf,
     /// Separate validation log; without it, whole trajectories are held out
     /// from --data (see --val-fraction).
-    #[arg(long, value_name = "FILE.csv")]
+    #[arg(long = "validation", visible_alias = "val", value_name = "FILE.csv")]
     pub val: Option<PathBuf>,
     /// Fraction of trajectories held out for validation when --val is absent
     /// (0 disables validation; early stopping then watches the training loss).
     #[arg(long, default_value_t = 0.2, value_name = "F")]
     pub val_fraction: f64,
     /// Energy structure.
-    #[arg(long, value_enum, default_value_t = ArchArg::Separable)]
-    pub arch: ArchArg,
+    #[arg(long, value_enum, default_value_t = Arch::Separable)]
+    pub arch: Arch,
     /// Kinetic term of a separable model.
-    #[arg(long, value_enum, default_value_t = KineticArg::Quadratic)]
-    pub kinetic: KineticArg,
+    #[arg(long, value_enum, default_value_t = KineticKind::Quadratic)]
+    pub kinetic: KineticKind,
     /// Hidden-layer widths, comma separated (at most 4 layers, each <= 128).
     #[arg(
         long,
@@ -79,8 +48,8 @@ pub struct Args {
     )]
     pub hidden: Vec<usize>,
     /// Hidden-layer activation.
-    #[arg(long, value_enum, default_value_t = ActivationArg::Tanh)]
-    pub activation: ActivationArg,
+    #[arg(long, value_enum, default_value_t = ActivationName::Tanh)]
+    pub activation: ActivationName,
     /// Passes over the training data (ignored with --steps).
     #[arg(long, default_value_t = 300, value_name = "N")]
     pub epochs: usize,
@@ -91,7 +60,7 @@ pub struct Args {
     #[arg(long, default_value_t = 3e-3, value_name = "X")]
     pub lr: f32,
     /// Total optimizer steps, instead of --epochs.
-    #[arg(long, value_name = "N")]
+    #[arg(long = "optimizer-steps", value_name = "N")]
     pub steps: Option<usize>,
     /// Worker threads; results are reproducible for a given count.
     #[arg(long, default_value_t = 1, value_name = "N")]
@@ -129,7 +98,12 @@ pub struct Args {
     #[arg(long, value_delimiter = ',', value_name = "W1,..")]
     pub input_net: Option<Vec<usize>>,
     /// Masses m1,..,mn for logs with velocity columns (p = m v).
-    #[arg(long, value_delimiter = ',', value_name = "M1,..")]
+    #[arg(
+        long = "masses",
+        visible_alias = "mass",
+        value_delimiter = ',',
+        value_name = "M1,.."
+    )]
     pub mass: Option<Vec<f64>>,
     /// Integration method stored in the model (default: verlet for
     /// separable, midpoint for general models).
@@ -154,53 +128,15 @@ pub struct Args {
     pub out: PathBuf,
 }
 
-fn activation(a: ActivationArg) -> Result<Activation> {
-    match a {
-        ActivationArg::Tanh => Ok(Activation::Tanh),
-        ActivationArg::Softplus => Ok(Activation::Softplus),
-        ActivationArg::Relu => bail!(
-            "--activation relu is not allowed for energy networks: ReLU's derivative is piecewise \
-             constant, so the vector field dq/dt = dH/dp, dp/dt = -dH/dq would be discontinuous \
-             (and its second derivative, which training needs, is zero almost everywhere); use \
-             tanh or softplus"
-        ),
-    }
-}
-
-fn median_step(ds: &Dataset) -> Option<f64> {
-    let mut steps: Vec<f64> = ds
-        .trajectories
-        .iter()
-        .flat_map(|t| t.t.windows(2).map(|w| w[1] - w[0]))
-        .collect();
-    if steps.is_empty() {
-        return None;
-    }
-    steps.sort_by(f64::total_cmp);
-    Some(steps[steps.len() / 2])
-}
-
 /// Where the baseline goes: the model path with extension `.baseline.json`.
 pub fn baseline_path(out: &Path) -> PathBuf {
     out.with_extension("baseline.json")
 }
 
-fn stop_text(stop: StopReason) -> String {
-    match stop {
-        StopReason::Completed => "all steps done".into(),
-        StopReason::EarlyStopped => "early stop (validation loss stopped improving)".into(),
-        StopReason::Interrupted => "interrupted; kept the best parameters so far".into(),
-        StopReason::NonFinite { step } => format!(
-            "loss became NaN or infinite at step {step}; kept the last good parameters \
-             (try a smaller --lr)"
-        ),
-    }
-}
-
 fn print_report(label: &str, r: &TrainReport) {
     println!(
         "{label}: {} steps x {} samples in {:.2} s = {:.0} samples/s; best validation loss {:.4e} \
-         (epoch {}); {}",
+         (normalized units, epoch {}); {}",
         r.steps,
         r.batch,
         r.seconds,
@@ -212,17 +148,29 @@ fn print_report(label: &str, r: &TrainReport) {
 }
 
 /// The energy model's mean per-sample loss over every row of `data`.
-fn full_data_loss(model: &EnergyModel, data: &Dataset) -> f64 {
-    let (z, t) = model.norm.normalize(data);
-    let obj = HnnObjective::new(model.dof, model.arch.clone(), &model.norm);
-    let sum = obj.loss_sum(
-        &model.params,
-        z.view(),
-        t.view(),
-        &mut HnnWork::default(),
-        None,
+fn full_data_loss(model: &EnergyModel, data: &Dataset) -> Result<f64> {
+    let Some(port) = &model.port else {
+        let (z, t) = model.norm.normalize(data);
+        let obj = HnnObjective::new(model.dof, model.arch.clone(), &model.norm);
+        let sum = obj.loss_sum(
+            &model.params,
+            z.view(),
+            t.view(),
+            &mut HnnWork::default(),
+            None,
+        );
+        return Ok(sum / z.nrows().max(1) as f64);
+    };
+    let (z, t) = fit::stack_inputs(&model.norm, data, &port.input_scale)?;
+    let obj = PortObjective::new(
+        model.dof,
+        model.arch.clone(),
+        port.arch.clone(),
+        &model.norm,
     );
-    sum / z.nrows().max(1) as f64
+    let p: Vec<f32> = model.params.iter().chain(&port.params).copied().collect();
+    let sum = obj.loss_sum(&p, z.view(), t.view(), &mut Default::default(), None);
+    Ok(sum / z.nrows().max(1) as f64)
 }
 
 /// Run summary written by `--json`.
@@ -252,14 +200,13 @@ struct RunSummary {
     stop: String,
 }
 
-/// Write the `--json` run summary of `fitted` (trained on `train_samples`
-/// rows; `final_train_loss` over all of them with the kept parameters).
+/// Write the `--json` run summary of `fitted` (trained on `train`; the
+/// final training loss over all of its rows with the kept parameters).
 fn write_summary(
     path: &Path,
     fitted: &fit::Fitted<EnergyModel>,
     threads: usize,
-    train_samples: usize,
-    final_train_loss: f64,
+    train: &Dataset,
 ) -> Result<()> {
     let r = &fitted.report;
     let summary = RunSummary {
@@ -268,10 +215,10 @@ fn write_summary(
         batch: r.batch,
         threads,
         seconds: r.seconds,
-        train_samples,
+        train_samples: train.samples(),
         parameters: fitted.model.params.len()
             + fitted.model.port.as_ref().map_or(0, |p| p.params.len()),
-        final_train_loss,
+        final_train_loss: full_data_loss(&fitted.model, train)?,
         last_epoch_loss: r.history.train.last().copied(),
         best_val: r.best_val,
         stop: stop_text(r.stop),
@@ -283,63 +230,8 @@ fn write_summary(
     Ok(())
 }
 
-/// A damped or driven model's mean per-sample loss over every row of
-/// `data` (with its inputs `u`).
-fn full_port_loss(model: &EnergyModel, data: &Dataset, u: Option<&Inputs>) -> Result<f64> {
-    let port = model
-        .port
-        .as_ref()
-        .context("the model has no dissipation or input terms")?;
-    let (z, t) = fit::stack_inputs(&model.norm, data, u, &port.input_scale)?;
-    let obj = PortObjective::new(
-        model.dof,
-        model.arch.clone(),
-        port.arch.clone(),
-        &model.norm,
-    );
-    let p: Vec<f32> = model.params.iter().chain(&port.params).copied().collect();
-    let sum = obj.loss_sum(&p, z.view(), t.view(), &mut Default::default(), None);
-    Ok(sum / z.nrows().max(1) as f64)
-}
-
-/// The structure asked for on the command line.
-fn arch_choice(args: &Args, act: Activation) -> ArchChoice {
-    ArchChoice {
-        separable: args.arch == ArchArg::Separable,
-        quadratic_kinetic: args.kinetic == KineticArg::Quadratic,
-        hidden: args.hidden.clone(),
-        activation: act,
-    }
-}
-
-/// The integrator stored in the blob: `method` with `--dt` or the log's
-/// median sampling interval.
-fn stored_integrator(args: &Args, method: Method, train: &Dataset) -> Result<Integrator> {
-    let dt = match args.dt {
-        Some(dt) => dt,
-        None => median_step(train)
-            .map(|v| v as f32)
-            .context("cannot infer --dt: the log has no two consecutive samples")?,
-    };
-    let integrator = Integrator::new(method, dt);
-    if !integrator.is_valid() {
-        bail!("time step {dt} s is not usable; pass --dt");
-    }
-    Ok(integrator)
-}
-
-/// A flag Ctrl-C sets; the training loop stops and keeps the best so far.
-fn interrupt_flag() -> Arc<AtomicBool> {
-    let interrupt = Arc::new(AtomicBool::new(false));
-    let flag = interrupt.clone();
-    if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
-        eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
-    }
-    interrupt
-}
-
 /// Training settings from the command line.
-fn fit_settings(args: &Args, interrupt: Arc<AtomicBool>) -> FitSettings {
+fn fit_settings(args: &Args) -> FitSettings {
     FitSettings {
         epochs: args.epochs,
         steps: args.steps,
@@ -350,30 +242,91 @@ fn fit_settings(args: &Args, interrupt: Arc<AtomicBool>) -> FitSettings {
         patience: args.patience,
         seed: args.seed,
         quiet: args.quiet,
-        interrupt: Some(interrupt),
+        interrupt: Some(interrupt_flag()),
         ..FitSettings::default()
     }
 }
 
-/// Print the run, write the blob and, when asked, the loss history.
-fn write_model(
-    args: &Args,
-    fitted: &fit::Fitted<EnergyModel>,
-    integrator: Integrator,
-) -> Result<()> {
-    print_report("energy model", &fitted.report);
-    let bytes =
-        fitted_blob::write_energy_blob(&args.out, &fitted.model, integrator, WeightKind::F32)?;
+/// The model plan from the flags.
+fn plan(args: &Args, train: &Dataset) -> Result<ModelPlan> {
+    let choice = arch_choice(
+        args.arch,
+        args.kinetic,
+        &args.hidden,
+        args.activation,
+        "--activation",
+    )?;
+    let none = Vec::new();
+    let terms = PortArch::with_networks(
+        args.dissipation,
+        args.dissipation_net.as_ref().unwrap_or(&none),
+        args.input_net.as_ref().unwrap_or(&none),
+        |name| format!("--{name}-net"),
+    )?;
+    plan_model(
+        train,
+        choice,
+        terms,
+        args.integrator,
+        args.dt,
+        SettingNames::Flags,
+    )
+}
+
+/// The training and validation data: `--validation`, or whole trajectories
+/// held out of `--train` (none when the fraction is 0 or there is only one).
+fn split(args: &Args, all: Dataset, opts: &LoadOptions) -> Result<(Dataset, Option<Dataset>)> {
+    if !(0.0..1.0).contains(&args.val_fraction) {
+        bail!(
+            "--val-fraction must be in [0, 1), got {}",
+            args.val_fraction
+        );
+    }
+    match &args.val {
+        Some(path) => {
+            let v = log::load_csv(path, opts)?;
+            if v.dof != all.dof || v.inputs != all.inputs {
+                bail!(
+                    "{}: {} degrees of freedom and {} input columns, but {} has {} and {}",
+                    path.display(),
+                    v.dof,
+                    v.inputs,
+                    args.data.display(),
+                    all.dof,
+                    all.inputs
+                );
+            }
+            Ok((all, Some(v)))
+        }
+        None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => {
+            let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
+            Ok((t, Some(v).filter(|v| !v.trajectories.is_empty())))
+        }
+        None => Ok((all, None)),
+    }
+}
+
+/// Print the run, write the blob, the loss history and the baseline.
+fn write_outputs(args: &Args, out: &FitOutcome, plan: &ModelPlan) -> Result<()> {
+    print_report("energy model", &out.model.report);
+    crate::atomic::write_atomic(&args.out, &out.blob)?;
     println!(
-        "wrote {} ({bytes} bytes, {:?}, dt = {} s)",
+        "wrote {} ({} bytes, {}, dt = {} s)",
         args.out.display(),
-        integrator.method,
-        integrator.dt
+        out.blob.len(),
+        crate::deploy::integrator::method_name(plan.integrator.method),
+        plan.integrator.dt
     );
     if let Some(path) = &args.history {
-        let json = serde_json::to_vec_pretty(&fitted.report.history)?;
+        let json = serde_json::to_vec_pretty(&out.model.report.history)?;
         crate::atomic::write_atomic(path, &json)
             .with_context(|| format!("writing history {}", path.display()))?;
+        println!("wrote {}", path.display());
+    }
+    if let Some(base) = &out.baseline {
+        print_report("baseline", &base.report);
+        let path = baseline_path(&args.out);
+        fitted_blob::write_baseline(&path, &base.model)?;
         println!("wrote {}", path.display());
     }
     Ok(())
@@ -381,205 +334,31 @@ fn write_model(
 
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
-    let act = activation(args.activation)?;
-    if !(0.0..1.0).contains(&args.val_fraction) {
-        bail!(
-            "--val-fraction must be in [0, 1), got {}",
-            args.val_fraction
-        );
-    }
-    if let Some(dt) = args.dt {
-        if !(dt.is_finite() && dt > 0.0) {
-            bail!("--dt must be a positive number of seconds, got {dt}");
-        }
-    }
     let opts = LoadOptions {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
-    let (all, all_inputs) = log::load_csv_with_inputs(&args.data, &opts)?;
-    if all_inputs.is_some() || args.dissipation || args.dissipation_net.is_some() {
-        return run_port(&args, act, all, all_inputs, &opts);
-    }
-    let (train, val) = match &args.val {
-        Some(path) => {
-            let v = log::load_csv(path, &opts)?;
-            if v.dof != all.dof {
-                bail!(
-                    "{}: {} degrees of freedom, but {} has {}",
-                    path.display(),
-                    v.dof,
-                    args.data.display(),
-                    all.dof
-                );
-            }
-            (all, Some(v))
-        }
-        None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => {
-            let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
-            if v.trajectories.is_empty() {
-                (t, None)
-            } else {
-                (t, Some(v))
-            }
-        }
-        None => (all, None),
-    };
-    let choice = arch_choice(&args, act);
-    let arch = choice.build(train.dof)?;
-    let method = match (args.integrator, choice.separable) {
-        (Some(m), _) => Method::from(m),
-        (None, true) => Method::StormerVerlet,
-        (None, false) => Method::ImplicitMidpoint,
-    };
-    if method.needs_separable() && !choice.separable {
-        bail!("--integrator {method:?} needs --arch separable; use --integrator midpoint");
-    }
-    let integrator = stored_integrator(&args, method, &train)?;
-
-    let interrupt = interrupt_flag();
-    let settings = fit_settings(&args, interrupt.clone());
+    let all = log::load_csv(&args.data, &opts)?;
+    let (train, val) = split(&args, all, &opts)?;
+    let plan = plan(&args, &train)?;
+    let settings = fit_settings(&args);
     println!(
-        "fitting {} samples in {} trajectories ({} validation samples), {} parameters",
+        "fitting {} samples in {} trajectories ({} validation samples), {} parameters{}",
         train.samples(),
         train.trajectories.len(),
         val.as_ref().map_or(0, Dataset::samples),
-        arch.param_count(train.dof)
-    );
-    let fitted = fit::fit_energy(&train, val.as_ref(), &arch, &settings)?;
-    write_model(&args, &fitted, integrator)?;
-    if let Some(path) = &args.json {
-        let loss = full_data_loss(&fitted.model, &train);
-        write_summary(path, &fitted, settings.threads, train.samples(), loss)?;
-    }
-    if args.baseline && !interrupt.load(Ordering::SeqCst) {
-        let base = fit::fit_baseline(&train, val.as_ref(), &choice.hidden, act, &settings)?;
-        print_report("baseline", &base.report);
-        let path = baseline_path(&args.out);
-        fitted_blob::write_baseline(&path, &base.model)?;
-        println!("wrote {}", path.display());
-    }
-    println!("{}", crate::CAUTION);
-    Ok(())
-}
-
-/// `run` for a damped and/or driven model.
-fn run_port(
-    args: &Args,
-    act: Activation,
-    all: Dataset,
-    all_inputs: Option<Inputs>,
-    opts: &LoadOptions,
-) -> Result<()> {
-    type Split = (Dataset, Option<Inputs>);
-    let ((train, train_u), val): (Split, Option<Split>) = match &args.val {
-        Some(path) => {
-            let (v, vu) = log::load_csv_with_inputs(path, opts)?;
-            if v.dof != all.dof {
-                bail!(
-                    "{}: {} degrees of freedom, but {} has {}",
-                    path.display(),
-                    v.dof,
-                    args.data.display(),
-                    all.dof
-                );
-            }
-            let (want, got) = (
-                all_inputs.as_ref().map_or(0, |u| u.count),
-                vu.as_ref().map_or(0, |u| u.count),
-            );
-            if want != got {
-                bail!(
-                    "{}: {got} input columns, but {} has {want}",
-                    path.display(),
-                    args.data.display()
-                );
-            }
-            ((all, all_inputs), Some((v, vu)))
+        plan.parameters(train.dof),
+        if plan.has_port_terms() {
+            format!(", {} inputs, {}", train.inputs, plan.terms.label(train.dof))
+        } else {
+            String::new()
         }
-        None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => match &all_inputs {
-            Some(u) => {
-                let ((t, tu), (v, vu)) =
-                    log::split_with_inputs(&all, u, args.val_fraction, args.seed);
-                ((t, Some(tu)), Some((v, Some(vu))))
-            }
-            None => {
-                let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
-                ((t, None), Some((v, None)))
-            }
-        },
-        None => ((all, all_inputs), None),
-    };
-    let val = val.filter(|(v, _)| !v.trajectories.is_empty());
-    let choice = arch_choice(args, act);
-    let arch = choice.build(train.dof)?;
-    let method = args
-        .integrator
-        .map_or(Method::DiscreteGradient, Method::from);
-    if !method.handles_port_terms() {
-        bail!("--integrator {method:?} cannot step damped or driven models; use the default (discrete gradient)");
-    }
-    let integrator = stored_integrator(args, method, &train)?;
-    let interrupt = interrupt_flag();
-    let settings = fit_settings(args, interrupt.clone());
-    let m = train_u.as_ref().map_or(0, |u| u.count);
-    if m == 0 && args.input_net.is_some() {
-        bail!(
-            "--input-net: {} has no input columns u1..um, so there is no G to learn",
-            args.data.display()
-        );
-    }
-    let terms = PortArch {
-        inputs: m,
-        ..port_terms(args)?
-    };
-    println!(
-        "fitting {} samples in {} trajectories ({} validation samples), {} inputs, {}",
-        train.samples(),
-        train.trajectories.len(),
-        val.as_ref().map_or(0, |(v, _)| v.samples()),
-        m,
-        terms.label(train.dof),
     );
-    let fitted = fit::fit_port(
-        &train,
-        train_u.as_ref(),
-        val.as_ref().map(|(v, u)| (v, u.as_ref())),
-        &arch,
-        &terms,
-        &settings,
-    )?;
-    write_model(args, &fitted, integrator)?;
+    let out = fit_stage(&train, val.as_ref(), &plan, &settings, args.baseline)?;
+    write_outputs(&args, &out, &plan)?;
     if let Some(path) = &args.json {
-        let loss = full_port_loss(&fitted.model, &train, train_u.as_ref())?;
-        write_summary(path, &fitted, settings.threads, train.samples(), loss)?;
-    }
-    if args.baseline && !interrupt.load(Ordering::SeqCst) {
-        let base = fit::fit_baseline_driven(
-            &train,
-            train_u.as_ref(),
-            val.as_ref().map(|(v, u)| (v, u.as_ref())),
-            &choice.hidden,
-            act,
-            &settings,
-        )?;
-        print_report("baseline", &base.report);
-        let path = baseline_path(&args.out);
-        fitted_blob::write_baseline(&path, &base.model)?;
-        println!("wrote {}", path.display());
+        write_summary(path, &out.model, settings.threads, &train)?;
     }
     println!("{}", crate::CAUTION);
     Ok(())
-}
-
-/// The port terms asked for on the command line (the input count comes
-/// from the data).
-fn port_terms(args: &Args) -> Result<PortArch> {
-    let none = Vec::new();
-    PortArch::with_networks(
-        args.dissipation,
-        args.dissipation_net.as_ref().unwrap_or(&none),
-        args.input_net.as_ref().unwrap_or(&none),
-        |name| format!("--{name}-net"),
-    )
 }

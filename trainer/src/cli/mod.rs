@@ -9,9 +9,9 @@ pub mod compare;
 pub mod export;
 pub mod fit;
 pub mod inspect;
-pub mod integrator_args;
 pub mod rollout;
 pub mod run;
+pub mod shared_args;
 pub mod simulate;
 
 /// Visviva: from logged motion to a verified energy-consistent predictor on a

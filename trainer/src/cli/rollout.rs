@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use anyhow::{anyhow, bail, Result};
 
 use crate::atomic::write_atomic;
-use crate::cli::integrator_args::IntegratorArgs;
+use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::HostModel;
 use crate::deploy::rollout::{parse_init, read_inputs, roll_driven, to_csv};
 

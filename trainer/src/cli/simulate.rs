@@ -1,6 +1,6 @@
 //! `visviva simulate`: write reference trajectories of a built-in system to CSV.
 
-use crate::data::log::write_csv_with_inputs;
+use crate::data::log::write_csv;
 use crate::reference::simulate::{
     add_noise, max_relative_energy_drift, simulate, simulate_port, SimulationSpec,
 };
@@ -113,13 +113,12 @@ fn spec_of(args: &Args) -> anyhow::Result<SimulationSpec> {
 fn write_log(
     args: &Args,
     ds: &mut crate::data::dataset::Dataset,
-    inputs: Option<&crate::data::dataset::Inputs>,
     name: &str,
     params: &crate::reference::systems::ParamValues,
 ) -> anyhow::Result<String> {
     add_noise(ds, args.noise, args.seed)?;
     let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
-    write_csv_with_inputs(&args.out, ds, inputs, with_derivatives)?;
+    write_csv(&args.out, ds, with_derivatives)?;
     let params: Vec<String> = params
         .iter()
         .map(|(k, v, u)| format!("{k}={v} {u}"))
@@ -150,7 +149,7 @@ pub fn run(args: Args) -> anyhow::Result<()> {
     let spec = spec_of(&args)?;
     let mut ds = simulate(system.as_ref(), &spec)?;
     let drift = max_relative_energy_drift(system.as_ref(), &ds);
-    let line = write_log(&args, &mut ds, None, system.name(), system.params())?;
+    let line = write_log(&args, &mut ds, system.name(), system.params())?;
     println!(
         "{line}) to {}; max relative energy drift {drift:.1e}",
         args.out.display()
@@ -161,14 +160,8 @@ pub fn run(args: Args) -> anyhow::Result<()> {
 /// `run` for a damped or driven system.
 fn run_port(args: &Args, system: &dyn crate::reference::systems::PortSystem) -> anyhow::Result<()> {
     let spec = spec_of(args)?;
-    let (mut ds, inputs) = simulate_port(system, &spec)?;
-    let line = write_log(
-        args,
-        &mut ds,
-        inputs.as_ref(),
-        system.name(),
-        system.params(),
-    )?;
+    let mut ds = simulate_port(system, &spec)?;
+    let line = write_log(args, &mut ds, system.name(), system.params())?;
     println!(
         "{line}, {} input columns) to {}",
         system.inputs(),

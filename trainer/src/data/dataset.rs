@@ -1,7 +1,9 @@
 //! In-memory trajectories: the one data type every trainer stage shares.
 //!
 //! States are x = (q1..qn, p1..pn) in SI units, one row per sample; `dx` holds
-//! the time derivatives dx/dt, either read from the log or estimated.
+//! the time derivatives dx/dt, either read from the log or estimated; `u`
+//! holds the inputs u1..um of a driven system (m = 0 columns for a
+//! conservative or merely damped log), so every stage sees one data type.
 
 use ndarray::Array2;
 
@@ -16,6 +18,9 @@ pub struct Trajectory {
     pub x: Array2<f64>,
     /// Time derivatives of the states, shape (samples, 2n).
     pub dx: Array2<f64>,
+    /// Inputs u1..um in the log's own units (e.g. N m of motor torque),
+    /// shape (samples, m); m = 0 without inputs.
+    pub u: Array2<f64>,
 }
 
 /// How the derivatives in a [`Dataset`] were obtained.
@@ -32,6 +37,8 @@ pub enum DerivativeSource {
 pub struct Dataset {
     /// Degrees of freedom n.
     pub dof: usize,
+    /// Number of inputs m (0 for a log without `u` columns).
+    pub inputs: usize,
     /// The trajectories.
     pub trajectories: Vec<Trajectory>,
     /// Where the derivatives came from.
@@ -43,30 +50,25 @@ impl Dataset {
     pub fn samples(&self) -> usize {
         self.trajectories.iter().map(|t| t.t.len()).sum()
     }
-}
 
-/// Inputs u1..um of a driven system, one array per trajectory of the
-/// [`Dataset`] they belong to (same order), each of shape (samples, m), in
-/// the log's own units (e.g. N m of motor torque). Kept beside the dataset
-/// rather than inside [`Trajectory`] so conservative data keeps its exact
-/// type and layout.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Inputs {
-    /// Number of inputs m.
-    pub count: usize,
-    /// Per trajectory, shape (samples, m).
-    pub per_trajectory: Vec<Array2<f64>>,
-}
+    /// Whether the trajectories carry inputs u1..um.
+    pub fn driven(&self) -> bool {
+        self.inputs > 0
+    }
 
-impl Inputs {
-    /// Inputs of the trajectories whose indices are listed, in that order.
-    pub fn select(&self, indices: &[usize]) -> Self {
+    /// The same trajectories with their inputs dropped (m = 0).
+    pub fn without_inputs(&self) -> Self {
         Self {
-            count: self.count,
-            per_trajectory: indices
+            inputs: 0,
+            trajectories: self
+                .trajectories
                 .iter()
-                .map(|&i| self.per_trajectory[i].clone())
+                .map(|t| Trajectory {
+                    u: Array2::zeros((t.t.len(), 0)),
+                    ..t.clone()
+                })
                 .collect(),
+            ..self.clone()
         }
     }
 }

@@ -7,7 +7,7 @@
 //! optionally derivatives `dq1..dqn`, `dp1..dpn` (with velocities,
 //! `dv1..dvn` in place of `dp*`, converted with dp = m dv). If both `p*`
 //! and `v*` columns exist the momenta are used. Driven systems add inputs
-//! `u1..um` (read by [`load_csv_with_inputs`]; [`load_csv`] ignores them).
+//! `u1..um`.
 //! Other columns are ignored. Rows of one trajectory must be contiguous; time must increase
 //! strictly and evenly: a step may differ from the trajectory's median step
 //! by at most [`LoadOptions::step_tolerance`] (1 % by default) of that median.
@@ -16,7 +16,7 @@
 //! least the filter's window of samples.
 
 use crate::atomic::write_atomic_with;
-use crate::data::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
+use crate::data::dataset::{Dataset, DerivativeSource, Trajectory};
 use crate::data::derivative::SavitzkyGolay;
 use ndarray::Array2;
 use rand::seq::SliceRandom;
@@ -167,6 +167,9 @@ impl fmt::Display for DataError {
 
 impl std::error::Error for DataError {}
 
+/// The `dq*` and `dp*` (or `dv*`) column indices.
+type DerivativeColumns = (Vec<usize>, Vec<usize>);
+
 /// Column indices found in a header.
 struct Layout {
     traj: usize,
@@ -175,7 +178,7 @@ struct Layout {
     /// p or v columns.
     p: Vec<usize>,
     /// dq and dp (or dv) columns, if present.
-    derivatives: Option<(Vec<usize>, Vec<usize>)>,
+    derivatives: Option<DerivativeColumns>,
     /// u columns (only when inputs are read).
     u: Vec<usize>,
     names: Vec<String>,
@@ -193,46 +196,81 @@ fn numbered(names: &[String], prefix: &str) -> Vec<usize> {
     found
 }
 
+/// Locates errors in the header (line 1) of one file.
+struct HeaderErrors<'a> {
+    file: &'a Path,
+}
+
+impl HeaderErrors<'_> {
+    fn at(&self, column: &str, problem: DataProblem) -> DataError {
+        DataError {
+            file: self.file.to_path_buf(),
+            line: 1,
+            column: Some(column.to_string()),
+            problem,
+        }
+    }
+}
+
+/// The header's layout: required columns, momenta or velocities,
+/// derivatives (all or none), inputs, no stray numbered columns; and the
+/// masses that turn velocities into momenta.
 fn parse_layout(
     file: &Path,
     names: Vec<String>,
     opts: &LoadOptions,
-    with_inputs: bool,
 ) -> Result<(Layout, Option<Vec<f64>>), DataError> {
-    let err = |column: &str, problem| DataError {
-        file: file.to_path_buf(),
-        line: 1,
-        column: Some(column.to_string()),
-        problem,
-    };
+    let err = HeaderErrors { file };
     let find = |name: &str| {
         names
             .iter()
             .position(|n| n == name)
-            .ok_or_else(|| err(name, DataProblem::MissingColumn))
+            .ok_or_else(|| err.at(name, DataProblem::MissingColumn))
     };
     let traj = find("traj")?;
     let t = find("t")?;
     let q = numbered(&names, "q");
     if q.is_empty() {
-        return Err(err("q1", DataProblem::MissingColumn));
+        return Err(err.at("q1", DataProblem::MissingColumn));
     }
-    let n = q.len();
-    let p_cols = numbered(&names, "p");
-    let v_cols = numbered(&names, "v");
+    let (p, velocity) = momentum_columns(&err, &names, q.len())?;
+    let derivatives = derivative_columns(&err, &names, q.len(), velocity)?;
+    let u = input_columns(&err, &names)?;
+    let layout = Layout {
+        traj,
+        t,
+        q,
+        p,
+        derivatives,
+        u,
+        names,
+    };
+    refuse_stray_columns(&err, &layout, velocity)?;
+    let masses = if velocity {
+        Some(masses_for_velocities(&err, opts, layout.q.len())?)
+    } else {
+        None
+    };
+    Ok((layout, masses))
+}
+
+/// `p1..pn`, else `v1..vn` (true when velocities), matching the n q columns.
+fn momentum_columns(
+    err: &HeaderErrors,
+    names: &[String],
+    n: usize,
+) -> Result<(Vec<usize>, bool), DataError> {
+    let p_cols = numbered(names, "p");
+    let v_cols = numbered(names, "v");
     let (p, velocity) = match (p_cols.is_empty(), v_cols.is_empty()) {
         (false, _) => (p_cols, false),
         (true, false) => (v_cols, true),
-        (true, true) => return Err(err("p1", DataProblem::MissingColumn)),
+        (true, true) => return Err(err.at("p1", DataProblem::MissingColumn)),
     };
     let pv = if velocity { "v" } else { "p" };
     if p.len() != n {
-        let column = if p.len() < n {
-            format!("{pv}{}", p.len() + 1)
-        } else {
-            format!("{pv}{}", n + 1)
-        };
-        return Err(err(
+        let column = format!("{pv}{}", p.len().min(n) + 1);
+        return Err(err.at(
             &column,
             DataProblem::MismatchedDimensions(format!(
                 "{n} q columns but {} {pv} columns",
@@ -240,64 +278,84 @@ fn parse_layout(
             )),
         ));
     }
-    // Derivatives: all or nothing.
-    let dq = numbered(&names, "dq");
+    Ok((p, velocity))
+}
+
+/// `dq1..dqn` with `dp1..dpn` (or `dv1..dvn`): all of them or none.
+fn derivative_columns(
+    err: &HeaderErrors,
+    names: &[String],
+    n: usize,
+    velocity: bool,
+) -> Result<Option<DerivativeColumns>, DataError> {
+    let dq = numbered(names, "dq");
     let dpv_prefix = if velocity { "dv" } else { "dp" };
-    let dp = numbered(&names, dpv_prefix);
-    let derivatives = if dq.is_empty() && dp.is_empty() {
-        None
-    } else {
-        for (cols, prefix) in [(&dq, "dq"), (&dp, dpv_prefix)] {
-            if cols.len() != n {
-                let column = format!("{prefix}{}", cols.len().min(n) + 1);
-                let problem = if cols.len() < n {
-                    DataProblem::MissingColumn
-                } else {
-                    DataProblem::MismatchedDimensions(format!(
-                        "{n} q columns but {} {prefix} columns",
-                        cols.len()
-                    ))
-                };
-                return Err(err(&column, problem));
-            }
+    let dp = numbered(names, dpv_prefix);
+    if dq.is_empty() && dp.is_empty() {
+        return Ok(None);
+    }
+    for (cols, prefix) in [(&dq, "dq"), (&dp, dpv_prefix)] {
+        if cols.len() != n {
+            let column = format!("{prefix}{}", cols.len().min(n) + 1);
+            let problem = if cols.len() < n {
+                DataProblem::MissingColumn
+            } else {
+                DataProblem::MismatchedDimensions(format!(
+                    "{n} q columns but {} {prefix} columns",
+                    cols.len()
+                ))
+            };
+            return Err(err.at(&column, problem));
         }
-        Some((dq, dp))
-    };
-    // A numbered column outside the contiguous runs (e.g. q3 without q2) is
-    // almost certainly a mistake; refuse it rather than ignore it.
-    let u = if with_inputs {
-        numbered(&names, "u")
-    } else {
-        Vec::new()
-    };
-    if u.len() > visviva_runtime::format::MAX_INPUTS {
-        return Err(err(
-            &format!("u{}", visviva_runtime::format::MAX_INPUTS + 1),
+    }
+    Ok(Some((dq, dp)))
+}
+
+/// `u1..um`, at most as many as the runtime takes.
+fn input_columns(err: &HeaderErrors, names: &[String]) -> Result<Vec<usize>, DataError> {
+    let u = numbered(names, "u");
+    let max = visviva_runtime::format::MAX_INPUTS;
+    if u.len() > max {
+        return Err(err.at(
+            &format!("u{}", max + 1),
             DataProblem::MismatchedDimensions(format!(
-                "{} input columns; the runtime takes at most {}",
-                u.len(),
-                visviva_runtime::format::MAX_INPUTS
+                "{} input columns; the runtime takes at most {max}",
+                u.len()
             )),
         ));
     }
-    let used: Vec<usize> = q
+    Ok(u)
+}
+
+/// A numbered column outside the contiguous runs (e.g. q3 without q2) is
+/// almost certainly a mistake; refuse it rather than ignore it.
+fn refuse_stray_columns(
+    err: &HeaderErrors,
+    layout: &Layout,
+    velocity: bool,
+) -> Result<(), DataError> {
+    let n = layout.q.len();
+    let (pv, dpv) = if velocity { ("v", "dv") } else { ("p", "dp") };
+    let used: Vec<usize> = layout
+        .q
         .iter()
-        .chain(&p)
-        .chain(derivatives.iter().flat_map(|(a, b)| a.iter().chain(b)))
-        .chain(&u)
+        .chain(&layout.p)
+        .chain(
+            layout
+                .derivatives
+                .iter()
+                .flat_map(|(a, b)| a.iter().chain(b)),
+        )
+        .chain(&layout.u)
         .copied()
         .collect();
-    let input_prefix: &[&str] = if with_inputs { &["u"] } else { &[] };
-    for (i, name) in names.iter().enumerate() {
-        let stray = ["q", pv, "dq", dpv_prefix]
-            .iter()
-            .chain(input_prefix)
-            .any(|prefix| {
-                name.strip_prefix(prefix)
-                    .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
-            });
+    for (i, name) in layout.names.iter().enumerate() {
+        let stray = ["q", pv, "dq", dpv, "u"].iter().any(|prefix| {
+            name.strip_prefix(prefix)
+                .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
+        });
         if stray && !used.contains(&i) {
-            return Err(err(
+            return Err(err.at(
                 name,
                 DataProblem::MismatchedDimensions(format!(
                     "column does not fit the numbering 1..{n} of the {n} q columns"
@@ -305,42 +363,36 @@ fn parse_layout(
             ));
         }
     }
-    let masses = if velocity {
-        let masses = opts
-            .masses
-            .clone()
-            .ok_or_else(|| err("v1", DataProblem::MissingMasses))?;
-        if masses.len() != n {
-            return Err(err(
-                "v1",
-                DataProblem::BadMasses(format!(
-                    "{} masses given for {n} velocity columns",
-                    masses.len()
-                )),
-            ));
-        }
-        if let Some(m) = masses.iter().find(|m| !m.is_finite() || **m <= 0.0) {
-            return Err(err(
-                "v1",
-                DataProblem::BadMasses(format!("mass {m} is not a finite positive number")),
-            ));
-        }
-        Some(masses)
-    } else {
-        None
-    };
-    Ok((
-        Layout {
-            traj,
-            t,
-            q,
-            p,
-            derivatives,
-            u,
-            names,
-        },
-        masses,
-    ))
+    Ok(())
+}
+
+/// The masses that turn `n` velocity columns into momenta: given, n of
+/// them, finite and positive.
+fn masses_for_velocities(
+    err: &HeaderErrors,
+    opts: &LoadOptions,
+    n: usize,
+) -> Result<Vec<f64>, DataError> {
+    let masses = opts
+        .masses
+        .clone()
+        .ok_or_else(|| err.at("v1", DataProblem::MissingMasses))?;
+    if masses.len() != n {
+        return Err(err.at(
+            "v1",
+            DataProblem::BadMasses(format!(
+                "{} masses given for {n} velocity columns",
+                masses.len()
+            )),
+        ));
+    }
+    if let Some(m) = masses.iter().find(|m| !m.is_finite() || **m <= 0.0) {
+        return Err(err.at(
+            "v1",
+            DataProblem::BadMasses(format!("mass {m} is not a finite positive number")),
+        ));
+    }
+    Ok(masses)
 }
 
 /// Rows of one trajectory while reading.
@@ -354,25 +406,10 @@ struct Block {
     u: Vec<f64>,
 }
 
-/// Load and validate a CSV log (any `u*` input columns are ignored).
+/// Load and validate a CSV log: states, derivatives when given (estimated
+/// otherwise) and inputs `u1..um` when present (validated like every other
+/// column).
 pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
-    load(path, opts, false).map(|(ds, _)| ds)
-}
-
-/// Load and validate a CSV log with optional inputs `u1..um` (validated
-/// like every other column); `None` when the log has no `u1` column.
-pub fn load_csv_with_inputs(
-    path: &Path,
-    opts: &LoadOptions,
-) -> Result<(Dataset, Option<Inputs>), DataError> {
-    load(path, opts, true)
-}
-
-fn load(
-    path: &Path,
-    opts: &LoadOptions,
-    with_inputs: bool,
-) -> Result<(Dataset, Option<Inputs>), DataError> {
     let file_err = |line: u64, column: Option<String>, problem| DataError {
         file: path.to_path_buf(),
         line,
@@ -392,10 +429,38 @@ fn load(
         return Err(file_err(1, None, DataProblem::Empty));
     }
     let names: Vec<String> = headers.iter().map(str::to_string).collect();
-    let (layout, masses) = parse_layout(path, names, opts, with_inputs)?;
-    let m = layout.u.len();
-    let n = layout.q.len();
+    let (layout, masses) = parse_layout(path, names, opts)?;
+    let blocks = read_blocks(path, &mut reader, &layout, masses.as_deref())?;
+    let trajectories = blocks
+        .into_iter()
+        .map(|b| to_trajectory(path, b, &layout, opts))
+        .collect::<Result<Vec<_>, _>>()?;
+    Ok(Dataset {
+        dof: layout.q.len(),
+        inputs: layout.u.len(),
+        trajectories,
+        derivatives: if layout.derivatives.is_some() {
+            DerivativeSource::Given
+        } else {
+            DerivativeSource::Estimated
+        },
+    })
+}
 
+/// Read every record into contiguous per-trajectory blocks, checking each
+/// field and that time increases within a trajectory.
+fn read_blocks(
+    path: &Path,
+    reader: &mut csv::Reader<std::fs::File>,
+    layout: &Layout,
+    masses: Option<&[f64]>,
+) -> Result<Vec<Block>, DataError> {
+    let file_err = |line: u64, column: Option<String>, problem| DataError {
+        file: path.to_path_buf(),
+        line,
+        column,
+        problem,
+    };
     let mut blocks: Vec<Block> = Vec::new();
     let mut seen: HashMap<String, u64> = HashMap::new();
     let mut record = csv::StringRecord::new();
@@ -442,7 +507,9 @@ fn load(
                 u: Vec::new(),
             });
         }
-        let block = blocks.last_mut().expect("pushed above");
+        let Some(block) = blocks.last_mut() else {
+            break;
+        };
         let t = field(layout.t)?;
         if let Some(&previous) = block.t.last() {
             if t <= previous {
@@ -458,20 +525,19 @@ fn load(
         }
         block.t.push(t);
         block.lines.push(line);
+        let mass = |k: usize| masses.map_or(1.0, |m| m[k]);
         for &c in &layout.q {
             block.x.push(field(c)?);
         }
         for (k, &c) in layout.p.iter().enumerate() {
-            let scale = masses.as_ref().map_or(1.0, |m| m[k]);
-            block.x.push(scale * field(c)?);
+            block.x.push(mass(k) * field(c)?);
         }
         if let Some((dq, dp)) = &layout.derivatives {
             for &c in dq {
                 block.dx.push(field(c)?);
             }
             for (k, &c) in dp.iter().enumerate() {
-                let scale = masses.as_ref().map_or(1.0, |m| m[k]);
-                block.dx.push(scale * field(c)?);
+                block.dx.push(mass(k) * field(c)?);
             }
         }
         for &c in &layout.u {
@@ -481,64 +547,57 @@ fn load(
     if blocks.is_empty() {
         return Err(file_err(2, None, DataProblem::Empty));
     }
+    Ok(blocks)
+}
 
-    let needed = opts.filter.window();
-    let mut trajectories = Vec::with_capacity(blocks.len());
-    let mut inputs = Vec::with_capacity(blocks.len());
-    for block in blocks {
-        check_even_steps(path, &block, opts.step_tolerance)?;
-        let samples = block.t.len();
-        let x = Array2::from_shape_vec((samples, 2 * n), block.x).expect("row-major 2n per row");
-        if m > 0 {
-            inputs.push(Array2::from_shape_vec((samples, m), block.u).expect("m per row"));
+/// One block as a trajectory: even sampling checked, derivatives taken
+/// from the log or estimated by the Savitzky-Golay filter.
+fn to_trajectory(
+    path: &Path,
+    block: Block,
+    layout: &Layout,
+    opts: &LoadOptions,
+) -> Result<Trajectory, DataError> {
+    check_even_steps(path, &block, opts.step_tolerance)?;
+    let (n, m) = (layout.q.len(), layout.u.len());
+    let samples = block.t.len();
+    let x = Array2::from_shape_vec((samples, 2 * n), block.x).expect("row-major 2n per row");
+    let u = Array2::from_shape_vec((samples, m), block.u).expect("m per row");
+    let dx = if layout.derivatives.is_some() {
+        Array2::from_shape_vec((samples, 2 * n), block.dx).expect("row-major 2n per row")
+    } else {
+        let needed = opts.filter.window();
+        if samples < needed {
+            return Err(DataError {
+                file: path.to_path_buf(),
+                line: block.first_line,
+                column: Some("t".into()),
+                problem: DataProblem::TooShort {
+                    traj: block.id,
+                    samples,
+                    needed,
+                },
+            });
         }
-        let dx = if layout.derivatives.is_some() {
-            Array2::from_shape_vec((samples, 2 * n), block.dx).expect("row-major 2n per row")
-        } else {
-            if samples < needed {
-                return Err(file_err(
-                    block.first_line,
-                    Some("t".into()),
-                    DataProblem::TooShort {
-                        traj: block.id,
-                        samples,
-                        needed,
-                    },
-                ));
-            }
-            let dt = (block.t[samples - 1] - block.t[0]) / (samples - 1) as f64;
-            let mut dx = Array2::zeros((samples, 2 * n));
-            for c in 0..2 * n {
-                let column: Vec<f64> = x.column(c).to_vec();
-                let d = opts
-                    .filter
-                    .derivative(&column, dt)
-                    .expect("length checked above");
-                dx.column_mut(c).assign(&ndarray::Array1::from(d));
-            }
-            dx
-        };
-        trajectories.push(Trajectory {
-            id: block.id,
-            t: block.t,
-            x,
-            dx,
-        });
-    }
-    let ds = Dataset {
-        dof: n,
-        trajectories,
-        derivatives: if layout.derivatives.is_some() {
-            DerivativeSource::Given
-        } else {
-            DerivativeSource::Estimated
-        },
+        let dt = (block.t[samples - 1] - block.t[0]) / (samples - 1) as f64;
+        let mut dx = Array2::zeros((samples, 2 * n));
+        for c in 0..2 * n {
+            let column: Vec<f64> = x.column(c).to_vec();
+            let d = opts
+                .filter
+                .derivative(&column, dt)
+                .expect("length checked above");
+            dx.column_mut(c).assign(&ndarray::Array1::from(d));
+        }
+        dx
     };
-    let inputs = (m > 0).then_some(Inputs {
-        count: m,
-        per_trajectory: inputs,
-    });
-    Ok((ds, inputs))
+    Ok(Trajectory {
+        id: block.id,
+        t: block.t,
+        x,
+        dx,
+        u,
+    })
 }
 
 fn check_even_steps(path: &Path, block: &Block, tolerance: f64) -> Result<(), DataError> {
@@ -581,39 +640,24 @@ pub fn column_names(dof: usize, derivatives: bool) -> Vec<String> {
     names
 }
 
-/// Write `ds` as CSV (atomically), with momenta; derivative columns only if
-/// `derivatives`. Numbers use Rust's shortest round-trip formatting, so the
-/// output is deterministic and re-reads to the same values.
+/// Write `ds` as CSV (atomically), with momenta, derivative columns only if
+/// `derivatives`, and input columns `u1..um` after the others when the
+/// trajectories carry inputs. Numbers use Rust's shortest round-trip
+/// formatting, so the output is deterministic and re-reads to the same values.
 pub fn write_csv(path: &Path, ds: &Dataset, derivatives: bool) -> anyhow::Result<()> {
-    write_csv_with_inputs(path, ds, None, derivatives)
-}
-
-/// [`write_csv`] plus input columns `u1..um` after the others, if `inputs`.
-pub fn write_csv_with_inputs(
-    path: &Path,
-    ds: &Dataset,
-    inputs: Option<&Inputs>,
-    derivatives: bool,
-) -> anyhow::Result<()> {
-    if let Some(u) = inputs {
-        anyhow::ensure!(
-            u.per_trajectory.len() == ds.trajectories.len()
-                && u.per_trajectory
-                    .iter()
-                    .zip(&ds.trajectories)
-                    .all(|(a, t)| a.dim() == (t.t.len(), u.count)),
-            "inputs do not match the trajectories"
-        );
-    }
+    anyhow::ensure!(
+        ds.trajectories
+            .iter()
+            .all(|t| t.u.dim() == (t.t.len(), ds.inputs)),
+        "inputs do not match the trajectories"
+    );
     write_atomic_with(path, |w| {
         let mut writer = csv::Writer::from_writer(w);
         let mut header = column_names(ds.dof, derivatives);
-        if let Some(u) = inputs {
-            header.extend((1..=u.count).map(|k| format!("u{k}")));
-        }
+        header.extend((1..=ds.inputs).map(|k| format!("u{k}")));
         writer.write_record(header)?;
         let mut row: Vec<String> = Vec::new();
-        for (k, traj) in ds.trajectories.iter().enumerate() {
+        for traj in &ds.trajectories {
             for (i, t) in traj.t.iter().enumerate() {
                 row.clear();
                 row.push(traj.id.clone());
@@ -622,9 +666,7 @@ pub fn write_csv_with_inputs(
                 if derivatives {
                     row.extend(traj.dx.row(i).iter().map(|v| format!("{v}")));
                 }
-                if let Some(u) = inputs {
-                    row.extend(u.per_trajectory[k].row(i).iter().map(|v| format!("{v}")));
-                }
+                row.extend(traj.u.row(i).iter().map(|v| format!("{v}")));
                 writer.write_record(&row)?;
             }
         }
@@ -633,15 +675,14 @@ pub fn write_csv_with_inputs(
     })
 }
 
-/// Split whole trajectories into (training, validation), never single rows.
-/// About `val_fraction` (clamped to [0, 1]) of the trajectories, chosen by a
-/// seeded shuffle, go to validation; with two or more trajectories each side
-/// gets at least one. A single trajectory goes to training. Both sides keep
-/// the original trajectory order.
+/// Split whole trajectories (with their inputs) into (training,
+/// validation), never single rows. About `val_fraction` (clamped to [0, 1])
+/// of the trajectories, chosen by a seeded shuffle, go to validation; with
+/// two or more trajectories each side gets at least one. A single trajectory
+/// goes to training. Both sides keep the original trajectory order.
 pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Dataset, Dataset) {
     let is_val = validation_mask(ds.trajectories.len(), val_fraction, seed);
     let pick = |want: bool| Dataset {
-        dof: ds.dof,
         trajectories: ds
             .trajectories
             .iter()
@@ -649,26 +690,11 @@ pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Datas
             .filter(|(_, v)| **v == want)
             .map(|(t, _)| t.clone())
             .collect(),
+        dof: ds.dof,
+        inputs: ds.inputs,
         derivatives: ds.derivatives,
     };
     (pick(false), pick(true))
-}
-
-/// [`split_by_trajectory`] with the inputs split alike:
-/// ((training, its inputs), (validation, its inputs)).
-pub fn split_with_inputs(
-    ds: &Dataset,
-    inputs: &Inputs,
-    val_fraction: f64,
-    seed: u64,
-) -> ((Dataset, Inputs), (Dataset, Inputs)) {
-    let is_val = validation_mask(ds.trajectories.len(), val_fraction, seed);
-    let (train, val) = split_by_trajectory(ds, val_fraction, seed);
-    let pick = |want: bool| {
-        let idx: Vec<usize> = (0..is_val.len()).filter(|&i| is_val[i] == want).collect();
-        inputs.select(&idx)
-    };
-    ((train, pick(false)), (val, pick(true)))
 }
 
 /// Which of `count` trajectories go to validation (see

@@ -2,6 +2,7 @@
 //! export with its measured cost, host rollouts through the runtime.
 
 pub mod blob;
+pub mod budget;
 pub mod compare;
 pub mod export;
 pub mod fitted_blob;

@@ -125,7 +125,6 @@ pub fn loss_chart(h: &HistoryFile) -> Chart {
 /// `model` and `baseline` hold rolled-out states, one per logged sample.
 pub fn driven_charts(
     traj: &crate::data::dataset::Trajectory,
-    inputs: Option<&ndarray::Array2<f64>>,
     model: &[Vec<f32>],
     baseline: Option<&[Vec<f32>]>,
     keep: usize,
@@ -135,7 +134,8 @@ pub fn driven_charts(
         v.into_iter().step_by(stride).collect()
     };
     let mut out = Vec::new();
-    if let Some(u) = inputs {
+    if traj.u.ncols() > 0 {
+        let u = &traj.u;
         let s = (0..u.ncols())
             .map(|k| {
                 let pts = traj

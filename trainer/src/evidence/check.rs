@@ -495,30 +495,26 @@ fn driven_rel_rmse(states: &[Vec<f32>], traj: &Trajectory) -> f64 {
     (sum / d as f64).sqrt()
 }
 
-/// Logged inputs of trajectory `k` as f32 rows (empty without inputs).
-fn input_rows(inputs: Option<&crate::data::dataset::Inputs>, k: usize) -> Vec<Vec<f32>> {
-    match inputs {
-        Some(u) => u.per_trajectory[k]
-            .rows()
-            .into_iter()
-            .map(|r| r.iter().map(|v| *v as f32).collect())
-            .collect(),
-        None => Vec::new(),
+/// A trajectory's logged inputs as f32 rows (empty without inputs).
+fn input_rows(traj: &Trajectory) -> Vec<Vec<f32>> {
+    if traj.u.ncols() == 0 {
+        return Vec::new();
     }
+    traj.u
+        .rows()
+        .into_iter()
+        .map(|r| r.iter().map(|v| *v as f32).collect())
+        .collect()
 }
 
 /// The baseline's driven rollouts of the held-out trajectories: RK4 at the
 /// log's interval with logged input row k held over step k, scored as the
 /// model's in [`check_port`].
-pub fn driven_baseline(
-    baseline: &BaselineModel,
-    data: &Dataset,
-    inputs: Option<&crate::data::dataset::Inputs>,
-) -> Vec<DrivenRollout> {
+pub fn driven_baseline(baseline: &BaselineModel, data: &Dataset) -> Vec<DrivenRollout> {
     let mut out = Vec::new();
-    for (k, traj) in data.trajectories.iter().enumerate() {
+    for traj in &data.trajectories {
         let dt = trajectory_dt(traj) as f32;
-        let u = input_rows(inputs, k);
+        let u = input_rows(traj);
         let mut x: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
         let mut states = vec![x.clone()];
         let mut failure = None;
@@ -776,13 +772,12 @@ pub fn reference_modes(system: &dyn crate::reference::systems::PortSystem) -> Ve
 }
 
 /// Damping per mode at the model's rest state, and driven rollouts of the
-/// held-out trajectories with their logged inputs (`inputs` per
-/// trajectory; `None` for an undriven model).
+/// held-out trajectories with their logged inputs (none for an undriven
+/// model).
 pub fn check_port(
     model: &HostModel<'_>,
     blob: &crate::deploy::blob::BlobModel,
     data: &Dataset,
-    inputs: Option<&crate::data::dataset::Inputs>,
 ) -> Result<PortCheckReport> {
     let d = 2 * blob.dof;
     let scale: Vec<f64> = blob.scale.iter().map(|v| *v as f64).collect();
@@ -815,12 +810,12 @@ pub fn check_port(
     let a = field_jacobian(model, &x, &scale)?;
     let modes = modes_of(&a);
     let mut rollouts = Vec::new();
-    for (k, traj) in data.trajectories.iter().enumerate() {
+    for traj in &data.trajectories {
         let dt = trajectory_dt(traj);
         let stepped = model
             .with_integrator(integrator_for(model.integrator(), dt))
             .map_err(|e| anyhow!("{e}"))?;
-        let u = input_rows(inputs, k);
+        let u = input_rows(traj);
         let x0: Vec<f32> = traj.x.row(0).iter().map(|v| *v as f32).collect();
         let steps = traj.t.len() - 1;
         let out = crate::deploy::rollout::roll_driven(&stepped, &x0, steps, &u)?;

@@ -141,6 +141,17 @@ pub struct DrivenComparison {
     pub baseline_failure: Option<String>,
 }
 
+/// The evidence of `visviva run`, one kind per model kind.
+#[derive(Debug, Clone, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Evidence {
+    /// Model vs baseline on the validation trajectories, energy drift over a
+    /// long horizon (conservative models).
+    Check(CheckReport),
+    /// Damping per mode and driven response (damped or driven models).
+    Port(PortReport),
+}
+
 /// What `visviva run` found for a damped or driven model.
 #[derive(Debug, Clone, Serialize)]
 pub struct PortReport {
@@ -181,13 +192,10 @@ pub struct RunReport {
     pub fit: FitSummary,
     /// The baseline's fit.
     pub baseline_fit: Option<FitSummary>,
-    /// Model vs baseline on the validation trajectories (conservative
-    /// models).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub check: Option<CheckReport>,
-    /// Damping and driven response (damped or driven models).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub port: Option<PortReport>,
+    /// The evidence: under `check` for a conservative model, under `port`
+    /// for a damped or driven one.
+    #[serde(flatten)]
+    pub evidence: Evidence,
     /// Device blobs.
     pub devices: Vec<DeviceBlob>,
     /// The budget judged against.
@@ -271,6 +279,20 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         json: &json,
         out: String::new(),
     };
+    header_section(&mut h, report);
+    data_section(&mut h, report);
+    fit_section(&mut h, report);
+    match &report.evidence {
+        Evidence::Check(check) => conservative_section(&mut h, check, charts),
+        Evidence::Port(port) => port_section(&mut h, port, charts),
+    }
+    device_section(&mut h, report);
+    footer_section(&mut h, report);
+    h.out
+}
+
+/// Title, caution and the one-line verdict.
+fn header_section(h: &mut Html<'_>, report: &RunReport) {
     h.p("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">");
     h.p(&format!(
         "<title>Visviva report: {}</title><style>{STYLE}</style></head><body>",
@@ -293,8 +315,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         "<p>Model: {}. Device budget: {verdict} (details in <a href=\"#device\">Device blobs</a>).</p>",
         h.num("architecture")
     ));
+}
 
-    // Data.
+/// What the logs hold, per coordinate.
+fn data_section(h: &mut Html<'_>, report: &RunReport) {
     h.p("<h2>Data</h2>");
     let rows = [
         ("training log", "data/train_file"),
@@ -329,8 +353,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         h.p(&row);
     }
     h.p("</table><p class=\"note\">Noise is estimated from second differences of each coordinate (for white noise of standard deviation s, the second difference has variance 6 s<sup>2</sup>; smooth motion adds little when sampled finely).</p>");
+}
 
-    // Fit.
+/// The energy model's and the baseline's fits side by side.
+fn fit_section(h: &mut Html<'_>, report: &RunReport) {
     h.p("<h2>Fit</h2><table><tr><th></th><th>energy model</th><th>baseline</th></tr>");
     for (k, f) in [
         ("parameters", "parameters"),
@@ -351,15 +377,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         h.p(&format!("<tr><td>{k}</td><td>{a}</td><td>{b}</td></tr>"));
     }
     h.p("</table>");
+}
 
-    if report.check.is_some() {
-        conservative_section(&mut h, report, charts);
-    }
-    if let Some(port) = &report.port {
-        port_section(&mut h, port, charts);
-    }
-
-    // Devices.
+/// Device blobs: size, cost, budget and the price of quantization.
+fn device_section(h: &mut Html<'_>, report: &RunReport) {
     h.p("<h2 id=\"device\">Device blobs</h2><table><tr><th>blob</th><th>weights</th><th>integrator</th><th>dt (s)</th><th>bytes</th><th>bytes/parameter</th><th>runtime RAM (bytes)</th><th>MAC/step</th><th>emulator instructions/step</th><th>est. step time (s)</th><th>budget</th></tr>");
     for i in 0..report.devices.len() {
         let d = |f: &str| h.num(&format!("devices/{i}/{f}"));
@@ -414,6 +435,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
             ));
         }
     }
+}
+
+/// The caution again and the tool version.
+fn footer_section(h: &mut Html<'_>, report: &RunReport) {
     h.p(&format!(
         "<p class=\"caution\">{}</p>",
         esc(&report.caution)
@@ -422,15 +447,11 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         "<p class=\"note\">Visviva {}.</p></body></html>",
         h.num("visviva_version")
     ));
-    h.out
 }
 
 /// The conservative model's check: drift, state and vector-field error
 /// against the baseline.
-fn conservative_section(h: &mut Html<'_>, report: &RunReport, charts: &[(String, String)]) {
-    let Some(check) = &report.check else {
-        return;
-    };
+fn conservative_section(h: &mut Html<'_>, check: &CheckReport, charts: &[(String, String)]) {
     // Check.
     let energy = if check.system.is_some() {
         "true-energy drift"

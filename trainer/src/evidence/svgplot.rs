@@ -86,44 +86,43 @@ fn esc(s: &str) -> String {
         .replace('>', "&gt;")
 }
 
+/// The data ranges of a chart and their mapping to pixels.
+struct Frame {
+    x0: f64,
+    x1: f64,
+    y0: f64,
+    y1: f64,
+    log_y: bool,
+}
+
+impl Frame {
+    /// The plotted value of y (its log10 on a log axis).
+    fn ty(&self, y: f64) -> f64 {
+        if self.log_y {
+            y.log10()
+        } else {
+            y
+        }
+    }
+
+    /// Whether a point can be drawn on this frame.
+    fn drawable(&self, x: f64, y: f64) -> bool {
+        x.is_finite() && y.is_finite() && (!self.log_y || y > 0.0)
+    }
+
+    fn px(&self, x: f64) -> f64 {
+        L + (x - self.x0) / (self.x1 - self.x0) * (W - L - R)
+    }
+
+    fn py(&self, y: f64) -> f64 {
+        H - B - (y - self.y0) / (self.y1 - self.y0) * (H - T - B)
+    }
+}
+
 impl Chart {
     /// Render as a standalone `<svg>` element.
     pub fn to_svg(&self) -> String {
-        let ty = |y: f64| if self.log_y { y.log10() } else { y };
-        let pts: Vec<(f64, f64)> = self
-            .series
-            .iter()
-            .flat_map(|s| s.points.iter().copied())
-            .filter(|(x, y)| x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0))
-            .map(|(x, y)| (x, ty(y)))
-            .collect();
-        let (mut x0, mut x1, mut y0, mut y1) = pts.iter().fold(
-            (
-                f64::INFINITY,
-                f64::NEG_INFINITY,
-                f64::INFINITY,
-                f64::NEG_INFINITY,
-            ),
-            |(a, b, c, d), (x, y)| (a.min(*x), b.max(*x), c.min(*y), d.max(*y)),
-        );
-        if !x0.is_finite() {
-            (x0, x1, y0, y1) = (0.0, 1.0, 0.0, 1.0);
-        }
-        if x1 - x0 <= 0.0 {
-            x1 = x0 + 1.0;
-        }
-        if y1 - y0 <= 0.0 {
-            let pad = if y0 == 0.0 { 1.0 } else { y0.abs() * 0.1 };
-            y0 -= pad;
-            y1 += pad;
-        }
-        let pad = 0.05 * (y1 - y0);
-        if !self.log_y {
-            y0 -= pad;
-            y1 += pad;
-        }
-        let px = |x: f64| L + (x - x0) / (x1 - x0) * (W - L - R);
-        let py = |y: f64| H - B - (y - y0) / (y1 - y0) * (H - T - B);
+        let f = self.frame();
         let mut s = String::new();
         let _ = write!(
             s,
@@ -136,17 +135,60 @@ impl Chart {
             W / 2.0,
             esc(&self.title)
         );
-        // Axes box and ticks.
+        self.write_axes(&mut s, &f);
+        self.write_series(&mut s, &f);
+        self.write_legend(&mut s);
+        s.push_str("</svg>");
+        s
+    }
+
+    /// The ranges of every drawable point, padded; a unit range when empty.
+    fn frame(&self) -> Frame {
+        let mut f = Frame {
+            x0: f64::INFINITY,
+            x1: f64::NEG_INFINITY,
+            y0: f64::INFINITY,
+            y1: f64::NEG_INFINITY,
+            log_y: self.log_y,
+        };
+        for (x, y) in self.series.iter().flat_map(|s| s.points.iter().copied()) {
+            if f.drawable(x, y) {
+                let y = f.ty(y);
+                (f.x0, f.x1) = (f.x0.min(x), f.x1.max(x));
+                (f.y0, f.y1) = (f.y0.min(y), f.y1.max(y));
+            }
+        }
+        if !f.x0.is_finite() {
+            (f.x0, f.x1, f.y0, f.y1) = (0.0, 1.0, 0.0, 1.0);
+        }
+        if f.x1 - f.x0 <= 0.0 {
+            f.x1 = f.x0 + 1.0;
+        }
+        if f.y1 - f.y0 <= 0.0 {
+            let pad = if f.y0 == 0.0 { 1.0 } else { f.y0.abs() * 0.1 };
+            f.y0 -= pad;
+            f.y1 += pad;
+        }
+        let pad = 0.05 * (f.y1 - f.y0);
+        if !self.log_y {
+            f.y0 -= pad;
+            f.y1 += pad;
+        }
+        f
+    }
+
+    /// The axes box, grid lines with tick labels, and the axis titles.
+    fn write_axes(&self, s: &mut String, f: &Frame) {
         let _ = write!(
             s,
             r##"<rect x="{L}" y="{T}" width="{}" height="{}" fill="none" stroke="#444"/>"##,
             W - L - R,
             H - T - B
         );
-        let xs = nice_step(x1 - x0, 6);
-        let mut v = (x0 / xs).ceil() * xs;
-        while v <= x1 + 1e-9 * xs {
-            let x = px(v);
+        let xs = nice_step(f.x1 - f.x0, 6);
+        let mut v = (f.x0 / xs).ceil() * xs;
+        while v <= f.x1 + 1e-9 * xs {
+            let x = f.px(v);
             let _ = write!(
                 s,
                 r##"<line x1="{x:.1}" y1="{}" x2="{x:.1}" y2="{}" stroke="#ddd"/>"##,
@@ -162,13 +204,13 @@ impl Chart {
             v += xs;
         }
         let ys = if self.log_y {
-            1.0f64.max(nice_step(y1 - y0, 5).round())
+            1.0f64.max(nice_step(f.y1 - f.y0, 5).round())
         } else {
-            nice_step(y1 - y0, 5)
+            nice_step(f.y1 - f.y0, 5)
         };
-        let mut v = (y0 / ys).ceil() * ys;
-        while v <= y1 + 1e-9 * ys {
-            let y = py(v);
+        let mut v = (f.y0 / ys).ceil() * ys;
+        while v <= f.y1 + 1e-9 * ys {
+            let y = f.py(v);
             let label = if self.log_y {
                 format!("1e{}", v.round() as i64)
             } else {
@@ -201,21 +243,19 @@ impl Chart {
             (T + H - B) / 2.0,
             esc(&self.y_label)
         );
-        // Series.
+    }
+
+    /// Each series as dots or as a path broken at undrawable points.
+    fn write_series(&self, s: &mut String, f: &Frame) {
         for ser in &self.series {
-            let dash = if ser.dashed {
-                r#" stroke-dasharray="6 4""#
-            } else {
-                ""
-            };
             if ser.dots {
-                for (x, y) in &ser.points {
-                    if x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0) {
+                for &(x, y) in &ser.points {
+                    if f.drawable(x, y) {
                         let _ = write!(
                             s,
                             r#"<circle cx="{:.1}" cy="{:.1}" r="1.6" fill="{}"/>"#,
-                            px(*x),
-                            py(ty(*y)),
+                            f.px(x),
+                            f.py(f.ty(y)),
                             ser.color
                         );
                     }
@@ -224,15 +264,10 @@ impl Chart {
             }
             let mut d = String::new();
             let mut pen = false;
-            for (x, y) in &ser.points {
-                if x.is_finite() && y.is_finite() && (!self.log_y || *y > 0.0) {
-                    let _ = write!(
-                        d,
-                        "{}{:.1},{:.1} ",
-                        if pen { "L" } else { "M" },
-                        px(*x),
-                        py(ty(*y))
-                    );
+            for &(x, y) in &ser.points {
+                if f.drawable(x, y) {
+                    let cmd = if pen { "L" } else { "M" };
+                    let _ = write!(d, "{cmd}{:.1},{:.1} ", f.px(x), f.py(f.ty(y)));
                     pen = true;
                 } else {
                     pen = false;
@@ -240,24 +275,24 @@ impl Chart {
             }
             let _ = write!(
                 s,
-                r#"<path d="{d}" fill="none" stroke="{}" stroke-width="1.5"{dash}/>"#,
-                ser.color
+                r#"<path d="{d}" fill="none" stroke="{}" stroke-width="1.5"{}/>"#,
+                ser.color,
+                dash_of(ser)
             );
         }
-        // Legend.
+    }
+
+    /// One legend row per series.
+    fn write_legend(&self, s: &mut String) {
         for (k, ser) in self.series.iter().enumerate() {
             let y = T + 14.0 + 16.0 * k as f64;
             let x = L + 10.0;
-            let dash = if ser.dashed {
-                r#" stroke-dasharray="6 4""#
-            } else {
-                ""
-            };
             let _ = write!(
                 s,
-                r#"<line x1="{x}" y1="{y}" x2="{}" y2="{y}" stroke="{}" stroke-width="2"{dash}/>"#,
+                r#"<line x1="{x}" y1="{y}" x2="{}" y2="{y}" stroke="{}" stroke-width="2"{}/>"#,
                 x + 22.0,
-                ser.color
+                ser.color,
+                dash_of(ser)
             );
             let _ = write!(
                 s,
@@ -267,8 +302,15 @@ impl Chart {
                 esc(&ser.label)
             );
         }
-        s.push_str("</svg>");
-        s
+    }
+}
+
+/// The stroke pattern of a dashed series.
+fn dash_of(ser: &Series) -> &'static str {
+    if ser.dashed {
+        r#" stroke-dasharray="6 4""#
+    } else {
+        ""
     }
 }
 

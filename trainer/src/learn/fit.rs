@@ -16,7 +16,7 @@ use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
-use crate::data::dataset::{Dataset, Inputs};
+use crate::data::dataset::Dataset;
 use crate::learn::hnn::{
     BaselineModel, BaselineObjective, EnergyArch, EnergyModel, HnnObjective, KineticArch,
     Normalization, Objective, PortArch, PortModel, PortObjective,
@@ -197,21 +197,66 @@ pub struct Fitted<M> {
 }
 
 /// Fit an energy model of structure `arch` to `train`, stopping early on
-/// `val` (or on the training loss when `val` is `None`).
-pub fn fit_energy(
+/// `val` (or on the training loss when `val` is `None`): the one fit entry.
+/// A conservative model is the special case without port terms: when
+/// `terms` asks for no dissipation and the data carry no inputs, the model
+/// is H alone; otherwise it is the damped and/or driven model of
+/// [`PortObjective`], with `terms.inputs` taken from the data.
+pub fn fit_model(
     train: &Dataset,
     val: Option<&Dataset>,
     arch: &EnergyArch,
+    terms: &PortArch,
     settings: &FitSettings,
 ) -> Result<Fitted<EnergyModel>> {
-    let quadratic = matches!(
+    if let Some(v) = val {
+        check_matching(train, v)?;
+    }
+    if terms.dissipation || train.driven() {
+        fit_port(train, val, arch, terms, settings)
+    } else {
+        fit_conservative(train, val, arch, settings)
+    }
+}
+
+/// Validation data must have the training data's degrees of freedom and
+/// inputs.
+fn check_matching(train: &Dataset, val: &Dataset) -> Result<()> {
+    if val.dof != train.dof {
+        bail!(
+            "validation data has {} degrees of freedom, training data {}",
+            val.dof,
+            train.dof
+        );
+    }
+    if val.inputs != train.inputs {
+        bail!(
+            "the training data has {} input columns; the validation data has {}",
+            train.inputs,
+            val.inputs
+        );
+    }
+    Ok(())
+}
+
+fn quadratic_kinetic(arch: &EnergyArch) -> bool {
+    matches!(
         arch,
         EnergyArch::Separable {
             kinetic: KineticArch::Quadratic,
             ..
         }
-    );
-    let norm = Normalization::from_data(train, quadratic)?;
+    )
+}
+
+/// H alone (no R, no G).
+fn fit_conservative(
+    train: &Dataset,
+    val: Option<&Dataset>,
+    arch: &EnergyArch,
+    settings: &FitSettings,
+) -> Result<Fitted<EnergyModel>> {
+    let norm = Normalization::from_data(train, quadratic_kinetic(arch))?;
     let obj = HnnObjective::new(train.dof, arch.clone(), &norm);
     let init = arch.init(train.dof, settings.seed);
     let (params, report) = run(&obj, init, &norm, train, val, settings)?;
@@ -229,16 +274,13 @@ pub fn fit_energy(
 
 /// RMS of each input over all trajectories (1 where it is zero); empty
 /// without inputs.
-pub fn input_scales(inputs: Option<&Inputs>) -> Vec<f32> {
-    let Some(u) = inputs else {
-        return Vec::new();
-    };
-    (0..u.count)
+pub fn input_scales(ds: &Dataset) -> Vec<f32> {
+    (0..ds.inputs)
         .map(|k| {
-            let (sq, count) = u.per_trajectory.iter().fold((0.0f64, 0usize), |(s, c), a| {
+            let (sq, count) = ds.trajectories.iter().fold((0.0f64, 0usize), |(s, c), t| {
                 (
-                    s + a.column(k).iter().map(|v| v * v).sum::<f64>(),
-                    c + a.nrows(),
+                    s + t.u.column(k).iter().map(|v| v * v).sum::<f64>(),
+                    c + t.u.nrows(),
                 )
             });
             let rms = (sq / count.max(1) as f64).sqrt();
@@ -258,7 +300,6 @@ pub fn input_scales(inputs: Option<&Inputs>) -> Vec<f32> {
 pub fn stack_inputs(
     norm: &Normalization,
     ds: &Dataset,
-    u: Option<&Inputs>,
     input_scale: &[f32],
 ) -> Result<(Array2<f32>, Array2<f32>)> {
     let n = ds.dof;
@@ -267,14 +308,14 @@ pub fn stack_inputs(
     if m == 0 {
         return Ok((z, t));
     }
-    let Some(u) = u.filter(|u| u.count == m) else {
+    if ds.inputs != m {
         bail!("the training data has {m} input columns; the validation data must too");
-    };
+    }
     let mut zu = Array2::zeros((z.nrows(), 2 * n + m));
     zu.slice_mut(s![.., ..2 * n]).assign(&z);
     let mut r = 0;
-    for a in &u.per_trajectory {
-        for row in a.rows() {
+    for traj in &ds.trajectories {
+        for row in traj.u.rows() {
             if r >= z.nrows() {
                 bail!("more input rows than state rows ({})", z.nrows());
             }
@@ -293,46 +334,26 @@ pub fn stack_inputs(
     Ok((zu, t))
 }
 
-/// Fit a damped and/or driven model (see [`PortObjective`]): R = L L^T on
-/// the momentum block if `terms.dissipation`, G if `inputs` (one input array
-/// per training trajectory), each constant or a network of q as `terms`
-/// says; `terms.inputs` is taken from the data. Validation inputs must be
-/// given when the training data has inputs.
-pub fn fit_port(
+/// A damped and/or driven model (see [`PortObjective`]): R = L L^T on the
+/// momentum block if `terms.dissipation`, G if the data carry inputs, each
+/// constant or a network of q as `terms` says.
+fn fit_port(
     train: &Dataset,
-    inputs: Option<&Inputs>,
-    val: Option<(&Dataset, Option<&Inputs>)>,
+    val: Option<&Dataset>,
     arch: &EnergyArch,
     terms: &PortArch,
     settings: &FitSettings,
 ) -> Result<Fitted<EnergyModel>> {
-    let quadratic = matches!(
-        arch,
-        EnergyArch::Separable {
-            kinetic: KineticArch::Quadratic,
-            ..
-        }
-    );
     let n = train.dof;
-    let norm = Normalization::from_data(train, quadratic)?;
-    let m = inputs.map_or(0, |u| u.count);
-    let input_scale = input_scales(inputs);
-    let with_inputs = |ds: &Dataset, u: Option<&Inputs>| -> Result<(Array2<f32>, Array2<f32>)> {
-        if ds.dof != n {
-            bail!(
-                "validation data has {} degrees of freedom, training data {n}",
-                ds.dof
-            );
-        }
-        stack_inputs(&norm, ds, u, &input_scale)
-    };
-    let (z, t) = with_inputs(train, inputs)?;
+    let norm = Normalization::from_data(train, quadratic_kinetic(arch))?;
+    let input_scale = input_scales(train);
+    let (z, t) = stack_inputs(&norm, train, &input_scale)?;
     let validation = match val {
-        Some((v, u)) => Some(with_inputs(v, u)?),
+        Some(v) => Some(stack_inputs(&norm, v, &input_scale)?),
         None => None,
     };
     let port = PortArch {
-        inputs: m,
+        inputs: train.inputs,
         ..terms.clone()
     };
     let obj = PortObjective::new(n, arch.clone(), port.clone(), &norm);
@@ -357,7 +378,9 @@ pub fn fit_port(
     })
 }
 
-/// Fit the plain vector-field baseline (same hidden sizes, 2n outputs).
+/// Fit the plain vector-field baseline (same hidden sizes, 2n outputs). For
+/// data with inputs u1..um the network takes the normalized state and the
+/// normalized inputs u / input_scale (RMS over the training data).
 pub fn fit_baseline(
     train: &Dataset,
     val: Option<&Dataset>,
@@ -365,50 +388,21 @@ pub fn fit_baseline(
     activation: Activation,
     settings: &FitSettings,
 ) -> Result<Fitted<BaselineModel>> {
-    fit_baseline_driven(
-        train,
-        None,
-        val.map(|v| (v, None)),
-        hidden,
-        activation,
-        settings,
-    )
-}
-
-/// [`fit_baseline`] for data with inputs u1..um (one array per training
-/// trajectory): the network takes the normalized state and the normalized
-/// inputs u / input_scale (RMS over the training data) and gives dx/dt.
-/// Without inputs exactly [`fit_baseline`]. Validation inputs must be given
-/// when the training data has inputs.
-pub fn fit_baseline_driven(
-    train: &Dataset,
-    inputs: Option<&Inputs>,
-    val: Option<(&Dataset, Option<&Inputs>)>,
-    hidden: &[usize],
-    activation: Activation,
-    settings: &FitSettings,
-) -> Result<Fitted<BaselineModel>> {
+    if let Some(v) = val {
+        check_matching(train, v)?;
+    }
     let norm = Normalization::from_data(train, false)?;
     let d = 2 * train.dof;
-    let input_scale = input_scales(inputs);
+    let input_scale = input_scales(train);
     let shape = MlpShape::new(d + input_scale.len(), hidden, d, activation);
     let obj = BaselineObjective {
         shape: shape.clone(),
     };
     let mut init = Vec::new();
     shape.init(&mut ChaCha8Rng::seed_from_u64(settings.seed), &mut init);
-    if let Some((v, _)) = val {
-        if v.dof != train.dof {
-            bail!(
-                "validation data has {} degrees of freedom, training data {}",
-                v.dof,
-                train.dof
-            );
-        }
-    }
-    let (z, t) = stack_inputs(&norm, train, inputs, &input_scale)?;
+    let (z, t) = stack_inputs(&norm, train, &input_scale)?;
     let validation = match val {
-        Some((v, u)) => Some(stack_inputs(&norm, v, u, &input_scale)?),
+        Some(v) => Some(stack_inputs(&norm, v, &input_scale)?),
         None => None,
     };
     let (params, report) = run_arrays(&obj, init, z, t, validation, settings)?;
@@ -568,6 +562,60 @@ fn run<O: Objective>(
     run_arrays(obj, params, z, t, validation, s)
 }
 
+/// The settings a fit cannot start without.
+fn check_settings(s: &FitSettings) -> Result<()> {
+    if s.batch == 0 {
+        bail!("batch size must be at least 1");
+    }
+    if !(s.lr.is_finite() && s.lr > 0.0) {
+        bail!("learning rate must be positive, got {}", s.lr);
+    }
+    Ok(())
+}
+
+/// Buffers reused by every optimizer step.
+struct BatchBuffers<W> {
+    lanes: Lanes<W>,
+    grad: Vec<f32>,
+    zb: Array2<f32>,
+    tb: Array2<f32>,
+}
+
+/// The mean loss and the clipped mean gradient (left in `buf.grad`) of
+/// the rows `idx` of `data` = (inputs, targets); returns (loss, gradient
+/// norm before clipping).
+fn minibatch_gradient<O: Objective>(
+    obj: &O,
+    params: &[f32],
+    idx: &[usize],
+    data: (&Array2<f32>, &Array2<f32>),
+    buf: &mut BatchBuffers<O::Work>,
+    clip: f32,
+) -> (f64, f32) {
+    let (z, t) = data;
+    let b = idx.len();
+    if buf.zb.nrows() != b {
+        buf.zb = Array2::zeros((b, z.ncols()));
+        buf.tb = Array2::zeros((b, t.ncols()));
+    }
+    for (r, &i) in idx.iter().enumerate() {
+        buf.zb.row_mut(r).assign(&z.row(i));
+        buf.tb.row_mut(r).assign(&t.row(i));
+    }
+    let sum = loss_sum_parallel(
+        obj,
+        params,
+        buf.zb.view(),
+        buf.tb.view(),
+        &mut buf.lanes,
+        Some(&mut buf.grad),
+    );
+    let inv = 1.0 / b as f32;
+    buf.grad.iter_mut().for_each(|g| *g *= inv);
+    let norm = crate::learn::optim::clip_global_norm(&mut buf.grad, clip);
+    (sum / b as f64, norm)
+}
+
 /// [`run`] on normalized arrays (rows of inputs `z` and targets `t`).
 fn run_arrays<O: Objective>(
     obj: &O,
@@ -577,13 +625,7 @@ fn run_arrays<O: Objective>(
     validation: Option<(Array2<f32>, Array2<f32>)>,
     s: &FitSettings,
 ) -> Result<(Vec<f32>, TrainReport)> {
-    if s.batch == 0 {
-        bail!("batch size must be at least 1");
-    }
-    if !(s.lr.is_finite() && s.lr > 0.0) {
-        bail!("learning rate must be positive, got {}", s.lr);
-    }
-    let threads = s.threads.max(1);
+    check_settings(s)?;
     let rows = z.nrows();
     let batch = s.batch.min(rows);
     let per_epoch = rows.div_ceil(batch);
@@ -597,10 +639,12 @@ fn run_arrays<O: Objective>(
     };
     let np = obj.param_count();
     let mut adam = crate::learn::optim::Adam::new(np);
-    let mut lanes = Lanes::<O::Work>::new(threads, np);
-    let mut grad = vec![0.0f32; np];
-    let mut zb = Array2::<f32>::zeros((batch, z.ncols()));
-    let mut tb = Array2::<f32>::zeros((batch, t.ncols()));
+    let mut buf = BatchBuffers::<O::Work> {
+        lanes: Lanes::new(s.threads.max(1), np),
+        grad: vec![0.0f32; np],
+        zb: Array2::zeros((batch, z.ncols())),
+        tb: Array2::zeros((batch, t.ncols())),
+    };
     let mut order: Vec<usize> = (0..rows).collect();
     // A stream apart from the initialization's (which uses `seed` itself).
     let mut rng = ChaCha8Rng::seed_from_u64(s.seed ^ 0x9e37_79b9_7f4a_7c15);
@@ -628,34 +672,14 @@ fn run_arrays<O: Objective>(
                 stop = StopReason::Interrupted;
                 break 'epochs;
             }
-            let b = idx.len();
-            if zb.nrows() != b {
-                zb = Array2::zeros((b, z.ncols()));
-                tb = Array2::zeros((b, t.ncols()));
-            }
-            for (r, &i) in idx.iter().enumerate() {
-                zb.row_mut(r).assign(&z.row(i));
-                tb.row_mut(r).assign(&t.row(i));
-            }
-            let sum = loss_sum_parallel(
-                obj,
-                &params,
-                zb.view(),
-                tb.view(),
-                &mut lanes,
-                Some(&mut grad),
-            );
-            let inv = 1.0 / b as f32;
-            grad.iter_mut().for_each(|g| *g *= inv);
-            let loss = sum / b as f64;
-            let norm = crate::learn::optim::clip_global_norm(&mut grad, s.clip);
+            let (loss, norm) = minibatch_gradient(obj, &params, idx, (&z, &t), &mut buf, s.clip);
             if !loss.is_finite() || !norm.is_finite() {
                 stop = StopReason::NonFinite { step };
                 params.clone_from(&last_good);
                 break 'epochs;
             }
             last_good.clone_from(&params);
-            adam.step(&mut params, &grad, schedule.rate(step));
+            adam.step(&mut params, &buf.grad, schedule.rate(step));
             epoch_loss += loss;
             epoch_batches += 1;
             step += 1;
@@ -666,7 +690,7 @@ fn run_arrays<O: Objective>(
         }
         let train_loss = epoch_loss / epoch_batches as f64;
         let val_loss = match &validation {
-            Some((zv, tv)) => mean_loss(obj, &params, zv, tv, batch.max(256), &mut lanes),
+            Some((zv, tv)) => mean_loss(obj, &params, zv, tv, batch.max(256), &mut buf.lanes),
             None => train_loss,
         };
         history.train.push(train_loss);

@@ -6,3 +6,5 @@ pub mod hnn;
 pub mod net;
 pub mod optim;
 pub mod port;
+pub mod stage;
+pub mod structure;

@@ -10,6 +10,8 @@ use serde::{Deserialize, Serialize};
 
 use crate::deploy::blob::WeightKind;
 use crate::deploy::integrator::MethodName;
+use crate::learn::structure::energy_activation;
+pub use crate::learn::structure::{ActivationName, Arch, KineticKind};
 
 /// The whole project file.
 #[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq)]
@@ -61,38 +63,6 @@ impl Default for DataSection {
             step_tolerance: 0.01,
         }
     }
-}
-
-/// Energy structure.
-#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
-#[serde(rename_all = "lowercase")]
-pub enum Arch {
-    /// H = T(p) + V(q).
-    Separable,
-    /// H(q, p).
-    General,
-}
-
-/// Kinetic term of a separable model.
-#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
-#[serde(rename_all = "lowercase")]
-pub enum KineticKind {
-    /// 1/2 p^T M^-1 p with a learned constant M^-1.
-    Quadratic,
-    /// A network T(p).
-    Network,
-}
-
-/// Hidden activation.
-#[derive(Debug, Clone, Copy, Deserialize, Serialize, PartialEq, Eq)]
-#[serde(rename_all = "lowercase")]
-pub enum ActivationName {
-    /// tanh (default).
-    Tanh,
-    /// softplus.
-    Softplus,
-    /// Refused, with the reason.
-    Relu,
 }
 
 /// `[model]`
@@ -297,12 +267,7 @@ impl Project {
         if !(0.0..1.0).contains(&d.val_fraction) {
             anyhow::bail!("[data] val_fraction must be in [0, 1)");
         }
-        if self.model.activation == ActivationName::Relu {
-            anyhow::bail!(
-                "[model] activation = \"relu\" is refused: ReLU's derivative is piecewise constant, so the \
-                 learned vector field would be discontinuous; use \"tanh\" or \"softplus\""
-            );
-        }
+        energy_activation(self.model.activation, "[model] activation")?;
         let mut names = std::collections::HashSet::new();
         for e in &self.exports {
             if e.name.is_empty() || e.name.contains(['/', '\\', '.']) {

@@ -1,4 +1,6 @@
 //! A rig described once: the project file and the pipeline of stages that
 //! `visviva run` and the single-stage commands share.
 
+pub mod cache;
 pub mod file;
+pub mod pipeline;

@@ -14,7 +14,7 @@
 //! the input u(t) evaluated inside the right-hand side at each stage time,
 //! so smooth (multisine) inputs are integrated to the same accuracy.
 
-use crate::data::dataset::{Dataset, DerivativeSource, Inputs, Trajectory};
+use crate::data::dataset::{Dataset, DerivativeSource, Trajectory};
 use crate::reference::systems::{port_field, PortSystem, ReferenceSystem};
 use ndarray::Array2;
 use rand::SeedableRng;
@@ -248,10 +248,12 @@ pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::
             t: times.clone(),
             x,
             dx,
+            u: Array2::zeros((times.len(), 0)),
         });
     }
     Ok(Dataset {
         dof: n,
+        inputs: 0,
         trajectories,
         derivatives: DerivativeSource::Given,
     })
@@ -259,20 +261,16 @@ pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::
 
 /// Generate `spec.trajectories` clean trajectories of a damped or driven
 /// system with exact derivatives f = (J - R) dH/dx + G u(t) and the inputs
-/// u(t) at every sample (`None` for a system without inputs). Each
+/// u(t) at every sample (no input columns for a system without inputs). Each
 /// trajectory draws its initial state, then its excitation, from the seeded
 /// stream.
-pub fn simulate_port(
-    system: &dyn PortSystem,
-    spec: &SimulationSpec,
-) -> anyhow::Result<(Dataset, Option<Inputs>)> {
+pub fn simulate_port(system: &dyn PortSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
     spec.validate()?;
     let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
     let times = spec.sample_times();
     let n = system.dof();
     let m = system.inputs();
     let mut trajectories = Vec::with_capacity(spec.trajectories);
-    let mut inputs = Vec::with_capacity(spec.trajectories);
     for index in 0..spec.trajectories {
         let x0 = system.sample_initial_state(&mut rng);
         let excitation = system.sample_excitation(&mut rng);
@@ -302,19 +300,15 @@ pub fn simulate_port(
             t: times.clone(),
             x,
             dx,
+            u: u_log,
         });
-        inputs.push(u_log);
     }
-    let ds = Dataset {
+    Ok(Dataset {
         dof: n,
+        inputs: m,
         trajectories,
         derivatives: DerivativeSource::Given,
-    };
-    let inputs = (m > 0).then_some(Inputs {
-        count: m,
-        per_trajectory: inputs,
-    });
-    Ok((ds, inputs))
+    })
 }
 
 /// Add Gaussian noise to the states (q and p only, never to t or the

@@ -1,0 +1,217 @@
+//! The fit stage that `visviva fit` and `visviva run` share: the model plan
+//! (every refusal before any work), Ctrl-C handling, the fit of the energy
+//! model (conservative, or damped and/or driven) and of the plain baseline,
+//! and the one wording of how a fit ended.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use anyhow::{bail, Result};
+use visviva_runtime::{Integrator, Method};
+
+use crate::data::dataset::Dataset;
+use crate::deploy::blob::WeightKind;
+use crate::deploy::integrator::{default_method, method_name, MethodName};
+use crate::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings, Fitted, StopReason};
+use crate::learn::hnn::{BaselineModel, EnergyArch, EnergyModel, PortArch};
+
+/// How settings are named in messages: command-line flags or the keys of
+/// a project file's `[model]` table.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SettingNames {
+    /// `--integrator`, `--dt`, ...
+    Flags,
+    /// `[model] integrator`, `[model] dt`, ...
+    ProjectKeys,
+}
+
+impl SettingNames {
+    /// The user-facing name of setting `key` (snake case).
+    pub fn name(self, key: &str) -> String {
+        match self {
+            SettingNames::Flags => format!("--{}", key.replace('_', "-")),
+            SettingNames::ProjectKeys => format!("[model] {key}"),
+        }
+    }
+}
+
+/// What will be fitted, settled before any work.
+#[derive(Debug, Clone)]
+pub struct ModelPlan {
+    /// The structure as chosen.
+    pub choice: ArchChoice,
+    /// The energy network's structure for the data's degrees of freedom.
+    pub arch: EnergyArch,
+    /// Port terms (R, G); the input count is the data's.
+    pub terms: PortArch,
+    /// The integrator stored in the fitted model.
+    pub integrator: Integrator,
+}
+
+impl ModelPlan {
+    /// Whether the model has port terms (damping or inputs).
+    pub fn has_port_terms(&self) -> bool {
+        self.terms.dissipation || self.terms.inputs > 0
+    }
+
+    /// Trainable parameters of the energy model and its port terms.
+    pub fn parameters(&self, dof: usize) -> usize {
+        self.arch.param_count(dof) + self.terms.param_count(dof)
+    }
+}
+
+/// Settle the model to fit on `train`: its structure, its port terms (the
+/// input count taken from the data) and its integrator (`method` or the
+/// default for the structure; `dt` or the log's median sampling interval).
+/// Every refusal names the setting as `names` says.
+pub fn plan_model(
+    train: &Dataset,
+    choice: ArchChoice,
+    terms: PortArch,
+    method: Option<MethodName>,
+    dt: Option<f32>,
+    names: SettingNames,
+) -> Result<ModelPlan> {
+    if !train.driven() && !terms.input_hidden.is_empty() {
+        bail!(
+            "{}: the training log has no input columns u1..um, so there is no G to learn",
+            names.name("input_net")
+        );
+    }
+    let terms = PortArch {
+        inputs: train.inputs,
+        ..terms
+    };
+    let port = terms.dissipation || terms.inputs > 0;
+    let method = method.map_or(default_method(choice.separable, port), Method::from);
+    check_method(method, choice.separable, port, &names.name("integrator"))?;
+    let integrator = stored_integrator(method, dt, train, &names.name("dt"))?;
+    let arch = choice.build(train.dof)?;
+    Ok(ModelPlan {
+        choice,
+        arch,
+        terms,
+        integrator,
+    })
+}
+
+/// Refuse a method that cannot step the model: the explicit symplectic
+/// methods need a separable energy and cannot step port terms.
+pub fn check_method(method: Method, separable: bool, port: bool, setting: &str) -> Result<()> {
+    let name = method_name(method);
+    if port && !method.handles_port_terms() {
+        bail!(
+            "{setting} = \"{name}\" cannot step a damped or driven model: it steps only J dH/dx and \
+             would drop the dissipation R and the inputs G u; use discrete-gradient (the default; \
+             exact energy balance) or midpoint"
+        );
+    }
+    if method.needs_separable() && !separable {
+        bail!("{setting} = \"{name}\" needs a separable energy (arch = separable); use midpoint");
+    }
+    Ok(())
+}
+
+/// The stored integrator: `method` at `dt`, or at the log's median
+/// sampling interval when `dt` is not given.
+fn stored_integrator(
+    method: Method,
+    dt: Option<f32>,
+    train: &Dataset,
+    setting: &str,
+) -> Result<Integrator> {
+    let dt = match dt {
+        Some(dt) => dt,
+        None => match median_step(train) {
+            Some(v) => v as f32,
+            None => bail!("cannot infer {setting}: the log has no two consecutive samples"),
+        },
+    };
+    let integrator = Integrator::new(method, dt);
+    if !(dt.is_finite() && dt > 0.0 && integrator.is_valid()) {
+        bail!("{setting} = {dt} s is not a usable time step");
+    }
+    Ok(integrator)
+}
+
+/// The median sampling interval of a data set's trajectories.
+pub fn median_step(ds: &Dataset) -> Option<f64> {
+    let mut steps: Vec<f64> = ds
+        .trajectories
+        .iter()
+        .flat_map(|t| t.t.windows(2).map(|w| w[1] - w[0]))
+        .collect();
+    if steps.is_empty() {
+        return None;
+    }
+    steps.sort_by(f64::total_cmp);
+    Some(steps[steps.len() / 2])
+}
+
+/// A flag Ctrl-C sets; the training loop stops and keeps the best so far.
+pub fn interrupt_flag() -> Arc<AtomicBool> {
+    let interrupt = Arc::new(AtomicBool::new(false));
+    let flag = interrupt.clone();
+    if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
+        eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
+    }
+    interrupt
+}
+
+/// What the fit stage produced.
+pub struct FitOutcome {
+    /// The energy model and how it was fitted.
+    pub model: Fitted<EnergyModel>,
+    /// The model as an f32 blob with the planned integrator.
+    pub blob: Vec<u8>,
+    /// The baseline, when asked for and not interrupted.
+    pub baseline: Option<Fitted<BaselineModel>>,
+}
+
+/// Fit the planned model to `train` (early stopping on `val`), encode it,
+/// and fit the baseline when `baseline` is set and Ctrl-C was not pressed.
+pub fn fit_stage(
+    train: &Dataset,
+    val: Option<&Dataset>,
+    plan: &ModelPlan,
+    settings: &FitSettings,
+    baseline: bool,
+) -> Result<FitOutcome> {
+    let model = fit_model(train, val, &plan.arch, &plan.terms, settings)?;
+    let blob =
+        crate::deploy::fitted_blob::energy_blob(&model.model, plan.integrator, WeightKind::F32)?;
+    let interrupted = settings
+        .interrupt
+        .as_ref()
+        .is_some_and(|f| f.load(Ordering::SeqCst));
+    let baseline = if baseline && !interrupted {
+        let hidden = &plan.choice.hidden;
+        Some(fit_baseline(
+            train,
+            val,
+            hidden,
+            plan.choice.activation,
+            settings,
+        )?)
+    } else {
+        None
+    };
+    Ok(FitOutcome {
+        model,
+        blob,
+        baseline,
+    })
+}
+
+/// How a fit ended, in the words every command uses.
+pub fn stop_text(stop: StopReason) -> String {
+    match stop {
+        StopReason::Completed => "all epochs done".into(),
+        StopReason::EarlyStopped => "early stop (validation loss stopped improving)".into(),
+        StopReason::Interrupted => "interrupted; kept the best parameters so far".into(),
+        StopReason::NonFinite { step } => format!(
+            "loss became NaN or infinite at step {step}; kept the last good parameters \
+             (try a smaller learning rate)"
+        ),
+    }
+}

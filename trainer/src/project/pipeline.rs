@@ -1,0 +1,705 @@
+//! The stages of `visviva run DIR`, each a function with typed input and
+//! output: [`prepare`] (every refusal before any write) -> [`fit`] (cached
+//! by input hash) -> [`check`] -> [`export`] per target (cached) ->
+//! [`report`]. The stages call the same stage code as the single-stage
+//! commands (`learn::stage` for fitting, `deploy::export` for export,
+//! `evidence::check` for the checks), so defaults, refusals and wording
+//! exist once. Conservative models are the special case without port terms;
+//! a damped or driven project keeps the golden rollouts' input sequence
+//! beside them (`golden/<blob>-inputs.csv`).
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{anyhow, bail, Context, Result};
+use visviva_runtime::Method;
+
+use crate::atomic::write_atomic;
+use crate::data::dataset::{Dataset, DerivativeSource};
+use crate::data::log::{load_csv, split_by_trajectory, LoadOptions};
+use crate::deploy::blob::{BlobModel, HostModel};
+use crate::deploy::budget::budget_verdict;
+use crate::deploy::export::{export as export_blob, ExportReport};
+use crate::deploy::inspect::inspect;
+use crate::deploy::integrator::IntegratorOverrides;
+use crate::deploy::rollout::{roll_driven, sample_states, to_csv};
+use crate::evidence::charts::{charts, driven_charts, loss_chart, units, HistoryFile};
+use crate::evidence::check::{check_port, driven_baseline, reference_modes, CheckSettings};
+use crate::evidence::report::{
+    CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison, Evidence, FitSummary, PortReport,
+    RunReport,
+};
+use crate::learn::fit::{FitSettings, TrainReport};
+use crate::learn::hnn::BaselineModel;
+use crate::learn::stage::{
+    check_method, fit_stage, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
+};
+use crate::learn::structure::arch_choice;
+use crate::project::cache::{read_json, sha, write_json};
+use crate::project::file::Project;
+use crate::reference::systems::{
+    build_port_system, build_system, PortSystem, ReferenceSystem, PORT_CATALOG,
+};
+
+/// The training and validation logs; `val_bytes` is empty when validation
+/// trajectories were held out of the training log.
+pub struct Logs {
+    /// Training trajectories.
+    pub train: Dataset,
+    /// Validation trajectories.
+    pub val: Dataset,
+    /// The training log's bytes (hashed for the cache).
+    pub train_bytes: Vec<u8>,
+    /// The validation log's bytes, if it is a file of its own.
+    pub val_bytes: Vec<u8>,
+}
+
+/// A project checked and loaded: nothing has been written yet.
+pub struct Prepared {
+    /// The project folder.
+    pub dir: PathBuf,
+    /// `DIR/out`.
+    pub out: PathBuf,
+    /// Project name (from the file, else the folder's).
+    pub name: String,
+    /// The project file.
+    pub project: Project,
+    /// The logs.
+    pub logs: Logs,
+    /// The model to fit.
+    pub plan: ModelPlan,
+    /// What the data hold.
+    pub data: DataSummary,
+}
+
+impl Prepared {
+    /// Whether the model has port terms (damping or inputs).
+    pub fn port(&self) -> bool {
+        self.plan.has_port_terms()
+    }
+}
+
+/// Load and check everything `run` needs before it writes anything: the
+/// project file, the logs, the model plan and every export target's
+/// integrator.
+pub fn prepare(dir: &Path) -> Result<Prepared> {
+    let project = Project::load(dir)?;
+    let file = dir.join("visviva.toml").display().to_string();
+    let logs = load_logs(dir, &project)?;
+    let m = &project.model;
+    let choice = arch_choice(
+        m.arch,
+        m.kinetic,
+        &m.hidden,
+        m.activation,
+        "[model] activation",
+    )?;
+    let terms = m.port_terms().with_context(|| file.clone())?;
+    let plan = plan_model(
+        &logs.train,
+        choice,
+        terms,
+        m.integrator,
+        m.dt,
+        SettingNames::ProjectKeys,
+    )
+    .with_context(|| file.clone())?;
+    for t in project.export_targets() {
+        if let Some(i) = t.integrator {
+            let setting = format!("[[export]] {}: integrator", t.name);
+            check_method(
+                Method::from(i),
+                plan.choice.separable,
+                plan.has_port_terms(),
+                &setting,
+            )
+            .with_context(|| file.clone())?;
+        }
+    }
+    let data = data_summary(&project.data.train.display().to_string(), &logs);
+    let name = project.name.clone().unwrap_or_else(|| {
+        dir.file_name()
+            .map(|s| s.to_string_lossy().into_owned())
+            .unwrap_or_default()
+    });
+    Ok(Prepared {
+        dir: dir.to_path_buf(),
+        out: dir.join("out"),
+        name,
+        project,
+        logs,
+        plan,
+        data,
+    })
+}
+
+/// The logs named by `[data]`: a validation file of its own (same degrees
+/// of freedom and inputs), or trajectories held out of the training log.
+fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
+    let opts = LoadOptions {
+        masses: project.data.masses.clone(),
+        step_tolerance: project.data.step_tolerance,
+        ..LoadOptions::default()
+    };
+    let train_path = dir.join(&project.data.train);
+    let train_bytes = std::fs::read(&train_path)
+        .with_context(|| format!("{}: cannot read", train_path.display()))?;
+    let all = load_csv(&train_path, &opts)?;
+    let Some(v) = &project.data.validation else {
+        let (frac, seed) = (project.data.val_fraction, project.fit.seed);
+        let (train, val) = split_by_trajectory(&all, frac, seed);
+        if val.trajectories.is_empty() {
+            bail!("no validation trajectories: add [data] validation or more trajectories (val_fraction {frac})");
+        }
+        return Ok(Logs {
+            train,
+            val,
+            train_bytes,
+            val_bytes: Vec::new(),
+        });
+    };
+    let p = dir.join(v);
+    let val_bytes = std::fs::read(&p).with_context(|| format!("{}: cannot read", p.display()))?;
+    let val = load_csv(&p, &opts)?;
+    if val.dof != all.dof {
+        bail!(
+            "{}: {} degrees of freedom, the training log {}",
+            p.display(),
+            val.dof,
+            all.dof
+        );
+    }
+    if val.inputs != all.inputs {
+        bail!(
+            "{}: line 1: {} input columns (u1..), the training log {} has {}",
+            p.display(),
+            val.inputs,
+            train_path.display(),
+            all.inputs
+        );
+    }
+    Ok(Logs {
+        train: all,
+        val,
+        train_bytes,
+        val_bytes,
+    })
+}
+
+/// What the logs hold, per coordinate: range, RMS and a noise estimate from
+/// second differences (for white noise of standard deviation s,
+/// x[k+1] - 2x[k] + x[k-1] has variance 6 s^2: common practice for
+/// well-sampled smooth signals; the motion's own curvature adds a little, so
+/// this is an upper bound).
+fn data_summary(train_file: &str, logs: &Logs) -> DataSummary {
+    let (train, val) = (&logs.train, &logs.val);
+    let names = crate::data::log::column_names(train.dof, false);
+    let coordinates = (0..2 * train.dof)
+        .map(|c| coordinate_summary(train, c, names.get(c + 2).cloned().unwrap_or_default()))
+        .collect();
+    DataSummary {
+        train_file: train_file.to_string(),
+        dof: train.dof,
+        train_trajectories: train.trajectories.len(),
+        train_samples: train.samples(),
+        validation_trajectories: val.trajectories.len(),
+        validation_samples: val.samples(),
+        sample_interval_s: crate::learn::stage::median_step(train).unwrap_or(0.0),
+        derivatives: match train.derivatives {
+            DerivativeSource::Given => "given".into(),
+            DerivativeSource::Estimated => "estimated (Savitzky-Golay)".into(),
+        },
+        coordinates,
+        inputs: train.inputs,
+    }
+}
+
+/// Range, RMS and noise estimate of state column `c`.
+fn coordinate_summary(train: &Dataset, c: usize, name: String) -> CoordinateSummary {
+    let (mut lo, mut hi, mut sq, mut cnt, mut d2, mut dc) =
+        (f64::INFINITY, f64::NEG_INFINITY, 0.0, 0usize, 0.0, 0usize);
+    for t in &train.trajectories {
+        let col: Vec<f64> = t.x.column(c).to_vec();
+        for v in &col {
+            lo = lo.min(*v);
+            hi = hi.max(*v);
+            sq += v * v;
+            cnt += 1;
+        }
+        for w in col.windows(3) {
+            let d = w[2] - 2.0 * w[1] + w[0];
+            d2 += d * d;
+            dc += 1;
+        }
+    }
+    CoordinateSummary {
+        name,
+        min: lo,
+        max: hi,
+        rms: (sq / cnt.max(1) as f64).sqrt(),
+        noise: (d2 / dc.max(1) as f64 / 6.0).sqrt(),
+    }
+}
+
+/// The fit as the report shows it.
+fn fit_summary(r: &TrainReport, parameters: usize) -> FitSummary {
+    FitSummary {
+        parameters,
+        steps: r.steps,
+        best_validation_loss: r.best_val,
+        best_epoch: r.best_epoch.map_or(0, |e| e + 1),
+        stop: stop_text(r.stop),
+        seconds: r.seconds,
+        samples_per_second: r.samples_per_second(),
+        train_loss: r.history.train.clone(),
+        validation_loss: r.history.val.clone(),
+        reused: false,
+    }
+}
+
+/// What the fit stage leaves for the later stages.
+pub struct FitResult {
+    /// The energy model's fit.
+    pub fit: FitSummary,
+    /// The baseline's fit, when the project asks for one.
+    pub baseline_fit: Option<FitSummary>,
+}
+
+/// Fit the model (and the baseline) unless the logs and settings hash to
+/// what the last run recorded; writes `out/model.vvb`,
+/// `out/model.baseline.json`, `out/fit.json` and `out/fit.sha256`.
+pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
+    let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
+    std::fs::create_dir_all(out.join("golden"))
+        .with_context(|| format!("{}: cannot create", out.display()))?;
+    let settings_json = serde_json::to_vec(&(
+        &project.data,
+        &project.model,
+        &project.fit,
+        env!("CARGO_PKG_VERSION"),
+    ))?;
+    let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
+    let (model_path, baseline_path) = (out.join("model.vvb"), out.join("model.baseline.json"));
+    let (fit_path, hash_path) = (out.join("fit.json"), out.join("fit.sha256"));
+    let cached = !force
+        && std::fs::read_to_string(&hash_path).ok().as_deref() == Some(fit_hash.as_str())
+        && model_path.exists()
+        && (!project.fit.baseline || baseline_path.exists());
+    if let Some((mut fit, mut baseline_fit)) = cached
+        .then(|| read_json::<(FitSummary, Option<FitSummary>)>(&fit_path))
+        .flatten()
+    {
+        fit.reused = true;
+        if let Some(b) = baseline_fit.as_mut() {
+            b.reused = true;
+        }
+        return Ok(FitResult { fit, baseline_fit });
+    }
+    let settings = FitSettings {
+        epochs: project.fit.epochs,
+        batch: project.fit.batch,
+        lr: project.fit.lr,
+        patience: project.fit.patience,
+        seed: project.fit.seed,
+        threads: project.fit.threads,
+        quiet,
+        interrupt: Some(interrupt_flag()),
+        ..FitSettings::default()
+    };
+    let done = fit_stage(
+        &logs.train,
+        Some(&logs.val),
+        &prep.plan,
+        &settings,
+        project.fit.baseline,
+    )?;
+    write_atomic(&model_path, &done.blob)?;
+    let m = &done.model.model;
+    let params = m.params.len() + m.port.as_ref().map_or(0, |p| p.params.len());
+    let fit = fit_summary(&done.model.report, params);
+    let baseline_fit = match &done.baseline {
+        Some(base) => {
+            crate::deploy::fitted_blob::write_baseline(&baseline_path, &base.model)?;
+            Some(fit_summary(&base.report, base.model.params.len()))
+        }
+        None => None,
+    };
+    write_json(&fit_path, &(&fit, &baseline_fit))?;
+    write_atomic(&hash_path, fit_hash.as_bytes())?;
+    Ok(FitResult { fit, baseline_fit })
+}
+
+/// What the check stage leaves for export and the report.
+pub struct Checked {
+    /// The fitted model's blob bytes.
+    pub model_bytes: Vec<u8>,
+    /// The model's owned mirror.
+    pub src: BlobModel,
+    /// The evidence.
+    pub evidence: Evidence,
+    /// Charts as (title, SVG).
+    pub figures: Vec<(String, String)>,
+    /// Held-out trajectory whose inputs the golden rollouts replay.
+    pub golden_inputs: Vec<Vec<f32>>,
+}
+
+/// Check the fitted model (and the baseline) on the validation logs.
+pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
+    let model_path = prep.out.join("model.vvb");
+    let model_bytes = std::fs::read(&model_path)?;
+    let model = HostModel::from_bytes(&model_bytes)
+        .map_err(|e| anyhow!("{}: {e}", model_path.display()))?;
+    let src = BlobModel::from_bytes(&model_bytes).map_err(|e| anyhow!("{e}"))?;
+    let baseline = if prep.project.fit.baseline {
+        Some(crate::deploy::fitted_blob::read_baseline(
+            &prep.out.join("model.baseline.json"),
+        )?)
+    } else {
+        None
+    };
+    let history = HistoryFile {
+        train: fit.fit.train_loss.clone(),
+        val: fit.fit.validation_loss.clone(),
+    };
+    let steps = prep.project.check.golden_steps;
+    let (golden_id, golden_inputs) = golden_inputs(&prep.logs.val, steps);
+    let (evidence, figures) = if prep.port() {
+        let reference = port_reference(prep)?;
+        port_check(
+            prep,
+            &model,
+            &src,
+            baseline.as_ref(),
+            reference.as_deref(),
+            golden_id,
+            &history,
+        )?
+    } else {
+        let reference = conservative_reference(prep)?;
+        let r = crate::evidence::check::check(
+            &model,
+            baseline.as_ref(),
+            &prep.logs.val,
+            reference.as_deref(),
+            &CheckSettings {
+                horizon_steps: Some(prep.project.check.horizon_steps),
+                ..CheckSettings::default()
+            },
+        )?;
+        let figs = charts(&r, Some(&history), units(reference.as_deref()))
+            .into_iter()
+            .map(|(_, c)| (c.title.clone(), c.to_svg()))
+            .collect();
+        (Evidence::Check(r), figs)
+    };
+    Ok(Checked {
+        model_bytes,
+        src,
+        evidence,
+        figures,
+        golden_inputs,
+    })
+}
+
+/// `[check] reference_params` as name-value pairs.
+fn reference_params(prep: &Prepared) -> Vec<(String, f64)> {
+    prep.project
+        .check
+        .reference_params
+        .iter()
+        .map(|(k, v)| (k.clone(), *v))
+        .collect()
+}
+
+/// The conservative reference system named by `[check] reference_system`.
+fn conservative_reference(prep: &Prepared) -> Result<Option<Box<dyn ReferenceSystem>>> {
+    let Some(s) = prep.project.check.reference_system.as_deref() else {
+        return Ok(None);
+    };
+    build_system(s, &reference_params(prep))
+        .map(Some)
+        .map_err(|e| anyhow!("[check] reference_system: {e}"))
+}
+
+/// The damped or driven reference system named by `[check]
+/// reference_system`.
+fn port_reference(prep: &Prepared) -> Result<Option<Box<dyn PortSystem>>> {
+    let Some(s) = prep.project.check.reference_system.as_deref() else {
+        return Ok(None);
+    };
+    let Some(built) = build_port_system(s, &reference_params(prep)) else {
+        let names: Vec<&str> = PORT_CATALOG.iter().map(|p| p.name).collect();
+        bail!(
+            "[check] reference_system = \"{s}\" is not a damped or driven system; a damped or driven project needs one of {}",
+            names.join(", ")
+        );
+    };
+    built
+        .map(Some)
+        .map_err(|e| anyhow!("[check] reference_system: {e}"))
+}
+
+/// The inputs the golden rollouts replay: validation trajectory 0's logged
+/// inputs, at most `steps` rows (row k held over step k); none without
+/// inputs.
+fn golden_inputs(val: &Dataset, steps: usize) -> (String, Vec<Vec<f32>>) {
+    match val.trajectories.first() {
+        Some(t) if val.driven() => (
+            t.id.clone(),
+            t.u.rows()
+                .into_iter()
+                .take(steps)
+                .map(|r| r.iter().map(|v| *v as f32).collect())
+                .collect(),
+        ),
+        _ => (String::new(), Vec::new()),
+    }
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+/// The damped or driven model's check: damping per mode, driven rollouts of
+/// the held-out trajectories for model and baseline, and their charts.
+fn port_check(
+    prep: &Prepared,
+    model: &HostModel<'_>,
+    blob: &BlobModel,
+    baseline: Option<&BaselineModel>,
+    reference: Option<&dyn PortSystem>,
+    golden_input_trajectory: String,
+    history: &HistoryFile,
+) -> Result<(Evidence, Vec<(String, String)>)> {
+    let val = &prep.logs.val;
+    let r = check_port(model, blob, val)?;
+    let base = baseline.map(|b| driven_baseline(b, val));
+    let driven: Vec<DrivenComparison> = r
+        .rollouts
+        .iter()
+        .enumerate()
+        .map(|(k, m)| {
+            let b = base.as_ref().map(|b| &b[k]);
+            DrivenComparison {
+                id: m.id.clone(),
+                samples: val.trajectories[k].t.len(),
+                model_state_rel_rmse: m.state_rel_rmse,
+                baseline_state_rel_rmse: b.map(|b| b.state_rel_rmse),
+                model_failure: m.failure.clone(),
+                baseline_failure: b.and_then(|b| b.failure.clone()),
+            }
+        })
+        .collect();
+    let mut figs = Vec::new();
+    if let (Some(t), Some(m)) = (val.trajectories.first(), r.rollouts.first()) {
+        let b = base.as_ref().map(|b| b[0].states.as_slice());
+        figs = driven_charts(t, &m.states, b, 1500);
+    }
+    figs.push(("loss".into(), loss_chart(history)));
+    let report = PortReport {
+        inputs: val.inputs,
+        dissipation: prep.project.model.damped(),
+        median_model_state_rel_rmse: median(
+            driven.iter().map(|d| d.model_state_rel_rmse).collect(),
+        ),
+        median_baseline_state_rel_rmse: base
+            .as_ref()
+            .map(|b| median(b.iter().map(|d| d.state_rel_rmse).collect())),
+        rest: r.rest,
+        rest_residual: r.rest_residual,
+        modes: r.modes,
+        reference_modes: reference.map(reference_modes),
+        driven,
+        golden_input_trajectory,
+    };
+    let figures = figs
+        .into_iter()
+        .map(|(_, c)| (c.title.clone(), c.to_svg()))
+        .collect();
+    Ok((Evidence::Port(report), figures))
+}
+
+/// One export target's outcome, for the command's output.
+pub struct Exported {
+    /// The device blob's report entry.
+    pub device: DeviceBlob,
+    /// Whether the blob was reused from the last run.
+    pub reused: bool,
+}
+
+/// Export every `[[export]]` target (reused when the model and the target
+/// hash to what the last run recorded), with its golden rollouts and budget.
+pub fn export(prep: &Prepared, checked: &Checked, force: bool) -> Result<Vec<Exported>> {
+    prep.project
+        .export_targets()
+        .iter()
+        .map(|t| export_target(prep, checked, t, force))
+        .collect()
+}
+
+/// The golden rollouts' length: `[check] golden_steps`, shortened to the
+/// replayed input sequence for a driven model.
+pub fn golden_steps(prep: &Prepared, checked: &Checked) -> usize {
+    let steps = prep.project.check.golden_steps;
+    if prep.logs.train.driven() {
+        checked.golden_inputs.len().min(steps)
+    } else {
+        steps
+    }
+}
+
+fn export_target(
+    prep: &Prepared,
+    checked: &Checked,
+    t: &crate::project::file::ExportTarget,
+    force: bool,
+) -> Result<Exported> {
+    let (out, check) = (&prep.out, &prep.project.check);
+    let overrides = IntegratorOverrides {
+        integrator: t.integrator,
+        dt: t.dt,
+        substeps: t.substeps,
+        ..IntegratorOverrides::default()
+    };
+    let blob_path = out.join(format!("{}.vvb", t.name));
+    let meta_path = out.join(format!("{}.export.json", t.name));
+    let target_json = serde_json::to_vec(&(t, &check.golden_steps, &check.golden_states))?;
+    let hash = sha(&[&checked.model_bytes, &target_json]);
+    let hash_path = out.join(format!("{}.sha256", t.name));
+    let reuse = !force
+        && std::fs::read_to_string(&hash_path).ok().as_deref() == Some(hash.as_str())
+        && blob_path.exists();
+    let cached = reuse
+        .then(|| read_json::<ExportReport>(&meta_path))
+        .flatten();
+    let reused = cached.is_some();
+    let report = match cached {
+        Some(r) => r,
+        None => {
+            let (bytes, r) =
+                export_blob(&checked.src, t.weights, &overrides, check.horizon_steps, 8)?;
+            write_atomic(&blob_path, &bytes)?;
+            write_json(&meta_path, &r)?;
+            write_atomic(&hash_path, hash.as_bytes())?;
+            r
+        }
+    };
+    let bytes = std::fs::read(&blob_path)?;
+    let ins = inspect(&bytes)?;
+    let (golden, golden_inputs) = write_golden(prep, checked, &t.name, &bytes)?;
+    let measured: Option<serde_json::Value> =
+        read_json(&out.join(format!("device/{}.json", t.name)));
+    let budget = budget_verdict(
+        &prep.project.device,
+        report.bytes,
+        ins.runtime_ram_bytes,
+        report.macs_per_step,
+    );
+    let device = DeviceBlob {
+        name: t.name.clone(),
+        file: format!("{}.vvb", t.name),
+        ram_bytes: ins.runtime_ram_bytes,
+        emulator_instructions_per_step: measured
+            .as_ref()
+            .and_then(|v| v.get("instructions_per_step"))
+            .and_then(|v| v.as_f64()),
+        golden,
+        golden_inputs,
+        budget,
+        export: report,
+    };
+    Ok(Exported { device, reused })
+}
+
+/// The golden rollouts of one blob from states spread over half the
+/// normalization range (and, for a driven model, the input sequence they
+/// replay): the files the device check compares the board against.
+fn write_golden(
+    prep: &Prepared,
+    checked: &Checked,
+    name: &str,
+    bytes: &[u8],
+) -> Result<(Vec<String>, Option<String>)> {
+    let (out, src) = (&prep.out, &checked.src);
+    let dev = HostModel::from_bytes(bytes).map_err(|e| anyhow!("{e}"))?;
+    let steps = golden_steps(prep, checked);
+    let inputs = &checked.golden_inputs;
+    let states = sample_states(
+        &src.offset,
+        &src.scale,
+        0.5,
+        prep.project.check.golden_states,
+        0x676f6c64,
+    );
+    let mut golden = Vec::new();
+    for (k, x0) in states.iter().enumerate() {
+        let r = roll_driven(&dev, x0, steps, inputs)?;
+        if let Some((step, e)) = r.failure {
+            bail!("golden rollout {k} of {name} failed at step {step}: {e}");
+        }
+        let file = format!("golden/{name}-{k}.csv");
+        let csv = to_csv(&r.states, src.dof, dev.integrator().dt, true);
+        write_atomic(&out.join(&file), csv.as_bytes())?;
+        golden.push(file);
+    }
+    let inputs_file = prep
+        .logs
+        .train
+        .driven()
+        .then(|| format!("golden/{name}-inputs.csv"));
+    if let Some(file) = &inputs_file {
+        let csv = inputs_csv(&inputs[..steps], dev.integrator().dt);
+        write_atomic(&out.join(file), csv.as_bytes())?;
+    }
+    Ok((golden, inputs_file))
+}
+
+/// The input sequence as CSV `t,u1..um` (t = k dt, row k held over step
+/// k), shortest round-trip decimals: `visviva rollout --inputs` reads it back
+/// bit for bit.
+fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
+    let m = rows.first().map_or(0, Vec::len);
+    let mut text = String::from("t");
+    for i in 1..=m {
+        text.push_str(&format!(",u{i}"));
+    }
+    text.push('\n');
+    for (k, row) in rows.iter().enumerate() {
+        text.push_str(&format!("{}", k as f64 * dt as f64));
+        for v in row {
+            text.push_str(&format!(",{v}"));
+        }
+        text.push('\n');
+    }
+    text
+}
+
+/// Write `out/report.json` and `out/report.html`; returns the report.
+pub fn report(
+    prep: &Prepared,
+    fit: FitResult,
+    checked: Checked,
+    devices: Vec<DeviceBlob>,
+) -> Result<RunReport> {
+    let budget_pass = devices.iter().all(|d| d.budget.pass);
+    let report = RunReport {
+        project: prep.name.clone(),
+        visviva_version: env!("CARGO_PKG_VERSION").into(),
+        architecture: checked.src.architecture(),
+        data: prep.data.clone(),
+        fit: fit.fit,
+        baseline_fit: fit.baseline_fit,
+        evidence: checked.evidence,
+        devices,
+        budget: prep.project.device.clone(),
+        budget_pass,
+        caution: crate::CAUTION.into(),
+    };
+    write_json(&prep.out.join("report.json"), &report)?;
+    let html = crate::evidence::report::render_html(&report, &checked.figures);
+    write_atomic(&prep.out.join("report.html"), html.as_bytes())?;
+    Ok(report)
+}

@@ -189,7 +189,14 @@ fn ensure_venv(root: &Path) -> Result<PathBuf> {
 
 fn build_visviva(root: &Path) -> Result<PathBuf> {
     let ok = Command::new(crate::tools::cargo())
-        .args(["build", "--release", "-p", "visviva-trainer", "--bin", "visviva"])
+        .args([
+            "build",
+            "--release",
+            "-p",
+            "visviva-trainer",
+            "--bin",
+            "visviva",
+        ])
         .current_dir(root)
         .status()
         .context("starting cargo build")?

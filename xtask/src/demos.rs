@@ -3,7 +3,8 @@
 //! with the seeds listed here; `visviva run --force` then fits, checks and
 //! exports. With `--verify` (what CI runs) the logs are regenerated into a
 //! scratch folder and must equal the committed files byte for byte, and each
-//! project is run twice and must produce identical blobs.
+//! project is run twice and must produce identical blobs; the damped demos'
+//! headline modes are asserted against closed forms (`demo_modes`).
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -212,7 +213,7 @@ fn blobs(out: &Path) -> Result<Vec<(PathBuf, Vec<u8>)>> {
     let mut v = Vec::new();
     for e in std::fs::read_dir(out).with_context(|| format!("reading {}", out.display()))? {
         let p = e?.path();
-        if p.extension().is_some_and(|x| x == "visviva") {
+        if p.extension().is_some_and(|x| x == "vvb") {
             let b = std::fs::read(&p)?;
             v.push((p, b));
         }
@@ -257,6 +258,7 @@ pub fn run(verify: bool, regenerate_data: bool) -> Result<bool> {
         }
         visviva(&exe, &["run", "--force", "--quiet"], &[&dir])?;
         if verify {
+            ok &= crate::demo_modes::check(name, &dir)?;
             let first = blobs(&dir.join("out"))?;
             visviva(&exe, &["run", "--force", "--quiet"], &[&dir])?;
             let second = blobs(&dir.join("out"))?;

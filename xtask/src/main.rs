@@ -13,6 +13,7 @@
 //!   state bit for bit with the host rollout.
 
 mod bench;
+mod demo_modes;
 mod demos;
 mod device_check;
 mod device_log;

@@ -19,6 +19,8 @@
 //!   m x'' + c x' + k x = 0 has |lambda| = sqrt(k / m) and damping ratio
 //!   -Re(lambda) / |lambda| = zeta exactly (textbook closed form).
 
+mod page_numbers;
+
 use std::path::Path;
 use std::process::Command;
 
@@ -28,7 +30,6 @@ use visviva_trainer::cmd_fit;
 use visviva_trainer::fit::{fit_baseline_driven, ArchChoice, FitSettings};
 use visviva_trainer::hnn::PortArch;
 use visviva_trainer::net::Activation;
-use visviva_trainer::report::{page_disagreements, tagged_values};
 use visviva_trainer::simulate::{simulate_port, SimulationSpec};
 use visviva_trainer::systems::build_port_system;
 
@@ -289,12 +290,12 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
     );
 
     let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
-    let tags = tagged_values(&html);
+    let tags = page_numbers::spans(&html);
     assert!(tags.len() > 40, "only {} tagged numbers", tags.len());
     assert_eq!(
-        page_disagreements(&html, &json),
+        page_numbers::disagreements(&html, &json),
         vec![],
-        "page and report.json disagree (key, page, report)"
+        "page text, read back as numbers, disagrees with report.json (key, page, report)"
     );
     assert!(tags.iter().any(|(k, _)| k == "port/modes/0/damping_ratio"));
     assert!(tags

@@ -127,7 +127,7 @@ fn fit_writes_a_parsable_blob_and_refuses_bad_requests() {
     ])
     .unwrap_err()
     .to_string();
-    assert!(err.contains("broken.csv"), "{err}");
-    assert!(err.contains('4'), "{err}");
+    // lines[3] is the file's line 4 (line 1 is the header).
+    assert!(err.contains("broken.csv: line 4"), "{err}");
     assert!(!bad_out.exists());
 }

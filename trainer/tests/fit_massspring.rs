@@ -122,10 +122,15 @@ fn energy_model_conserves_energy_and_baseline_drifts() {
          at end {hnn_end:.3e}; baseline (RK4) max {base_worst:.3e}, at end {base_end:.3e}"
     );
     // Model error bounds the energy error of a symplectic rollout instead of
-    // letting it grow with time.
-    assert!(hnn_worst < 0.05, "energy model drift {hnn_worst}");
+    // letting it grow with time. Measured in the debug build with the fit
+    // seed 3, 4, 5, 6 (training-data seed shifted alike, by a temporary
+    // edit): model drift 7.0e-3, 3.0e-3, 3.0e-3, 5.4e-3; the baseline's 26,
+    // 193, 67 and 187 times larger. Asserted: 2e-2 and 10 times. This short
+    // fit is the debug-build smoke test; the 1e-3 bound of the README is
+    // asserted by the release check `tests/tests/massspring_energy.rs`.
+    assert!(hnn_worst < 0.02, "energy model drift {hnn_worst}");
     assert!(
-        base_worst > 5.0 * hnn_worst,
+        base_worst > 10.0 * hnn_worst,
         "baseline {base_worst} not clearly worse than energy model {hnn_worst}"
     );
     // The runtime's own energy stays near its start (symplectic, bounded).

@@ -2,13 +2,13 @@
 //! trainer's export path and the runtime's arithmetic:
 //! * damped flexure: the damping ratio from the logarithmic decrement of
 //!   the fitted model's free decay, delta = ln(x_k / x_(k+1)) =
-//!   2 pi zeta / sqrt(1 - zeta^2) (Thomson & Dahmel, "Theory of Vibration
+//!   2 pi zeta / sqrt(1 - zeta^2) (Thomson & Dahleh, "Theory of Vibration
 //!   with Applications", section on the logarithmic decrement; from
-//!   memory), within 5 % of the simulated zeta;
+//!   memory), within 0.05 % of the simulated zeta;
 //! * drivetrain: under a constant motor torque tau the steady speed of a
 //!   two-inertia chain whose only friction to ground is viscous (b, on the
 //!   load) is tau / b (steady state of J dw/dt = tau - b w, any dynamics
-//!   text; from memory), within 2 %;
+//!   text; from memory), within 1 %;
 //! * with u = 0 the exported model's discrete energy never rises over many
 //!   random states (the discrete-gradient identity H(x1) - H(x0) =
 //!   -h |L^T g|^2 <= 0, Gonzalez 1996 / McLachlan, Quispel & Robidoux 1999;
@@ -17,14 +17,20 @@
 //!   a constant trolley acceleration a the payload settles at
 //!   q = -atan(a / g) (a pendulum in a uniformly accelerating frame hangs
 //!   along the effective gravity; any introductory mechanics text, from
-//!   memory), within 1 %, and the learned G(q) follows -m l cos q;
+//!   memory), within 1 %, and the learned G(q) follows -m l cos q within
+//!   2 % of m l;
 //! * flexure beside a plate, R(q) learned as a network of q: the learned
 //!   damping follows the squeeze-film law c(q) = c0 (h / (h - q))^3
 //!   (Reynolds lubrication theory for parallel plates; from memory) within
 //!   5 % where the logs see the mass move (c changes by a factor of 6
 //!   there);
 //! * `visviva check`'s damping per mode (linearization at rest) agrees with
-//!   the simulated damping ratio and natural frequency;
+//!   the simulated damping ratio and natural frequency (flexure: closed
+//!   form; drivetrain: eigenvalues of the exact linear system from the
+//!   general-purpose `nalgebra` crate, not the trainer's routine);
+//!
+//! Seed spread (measured 2026-12-02 by temporarily offsetting the data and
+//! fit seeds by 0, 1, 2, 3, release build): each assertion below states it.
 //! * the runtime's field (J - R) dH/dx + G u equals the trainer's
 //!   prediction on random states and inputs (relative 1e-4).
 //!
@@ -32,6 +38,7 @@
 //! minutes) the two fitting tests are ignored: `cargo test --release -p
 //! visviva-trainer --test port_checks` runs them.
 
+use nalgebra::DMatrix;
 use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -182,7 +189,8 @@ fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
         "log decrement {delta:.4} over {cycles} cycles: zeta {fitted_zeta:.4} vs simulated {zeta} ({:.2} %)",
         rel * 100.0
     );
-    assert!(rel < 0.05, "fitted zeta {fitted_zeta} vs {zeta}");
+    // Seeds 0..3: 0.01 %, 0.01 %, 0.02 %, 0.01 %; README: within 0.05 %.
+    assert!(rel < 5e-4, "fitted zeta {fitted_zeta} vs {zeta}");
 
     // `visviva check`'s damping per mode (eigenvalues of the linearization at
     // rest) gives the same ratio and the undamped natural frequency
@@ -193,8 +201,10 @@ fn damped_flexure_log_decrement_gives_the_simulated_damping_ratio() {
     assert_eq!(report.modes.len(), 1);
     let mode = &report.modes[0];
     let f_n = (20.0f64 / 0.05).sqrt() / (2.0 * std::f64::consts::PI);
-    assert!((mode.damping_ratio - zeta).abs() / zeta < 0.05, "{mode:?}");
-    assert!((mode.natural_hz - f_n).abs() / f_n < 0.01, "{mode:?}");
+    // Seeds 0..3: ratio off by 0.11 %, 0.11 %, 0.11 %, 0.14 %; frequency
+    // by 0.12 %, 0.10 %, 0.12 %, 0.13 %.
+    assert!((mode.damping_ratio - zeta).abs() / zeta < 0.005, "{mode:?}");
+    assert!((mode.natural_hz - f_n).abs() / f_n < 0.005, "{mode:?}");
     assert!(report.rollouts.iter().all(|r| r.failure.is_none()));
 }
 
@@ -259,24 +269,30 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
         "steady motor speed {speed:.4} rad/s, load {load:.4} rad/s vs tau/b = {expected} ({:.2} %)",
         rel * 100.0
     );
-    assert!(rel < 0.02, "motor speed {speed} vs {expected}");
+    // Seeds 0..3: 0.19 %, 0.42 %, 0.10 %, 0.40 %.
+    assert!(rel < 0.01, "motor speed {speed} vs {expected}");
     assert!(
-        (load - expected).abs() / expected < 0.02,
+        (load - expected).abs() / expected < 0.01,
         "load speed {load}"
     );
 
     // Modes at rest against the exact linear system A = (J - R) Q with
     // Q = Hessian of H (closed form from the parameters): the shaft mode
-    // and the real friction mode -b / (Jm + Jl).
+    // and the real friction mode near -b / (Jm + Jl). Its eigenvalues come
+    // from nalgebra (real Schur form), not from the trainer's routine that
+    // gives the learned modes.
     let (jm, jl, k, c) = (2e-4f64, 1e-3f64, 1.0f64, 2e-3f64);
-    let exact = vec![
-        vec![0.0, 0.0, 1.0 / jm, 0.0],
-        vec![0.0, 0.0, 0.0, 1.0 / jl],
-        vec![-k, k, -c / jm, c / jl],
-        vec![k, -k, c / jm, -(c + b) / jl],
-    ];
-    let mut exact_modes: Vec<(f64, f64)> = eigenvalues(&exact)
-        .into_iter()
+    #[rustfmt::skip]
+    let exact = DMatrix::from_row_slice(4, 4, &[
+        0.0, 0.0, 1.0 / jm, 0.0,
+        0.0, 0.0, 0.0, 1.0 / jl,
+        -k, k, -c / jm, c / jl,
+        k, -k, c / jm, -(c + b) / jl,
+    ]);
+    let mut exact_modes: Vec<(f64, f64)> = exact
+        .complex_eigenvalues()
+        .iter()
+        .map(|z| (z.re, z.im))
         .filter(|(r, i)| r.hypot(*i) > 1e-3 && *i > -1e-6)
         .collect();
     exact_modes.sort_by(|a, b| a.0.hypot(a.1).total_cmp(&b.0.hypot(b.1)));
@@ -284,6 +300,8 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
     let report = check_port(&runtime, &blob, &ds).unwrap();
     println!("modes at rest: {:?}; exact {exact_modes:?}", report.modes);
     assert_eq!(report.modes.len(), exact_modes.len());
+    // Seeds 0..3, shaft mode: frequency off by 0.38 %, 0.48 %, 0.49 %,
+    // 0.55 %; damping ratio by 0.33 %, 0.24 %, 0.34 %, 0.17 %.
     for (mode, (er, ei)) in report.modes.iter().zip(&exact_modes) {
         let w = er.hypot(*ei);
         assert!(
@@ -292,7 +310,7 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
         );
         let zeta = -er / w;
         assert!(
-            (mode.damping_ratio - zeta).abs() / zeta < 0.05,
+            (mode.damping_ratio - zeta).abs() / zeta < 0.01,
             "{mode:?} vs {zeta}"
         );
     }
@@ -318,6 +336,10 @@ fn drivetrain_steady_speed_is_torque_over_friction() {
         }
     }
     println!("{stepped} unforced steps, {rises} energy rises");
+    // Seeds 0 and 2: no rise; seeds 1 and 3 (data and fit seeds offset,
+    // not what runs here): 1 rise in 20,000 each, which fails this
+    // assertion. Not investigated yet (rounding of the f32 energy near a
+    // vanishing step is a candidate); kept as it is, not loosened.
     assert!(stepped > 19_000);
     assert_eq!(rises, 0);
 }
@@ -364,6 +386,7 @@ fn crane_under_a_trolley_settles_at_the_effective_gravity_angle() {
             -(a / g).asin().to_degrees()
         );
     }
+    // Seeds 0..3: worst 0.56 %, 0.22 %, 0.55 %, 0.71 % (README: 1 %).
     assert!(
         worst < 0.01,
         "equilibrium angle off by {:.2} %",
@@ -395,6 +418,8 @@ fn crane_under_a_trolley_settles_at_the_effective_gravity_angle() {
         "learned G(q) vs -m l cos q over +-40 deg: worst error {:.3} % of m l",
         worst_g * 100.0
     );
+    // Seeds 0..3: 0.70 %, 1.96 %, 0.72 %, 0.99 % (README: 2 %, one run
+    // 0.70 %); not tighter: seed 1 sits near the limit.
     assert!(
         worst_g < 0.02,
         "G(q) off by {:.2} % of m l",
@@ -460,5 +485,6 @@ fn squeeze_film_damping_is_learned_as_a_function_of_the_gap() {
         law(lo),
         law(hi)
     );
+    // Seeds 0..3: 3.63 %, 4.15 %, 3.81 %, 4.32 % (README: 5 %).
     assert!(worst < 0.05, "learned c(q) off by {:.2} %", worst * 100.0);
 }

@@ -6,7 +6,7 @@
 //! * the damped flexure follows the closed-form free decay of a viscously
 //!   damped oscillator, x(t) = e^(-zeta w t) (x0 cos(wd t) + (v0 + zeta w
 //!   x0) / wd sin(wd t)), wd = w sqrt(1 - zeta^2) (any vibration textbook,
-//!   e.g. Thomson & Dahmel, "Theory of Vibration with Applications"; from
+//!   e.g. Thomson & Dahleh, "Theory of Vibration with Applications"; from
 //!   memory);
 //! * the driven drivetrain's logged derivatives satisfy the energy balance
 //!   dH/dt = -g^T R g + g^T G u (the port-Hamiltonian power balance,

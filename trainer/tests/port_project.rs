@@ -19,13 +19,14 @@
 //!   m x'' + c x' + k x = 0 has |lambda| = sqrt(k / m) and damping ratio
 //!   -Re(lambda) / |lambda| = zeta exactly (textbook closed form).
 
+mod page_numbers;
+
 use std::path::Path;
 use std::process::Command;
 
 use clap::Parser;
 use visviva_trainer::cli::fit;
 use visviva_trainer::evidence::check::reference_modes;
-use visviva_trainer::evidence::report::{page_disagreements, tagged_values};
 use visviva_trainer::learn::fit::{fit_baseline, ArchChoice, FitSettings};
 use visviva_trainer::learn::hnn::PortArch;
 use visviva_trainer::learn::net::Activation;
@@ -290,12 +291,12 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
     );
 
     let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
-    let tags = tagged_values(&html);
+    let tags = page_numbers::spans(&html);
     assert!(tags.len() > 40, "only {} tagged numbers", tags.len());
     assert_eq!(
-        page_disagreements(&html, &json),
+        page_numbers::disagreements(&html, &json),
         vec![],
-        "page and report.json disagree (key, page, report)"
+        "page text, read back as numbers, disagrees with report.json (key, page, report)"
     );
     assert!(tags.iter().any(|(k, _)| k == "port/modes/0/damping_ratio"));
     assert!(tags

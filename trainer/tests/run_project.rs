@@ -3,10 +3,10 @@
 //! export section does not refit), and a bad project file is refused with
 //! its line and no output.
 
+mod page_numbers;
+
 use std::path::Path;
 use std::process::Command;
-
-use visviva_trainer::evidence::report::{page_disagreements, tagged_values};
 
 fn visviva(args: &[&str], dir: &Path) -> std::process::Output {
     Command::new(env!("CARGO_BIN_EXE_visviva"))
@@ -87,12 +87,12 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     let json: serde_json::Value =
         serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
     let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
-    let tags = tagged_values(&html);
+    let tags = page_numbers::spans(&html);
     assert!(tags.len() > 40, "only {} tagged numbers", tags.len());
     assert_eq!(
-        page_disagreements(&html, &json),
+        page_numbers::disagreements(&html, &json),
         vec![],
-        "page and report.json disagree (key, page, report)"
+        "page text, read back as numbers, disagrees with report.json (key, page, report)"
     );
     // The page is self-contained: no scripts, no external resources (the
     // only URL is the SVG namespace name, which is never fetched).

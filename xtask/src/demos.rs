@@ -3,7 +3,8 @@
 //! with the seeds listed here; `visviva run --force` then fits, checks and
 //! exports. With `--verify` (what CI runs) the logs are regenerated into a
 //! scratch folder and must equal the committed files byte for byte, and each
-//! project is run twice and must produce identical blobs.
+//! project is run twice and must produce identical blobs; the damped demos'
+//! headline modes are asserted against closed forms (`demo_modes`).
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -257,6 +258,7 @@ pub fn run(verify: bool, regenerate_data: bool) -> Result<bool> {
         }
         visviva(&exe, &["run", "--force", "--quiet"], &[&dir])?;
         if verify {
+            ok &= crate::demo_modes::check(name, &dir)?;
             let first = blobs(&dir.join("out"))?;
             visviva(&exe, &["run", "--force", "--quiet"], &[&dir])?;
             let second = blobs(&dir.join("out"))?;

@@ -6,6 +6,8 @@
 //! * `cargo xtask demos [--verify] [--data]`: rerun the demo projects
 //!   (`--data` also rewrites their logs; `--verify` checks that logs and
 //!   blobs reproduce bit for bit).
+//! * `cargo xtask claims`: every percentage or tolerance figure in README.md
+//!   with the test that asserts it (or "one run"); fails on an unlisted one.
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
 //!   Visviva against PyTorch and JAX references (see `bench/README.md`).
 //! * `cargo xtask device [--blob FILE.vvb]...`: installs missing tools, runs
@@ -13,6 +15,8 @@
 //!   state bit for bit with the host rollout.
 
 mod bench;
+mod claims;
+mod demo_modes;
 mod demos;
 mod device_check;
 mod device_log;
@@ -31,6 +35,7 @@ use std::process::ExitCode;
 
 const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
+  claims                    README figures and the tests that assert them
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
                             (default: the generated fixture blobs)
@@ -41,6 +46,7 @@ fn main() -> ExitCode {
     let args: Vec<String> = std::env::args().skip(1).collect();
     let result = match args.first().map(String::as_str) {
         Some("test") if args.len() == 1 => test_pipeline::run(),
+        Some("claims") if args.len() == 1 => claims::run(),
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");

@@ -18,7 +18,7 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 7] = [
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 8] = [
         (
             "cargo fmt --all -- --check (workspace and firmware-example)",
             &|| {
@@ -44,6 +44,10 @@ pub fn run() -> Result<bool> {
                     "warnings",
                 ])
             },
+        ),
+        (
+            "cargo xtask claims (every README figure with the test that asserts it)",
+            &crate::claims::run,
         ),
         (
             "cargo test --workspace --exclude visviva-tests (visviva-tests run in release below)",

@@ -600,38 +600,3 @@ fn port_section(h: &mut Html<'_>, port: &PortReport, charts: &[(String, String)]
         ));
     }
 }
-
-/// Every `data-k` tag in a page with the text it shows (for tests).
-pub fn tagged_values(html: &str) -> Vec<(String, String)> {
-    let mut out = Vec::new();
-    let mut rest = html;
-    while let Some(i) = rest.find("<span data-k=\"") {
-        rest = &rest[i + 14..];
-        let Some(q) = rest.find('"') else { break };
-        let key = rest[..q].to_string();
-        let Some(gt) = rest.find('>') else { break };
-        let Some(end) = rest.find("</span>") else {
-            break;
-        };
-        let text = rest[gt + 1..end]
-            .replace("&lt;", "<")
-            .replace("&gt;", ">")
-            .replace("&amp;", "&");
-        out.push((key, text));
-        rest = &rest[end..];
-    }
-    out
-}
-
-/// The tagged numbers of a page whose text differs from what `report`
-/// (the run's report.json) holds at their key: (key, page text, report
-/// text). Empty when the page shows exactly the report's numbers.
-pub fn page_disagreements(html: &str, report: &Value) -> Vec<(String, String, String)> {
-    tagged_values(html)
-        .into_iter()
-        .filter_map(|(key, shown)| {
-            let want = fmt_num(lookup(report, &key).unwrap_or(&Value::Null));
-            (want != shown).then_some((key, shown, want))
-        })
-        .collect()
-}

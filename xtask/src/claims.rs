@@ -1,0 +1,319 @@
+//! `cargo xtask claims`: every percentage or tolerance figure in README.md's
+//! prose (outside code blocks and indented command lines) with the test
+//! that asserts it, or why none does ("one run": a measurement; "setting":
+//! an input, not a result). Driven by [`CLAIMS`]; fails when the README
+//! holds a figure the table does not list, when a table entry matches no
+//! README line, or when an entry names a test that is not in the tree.
+
+use anyhow::{Context, Result};
+
+/// How a figure is backed.
+pub enum Backing {
+    /// `path::name`: a `fn name(` or `const name:` in that file asserts it.
+    Test(&'static str),
+    /// One run's measurement, labelled so in the README.
+    OneRun,
+    /// An input or a derived fact, not a measured result (why).
+    Setting(&'static str),
+}
+
+/// A README figure: its text as the scanner extracts it, a phrase that
+/// appears on the same README line, and its backing.
+pub struct Claim {
+    pub figure: &'static str,
+    pub context: &'static str,
+    pub backing: Backing,
+}
+
+/// The table. Keep it in README order.
+pub const CLAIMS: &[Claim] = &[
+    Claim {
+        figure: "0.2 %",
+        context: "noise",
+        backing: Backing::Setting("the crane demo log's --noise 0.002"),
+    },
+    Claim {
+        figure: "1e-3",
+        context: "true-energy drift",
+        backing: Backing::Test("tests/tests/massspring_energy.rs::energy_model_keeps_true_energy_over_100_periods_and_baseline_drifts"),
+    },
+    Claim {
+        figure: "90 %",
+        context: "the baseline's at",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1 %",
+        context: "median by more than",
+        backing: Backing::Setting("default of [data] step_tolerance"),
+    },
+    Claim {
+        figure: "0.05 %",
+        context: "logarithmic decrement",
+        backing: Backing::Test("trainer/tests/port_checks.rs::damped_flexure_log_decrement_gives_the_simulated_damping_ratio"),
+    },
+    Claim {
+        figure: "0.01 %",
+        context: "simulated 0.05",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1 %",
+        context: "torque / b",
+        backing: Backing::Test("trainer/tests/port_checks.rs::drivetrain_steady_speed_is_torque_over_friction"),
+    },
+    Claim {
+        figure: "0.19 %",
+        context: "torque / b",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "2 x 10^4",
+        context: "random states",
+        backing: Backing::Test("trainer/tests/port_checks.rs::drivetrain_steady_speed_is_torque_over_friction"),
+    },
+    Claim {
+        figure: "1 %",
+        context: "-atan(a / g) within",
+        backing: Backing::Test("trainer/tests/port_checks.rs::crane_under_a_trolley_settles_at_the_effective_gravity_angle"),
+    },
+    Claim {
+        figure: "0.56 %",
+        context: "-atan(a / g) within",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "13 %",
+        context: "-asin(a / g)",
+        backing: Backing::Setting("arithmetic of the two closed forms at 0.5 g"),
+    },
+    Claim {
+        figure: "2 %",
+        context: "G(q) stays within",
+        backing: Backing::Test("trainer/tests/port_checks.rs::crane_under_a_trolley_settles_at_the_effective_gravity_angle"),
+    },
+    Claim {
+        figure: "0.70 %",
+        context: "other seeds",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1.96 %",
+        context: "other seeds",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "5 %",
+        context: "(one run: 3.6 %)",
+        backing: Backing::Test("trainer/tests/port_checks.rs::squeeze_film_damping_is_learned_as_a_function_of_the_gap"),
+    },
+    Claim {
+        figure: "3.6 %",
+        context: "(one run: 3.6 %)",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "0.10 %",
+        context: "learned shaft mode",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "0.15 %",
+        context: "off the simulated",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "0.3 %",
+        context: "asserts the shaft mode",
+        backing: Backing::Test("xtask/src/demo_modes.rs::HEADLINES"),
+    },
+    Claim {
+        figure: "0.6 %",
+        context: "of the closed form",
+        backing: Backing::Test("xtask/src/demo_modes.rs::HEADLINES"),
+    },
+    Claim {
+        figure: "37 %",
+        context: "int8 blob",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "10^4",
+        context: "normalization scales",
+        backing: Backing::Setting("the export's measurement horizon"),
+    },
+    Claim {
+        figure: "0.3 %",
+        context: "swing mode within",
+        backing: Backing::Test("xtask/src/demo_modes.rs::HEADLINES"),
+    },
+    Claim {
+        figure: "0.6 %",
+        context: "damping ratio within",
+        backing: Backing::Test("xtask/src/demo_modes.rs::HEADLINES"),
+    },
+    Claim {
+        figure: "2.79e-2",
+        context: "sequences was",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "2.99e-2",
+        context: "against the baseline's",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1e-13",
+        context: "relative tolerance",
+        backing: Backing::Setting("the simulator's integration tolerance"),
+    },
+    Claim {
+        figure: "1e-10",
+        context: "relative tolerance",
+        backing: Backing::Test("trainer/tests/simulate.rs::agrees_with_ode_solvers_dop853"),
+    },
+    Claim {
+        figure: "1e-3",
+        context: "Adam lr",
+        backing: Backing::Setting("the benchmark's learning rate"),
+    },
+];
+
+/// Figures on one prose line: numbers directly before " %" or "%",
+/// scientific numbers like 1e-3, and powers like 10^5 or 2 x 10^4.
+pub fn figures(line: &str) -> Vec<String> {
+    let words: Vec<&str> = line.split_whitespace().collect();
+    let mut out = Vec::new();
+    let trim = |w: &str| {
+        w.trim_matches(|c: char| "(),;:.".contains(c) && c != '%')
+            .to_string()
+    };
+    for (i, raw) in words.iter().enumerate() {
+        let w = trim(raw);
+        let is_num = |s: &str| !s.is_empty() && s.parse::<f64>().is_ok();
+        if w == "%" && i > 0 && is_num(&trim(words[i - 1])) {
+            out.push(format!("{} %", trim(words[i - 1])));
+        } else if let Some(n) = w.strip_suffix('%').filter(|n| is_num(n)) {
+            out.push(format!("{n} %"));
+        } else if w.contains('e')
+            && is_num(&w)
+            && w.chars().next().is_some_and(|c| c.is_ascii_digit())
+        {
+            out.push(w);
+        } else if w.starts_with("10^") {
+            if i >= 2 && words[i - 1] == "x" && is_num(&trim(words[i - 2])) {
+                out.push(format!("{} x {w}", trim(words[i - 2])));
+            } else {
+                out.push(w);
+            }
+        }
+    }
+    out
+}
+
+/// README prose lines (1-based number, text): fenced code blocks and lines
+/// indented by four or more spaces (commands) are left out.
+fn prose_lines(text: &str) -> Vec<(usize, &str)> {
+    let mut fenced = false;
+    let mut out = Vec::new();
+    for (i, line) in text.lines().enumerate() {
+        if line.trim_start().starts_with("```") {
+            fenced = !fenced;
+            continue;
+        }
+        if !fenced && !line.starts_with("    ") {
+            out.push((i + 1, line));
+        }
+    }
+    out
+}
+
+/// Whether `path::name` names a function or constant in the tree.
+fn test_exists(root: &std::path::Path, target: &str) -> bool {
+    let Some((path, name)) = target.rsplit_once("::") else {
+        return false;
+    };
+    std::fs::read_to_string(root.join(path)).is_ok_and(|src| {
+        src.contains(&format!("fn {name}(")) || src.contains(&format!("const {name}:"))
+    })
+}
+
+/// Print the listing; Ok(false) on an unlisted figure, an unused entry or
+/// a missing test.
+pub fn run() -> Result<bool> {
+    let root = crate::workspace_root();
+    let readme = root.join("README.md");
+    let text = std::fs::read_to_string(&readme)
+        .with_context(|| format!("reading {}", readme.display()))?;
+    let mut ok = true;
+    let mut used = vec![false; CLAIMS.len()];
+    println!("README.md figures and what backs them:");
+    for (n, line) in prose_lines(&text) {
+        for fig in figures(line) {
+            let hit = CLAIMS
+                .iter()
+                .position(|c| c.figure == fig && line.contains(c.context));
+            let Some(k) = hit else {
+                println!("  line {n}: {fig}: NOT IN THE TABLE (xtask/src/claims.rs)");
+                ok = false;
+                continue;
+            };
+            used[k] = true;
+            let what = match CLAIMS[k].backing {
+                Backing::Test(t) if test_exists(&root, t) => format!("asserted by {t}"),
+                Backing::Test(t) => {
+                    ok = false;
+                    format!("MISSING TEST {t}")
+                }
+                Backing::OneRun => "one run's measurement".into(),
+                Backing::Setting(why) => format!("setting: {why}"),
+            };
+            println!("  line {n}: {fig}: {what}");
+        }
+    }
+    for (c, _) in CLAIMS.iter().zip(&used).filter(|(_, u)| !**u) {
+        println!(
+            "  table entry {} ({:?}) matches no README line",
+            c.figure, c.context
+        );
+        ok = false;
+    }
+    println!(
+        "claims: {}",
+        if ok { "every figure listed" } else { "FAILED" }
+    );
+    Ok(ok)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn figures_are_found_in_prose() {
+        let f = figures("within 0.5 % (one run 0.19 %), 2 x 10^4 states, 1e-3 drift, 37% size");
+        assert_eq!(f, ["0.5 %", "0.19 %", "2 x 10^4", "1e-3", "37 %"]);
+        assert!(figures("version 3, 12.30 Hz, e-mail").is_empty());
+    }
+
+    #[test]
+    fn every_named_test_exists_and_a_wrong_name_is_caught() {
+        let root = crate::workspace_root();
+        for c in CLAIMS {
+            if let Backing::Test(t) = c.backing {
+                assert!(test_exists(&root, t), "{t}");
+            }
+        }
+        assert!(!test_exists(
+            &root,
+            "trainer/tests/port_checks.rs::no_such_test"
+        ));
+    }
+
+    #[test]
+    fn code_blocks_and_command_lines_are_not_prose() {
+        let text = "a 1 %\n```text\nb 2 %\n```\n    c 3 %\nd 4 %";
+        let lines: Vec<usize> = prose_lines(text).iter().map(|(n, _)| *n).collect();
+        assert_eq!(lines, [1, 6]);
+    }
+}

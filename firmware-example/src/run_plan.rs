@@ -21,7 +21,7 @@ pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!("VISVIVA_RUN_PLAN"));
 
 const TAG: [u8; 4] = *b"VRUN";
 /// Inputs per step the firmware can hold.
-pub const MAX_INPUTS: usize = visviva_runtime::format::MAX_INPUTS;
+pub const MAX_INPUTS: usize = visviva_runtime::MAX_INPUTS;
 
 /// Why a plan was refused.
 #[derive(Debug, Clone, Copy, defmt::Format)]

@@ -4,7 +4,9 @@
 mod common;
 
 use common::*;
-use visviva_runtime::format::{self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION};
+use visviva_runtime::format::{
+    self, Activation, EnergyDesc, F32Bytes, KineticDesc, FORMAT_VERSION,
+};
 use visviva_runtime::{BlobError, Integrator, Method, Model, Section, State, StepError};
 
 fn sample() -> OwnedModel {
@@ -352,4 +354,79 @@ fn state_constructor_checks_sizes() {
     assert!(State::<2>::new(&[1.0, 2.0, 3.0], &[0.0, 0.0, 0.0]).is_err());
     assert!(State::<2>::new(&[1.0], &[0.0, 0.0]).is_err());
     assert!(State::<2>::zeros(0).is_err());
+}
+
+/// A blob cut out of a larger flash region by its header alone. The layout
+/// (10-byte header: magic, u16 version, u32 payload length; 4-byte CRC
+/// trailer) is the one `format.rs` documents; the encoder's own output
+/// length is the reference for a good blob.
+#[test]
+fn blob_len_reads_the_total_length_from_the_header() {
+    let blob = sample().blob();
+    assert_eq!(visviva_runtime::blob_len(&blob), Ok(blob.len()));
+    // Only the header is read: the first 10 bytes suffice, and erased flash
+    // (0xFF) after the blob is ignored.
+    assert_eq!(
+        visviva_runtime::blob_len(&blob[..format::HEADER_LEN]),
+        Ok(blob.len())
+    );
+    let mut region = blob.clone();
+    region.resize(blob.len() + 4096, 0xFF);
+    let len = visviva_runtime::blob_len(&region).unwrap();
+    assert_eq!(&region[..len], &blob[..]);
+    assert!(M::from_bytes(&region[..len]).is_ok());
+}
+
+#[test]
+fn blob_len_refuses_a_short_header() {
+    let blob = sample().blob();
+    for cut in 0..format::HEADER_LEN {
+        assert_eq!(
+            visviva_runtime::blob_len(&blob[..cut]),
+            Err(BlobError::Truncated {
+                needed: (format::HEADER_LEN + format::TRAILER_LEN) as u32,
+                found: cut as u32,
+            }),
+            "header cut at {cut} bytes"
+        );
+    }
+}
+
+#[test]
+fn blob_len_refuses_a_wrong_magic_and_erased_flash() {
+    let mut blob = sample().blob();
+    let erased = vec![0xFFu8; 64];
+    assert_eq!(visviva_runtime::blob_len(&erased), Err(BlobError::BadMagic));
+    blob[3] ^= 0x01;
+    assert_eq!(visviva_runtime::blob_len(&blob), Err(BlobError::BadMagic));
+}
+
+#[test]
+fn blob_len_refuses_an_unreadable_version() {
+    let mut blob = sample().blob();
+    blob[4..6].copy_from_slice(&(FORMAT_VERSION + 1).to_le_bytes());
+    assert_eq!(
+        visviva_runtime::blob_len(&blob),
+        Err(BlobError::UnsupportedVersion {
+            found: FORMAT_VERSION + 1,
+            supported: FORMAT_VERSION,
+        })
+    );
+}
+
+#[test]
+fn blob_len_refuses_a_length_beyond_32_bits() {
+    let mut header = sample().blob()[..format::HEADER_LEN].to_vec();
+    let extra = (format::HEADER_LEN + format::TRAILER_LEN) as u32;
+    // The largest payload whose blob still fits in u32::MAX bytes...
+    header[6..10].copy_from_slice(&(u32::MAX - extra).to_le_bytes());
+    assert_eq!(visviva_runtime::blob_len(&header), Ok(u32::MAX as usize));
+    // ...and one byte more, up to the largest the field can state.
+    for payload_len in [u32::MAX - extra + 1, u32::MAX] {
+        header[6..10].copy_from_slice(&payload_len.to_le_bytes());
+        assert_eq!(
+            visviva_runtime::blob_len(&header),
+            Err(BlobError::LengthOutOfRange { payload_len })
+        );
+    }
 }

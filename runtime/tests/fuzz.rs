@@ -9,9 +9,9 @@
 mod common;
 
 use common::*;
+use proptest::prelude::{any, proptest, ProptestConfig};
 use visviva_runtime::format::{Activation, HEADER_LEN};
 use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
-use proptest::prelude::{any, proptest, ProptestConfig};
 
 fn seeds() -> Vec<Vec<u8>> {
     let mut rng = Rng(0xf22);

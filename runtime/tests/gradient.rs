@@ -9,9 +9,9 @@
 mod common;
 
 use common::*;
+use num_dual::{Dual64, DualNum};
 use visviva_runtime::format::Activation;
 use visviva_runtime::{Hamiltonian, Method, Model, State};
-use num_dual::{Dual64, DualNum};
 
 /// The reference computes in f64 dual numbers.
 type T = Dual64;

@@ -15,7 +15,7 @@ use crate::device_log::{self, DeviceLog};
 use crate::elf_size::{self, ElfSize};
 use crate::fixtures;
 use crate::golden_csv;
-use crate::host_rollout::{self, HostRollout, VisvivaCommand, Trajectories};
+use crate::host_rollout::{self, HostRollout, Trajectories, VisvivaCommand};
 use crate::model_swap;
 use crate::qemu_run::{self, ICOUNT_SHIFT, SYSTICK_NS};
 use crate::run_plan::RunPlan;

@@ -16,7 +16,7 @@ mod stack_watermark;
 
 use cortex_m_rt::entry;
 use defmt_semihosting as _;
-use visviva_runtime::{Model, State};
+use visviva_runtime::{BlobError, Model, State};
 
 /// Most degrees of freedom this firmware accepts; a blob with more is refused.
 pub const MAX_DOF: usize = 4;
@@ -58,20 +58,10 @@ fn main() -> ! {
         calib.overhead_ticks
     );
 
-    let blob = model_region::blob();
-    let model = match FirmwareModel::from_bytes(blob) {
-        Ok(m) => m,
-        Err(e) => {
-            defmt::error!(
-                "visviva-fw error: blob refused: {} ({})",
-                e,
-                defmt::Display2Format(&e)
-            );
-            faults::exit_failure()
-        }
-    };
+    let blob = model_region::blob().unwrap_or_else(|e| refuse_blob(e));
+    let model = FirmwareModel::from_bytes(blob).unwrap_or_else(|e| refuse_blob(e));
     let cost = model.cost();
-    let dof = visviva_runtime::Hamiltonian::dof(&model);
+    let dof = model.dof();
     defmt::println!(
         "visviva-fw model dof={=u32} parameters={=u32} macs_per_step={=u32} blob_bytes={=u32}",
         dof as u32,
@@ -151,6 +141,16 @@ fn main() -> ! {
     );
     defmt::println!("visviva-fw done");
     faults::exit_success()
+}
+
+/// Log why the blob was refused (variant and sentence) and exit non-zero.
+fn refuse_blob(e: BlobError) -> ! {
+    defmt::error!(
+        "visviva-fw error: blob refused: {} ({})",
+        e,
+        defmt::Display2Format(&e)
+    );
+    faults::exit_failure()
 }
 
 /// Log one state as `x <state> <step> [bytes]`: the exact bit patterns of

@@ -6,7 +6,7 @@
 //! region's address) without rebuilding. The blob's length comes from its own
 //! header; erased or foreign bytes are refused by the runtime's checks.
 
-use visviva_runtime::format::{HEADER_LEN, TRAILER_LEN};
+use visviva_runtime::BlobError;
 
 /// The blob chosen at build time, placed in `.vv_model` (kept by the
 /// linker script even though no code refers to it).
@@ -32,14 +32,13 @@ fn region() -> &'static [u8] {
 }
 
 /// The blob at the start of the region: as many bytes as its header claims
-/// (clamped to the region), for the runtime to validate.
-pub fn blob() -> &'static [u8] {
+/// (`visviva_runtime::blob_len`), for the runtime to validate. A header the
+/// runtime cannot read, or a length past the region's end, is refused here.
+pub fn blob() -> Result<&'static [u8], BlobError> {
     let region = region();
-    let claimed = match region.get(6..HEADER_LEN) {
-        Some(&[a, b, c, d]) => {
-            (HEADER_LEN + TRAILER_LEN).saturating_add(u32::from_le_bytes([a, b, c, d]) as usize)
-        }
-        _ => region.len(),
-    };
-    &region[..claimed.min(region.len())]
+    let len = visviva_runtime::blob_len(region)?;
+    region.get(..len).ok_or(BlobError::Truncated {
+        needed: len as u32,
+        found: region.len() as u32,
+    })
 }

@@ -17,11 +17,14 @@
 //! H is 20 for version 1 and 24 for version 2.
 
 /// The plan embedded in this build.
-pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!("VISVIVA_RUN_PLAN"));
+pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!(
+    "VISVIVA_RUN_PLAN",
+    "set VISVIVA_RUN_PLAN to a run plan file to build the test harness (`cargo xtask device` does)"
+));
 
 const TAG: [u8; 4] = *b"VRUN";
 /// Inputs per step the firmware can hold.
-pub const MAX_INPUTS: usize = visviva_runtime::format::MAX_INPUTS;
+pub const MAX_INPUTS: usize = visviva_runtime::MAX_INPUTS;
 
 /// Why a plan was refused.
 #[derive(Debug, Clone, Copy, defmt::Format)]

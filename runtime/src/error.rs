@@ -73,6 +73,8 @@ pub enum BlobError {
     UnsupportedTerm { section: Section },
     /// An explicit symplectic method paired with dissipation or inputs.
     MethodIgnoresPortTerms,
+    /// A header whose payload length makes the blob longer than 2^32 - 1 bytes.
+    LengthOutOfRange { payload_len: u32 },
 }
 
 impl fmt::Display for BlobError {
@@ -132,6 +134,10 @@ impl fmt::Display for BlobError {
             Self::UnsupportedTerm { section } => {
                 write!(f, "{section:?} term is not supported by this runtime version")
             }
+            Self::LengthOutOfRange { payload_len } => write!(
+                f,
+                "blob header states a payload of {payload_len} bytes: the blob would not fit in 2^32 - 1 bytes"
+            ),
         }
     }
 }

@@ -32,8 +32,9 @@ pub const MAGIC: [u8; 4] = *b"VVMB";
 pub const FORMAT_VERSION: u16 = 3;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
-/// Most inputs u1..um of a driven model.
-pub const MAX_INPUTS: usize = 8;
+/// Most inputs of a driven model; defined at the crate root
+/// ([`crate::MAX_INPUTS`]) and named here too for existing callers.
+pub use crate::MAX_INPUTS;
 /// Bytes before the payload: magic, version, length.
 pub const HEADER_LEN: usize = 10;
 /// Bytes after the payload: the CRC.
@@ -185,7 +186,7 @@ pub enum InputDesc<'a> {
     None,
     /// Constant G (2n x m, row-major, physical units). Format version 2.
     Constant {
-        /// Number of inputs m (1..=MAX_INPUTS).
+        /// Number of inputs m (1..=[`crate::MAX_INPUTS`]).
         inputs: u8,
         /// The matrix G.
         #[serde(borrow)]
@@ -194,7 +195,7 @@ pub enum InputDesc<'a> {
     /// G(q) as a network of the normalized coordinates z_q (n inputs) whose
     /// 2n m outputs are G(q) in physical units, row-major. Format version 3.
     Network {
-        /// Number of inputs m (1..=MAX_INPUTS).
+        /// Number of inputs m (1..=[`crate::MAX_INPUTS`]).
         inputs: u8,
         /// The network.
         #[serde(borrow)]
@@ -288,27 +289,48 @@ pub struct Envelope {
     pub computed_crc: u32,
 }
 
-/// Check magic, version, length and CRC; return the envelope and the payload.
-pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
-    let found = bytes.len() as u32;
-    let (Some(magic), Some(ver), Some(len)) = (bytes.get(0..4), bytes.get(4..6), bytes.get(6..10))
+/// Check the header (magic, readable version) and return the format version
+/// and the payload length it states.
+fn read_header(bytes: &[u8]) -> Result<(u16, u32), BlobError> {
+    let (Some(magic), Some(&[v0, v1]), Some(&[l0, l1, l2, l3])) =
+        (bytes.get(0..4), bytes.get(4..6), bytes.get(6..HEADER_LEN))
     else {
         return Err(BlobError::Truncated {
             needed: (HEADER_LEN + TRAILER_LEN) as u32,
-            found,
+            found: bytes.len() as u32,
         });
     };
     if magic != MAGIC {
         return Err(BlobError::BadMagic);
     }
-    let version = u16::from_le_bytes([ver[0], ver[1]]);
+    let version = u16::from_le_bytes([v0, v1]);
     if !(OLDEST_READABLE_VERSION..=FORMAT_VERSION).contains(&version) {
         return Err(BlobError::UnsupportedVersion {
             found: version,
             supported: FORMAT_VERSION,
         });
     }
-    let payload_len = u32::from_le_bytes([len[0], len[1], len[2], len[3]]);
+    Ok((version, u32::from_le_bytes([l0, l1, l2, l3])))
+}
+
+/// The total length in bytes (header, payload and CRC) of the blob whose
+/// header starts `header`; only the first [`HEADER_LEN`] bytes are read.
+/// Firmware uses it to cut a blob out of a larger flash region. Checks the
+/// magic tag, the version and that the length fits in 32 bits; the payload
+/// and CRC are checked later by [`crate::Model::from_bytes`].
+pub fn blob_len(header: &[u8]) -> Result<usize, BlobError> {
+    let (_, payload_len) = read_header(header)?;
+    let total = u64::from(payload_len) + (HEADER_LEN + TRAILER_LEN) as u64;
+    u32::try_from(total)
+        .ok()
+        .and_then(|t| usize::try_from(t).ok())
+        .ok_or(BlobError::LengthOutOfRange { payload_len })
+}
+
+/// Check magic, version, length and CRC; return the envelope and the payload.
+pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
+    let found = bytes.len() as u32;
+    let (version, payload_len) = read_header(bytes)?;
     let end = (HEADER_LEN as u64) + payload_len as u64;
     let total = end + TRAILER_LEN as u64;
     if (bytes.len() as u64) < total {

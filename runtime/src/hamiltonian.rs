@@ -95,7 +95,7 @@ pub trait Hamiltonian<const D: usize> {
         dq: &mut [f32; D],
         dp: &mut [f32; D],
     ) -> Result<(), StepError> {
-        let zeros = [0.0f32; crate::format::MAX_INPUTS];
+        let zeros = [0.0f32; crate::MAX_INPUTS];
         self.vector_field_driven(x, &zeros[..self.inputs().min(zeros.len())], dq, dp)
     }
 }

@@ -121,7 +121,7 @@ impl Integrator {
         h: &H,
         x: &mut State<D>,
     ) -> Result<(), StepError> {
-        let zeros = [0.0f32; crate::format::MAX_INPUTS];
+        let zeros = [0.0f32; crate::MAX_INPUTS];
         self.step_driven(h, x, &zeros[..h.inputs().min(zeros.len())])
     }
 

@@ -3,11 +3,21 @@
 //! Evaluates a learned Hamiltonian energy model H(q, p) and steps it in time,
 //! on a microcontroller or on the host, with the same arithmetic bit for bit.
 //!
+//! A firmware needs only the crate root: [`blob_len`] cuts a blob out of its
+//! flash region, [`Model::from_bytes`] parses it, [`Model::dof`] and
+//! [`Model::inputs`] size the state and input, [`Model::step`] and
+//! [`Model::step_driven`] advance a [`State`].
+//!
 //! * [`format`]: the versioned, CRC-checked blob and its description types.
 //! * [`model`]: [`Model::from_bytes`] parses a blob without copying weights
 //!   and implements [`Hamiltonian`].
-//! * [`energy`], [`mlp`]: the energy networks and their analytic gradients.
-//! * [`integrate`]: Stormer-Verlet, Yoshida-4, implicit midpoint and RK4.
+//! * `energy`, `mlp` (crate-private): the energy networks and their analytic
+//!   gradients.
+//! * [`hamiltonian`]: the trait the integrators step (energy, gradient, and
+//!   the field (J - R) g + G u).
+//! * [`integrate`]: Stormer-Verlet, Yoshida-4, implicit midpoint, RK4 and the
+//!   discrete-gradient method.
+//! * [`state`]: the state (q, p) with a const bound on its size.
 //! * [`math`]: deterministic `tanh`, `softplus` and friends.
 //! * [`error`]: every failure as a typed enum; nothing here panics.
 //!
@@ -20,17 +30,18 @@
 // No heap, so large variants cannot be boxed: they stay inline by design.
 #![allow(clippy::large_enum_variant)]
 
-pub mod energy;
+mod energy;
 pub mod error;
 pub mod format;
 pub mod hamiltonian;
 pub mod integrate;
 pub mod math;
-pub mod mlp;
+mod mlp;
 pub mod model;
 pub mod state;
 
 pub use error::{BlobError, Section, StepError};
+pub use format::blob_len;
 pub use hamiltonian::Hamiltonian;
 pub use integrate::{Integrator, Method};
 pub use model::{Cost, Model};
@@ -39,3 +50,6 @@ pub use state::State;
 /// Largest number of degrees of freedom any build of the runtime accepts;
 /// a model's own bound `D` may be smaller.
 pub const MAX_DOF_SUPPORTED: usize = 16;
+
+/// Most inputs u1..um of a driven model.
+pub const MAX_INPUTS: usize = 8;

@@ -24,8 +24,6 @@ pub struct Mlp<'a, const W: usize> {
     activation: Activation,
     layers: [Option<Layer<'a>>; MAX_LAYERS],
     count: usize,
-    inputs: usize,
-    outputs: usize,
 }
 
 fn all_finite(v: F32Bytes<'_>) -> bool {
@@ -84,19 +82,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
             activation: desc.activation,
             layers,
             count,
-            inputs,
-            outputs,
         })
-    }
-
-    /// Input width.
-    pub fn inputs(&self) -> usize {
-        self.inputs
-    }
-
-    /// Output width.
-    pub fn outputs(&self) -> usize {
-        self.outputs
     }
 
     /// Multiply-accumulates of one forward pass plus one input gradient.
@@ -122,7 +108,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
             .sum()
     }
 
-    /// The first output for input `x` (first `inputs()` entries used).
+    /// The first output for input `x` (first `inputs` entries used).
     pub fn value(&self, x: &[f32]) -> f32 {
         let mut deriv = [[0.0f32; W]; MAX_LAYERS];
         let mut out = [0.0f32];
@@ -130,7 +116,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
         out[0]
     }
 
-    /// All outputs for input `x`, written to `out[..outputs()]` (a shorter
+    /// All outputs for input `x`, written to `out[..outputs]` (a shorter
     /// `out` receives the leading outputs).
     pub fn evaluate(&self, x: &[f32], out: &mut [f32]) {
         let mut deriv = [[0.0f32; W]; MAX_LAYERS];
@@ -138,7 +124,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
     }
 
     /// The first output and its gradient with respect to the input, written
-    /// to `grad[..inputs()]`.
+    /// to `grad[..inputs]`.
     pub fn value_and_gradient(&self, x: &[f32], grad: &mut [f32]) -> f32 {
         let mut deriv = [[0.0f32; W]; MAX_LAYERS];
         let mut out = [0.0f32];

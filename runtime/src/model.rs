@@ -186,7 +186,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         let section = Section::InputCoupling;
         let input_count = |inputs: u8| {
             let m = inputs as usize;
-            if m == 0 || m > format::MAX_INPUTS {
+            if m == 0 || m > crate::MAX_INPUTS {
                 Err(BlobError::ShapeMismatch { section, layer: 0 })
             } else {
                 Ok(m)
@@ -257,9 +257,14 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         self.integrator.step_driven(self, x, u)
     }
 
-    /// The learned energy function.
-    pub fn energy_fn(&self) -> &Energy<'a, W> {
-        &self.energy
+    /// Degrees of freedom n: a state holds n coordinates and n momenta.
+    pub fn dof(&self) -> usize {
+        self.dof
+    }
+
+    /// Number of inputs m that `step_driven` takes (0 for an autonomous model).
+    pub fn inputs(&self) -> usize {
+        self.input.map_or(0, |(m, _)| m)
     }
 
     /// Work and memory this model costs.
@@ -338,7 +343,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
     }
 
     fn inputs(&self) -> usize {
-        self.input.map_or(0, |(m, _)| m)
+        Model::inputs(self)
     }
 
     fn has_port_terms(&self) -> bool {

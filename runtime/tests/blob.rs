@@ -11,11 +11,11 @@ use visviva_runtime::{BlobError, Integrator, Method, Model, Section, State, Step
 
 fn sample() -> OwnedModel {
     separable(
-        &mut Rng(11),
+        &mut XorShift64Star(11),
         2,
         &[16, 16],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::StormerVerlet,
         0.01,
     )
@@ -33,9 +33,9 @@ fn reseal(b: &mut [u8]) {
 #[test]
 fn round_trip_and_zero_copy() {
     let owned = sample();
-    let blob = owned.blob();
+    let blob = owned.blob().unwrap();
     let desc = format::decode(&blob).unwrap();
-    assert_eq!(desc, owned.desc());
+    assert_eq!(desc, owned.desc().unwrap());
     // The weight bytes are borrowed from the blob itself.
     let EnergyDesc::Separable { potential, .. } = &desc.energy else {
         panic!()
@@ -59,7 +59,7 @@ fn crc_is_the_standard_crc32() {
 
 #[test]
 fn refuses_truncated_magic_version_crc_and_trailing() {
-    let blob = sample().blob();
+    let blob = sample().blob().unwrap();
     for cut in [0, 3, 9, 10, blob.len() / 2, blob.len() - 1] {
         assert!(
             matches!(
@@ -105,17 +105,17 @@ fn refuses_truncated_magic_version_crc_and_trailing() {
 
 #[test]
 fn refuses_models_beyond_the_const_bounds() {
-    let mut rng = Rng(3);
+    let mut rng = XorShift64Star(3);
     let big = separable(
         &mut rng,
         3,
         &[16],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::StormerVerlet,
         0.01,
     );
-    let blob = big.blob();
+    let blob = big.blob().unwrap();
     assert_eq!(
         Model::<2, 128>::from_bytes(&blob).unwrap_err(),
         BlobError::DofOutOfRange { dof: 3, max: 2 }
@@ -125,11 +125,11 @@ fn refuses_models_beyond_the_const_bounds() {
         1,
         &[64],
         Activation::Tanh,
-        Kind::Int8,
+        Precision::Int8,
         Method::StormerVerlet,
         0.01,
     );
-    let blob = wide.blob();
+    let blob = wide.blob().unwrap();
     assert_eq!(
         Model::<2, 32>::from_bytes(&blob).unwrap_err(),
         BlobError::TooWide {
@@ -148,7 +148,7 @@ fn refuses_relu_with_an_explanation() {
     if let OwnedEnergy::Separable { potential, .. } = &mut owned.energy {
         potential.activation = Activation::Relu;
     }
-    let err = M::from_bytes(&owned.blob()).unwrap_err();
+    let err = M::from_bytes(&owned.blob().unwrap()).unwrap_err();
     assert_eq!(
         err,
         BlobError::ReluInEnergyNetwork {
@@ -171,7 +171,7 @@ fn refuses_inconsistent_shapes_and_values() {
         potential.layers[1].inputs = 15;
     }
     assert!(matches!(
-        M::from_bytes(&bad.blob()),
+        M::from_bytes(&bad.blob().unwrap()),
         Err(BlobError::ShapeMismatch {
             section: Section::Potential,
             ..
@@ -184,7 +184,7 @@ fn refuses_inconsistent_shapes_and_values() {
         potential.layers[0].w_bytes[0..4].copy_from_slice(&f32::NAN.to_le_bytes());
     }
     assert_eq!(
-        M::from_bytes(&bad.blob()).unwrap_err(),
+        M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
         BlobError::NonFinite {
             section: Section::Potential
         }
@@ -194,7 +194,7 @@ fn refuses_inconsistent_shapes_and_values() {
     let mut bad = owned.clone();
     bad.scale_bytes[0..4].copy_from_slice(&0.0f32.to_le_bytes());
     assert_eq!(
-        M::from_bytes(&bad.blob()).unwrap_err(),
+        M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
         BlobError::NotPositive {
             section: Section::Normalization
         }
@@ -202,7 +202,7 @@ fn refuses_inconsistent_shapes_and_values() {
     let mut bad = owned.clone();
     bad.offset_bytes[4..8].copy_from_slice(&f32::INFINITY.to_le_bytes());
     assert_eq!(
-        M::from_bytes(&bad.blob()).unwrap_err(),
+        M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
         BlobError::NonFinite {
             section: Section::Normalization
         }
@@ -210,7 +210,7 @@ fn refuses_inconsistent_shapes_and_values() {
     let mut bad = owned.clone();
     bad.energy_scale = -1.0;
     assert_eq!(
-        M::from_bytes(&bad.blob()).unwrap_err(),
+        M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
         BlobError::NotPositive {
             section: Section::EnergyScale
         }
@@ -226,14 +226,14 @@ fn refuses_inconsistent_shapes_and_values() {
         bytes[0..4].copy_from_slice(&(-0.5f32).to_le_bytes());
     }
     assert_eq!(
-        M::from_bytes(&bad.blob()).unwrap_err(),
+        M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
         BlobError::NotPositive {
             section: Section::InverseMass
         }
     );
 
     // Wrong factor length.
-    let desc = owned.desc();
+    let desc = owned.desc().unwrap();
     let mut desc2 = desc.clone();
     if let EnergyDesc::Separable { kinetic, .. } = &mut desc2.energy {
         *kinetic = KineticDesc::Quadratic {
@@ -277,15 +277,23 @@ fn refuses_bad_integrator_settings_and_explicit_methods_on_general_models() {
     ] {
         owned.integrator = it;
         assert_eq!(
-            M::from_bytes(&owned.blob()).unwrap_err(),
+            M::from_bytes(&owned.blob().unwrap()).unwrap_err(),
             BlobError::BadIntegratorSettings
         );
     }
-    let mut rng = Rng(5);
+    let mut rng = XorShift64Star(5);
     for method in [Method::StormerVerlet, Method::Yoshida4] {
-        let g = general(&mut rng, 1, &[8], Activation::Tanh, Kind::F32, method, 0.01);
+        let g = general(
+            &mut rng,
+            1,
+            &[8],
+            Activation::Tanh,
+            Precision::F32,
+            method,
+            0.01,
+        );
         assert_eq!(
-            M::from_bytes(&g.blob()).unwrap_err(),
+            M::from_bytes(&g.blob().unwrap()).unwrap_err(),
             BlobError::MethodNeedsSeparableModel
         );
     }
@@ -294,11 +302,11 @@ fn refuses_bad_integrator_settings_and_explicit_methods_on_general_models() {
         1,
         &[8],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::ImplicitMidpoint,
         0.01,
     );
-    let blob = g.blob();
+    let blob = g.blob().unwrap();
     let m = M::from_bytes(&blob).unwrap();
     assert_eq!(
         m.with_integrator(Integrator::new(Method::Yoshida4, 0.01))
@@ -309,17 +317,17 @@ fn refuses_bad_integrator_settings_and_explicit_methods_on_general_models() {
 
 #[test]
 fn step_errors_are_typed_and_leave_the_state_alone() {
-    let mut rng = Rng(9);
+    let mut rng = XorShift64Star(9);
     let g = general(
         &mut rng,
         2,
         &[16],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::ImplicitMidpoint,
         0.01,
     );
-    let blob = g.blob();
+    let blob = g.blob().unwrap();
     let m = M::from_bytes(&blob).unwrap();
     let mut s = State::<8>::new(&[0.1, 0.2], &[0.0, f32::NAN]).unwrap();
     let before = s;
@@ -354,4 +362,79 @@ fn state_constructor_checks_sizes() {
     assert!(State::<2>::new(&[1.0, 2.0, 3.0], &[0.0, 0.0, 0.0]).is_err());
     assert!(State::<2>::new(&[1.0], &[0.0, 0.0]).is_err());
     assert!(State::<2>::zeros(0).is_err());
+}
+
+/// A blob cut out of a larger flash region by its header alone. The layout
+/// (10-byte header: magic, u16 version, u32 payload length; 4-byte CRC
+/// trailer) is the one `format.rs` documents; the encoder's own output
+/// length is the reference for a good blob.
+#[test]
+fn blob_len_reads_the_total_length_from_the_header() {
+    let blob = sample().blob().unwrap();
+    assert_eq!(visviva_runtime::blob_len(&blob), Ok(blob.len()));
+    // Only the header is read: the first 10 bytes suffice, and erased flash
+    // (0xFF) after the blob is ignored.
+    assert_eq!(
+        visviva_runtime::blob_len(&blob[..format::HEADER_LEN]),
+        Ok(blob.len())
+    );
+    let mut region = blob.clone();
+    region.resize(blob.len() + 4096, 0xFF);
+    let len = visviva_runtime::blob_len(&region).unwrap();
+    assert_eq!(&region[..len], &blob[..]);
+    assert!(M::from_bytes(&region[..len]).is_ok());
+}
+
+#[test]
+fn blob_len_refuses_a_short_header() {
+    let blob = sample().blob().unwrap();
+    for cut in 0..format::HEADER_LEN {
+        assert_eq!(
+            visviva_runtime::blob_len(&blob[..cut]),
+            Err(BlobError::Truncated {
+                needed: (format::HEADER_LEN + format::TRAILER_LEN) as u32,
+                found: cut as u32,
+            }),
+            "header cut at {cut} bytes"
+        );
+    }
+}
+
+#[test]
+fn blob_len_refuses_a_wrong_magic_and_erased_flash() {
+    let mut blob = sample().blob().unwrap();
+    let erased = vec![0xFFu8; 64];
+    assert_eq!(visviva_runtime::blob_len(&erased), Err(BlobError::BadMagic));
+    blob[3] ^= 0x01;
+    assert_eq!(visviva_runtime::blob_len(&blob), Err(BlobError::BadMagic));
+}
+
+#[test]
+fn blob_len_refuses_an_unreadable_version() {
+    let mut blob = sample().blob().unwrap();
+    blob[4..6].copy_from_slice(&(FORMAT_VERSION + 1).to_le_bytes());
+    assert_eq!(
+        visviva_runtime::blob_len(&blob),
+        Err(BlobError::UnsupportedVersion {
+            found: FORMAT_VERSION + 1,
+            supported: FORMAT_VERSION,
+        })
+    );
+}
+
+#[test]
+fn blob_len_refuses_a_length_beyond_32_bits() {
+    let mut header = sample().blob().unwrap()[..format::HEADER_LEN].to_vec();
+    let extra = (format::HEADER_LEN + format::TRAILER_LEN) as u32;
+    // The largest payload whose blob still fits in u32::MAX bytes...
+    header[6..10].copy_from_slice(&(u32::MAX - extra).to_le_bytes());
+    assert_eq!(visviva_runtime::blob_len(&header), Ok(u32::MAX as usize));
+    // ...and one byte more, up to the largest the field can state.
+    for payload_len in [u32::MAX - extra + 1, u32::MAX] {
+        header[6..10].copy_from_slice(&payload_len.to_le_bytes());
+        assert_eq!(
+            visviva_runtime::blob_len(&header),
+            Err(BlobError::LengthOutOfRange { payload_len })
+        );
+    }
 }

@@ -11,8 +11,8 @@ use visviva_runtime::{Integrator, Method, Model};
 #[test]
 fn macs_and_sizes_of_a_2_64_64_1_model() {
     let forward = 2 * 64 + 64 * 64 + 64;
-    let mut rng = Rng(1);
-    for kind in [Kind::F32, Kind::Int8] {
+    let mut rng = XorShift64Star(1);
+    for kind in [Precision::F32, Precision::Int8] {
         let owned = general(
             &mut rng,
             1,
@@ -22,7 +22,7 @@ fn macs_and_sizes_of_a_2_64_64_1_model() {
             Method::ImplicitMidpoint,
             0.01,
         );
-        let blob = owned.blob();
+        let blob = owned.blob().unwrap();
         let m: Model<'_, 1, 64> = Model::from_bytes(&blob).unwrap();
         let c = m.cost();
         println!(
@@ -38,8 +38,8 @@ fn macs_and_sizes_of_a_2_64_64_1_model() {
         // bias and per-channel scale; the rest is framing and shapes.
         let weights = forward;
         let (lo, hi) = match kind {
-            Kind::F32 => (4 * (weights + 129), 4 * (weights + 129) + 200),
-            Kind::Int8 => (weights + 8 * 129, weights + 8 * 129 + 200),
+            Precision::F32 => (4 * (weights + 129), 4 * (weights + 129) + 200),
+            Precision::Int8 => (weights + 8 * 129, weights + 8 * 129 + 200),
         };
         assert!(
             (lo..hi).contains(&blob.len()),
@@ -54,11 +54,11 @@ fn macs_and_sizes_of_a_2_64_64_1_model() {
         2,
         &[32],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::StormerVerlet,
         0.01,
     );
-    let blob = owned.blob();
+    let blob = owned.blob().unwrap();
     let m: Model<'_, 2, 32> = Model::from_bytes(&blob).unwrap();
     let v = 2 * (2 * 32 + 32) as u32;
     assert_eq!(m.cost().macs_per_step, 2 * v + 6);

@@ -14,30 +14,47 @@ use visviva_runtime::format::{Activation, HEADER_LEN};
 use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
 
 fn seeds() -> Vec<Vec<u8>> {
-    let mut rng = Rng(0xf22);
+    let mut rng = XorShift64Star(0xf22);
     let mut out = Vec::new();
-    for kind in [Kind::F32, Kind::Int8] {
+    for kind in [Precision::F32, Precision::Int8] {
         for act in [Activation::Tanh, Activation::Softplus] {
             out.push(
-                separable(&mut rng, 2, &[6, 5], act, kind, Method::StormerVerlet, 0.05).blob(),
+                separable(&mut rng, 2, &[6, 5], act, kind, Method::StormerVerlet, 0.05)
+                    .blob()
+                    .unwrap(),
             );
-            out.push(separable(&mut rng, 1, &[4], act, kind, Method::Yoshida4, 0.05).blob());
-            out.push(general(&mut rng, 2, &[6], act, kind, Method::ImplicitMidpoint, 0.05).blob());
-            out.push(general(&mut rng, 1, &[5, 3], act, kind, Method::Rk4, 0.05).blob());
+            out.push(
+                separable(&mut rng, 1, &[4], act, kind, Method::Yoshida4, 0.05)
+                    .blob()
+                    .unwrap(),
+            );
+            out.push(
+                general(&mut rng, 2, &[6], act, kind, Method::ImplicitMidpoint, 0.05)
+                    .blob()
+                    .unwrap(),
+            );
+            out.push(
+                general(&mut rng, 1, &[5, 3], act, kind, Method::Rk4, 0.05)
+                    .blob()
+                    .unwrap(),
+            );
             out.push(
                 general(&mut rng, 2, &[6], act, kind, Method::DiscreteGradient, 0.05)
                     .with_port(&mut rng, 0.3, 2)
-                    .blob(),
+                    .blob()
+                    .unwrap(),
             );
             out.push(
                 separable(&mut rng, 1, &[4], act, kind, Method::DiscreteGradient, 0.05)
                     .with_port(&mut rng, 0.3, 0)
-                    .blob(),
+                    .blob()
+                    .unwrap(),
             );
             out.push(
                 separable(&mut rng, 2, &[4], act, kind, Method::ImplicitMidpoint, 0.05)
                     .with_port_networks(&mut rng, 0.5, 1, 4, kind)
-                    .blob(),
+                    .blob()
+                    .unwrap(),
             );
         }
     }
@@ -68,7 +85,7 @@ const SPECIAL: [f32; 8] = [
     f32::NEG_INFINITY,
 ];
 
-fn mutate(rng: &mut Rng, b: &mut Vec<u8>) {
+fn mutate(rng: &mut XorShift64Star, b: &mut Vec<u8>) {
     for _ in 0..1 + rng.below(4) {
         match rng.below(6) {
             0 if !b.is_empty() => {
@@ -101,7 +118,7 @@ fn mutate(rng: &mut Rng, b: &mut Vec<u8>) {
     }
 }
 
-fn random_state(rng: &mut Rng, n: usize) -> State<8> {
+fn random_state(rng: &mut XorShift64Star, n: usize) -> State<8> {
     let mut v = [0.0f32; 16];
     for x in v.iter_mut().take(2 * n) {
         *x = match rng.below(8) {
@@ -112,7 +129,7 @@ fn random_state(rng: &mut Rng, n: usize) -> State<8> {
     State::new(&v[..n], &v[n..2 * n]).unwrap()
 }
 
-fn exercise(m: &Model<'_, 8, 16>, rng: &mut Rng) {
+fn exercise(m: &Model<'_, 8, 16>, rng: &mut XorShift64Star) {
     let n = m.dof();
     let mut s = random_state(rng, n);
     let _ = m.energy(&s);
@@ -139,7 +156,7 @@ fn exercise(m: &Model<'_, 8, 16>, rng: &mut Rng) {
 #[test]
 fn a_million_mutated_blobs_never_panic() {
     let seeds = seeds();
-    let mut rng = Rng(0x1234_5678_9abc_def1);
+    let mut rng = XorShift64Star(0x1234_5678_9abc_def1);
     let cases = 1_000_000u32;
     let (mut parsed, mut resealed) = (0u32, 0u32);
     for k in 0..cases {
@@ -161,7 +178,7 @@ fn a_million_mutated_blobs_never_panic() {
 
 #[test]
 fn untouched_seed_blobs_step_from_extreme_states() {
-    let mut rng = Rng(77);
+    let mut rng = XorShift64Star(77);
     for b in seeds() {
         let m = Model::<8, 16>::from_bytes(&b).unwrap();
         for _ in 0..2000 {

@@ -81,8 +81,8 @@ fn energy_ref(m: &OwnedModel, x: &[T]) -> T {
     e * c(m.energy_scale as f64)
 }
 
-fn check_model(owned: &OwnedModel, rng: &mut Rng, label: &str) {
-    let blob = owned.blob();
+fn check_model(owned: &OwnedModel, rng: &mut XorShift64Star, label: &str) {
+    let blob = owned.blob().unwrap();
     let model: Model<'_, 8, 128> = Model::from_bytes(&blob).expect("fixture parses");
     let n = owned.dof;
     let mut worst_ad = 0.0f64;
@@ -137,8 +137,8 @@ fn check_model(owned: &OwnedModel, rng: &mut Rng, label: &str) {
 
 #[test]
 fn general_models_match_autodiff_and_differences() {
-    let mut rng = Rng(0x5eed_0001);
-    for kind in [Kind::F32, Kind::Int8] {
+    let mut rng = XorShift64Star(0x5eed_0001);
+    for kind in [Precision::F32, Precision::Int8] {
         for act in [Activation::Tanh, Activation::Softplus] {
             for dof in [1, 2, 3] {
                 let m = general(
@@ -158,8 +158,8 @@ fn general_models_match_autodiff_and_differences() {
 
 #[test]
 fn separable_models_match_autodiff_and_differences() {
-    let mut rng = Rng(0x5eed_0002);
-    for kind in [Kind::F32, Kind::Int8] {
+    let mut rng = XorShift64Star(0x5eed_0002);
+    for kind in [Precision::F32, Precision::Int8] {
         for act in [Activation::Tanh, Activation::Softplus] {
             for dof in [1, 2, 4] {
                 let mut m = separable(
@@ -193,17 +193,17 @@ fn separable_models_match_autodiff_and_differences() {
 #[test]
 fn vector_field_is_symplectic_gradient() {
     // f = J dH/dx: dq/dt = dH/dp, dp/dt = -dH/dq (Hamilton's equations).
-    let mut rng = Rng(7);
+    let mut rng = XorShift64Star(7);
     let owned = general(
         &mut rng,
         2,
         &[16],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::Rk4,
         0.01,
     );
-    let blob = owned.blob();
+    let blob = owned.blob().unwrap();
     let model: Model<'_, 4, 32> = Model::from_bytes(&blob).unwrap();
     let s = State::<4>::new(&[0.3, -0.2], &[0.1, 0.4]).unwrap();
     let (mut gq, mut gp, mut fq, mut fp) = ([0.0; 4], [0.0; 4], [0.0; 4], [0.0; 4]);

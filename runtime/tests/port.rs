@@ -154,7 +154,7 @@ fn conservative_discrete_gradient_conserves_energy() {
 
 #[test]
 fn energy_never_rises_without_input_over_1e5_random_states() {
-    let mut rng = Rng(0xdec0de);
+    let mut rng = XorShift64Star(0xdec0de);
     let mut blobs = Vec::new();
     for (k, act) in [Activation::Tanh, Activation::Softplus]
         .into_iter()
@@ -165,38 +165,38 @@ fn energy_never_rises_without_input_over_1e5_random_states() {
             2,
             &[16, 16],
             act,
-            Kind::F32,
+            Precision::F32,
             Method::DiscreteGradient,
             0.02,
         )
         .with_port(&mut rng, 0.3, 1);
         g.integrator.max_iterations = 100;
-        blobs.push(g.blob());
+        blobs.push(g.blob().unwrap());
         let mut s = separable(
             &mut rng,
             1 + k,
             &[16],
             act,
-            Kind::Int8,
+            Precision::Int8,
             Method::DiscreteGradient,
             0.02,
         )
         .with_port(&mut rng, 0.3, 0);
         s.integrator.max_iterations = 100;
-        blobs.push(s.blob());
+        blobs.push(s.blob().unwrap());
         // R(q) = L(q) L(q)^T and G(q) as networks of q.
         let mut net = separable(
             &mut rng,
             2,
             &[16],
             act,
-            Kind::F32,
+            Precision::F32,
             Method::DiscreteGradient,
             0.02,
         )
-        .with_port_networks(&mut rng, 0.5, 1, 8, Kind::F32);
+        .with_port_networks(&mut rng, 0.5, 1, 8, Precision::F32);
         net.integrator.max_iterations = 100;
-        blobs.push(net.blob());
+        blobs.push(net.blob().unwrap());
     }
     let (mut steps, mut rises, mut worst) = (0u32, 0u32, 0.0f64);
     for k in 0..100_000u32 {
@@ -230,20 +230,24 @@ fn energy_never_rises_without_input_over_1e5_random_states() {
 
 #[test]
 fn port_networks_give_the_port_hamiltonian_field() {
-    let mut rng = Rng(77);
+    let mut rng = XorShift64Star(77);
     let mut worst = 0.0f64;
-    for (dof, m, kind) in [(1, 1, Kind::F32), (2, 2, Kind::Int8), (3, 1, Kind::F32)] {
+    for (dof, m, kind) in [
+        (1, 1, Precision::F32),
+        (2, 2, Precision::Int8),
+        (3, 1, Precision::F32),
+    ] {
         let fixture = general(
             &mut rng,
             dof,
             &[12],
             Activation::Tanh,
-            Kind::F32,
+            Precision::F32,
             Method::DiscreteGradient,
             0.01,
         )
         .with_port_networks(&mut rng, 0.5, m, 10, kind);
-        let blob = fixture.blob();
+        let blob = fixture.blob().unwrap();
         let model: Model<'_, 4, 32> = Model::from_bytes(&blob).unwrap();
         let (n, n2) = (dof, 2 * dof);
         let l_net = fixture.dissipation_net.as_ref().unwrap();
@@ -292,28 +296,28 @@ fn port_networks_give_the_port_hamiltonian_field() {
 
 #[test]
 fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
-    let mut rng = Rng(5);
+    let mut rng = XorShift64Star(5);
     let plain = general(
         &mut rng,
         1,
         &[8],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::DiscreteGradient,
         0.01,
     );
     assert_eq!(
-        u16::from_le_bytes([plain.blob()[4], plain.blob()[5]]),
+        u16::from_le_bytes([plain.blob().unwrap()[4], plain.blob().unwrap()[5]]),
         OLDEST_READABLE_VERSION
     );
     let driven = plain.clone().with_port(&mut rng, 0.2, 2);
-    let blob = driven.blob();
+    let blob = driven.blob().unwrap();
     assert_eq!(u16::from_le_bytes([blob[4], blob[5]]), 2);
     // Port networks need version 3; a version-2 header cannot carry them.
     let networked = plain
         .clone()
-        .with_port_networks(&mut rng, 0.5, 1, 6, Kind::F32);
-    let mut v3 = networked.blob();
+        .with_port_networks(&mut rng, 0.5, 1, 6, Precision::F32);
+    let mut v3 = networked.blob().unwrap();
     assert_eq!(u16::from_le_bytes([v3[4], v3[5]]), format::FORMAT_VERSION);
     assert_eq!(format::FORMAT_VERSION, 3);
     assert!(Model::<4, 16>::from_bytes(&v3).is_ok());
@@ -331,10 +335,10 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
         &mut rng,
         &[1, 6, 2],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
     ));
     assert!(matches!(
-        Model::<4, 16>::from_bytes(&wrong.blob()),
+        Model::<4, 16>::from_bytes(&wrong.blob().unwrap()),
         Err(BlobError::ShapeMismatch {
             section: visviva_runtime::error::Section::Dissipation,
             ..
@@ -370,17 +374,17 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
         1,
         &[8],
         Activation::Tanh,
-        Kind::F32,
+        Precision::F32,
         Method::StormerVerlet,
         0.01,
     )
     .with_port(&mut rng, 0.2, 0);
     assert_eq!(
-        Model::<4, 16>::from_bytes(&sep.blob()).unwrap_err(),
+        Model::<4, 16>::from_bytes(&sep.blob().unwrap()).unwrap_err(),
         BlobError::MethodIgnoresPortTerms
     );
     sep.integrator.method = Method::DiscreteGradient;
-    assert!(Model::<4, 16>::from_bytes(&sep.blob()).is_ok());
+    assert!(Model::<4, 16>::from_bytes(&sep.blob().unwrap()).is_ok());
 
     // Wrong factor length, non-finite G.
     let mut bad = driven.clone();
@@ -388,7 +392,7 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
         f.truncate(f.len() - 4);
     }
     assert!(matches!(
-        Model::<4, 16>::from_bytes(&bad.blob()),
+        Model::<4, 16>::from_bytes(&bad.blob().unwrap()),
         Err(BlobError::ShapeMismatch { .. })
     ));
     let mut bad = driven;
@@ -396,7 +400,7 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
         g[0..4].copy_from_slice(&f32::INFINITY.to_le_bytes());
     }
     assert!(matches!(
-        Model::<4, 16>::from_bytes(&bad.blob()),
+        Model::<4, 16>::from_bytes(&bad.blob().unwrap()),
         Err(BlobError::NonFinite { .. })
     ));
 }

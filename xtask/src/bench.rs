@@ -17,6 +17,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use anyhow::{bail, Context, Result};
+use visviva_blob_support::{Generator, SplitMix64};
 
 const USAGE: &str = "usage: cargo xtask bench [--rounds N] [--steps N] [--only visviva,torch,jax]";
 
@@ -91,25 +92,6 @@ fn parse_options(args: &[String]) -> Result<Options> {
     Ok(o)
 }
 
-/// SplitMix64 (Steele, Lea, Flood 2014): a small generator with the same
-/// stream on every machine.
-struct SplitMix64(u64);
-
-impl SplitMix64 {
-    fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-
-    /// Uniform in [0, 1) with 53 random bits.
-    fn unit(&mut self) -> f64 {
-        (self.next_u64() >> 11) as f64 / (1u64 << 53) as f64
-    }
-}
-
 /// The mass-spring log: exact solution q = r cos(t + phi), p = -r sin(t + phi)
 /// of H = p^2/2 + q^2/2 (unit mass and stiffness, period 2 pi), sampled at
 /// k * 2 pi / 64, k = 0..63, with exact derivatives dq/dt = p, dp/dt = -q.
@@ -118,8 +100,8 @@ pub fn mass_spring_csv() -> String {
     let dt = std::f64::consts::TAU / SAMPLES as f64;
     let mut s = String::from("traj,t,q1,p1,dq1,dp1\n");
     for traj in 0..TRAJECTORIES {
-        let radius = 0.2 + 0.8 * rng.unit();
-        let phase = std::f64::consts::TAU * rng.unit();
+        let radius = 0.2 + 0.8 * rng.uniform(0.0, 1.0);
+        let phase = std::f64::consts::TAU * rng.uniform(0.0, 1.0);
         for k in 0..SAMPLES {
             let t = k as f64 * dt;
             let q = radius * (t + phase).cos();

@@ -353,6 +353,87 @@ fn expect_refusal(
     Ok(pass)
 }
 
+/// Every bad fixture must be refused by name, and both fault drills must
+/// exit non-zero with their message.
+fn refusals_and_drills(root: &Path, work: &Path, cases: &[DeviceCase]) -> Result<bool> {
+    println!("device check: refusals and fault drills");
+    let mut refusals_ok = true;
+    let probe_plan = work.join("refusal.plan");
+    RunPlan {
+        dof: 1,
+        steps: 1,
+        initial_states: vec![vec![0.0, 0.0]],
+        inputs: Vec::new(),
+    }
+    .write(&probe_plan)?;
+    for bad in fixtures::bad_fixtures(FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH)? {
+        let path = work.join(format!("{}.vvb", bad.blob.name));
+        std::fs::write(&path, &bad.blob.bytes)?;
+        let host_view = visviva_runtime::Model::<FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH>::from_bytes(
+            &bad.blob.bytes,
+        )
+        .err()
+        .map(|e| format!("{e:?}"));
+        if !host_view
+            .as_deref()
+            .is_some_and(|e| e.contains(bad.expected_error))
+        {
+            println!(
+                "  {}: host runtime gives {:?}, expected {}",
+                bad.blob.name, host_view, bad.expected_error
+            );
+            refusals_ok = false;
+        }
+        refusals_ok &= expect_refusal(
+            root,
+            work,
+            &bad.blob.name,
+            &path,
+            &probe_plan,
+            None,
+            bad.expected_error,
+        )
+        .unwrap_or_else(|e| {
+            println!("  {}: FAILED: {e:#}", bad.blob.name);
+            false
+        });
+    }
+    if let Some(first) = cases.first() {
+        let plan = work.join(format!("{}.plan", first.name));
+        for (drill, expected) in [("panic", "panic"), ("hardfault", "hard fault")] {
+            let name = format!("drill-{drill}");
+            refusals_ok &=
+                expect_refusal(root, work, &name, &first.blob, &plan, Some(drill), expected)
+                    .unwrap_or_else(|e| {
+                        println!("  {name}: FAILED: {e:#}");
+                        false
+                    });
+        }
+    }
+
+    Ok(refusals_ok)
+}
+
+/// Build `firmware-example/examples/minimal.rs` with `blob` alone (no run
+/// plan), run it in QEMU and expect exit 0 and its state line.
+fn minimal_example_check(root: &Path, work: &Path, blob: &Path) -> Result<bool> {
+    println!("device check: minimal example (firmware-example/examples/minimal.rs)");
+    let elf = qemu_run::build_minimal_example(root, work, blob)?;
+    let outcome = qemu_run::run(&elf, work, "minimal")?;
+    let line = outcome
+        .log
+        .lines()
+        .find(|l| l.starts_with("after 1000 steps: q = "));
+    let pass = outcome.exit_code == Some(0) && !outcome.timed_out && line.is_some();
+    println!(
+        "  minimal: {} (qemu exit {:?}; logged: {})",
+        if pass { "ran and exited" } else { "FAILED" },
+        outcome.exit_code,
+        line.unwrap_or("no state line")
+    );
+    Ok(pass)
+}
+
 fn print_report(rows: &[ReportRow]) {
     println!();
     println!("resource report (firmware-example, thumbv7em-none-eabihf, release)");
@@ -439,67 +520,14 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         }
     };
 
-    println!("device check: refusals and fault drills");
-    let mut refusals_ok = true;
-    let probe_plan = work.join("refusal.plan");
-    RunPlan {
-        dof: 1,
-        steps: 1,
-        initial_states: vec![vec![0.0, 0.0]],
-        inputs: Vec::new(),
-    }
-    .write(&probe_plan)?;
-    for bad in fixtures::bad_fixtures(FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH)? {
-        let path = work.join(format!("{}.vvb", bad.blob.name));
-        std::fs::write(&path, &bad.blob.bytes)?;
-        let host_view = visviva_runtime::Model::<FIRMWARE_MAX_DOF, FIRMWARE_MAX_WIDTH>::from_bytes(
-            &bad.blob.bytes,
-        )
-        .err()
-        .map(|e| format!("{e:?}"));
-        if !host_view
-            .as_deref()
-            .is_some_and(|e| e.contains(bad.expected_error))
-        {
-            println!(
-                "  {}: host runtime gives {:?}, expected {}",
-                bad.blob.name, host_view, bad.expected_error
-            );
-            refusals_ok = false;
-        }
-        refusals_ok &= expect_refusal(
-            &root,
-            &work,
-            &bad.blob.name,
-            &path,
-            &probe_plan,
-            None,
-            bad.expected_error,
-        )
-        .unwrap_or_else(|e| {
-            println!("  {}: FAILED: {e:#}", bad.blob.name);
+    let refusals_ok = refusals_and_drills(&root, &work, &cases)?;
+    let minimal_ok = match cases.first() {
+        Some(first) => minimal_example_check(&root, &work, &first.blob).unwrap_or_else(|e| {
+            println!("  minimal example: FAILED: {e:#}");
             false
-        });
-    }
-    if let Some(first) = cases.first() {
-        let plan = work.join(format!("{}.plan", first.name));
-        for (drill, expected) in [("panic", "panic"), ("hardfault", "hard fault")] {
-            let name = format!("drill-{drill}");
-            refusals_ok &= expect_refusal(
-                &root,
-                &work,
-                &name,
-                &first.blob,
-                &plan,
-                Some(drill),
-                expected,
-            )
-            .unwrap_or_else(|e| {
-                println!("  {name}: FAILED: {e:#}");
-                false
-            });
-        }
-    }
+        }),
+        None => false,
+    };
 
     print_report(&rows);
     for r in &rows {
@@ -533,6 +561,9 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     if !refusals_ok {
         println!("device check: a refusal or fault drill did not behave (see above)");
     }
+    if !minimal_ok {
+        println!("device check: the minimal example did not build, run and exit cleanly");
+    }
     println!("device check: {matched} of {total} states bit-identical");
-    Ok(matched == total && total > 0 && refusals_ok && swap_ok && golden_ok)
+    Ok(matched == total && total > 0 && refusals_ok && minimal_ok && swap_ok && golden_ok)
 }

@@ -42,22 +42,10 @@ pub fn build_firmware(
     plan: &Path,
     drill: Option<&str>,
 ) -> Result<PathBuf> {
-    // The firmware's build runs in its own directory: pass absolute paths.
-    let blob = std::path::absolute(blob)?;
     let plan = std::path::absolute(plan)?;
-    let dir = root.join("firmware-example");
-    let target_dir = dir.join("target");
-    let mut cmd = Command::new(cargo());
-    cmd.current_dir(&dir)
-        .args(["build", "--release", "--quiet", "--target", TARGET])
-        .arg("--target-dir")
-        .arg(&target_dir)
-        .env("VISVIVA_BLOB", &blob)
-        .env("VISVIVA_RUN_PLAN", &plan)
-        .env_remove("CARGO_TARGET_DIR")
-        .env_remove("RUSTFLAGS")
-        .env_remove("CARGO_ENCODED_RUSTFLAGS")
-        .env_remove("CARGO_BUILD_TARGET");
+    let target_dir = root.join("firmware-example").join("target");
+    let mut cmd = firmware_cargo(root, blob, &[])?;
+    cmd.env("VISVIVA_RUN_PLAN", &plan);
     match drill {
         Some(d) => cmd.env("VISVIVA_DRILL", d),
         None => cmd.env_remove("VISVIVA_DRILL"),
@@ -74,6 +62,48 @@ pub fn build_firmware(
     std::fs::copy(&built, &elf)
         .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;
     Ok(elf)
+}
+
+/// Build `firmware-example/examples/minimal.rs` with `blob` and nothing
+/// else (no run plan, no drill); copy the ELF to `work/minimal.elf`.
+pub fn build_minimal_example(root: &Path, work: &Path, blob: &Path) -> Result<PathBuf> {
+    let mut cmd = firmware_cargo(root, blob, &["--example", "minimal"])?;
+    cmd.env_remove("VISVIVA_RUN_PLAN")
+        .env_remove("VISVIVA_DRILL");
+    let status = cmd
+        .status()
+        .context("starting cargo for the minimal example")?;
+    if !status.success() {
+        bail!("building the minimal example failed ({status})");
+    }
+    let built = root
+        .join("firmware-example/target")
+        .join(TARGET)
+        .join("release/examples/minimal");
+    let elf = work.join("minimal.elf");
+    std::fs::copy(&built, &elf)
+        .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;
+    Ok(elf)
+}
+
+/// `cargo build --release` of the firmware crate with `blob` embedded, in its
+/// own directory and target folder, free of the caller's target settings.
+fn firmware_cargo(root: &Path, blob: &Path, extra: &[&str]) -> Result<Command> {
+    // The firmware's build runs in its own directory: pass absolute paths.
+    let blob = std::path::absolute(blob)?;
+    let dir = root.join("firmware-example");
+    let mut cmd = Command::new(cargo());
+    cmd.current_dir(&dir)
+        .args(["build", "--release", "--quiet", "--target", TARGET])
+        .args(extra)
+        .arg("--target-dir")
+        .arg(dir.join("target"))
+        .env("VISVIVA_BLOB", &blob)
+        .env_remove("CARGO_TARGET_DIR")
+        .env_remove("RUSTFLAGS")
+        .env_remove("CARGO_ENCODED_RUSTFLAGS")
+        .env_remove("CARGO_BUILD_TARGET");
+    Ok(cmd)
 }
 
 /// Run `elf` in QEMU (stdout = raw defmt frames) and decode the log.

@@ -32,9 +32,6 @@ pub const MAGIC: [u8; 4] = *b"VVMB";
 pub const FORMAT_VERSION: u16 = 3;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
-/// Most inputs of a driven model; defined at the crate root
-/// ([`crate::MAX_INPUTS`]) and named here too for existing callers.
-pub use crate::MAX_INPUTS;
 /// Bytes before the payload: magic, version, length.
 pub const HEADER_LEN: usize = 10;
 /// Bytes after the payload: the CRC.

@@ -8,8 +8,8 @@ use visviva_tests::{elliptic_k, momentum_sign_changes, pendulum_period, period_f
 use visviva_trainer::deploy::blob::{HostModel, WeightKind};
 use visviva_trainer::deploy::fitted_blob::energy_blob;
 use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
+use visviva_trainer::reference::build_system;
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
-use visviva_trainer::reference::systems::build_system;
 
 #[test]
 fn elliptic_period_formula_reduces_to_small_amplitude_period() {
@@ -30,7 +30,7 @@ fn fitted_crane_model_has_the_large_amplitude_pendulum_period() {
     let overrides = [("max_angle_deg".to_string(), 100.0)];
     let system = build_system("crane", &overrides).unwrap();
     let (l, g) = (system.params().get("l"), system.params().get("g"));
-    let t0 = system.small_amplitude_period();
+    let t0 = system.small_amplitude_period().expect("closed form");
     // Logs as `visviva simulate --system crane --param max_angle_deg=100`
     // would write them, but noise-free and with exact derivatives.
     let spec = |trajectories, seed| SimulationSpec {

@@ -12,7 +12,7 @@ use visviva_trainer::deploy::fitted_blob::energy_blob;
 use visviva_trainer::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings};
 use visviva_trainer::learn::net::Activation;
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
-use visviva_trainer::reference::systems::{build_system, ReferenceSystem};
+use visviva_trainer::reference::{build_system, ReferenceSystem};
 
 /// Steps of the rollout per period of the true system.
 const STEPS_PER_PERIOD: usize = 100;
@@ -32,7 +32,7 @@ fn worst_relative_drift(system: &dyn ReferenceSystem, states: &[[f32; 2]]) -> f6
 #[test]
 fn energy_model_keeps_true_energy_over_100_periods_and_baseline_drifts() {
     let system = build_system("flexure", &[]).unwrap();
-    let period = system.small_amplitude_period();
+    let period = system.small_amplitude_period().expect("closed form");
     // One period per trajectory, 40 samples per period, exact derivatives.
     let spec = |trajectories, seed| SimulationSpec {
         trajectories,

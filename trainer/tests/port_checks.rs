@@ -50,8 +50,8 @@ use visviva_trainer::deploy::rollout::{roll_driven, sample_states};
 use visviva_trainer::evidence::check::{check_port, eigenvalues};
 use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::learn::hnn::{EnergyModel, PortArch};
-use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::reference::systems::build_port_system;
+use visviva_trainer::reference::build_system;
+use visviva_trainer::reference::simulate::{simulate as simulate_system, SimulationSpec};
 
 fn simulate(
     name: &str,
@@ -61,14 +61,14 @@ fn simulate(
     rate: f64,
     seed: u64,
 ) -> Dataset {
-    let system = build_port_system(name, params).unwrap().unwrap();
+    let system = build_system(name, params).unwrap();
     let spec = SimulationSpec {
         trajectories,
         duration,
         rate,
         seed,
     };
-    simulate_port(system.as_ref(), &spec).unwrap()
+    simulate_system(system.as_ref(), &spec).unwrap()
 }
 
 fn fit(ds: &Dataset, hidden: &[usize], epochs: usize) -> EnergyModel {

@@ -19,8 +19,8 @@
 //!   viscous term -c q' / (m l), on every logged sample.
 
 use visviva_trainer::data::log::{load_csv, write_csv, LoadOptions};
-use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::reference::systems::build_port_system;
+use visviva_trainer::reference::build_system;
+use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 
 fn spec(trajectories: usize, duration: f64, rate: f64, seed: u64) -> SimulationSpec {
     SimulationSpec {
@@ -33,8 +33,8 @@ fn spec(trajectories: usize, duration: f64, rate: f64, seed: u64) -> SimulationS
 
 #[test]
 fn inputs_round_trip_through_csv() {
-    let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
-    let ds = simulate_port(system.as_ref(), &spec(3, 0.5, 200.0, 4)).unwrap();
+    let system = build_system("drivetrain", &[]).unwrap();
+    let ds = simulate(system.as_ref(), &spec(3, 0.5, 200.0, 4)).unwrap();
     assert!(ds.driven());
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("drive.csv");
@@ -76,8 +76,8 @@ fn bad_input_fields_name_file_line_and_column() {
 #[test]
 fn damped_flexure_matches_the_closed_form_free_decay() {
     let (m, k, zeta) = (0.05f64, 20.0f64, 0.05f64);
-    let system = build_port_system("flexure-damped", &[]).unwrap().unwrap();
-    let ds = simulate_port(system.as_ref(), &spec(3, 3.0, 200.0, 2)).unwrap();
+    let system = build_system("flexure-damped", &[]).unwrap();
+    let ds = simulate(system.as_ref(), &spec(3, 3.0, 200.0, 2)).unwrap();
     assert!(!ds.driven());
     let w = (k / m).sqrt();
     let wd = w * (1.0 - zeta * zeta).sqrt();
@@ -98,8 +98,8 @@ fn damped_flexure_matches_the_closed_form_free_decay() {
 #[test]
 fn drivetrain_log_satisfies_the_power_balance() {
     let (jm, jl, kk, c, b) = (2e-4f64, 1e-3f64, 1.0f64, 2e-3f64, 1e-2f64);
-    let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
-    let ds = simulate_port(system.as_ref(), &spec(2, 2.0, 2000.0, 5)).unwrap();
+    let system = build_system("drivetrain", &[]).unwrap();
+    let ds = simulate(system.as_ref(), &spec(2, 2.0, 2000.0, 5)).unwrap();
     assert!(ds.driven());
     let h = |x: &[f64]| {
         let tw = x[0] - x[1];
@@ -136,8 +136,8 @@ fn drivetrain_log_satisfies_the_power_balance() {
 fn crane_trolley_log_follows_the_moving_support_pendulum_equation() {
     let (m, l, g, zeta) = (2.0f64, 1.0f64, 9.81f64, 0.05f64); // defaults
     let c = 2.0 * zeta * m * l * l * (g / l).sqrt();
-    let system = build_port_system("crane-trolley", &[]).unwrap().unwrap();
-    let ds = simulate_port(system.as_ref(), &spec(4, 6.0, 100.0, 6)).unwrap();
+    let system = build_system("crane-trolley", &[]).unwrap();
+    let ds = simulate(system.as_ref(), &spec(4, 6.0, 100.0, 6)).unwrap();
     assert!(ds.driven());
     let mut worst = 0.0f64;
     let mut largest_angle = 0.0f64;

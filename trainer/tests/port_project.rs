@@ -30,8 +30,8 @@ use visviva_trainer::evidence::check::reference_modes;
 use visviva_trainer::learn::fit::{fit_baseline, ArchChoice, FitSettings};
 use visviva_trainer::learn::hnn::PortArch;
 use visviva_trainer::learn::net::Activation;
-use visviva_trainer::reference::simulate::{simulate_port, SimulationSpec};
-use visviva_trainer::reference::systems::build_port_system;
+use visviva_trainer::reference::build_system;
+use visviva_trainer::reference::simulate::{simulate as simulate_system, SimulationSpec};
 
 fn visviva(args: &[&str]) -> std::process::Output {
     Command::new(env!("CARGO_BIN_EXE_visviva"))
@@ -162,14 +162,14 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
     ignore = "trains for about 2 s in release but minutes in debug; run with --release"
 )]
 fn the_driven_baseline_learns_the_input_matrix_of_the_drivetrain() {
-    let system = build_port_system("drivetrain", &[]).unwrap().unwrap();
+    let system = build_system("drivetrain", &[]).unwrap();
     let spec = SimulationSpec {
         trajectories: 10,
         duration: 4.0,
         rate: 200.0,
         seed: 41,
     };
-    let ds = simulate_port(system.as_ref(), &spec).unwrap();
+    let ds = simulate_system(system.as_ref(), &spec).unwrap();
     let settings = FitSettings {
         epochs: 150,
         quiet: true,
@@ -400,7 +400,7 @@ fn reference_modes_equal_the_closed_forms() {
     // (The catalog takes positive values only: 1e-12 is zero to the
     // asserted digits.)
     let params = vec![("c".to_string(), 1e-12), ("b".to_string(), 1e-12)];
-    let system = build_port_system("drivetrain", &params).unwrap().unwrap();
+    let system = build_system("drivetrain", &params).unwrap();
     let modes = reference_modes(system.as_ref());
     assert_eq!(modes.len(), 1, "{modes:?}");
     let w = (1.0f64 * (1.0 / 2e-4 + 1.0 / 1e-3)).sqrt();
@@ -413,9 +413,7 @@ fn reference_modes_equal_the_closed_forms() {
 
     // Damped flexure (defaults k = 20 N/m, m = 0.05 kg) with zeta = 0.05.
     let params = vec![("zeta".to_string(), 0.05)];
-    let system = build_port_system("flexure-damped", &params)
-        .unwrap()
-        .unwrap();
+    let system = build_system("flexure-damped", &params).unwrap();
     let modes = reference_modes(system.as_ref());
     assert_eq!(modes.len(), 1, "{modes:?}");
     let f = (20.0f64 / 0.05).sqrt() / (2.0 * std::f64::consts::PI);

@@ -96,7 +96,7 @@ fn parse_options(args: &[String]) -> Result<Options> {
 /// of H = p^2/2 + q^2/2 (unit mass and stiffness, period 2 pi), sampled at
 /// k * 2 pi / 64, k = 0..63, with exact derivatives dq/dt = p, dp/dt = -q.
 pub fn mass_spring_csv() -> String {
-    let mut rng = SplitMix64(0x6b65_656c_6265_6e63);
+    let mut rng = SplitMix64(0x7676_6265_6e63_6831);
     let dt = std::f64::consts::TAU / SAMPLES as f64;
     let mut s = String::from("traj,t,q1,p1,dq1,dp1\n");
     for traj in 0..TRAJECTORIES {

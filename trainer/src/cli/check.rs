@@ -15,7 +15,7 @@ use crate::data::log::{load_csv, LoadOptions};
 use crate::deploy::blob::HostModel;
 use crate::evidence::charts::{charts, units, HistoryFile};
 use crate::evidence::check::{check, CheckSettings};
-use crate::reference::systems::{build_system, parse_param};
+use crate::reference::{build_system, parse_param};
 
 /// Arguments of `visviva check`.
 #[derive(Debug, clap::Args)]

@@ -1,12 +1,8 @@
 //! `visviva simulate`: write reference trajectories of a built-in system to CSV.
 
 use crate::data::log::write_csv;
-use crate::reference::simulate::{
-    add_noise, max_relative_energy_drift, simulate, simulate_port, SimulationSpec,
-};
-use crate::reference::systems::{
-    build_port_system, build_system, parse_param, CATALOG, PORT_CATALOG,
-};
+use crate::reference::simulate::{add_noise, max_relative_energy_drift, simulate, SimulationSpec};
+use crate::reference::{build_system, parse_param, CATALOG};
 use std::path::PathBuf;
 
 /// Generate reference trajectories from a built-in system. The list of
@@ -58,22 +54,15 @@ pub struct Args {
 
 /// Help text after the options: systems, parameters, output format.
 fn after_help() -> String {
-    let mut text = String::from("Systems (parameters in SI units, key=default unit, meaning):\n");
+    let mut text = String::from(
+        "Systems (parameters in SI units, key=default unit, meaning); the damped or driven\n\
+         ones follow dx/dt = (J - R) dH/dx + G u:\n",
+    );
     for entry in CATALOG {
-        text.push_str(&format!("  {:<8} {}\n", entry.name, entry.summary));
+        text.push_str(&format!("  {:<16} {}\n", entry.name, entry.summary));
         for p in entry.params {
             text.push_str(&format!(
-                "           {}={} {}  {}\n",
-                p.name, p.default, p.unit, p.meaning
-            ));
-        }
-    }
-    text.push_str("Damped or driven systems (dx/dt = (J - R) dH/dx + G u):\n");
-    for entry in PORT_CATALOG {
-        text.push_str(&format!("  {:<8} {}\n", entry.name, entry.summary));
-        for p in entry.params {
-            text.push_str(&format!(
-                "           {}={} {}  {}\n",
+                "                   {}={} {}  {}\n",
                 p.name, p.default, p.unit, p.meaning
             ));
         }
@@ -114,7 +103,7 @@ fn write_log(
     args: &Args,
     ds: &mut crate::data::dataset::Dataset,
     name: &str,
-    params: &crate::reference::systems::ParamValues,
+    params: &crate::reference::ParamValues,
 ) -> anyhow::Result<String> {
     add_noise(ds, args.noise, args.seed)?;
     let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
@@ -136,36 +125,22 @@ fn write_log(
 
 /// Run the command.
 pub fn run(args: Args) -> anyhow::Result<()> {
-    if let Some(system) = build_port_system(&args.system, &args.params) {
-        return run_port(&args, system?.as_ref());
-    }
-    let system = build_system(&args.system, &args.params).map_err(|e| match e {
-        crate::reference::systems::SystemError::UnknownSystem { name, mut valid } => {
-            valid.extend(PORT_CATALOG.iter().map(|p| p.name));
-            crate::reference::systems::SystemError::UnknownSystem { name, valid }
-        }
-        other => other,
-    })?;
+    let system = build_system(&args.system, &args.params)?;
     let spec = spec_of(&args)?;
     let mut ds = simulate(system.as_ref(), &spec)?;
-    let drift = max_relative_energy_drift(system.as_ref(), &ds);
     let line = write_log(&args, &mut ds, system.name(), system.params())?;
-    println!(
-        "{line}) to {}; max relative energy drift {drift:.1e}",
-        args.out.display()
-    );
-    Ok(())
-}
-
-/// `run` for a damped or driven system.
-fn run_port(args: &Args, system: &dyn crate::reference::systems::PortSystem) -> anyhow::Result<()> {
-    let spec = spec_of(args)?;
-    let mut ds = simulate_port(system, &spec)?;
-    let line = write_log(args, &mut ds, system.name(), system.params())?;
-    println!(
-        "{line}, {} input columns) to {}",
-        system.inputs(),
-        args.out.display()
-    );
+    if system.has_port_terms() {
+        println!(
+            "{line}, {} input columns) to {}",
+            system.inputs(),
+            args.out.display()
+        );
+    } else {
+        let drift = max_relative_energy_drift(system.as_ref(), &ds);
+        println!(
+            "{line}) to {}; max relative energy drift {drift:.1e}",
+            args.out.display()
+        );
+    }
     Ok(())
 }

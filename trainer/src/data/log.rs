@@ -314,7 +314,7 @@ fn derivative_columns(
 /// `u1..um`, at most as many as the runtime takes.
 fn input_columns(err: &HeaderErrors, names: &[String]) -> Result<Vec<usize>, DataError> {
     let u = numbered(names, "u");
-    let max = visviva_runtime::format::MAX_INPUTS;
+    let max = visviva_runtime::MAX_INPUTS;
     if u.len() > max {
         return Err(err.at(
             &format!("u{}", max + 1),

@@ -66,7 +66,7 @@ pub fn export(
     let mut dev = 0.0f64;
     let (mut drift_ref, mut drift_exp) = (0.0f64, 0.0f64);
     let mut failed = 0;
-    for x0 in sample_states(&src.offset, &src.scale, 1.0, states, 0x6b65656c) {
+    for x0 in sample_states(&src.offset, &src.scale, 1.0, states, 0x7676_6578) {
         let a = roll(&reference, &x0, steps)?;
         let b = roll(&exported, &x0, steps)?;
         failed += a.failure.is_some() as usize + b.failure.is_some() as usize;

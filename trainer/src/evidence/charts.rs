@@ -3,7 +3,7 @@
 
 use crate::evidence::check::CheckReport;
 use crate::evidence::svgplot::{Chart, Series, PALETTE};
-use crate::reference::systems::ReferenceSystem;
+use crate::reference::ReferenceSystem;
 
 /// Loss history as written by `visviva fit --history`.
 #[derive(Debug, Clone, Default, serde::Deserialize)]

@@ -14,7 +14,7 @@ use crate::data::dataset::{Dataset, Trajectory};
 use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
 use crate::deploy::rollout::state_of;
 use crate::learn::hnn::BaselineModel;
-use crate::reference::systems::ReferenceSystem;
+use crate::reference::ReferenceSystem;
 
 /// Check settings.
 #[derive(Debug, Clone)]
@@ -352,8 +352,9 @@ pub fn check(
         if traj.t.len() < 2 || dt <= 0.0 {
             continue;
         }
-        let horizon = settings.horizon_steps.unwrap_or_else(|| match system {
-            Some(s) => ((100.0 * s.small_amplitude_period() / dt).ceil() as usize).min(100_000),
+        let period = system.and_then(|s| s.small_amplitude_period());
+        let horizon = settings.horizon_steps.unwrap_or_else(|| match period {
+            Some(period) => ((100.0 * period / dt).ceil() as usize).min(100_000),
             None => 10_000,
         });
         let stepping = model
@@ -733,7 +734,7 @@ fn modes_of(a: &[Vec<f64>]) -> Vec<ModeDamping> {
 /// rest state): A = (J - R) Hess H, the Hessian by central differences of
 /// the exact gradient (steps 1e-6, exact for the quadratic energies of the
 /// built-in systems up to rounding).
-pub fn reference_modes(system: &dyn crate::reference::systems::PortSystem) -> Vec<ModeDamping> {
+pub fn reference_modes(system: &dyn ReferenceSystem) -> Vec<ModeDamping> {
     let n = system.dof();
     let d = 2 * n;
     let r = system.dissipation(&vec![0.0; d]);

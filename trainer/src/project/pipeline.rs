@@ -36,9 +36,7 @@ use crate::learn::stage::{
 use crate::learn::structure::arch_choice;
 use crate::project::cache::{read_json, sha, write_json};
 use crate::project::file::Project;
-use crate::reference::systems::{
-    build_port_system, build_system, PortSystem, ReferenceSystem, PORT_CATALOG,
-};
+use crate::reference::{build_system, ParamValues, ReferenceSystem, CATALOG};
 
 /// The training and validation logs; `val_bytes` is empty when validation
 /// trajectories were held out of the training log.
@@ -363,7 +361,7 @@ pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
     let steps = prep.project.check.golden_steps;
     let (golden_id, golden_inputs) = golden_inputs(&prep.logs.val, steps);
     let (evidence, figures) = if prep.port() {
-        let reference = port_reference(prep)?;
+        let reference = reference_system(prep)?;
         port_check(
             prep,
             &model,
@@ -374,7 +372,7 @@ pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
             &history,
         )?
     } else {
-        let reference = conservative_reference(prep)?;
+        let reference = reference_system(prep)?;
         let r = crate::evidence::check::check(
             &model,
             baseline.as_ref(),
@@ -410,32 +408,38 @@ fn reference_params(prep: &Prepared) -> Vec<(String, f64)> {
         .collect()
 }
 
-/// The conservative reference system named by `[check] reference_system`.
-fn conservative_reference(prep: &Prepared) -> Result<Option<Box<dyn ReferenceSystem>>> {
+/// The reference system named by `[check] reference_system`; its kind
+/// (conservative, or damped or driven) must be the model's.
+fn reference_system(prep: &Prepared) -> Result<Option<Box<dyn ReferenceSystem>>> {
     let Some(s) = prep.project.check.reference_system.as_deref() else {
         return Ok(None);
     };
-    build_system(s, &reference_params(prep))
-        .map(Some)
-        .map_err(|e| anyhow!("[check] reference_system: {e}"))
-}
-
-/// The damped or driven reference system named by `[check]
-/// reference_system`.
-fn port_reference(prep: &Prepared) -> Result<Option<Box<dyn PortSystem>>> {
-    let Some(s) = prep.project.check.reference_system.as_deref() else {
-        return Ok(None);
-    };
-    let Some(built) = build_port_system(s, &reference_params(prep)) else {
-        let names: Vec<&str> = PORT_CATALOG.iter().map(|p| p.name).collect();
+    let system = build_system(s, &reference_params(prep))
+        .map_err(|e| anyhow!("[check] reference_system: {e}"))?;
+    if system.has_port_terms() != prep.port() {
+        let kind = |port: bool| {
+            if port {
+                "damped or driven"
+            } else {
+                "conservative"
+            }
+        };
+        let names: Vec<&str> = CATALOG
+            .iter()
+            .filter(|e| {
+                (e.build)(ParamValues::defaults(e.params))
+                    .is_ok_and(|sys| sys.has_port_terms() == prep.port())
+            })
+            .map(|e| e.name)
+            .collect();
         bail!(
-            "[check] reference_system = \"{s}\" is not a damped or driven system; a damped or driven project needs one of {}",
+            "[check] reference_system = \"{s}\" is a {} system; a {} project needs one of {}",
+            kind(system.has_port_terms()),
+            kind(prep.port()),
             names.join(", ")
         );
-    };
-    built
-        .map(Some)
-        .map_err(|e| anyhow!("[check] reference_system: {e}"))
+    }
+    Ok(Some(system))
 }
 
 /// The inputs the golden rollouts replay: validation trajectory 0's logged
@@ -470,7 +474,7 @@ fn port_check(
     model: &HostModel<'_>,
     blob: &BlobModel,
     baseline: Option<&BaselineModel>,
-    reference: Option<&dyn PortSystem>,
+    reference: Option<&dyn ReferenceSystem>,
     golden_input_trajectory: String,
     history: &HistoryFile,
 ) -> Result<(Evidence, Vec<(String, String)>)> {

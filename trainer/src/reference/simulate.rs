@@ -15,7 +15,7 @@
 //! so smooth (multisine) inputs are integrated to the same accuracy.
 
 use crate::data::dataset::{Dataset, DerivativeSource, Trajectory};
-use crate::reference::systems::{port_field, PortSystem, ReferenceSystem};
+use crate::reference::{port_field, ReferenceSystem};
 use ndarray::Array2;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -226,9 +226,22 @@ pub fn integrate_field(
     Ok(out)
 }
 
-/// Generate `spec.trajectories` clean trajectories with exact derivatives.
-/// Initial states come from the system's sampler seeded with `spec.seed`.
+/// Generate `spec.trajectories` clean trajectories with exact derivatives
+/// (and, for a driven system, the inputs at every sample). Initial states
+/// come from the system's sampler seeded with `spec.seed`.
 pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
+    if system.has_port_terms() {
+        simulate_port(system, spec)
+    } else {
+        simulate_conservative(system, spec)
+    }
+}
+
+/// Trajectories of a conservative system.
+fn simulate_conservative(
+    system: &dyn ReferenceSystem,
+    spec: &SimulationSpec,
+) -> anyhow::Result<Dataset> {
     spec.validate()?;
     let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
     let times = spec.sample_times();
@@ -264,7 +277,7 @@ pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::
 /// u(t) at every sample (no input columns for a system without inputs). Each
 /// trajectory draws its initial state, then its excitation, from the seeded
 /// stream.
-pub fn simulate_port(system: &dyn PortSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
+fn simulate_port(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
     spec.validate()?;
     let mut rng = ChaCha8Rng::seed_from_u64(spec.seed);
     let times = spec.sample_times();

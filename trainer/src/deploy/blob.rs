@@ -4,6 +4,7 @@
 //! through its own encoder, so the host never has a second format.
 
 use anyhow::{anyhow, bail, Context, Result};
+use visviva_blob_support::quantize::quantize_rows;
 use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
     MlpDesc, ModelDesc, WeightsDesc,
@@ -247,7 +248,10 @@ impl Mlp {
                 let real = l.real_weights();
                 let weights = match kind {
                     WeightKind::F32 => Weights::F32(real),
-                    WeightKind::Int8 => quantize_rows(&real, l.inputs),
+                    WeightKind::Int8 => {
+                        let (values, scales) = quantize_rows(&real, l.inputs);
+                        Weights::Int8 { values, scales }
+                    }
                 };
                 Layer {
                     weights,
@@ -260,23 +264,6 @@ impl Mlp {
             layers,
         }
     }
-}
-
-/// Symmetric per-output-channel int8: scale_j = max_i |w_ji| / 127,
-/// q_ji = round(w_ji / scale_j) (common practice for weight quantization).
-pub fn quantize_rows(w: &[f32], inputs: usize) -> Weights {
-    let mut values = Vec::with_capacity(w.len());
-    let mut scales = Vec::new();
-    for row in w.chunks(inputs.max(1)) {
-        let m = row.iter().fold(0.0f32, |a, v| a.max(v.abs()));
-        let s = if m > 0.0 { m / 127.0 } else { 1.0 };
-        scales.push(s);
-        values.extend(
-            row.iter()
-                .map(|v| (v / s).round().clamp(-127.0, 127.0) as i8),
-        );
-    }
-    Weights::Int8 { values, scales }
 }
 
 /// Owned byte buffers a [`ModelDesc`] can borrow from.

@@ -322,6 +322,37 @@ fn run_one(
     }
 }
 
+/// The model's vector field at every logged state (NaN where it fails).
+fn model_rates(model: &HostModel<'_>, traj: &Trajectory, n: usize) -> Vec<Vec<f64>> {
+    traj.x
+        .rows()
+        .into_iter()
+        .map(|r| {
+            let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
+            let s = state_of(&v).expect("state of data dimension");
+            let (mut fq, mut fp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
+            let ok = model.vector_field(&s, &mut fq, &mut fp).is_ok();
+            fq[..n]
+                .iter()
+                .chain(&fp[..n])
+                .map(|v| if ok { *v as f64 } else { f64::NAN })
+                .collect()
+        })
+        .collect()
+}
+
+/// The baseline's vector field at every logged state.
+fn baseline_rates(b: &BaselineModel, traj: &Trajectory) -> Vec<Vec<f64>> {
+    traj.x
+        .rows()
+        .into_iter()
+        .map(|r| {
+            let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
+            b.vector_field(&v).into_iter().map(f64::from).collect()
+        })
+        .collect()
+}
+
 /// Check `model` (and `baseline`) on every trajectory of `data`.
 pub fn check(
     model: &HostModel<'_>,
@@ -360,26 +391,7 @@ pub fn check(
         let stepping = model
             .with_integrator(integrator_for(model.integrator(), dt))
             .map_err(|e| anyhow!("{e}"))?;
-        let model_rates: Vec<Vec<f64>> = traj
-            .x
-            .rows()
-            .into_iter()
-            .map(|r| {
-                let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
-                let s = state_of(&v).expect("state of data dimension");
-                let (mut fq, mut fp) = (
-                    [0.0f32; crate::deploy::blob::HOST_MAX_DOF],
-                    [0.0f32; crate::deploy::blob::HOST_MAX_DOF],
-                );
-                let ok = model.vector_field(&s, &mut fq, &mut fp).is_ok();
-                let n = data.dof;
-                fq[..n]
-                    .iter()
-                    .chain(&fp[..n])
-                    .map(|v| if ok { *v as f64 } else { f64::NAN })
-                    .collect()
-            })
-            .collect();
+        let model_rates = model_rates(model, traj, data.dof);
         let mr = run_one(
             &Stepper::Model(&stepping),
             traj,
@@ -391,15 +403,7 @@ pub fn check(
             settings.plot_points,
         );
         let br = baseline.map(|b| {
-            let rates = traj
-                .x
-                .rows()
-                .into_iter()
-                .map(|r| {
-                    let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
-                    b.vector_field(&v).into_iter().map(f64::from).collect()
-                })
-                .collect();
+            let rates = baseline_rates(b, traj);
             run_one(
                 &Stepper::Baseline(b, dt as f32),
                 traj,

@@ -35,17 +35,23 @@ pub mod error;
 pub mod format;
 pub mod hamiltonian;
 pub mod integrate;
+pub mod jacobian;
+pub mod linalg;
 pub mod math;
 mod mlp;
 pub mod model;
+pub mod observer;
 pub mod state;
+pub mod tangent;
 
 pub use error::{BlobError, Section, StepError};
 pub use format::blob_len;
 pub use hamiltonian::Hamiltonian;
 pub use integrate::{Integrator, Method};
 pub use model::{Cost, Model};
+pub use observer::{Channel, Measurement, Observer, ObserverError};
 pub use state::State;
+pub use tangent::Tangent;
 
 /// Largest number of degrees of freedom any build of the runtime accepts;
 /// a model's own bound `D` may be smaller.

@@ -40,6 +40,7 @@ pub mod linalg;
 pub mod math;
 mod mlp;
 pub mod model;
+pub mod monitor;
 pub mod observer;
 pub mod state;
 pub mod tangent;

@@ -118,6 +118,8 @@ pub struct Observer<'m, H: ?Sized, const D: usize, const S: usize> {
 }
 
 /// A state as a vector over the 2n coordinates (q then p).
+// Index loops bounded by the active size: no slice length can panic.
+#[allow(clippy::manual_memcpy)]
 fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
     let n = x.dof();
     let mut v = [0.0f32; S];
@@ -128,6 +130,8 @@ fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
     v
 }
 
+// Index loops bounded by the active size: no slice length can panic.
+#[allow(clippy::manual_memcpy)]
 fn unflat<const D: usize, const S: usize>(v: &[f32; S], x: &mut State<D>) {
     let n = x.dof();
     for i in 0..n.min(S / 2) {
@@ -335,7 +339,7 @@ fn scalar_update<const S: usize>(
     for i in 0..k {
         s += h[i] * ph[i];
     }
-    if !(s > 0.0) || !s.is_finite() {
+    if s.is_nan() || s <= 0.0 || !s.is_finite() {
         return Err(ObserverError::NotPositiveDefinite);
     }
     let mut gain = [0.0f32; S];

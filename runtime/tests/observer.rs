@@ -121,7 +121,7 @@ fn steady_state_covariance_solves_the_riccati_equation() {
     for step in 0..4000 {
         obs.predict(&[]).unwrap();
         prior = *obs.covariance();
-        let z = (0.3 * (step as f32 * 0.01).cos()) as f32;
+        let z = 0.3 * (step as f32 * 0.01).cos();
         let meas = [Measurement {
             channel: Channel::Position(0),
             value: z,
@@ -359,4 +359,57 @@ fn covariance_stays_positive_definite_over_a_million_steps() {
     assert_eq!(worst_asym, 0.0, "covariance not symmetric");
     let err = (obs.state().q[0] - truth.q[0]).abs();
     assert!(err < 5e-3, "estimate drifted: {err}");
+}
+
+/// p = M v inverts v = dH/dp for a quadratic kinetic term (round trip
+/// through the runtime's own gradient, a consistency check), and is
+/// refused (None) for a network kinetic term.
+#[test]
+fn momentum_from_velocity_inverts_the_quadratic_kinetic_gradient() {
+    let mut rng = XorShift64Star(0x0b5e_3001);
+    let owned = separable(
+        &mut rng,
+        3,
+        &[8],
+        Activation::Tanh,
+        Precision::F32,
+        Method::StormerVerlet,
+        0.01,
+    );
+    let blob = owned.blob().unwrap();
+    let model: Model<'_, 4, 16> = Model::from_bytes(&blob).unwrap();
+    let mut worst = 0.0f32;
+    for _ in 0..100 {
+        let mut p = [0.0f32; 4];
+        for v in p.iter_mut().take(3) {
+            *v = rng.uniform(-2.0, 2.0) as f32;
+        }
+        let mut v = [0.0f32; 4];
+        model.kinetic_gradient(&p, &mut v).unwrap();
+        let mut back = [0.0f32; 3];
+        model.momentum_from_velocity(&v[..3], &mut back).unwrap();
+        for i in 0..3 {
+            worst = worst.max((back[i] - p[i]).abs() / (1.0 + p[i].abs()));
+        }
+    }
+    println!("p = M v round trip: worst rel. error {worst:.2e}");
+    assert!(worst < 1e-5, "round trip error {worst}");
+    let potential = OwnedMlp::random(&mut rng, &[2, 4, 1], Activation::Tanh, Precision::F32);
+    let kinetic = OwnedKinetic::Network(OwnedMlp::random(
+        &mut rng,
+        &[2, 4, 1],
+        Activation::Tanh,
+        Precision::F32,
+    ));
+    let net = random_model(
+        2,
+        OwnedEnergy::Separable { potential, kinetic },
+        Integrator::new(Method::StormerVerlet, 0.01),
+        &mut rng,
+    );
+    let blob = net.blob().unwrap();
+    let model: Model<'_, 4, 16> = Model::from_bytes(&blob).unwrap();
+    assert!(model
+        .momentum_from_velocity(&[0.1, 0.2], &mut [0.0; 2])
+        .is_none());
 }

@@ -79,10 +79,9 @@ impl<const W: usize> Mlp<'_, W> {
                 ndh[j] = da;
             }
             if k + 1 == self.count {
-                for j in 0..l.outputs.min(out.len()).min(dout.len()) {
-                    out[j] = nh[j];
-                    dout[j] = ndh[j];
-                }
+                let m = l.outputs.min(out.len()).min(dout.len()).min(W);
+                out[..m].copy_from_slice(&nh[..m]);
+                dout[..m].copy_from_slice(&ndh[..m]);
             } else {
                 for j in 0..l.outputs {
                     let (v, d1, d2) = activate2(self.activation, nh[j]);

@@ -181,9 +181,7 @@ impl<const D: usize, const W: usize> Tangent<D> for Model<'_, D, W> {
                 }
             }
         }
-        for i in 0..n {
-            fq[i] = acc[i];
-            fp[i] = acc[n + i];
-        }
+        fq[..n].copy_from_slice(&acc[..n]);
+        fp[..n].copy_from_slice(&acc[n..n2]);
     }
 }

@@ -89,8 +89,8 @@ pub struct Integrator {
 
 /// Yoshida (1990) triple-jump weights: w1 = 1 / (2 - 2^(1/3)),
 /// w0 = -2^(1/3) / (2 - 2^(1/3)).
-const YOSHIDA_W1: f32 = 1.351_207_2;
-const YOSHIDA_W0: f32 = -1.702_414_4;
+pub(crate) const YOSHIDA_W1: f32 = 1.351_207_2;
+pub(crate) const YOSHIDA_W0: f32 = -1.702_414_4;
 
 impl Integrator {
     /// Settings with common defaults for `method` and step `dt`: one

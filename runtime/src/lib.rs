@@ -18,6 +18,18 @@
 //! * [`integrate`]: Stormer-Verlet, Yoshida-4, implicit midpoint, RK4 and the
 //!   discrete-gradient method.
 //! * [`state`]: the state (q, p) with a const bound on its size.
+//! * [`tangent`]: the [`Tangent`] trait (Hessian-vector products and the
+//!   coordinate tangent of the port terms; `mlp` and `model` implement it
+//!   analytically, forward over reverse through the networks).
+//! * [`jacobian`]: the exact Jacobian of one integrator step by tangent
+//!   propagation through every method (no finite differences).
+//! * [`observer`]: the extended Kalman filter [`Observer`] (prediction = the
+//!   model's own step, Joseph-form covariance, position and velocity
+//!   measurements, missed samples) and `Model::momentum_from_velocity`
+//!   (p = M v for separable models with a quadratic kinetic term).
+//! * [`monitor`]: health flags (windowed NIS against chi-square bounds,
+//!   out-of-envelope with caller-given bounds, energy-balance residual).
+//! * [`linalg`]: small stack matrices (products, pivoted solve, LDL^T test).
 //! * [`math`]: deterministic `tanh`, `softplus` and friends.
 //! * [`error`]: every failure as a typed enum; nothing here panics.
 //!
@@ -35,17 +47,24 @@ pub mod error;
 pub mod format;
 pub mod hamiltonian;
 pub mod integrate;
+pub mod jacobian;
+pub mod linalg;
 pub mod math;
 mod mlp;
 pub mod model;
+pub mod monitor;
+pub mod observer;
 pub mod state;
+pub mod tangent;
 
 pub use error::{BlobError, Section, StepError};
 pub use format::blob_len;
 pub use hamiltonian::Hamiltonian;
 pub use integrate::{Integrator, Method};
 pub use model::{Cost, Model};
+pub use observer::{Channel, Measurement, Observer, ObserverError};
 pub use state::State;
+pub use tangent::Tangent;
 
 /// Largest number of degrees of freedom any build of the runtime accepts;
 /// a model's own bound `D` may be smaller.

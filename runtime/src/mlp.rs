@@ -9,6 +9,8 @@ use crate::error::{BlobError, Section};
 use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
 use crate::math;
 
+mod tangent;
+
 /// A validated layer.
 #[derive(Debug, Clone, Copy)]
 struct Layer<'a> {

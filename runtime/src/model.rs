@@ -12,6 +12,8 @@ use crate::integrate::Integrator;
 use crate::mlp::Mlp;
 use crate::state::State;
 
+mod tangent;
+
 /// A port matrix (the factor L of R, or G): constant, or a network of the
 /// normalized coordinates z_q whose outputs are the entries.
 #[derive(Debug, Clone, Copy)]

@@ -41,6 +41,12 @@ pub const MAX_LAYERS: usize = 5;
 
 const CRC32: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
 
+/// The CRC-32 a blob's trailer holds (CRC-32/ISO-HDLC, the catalogue's
+/// "CRC-32": check value 0xCBF43926 for the ASCII string "123456789").
+pub fn checksum(bytes: &[u8]) -> u32 {
+    CRC32.checksum(bytes)
+}
+
 /// Little-endian `f32` values stored as bytes (length a multiple of 4).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 pub struct F32Bytes<'a>(#[serde(borrow)] pub &'a [u8]);

@@ -6,6 +6,8 @@
 //! * `cargo xtask demos [--verify] [--data]`: rerun the demo projects
 //!   (`--data` also rewrites their logs; `--verify` checks that logs and
 //!   blobs reproduce bit for bit).
+//! * `cargo xtask c-check`: the C interface used from C on the host (static
+//!   library, `runtime/c-api/examples/rollout.c`, bit-identical states).
 //! * `cargo xtask claims`: every percentage or tolerance figure in README.md
 //!   with the test that asserts it (or "one run"); fails on an unlisted one.
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
@@ -15,6 +17,7 @@
 //!   state bit for bit with the host rollout.
 
 mod bench;
+mod c_check;
 mod claims;
 mod demo_modes;
 mod demos;
@@ -36,6 +39,8 @@ use std::process::ExitCode;
 const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
   claims                    README figures and the tests that assert them
+  c-check                   the C interface from C: static library, C example,
+                            states bit-identical to visviva rollout
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
                             (default: the generated fixture blobs)
@@ -47,6 +52,7 @@ fn main() -> ExitCode {
     let result = match args.first().map(String::as_str) {
         Some("test") if args.len() == 1 => test_pipeline::run(),
         Some("claims") if args.len() == 1 => claims::run(),
+        Some("c-check") if args.len() == 1 => c_check::run(),
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");

@@ -1,10 +1,14 @@
-//! `cargo xtask c-check`: the C interface used from C on the host. Builds
+//! `cargo xtask c-check`: the C interface used from C. On the host: builds
 //! the static library (`visviva-c`, `panic = "abort"`), compiles
 //! `runtime/c-api/examples/rollout.c` with the host's C compiler as C11
 //! with warnings as errors, and compares every state it prints, bit for
-//! bit, with `visviva rollout --bits` for the undriven demo blobs; checks
-//! the library's CRC-32 of "123456789" against the CRC catalogue's check
-//! value 0xCBF43926.
+//! bit, with `visviva rollout --bits` for the undriven demo blobs. On the
+//! Cortex-M4F: builds the library for `thumbv7em-none-eabihf`, the C
+//! firmware `firmware-example/c` with the GNU Arm Embedded toolchain (its
+//! own startup and linker script, the blob in its own flash region), runs
+//! it in QEMU's mps2-an386 and compares its states with the host's. Both
+//! check the library's CRC-32 of "123456789" against the CRC catalogue's
+//! check value 0xCBF43926.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -33,18 +37,100 @@ fn target_dir(root: &Path) -> PathBuf {
         .unwrap_or_else(|| root.join("target"))
 }
 
-/// Build the static library; returns its path.
-fn build_library(root: &Path) -> Result<PathBuf> {
-    let status = Command::new(cargo())
-        .args(["rustc", "--quiet", "-p", "visviva-c", "--profile", "c-lib"])
-        .args(["--features", "panic-halt", "--crate-type", "staticlib"])
+/// Build the static library (for `target`, or the host); returns its path.
+fn build_library(root: &Path, target: Option<&str>) -> Result<PathBuf> {
+    let mut cmd = Command::new(cargo());
+    cmd.args(["rustc", "--quiet", "-p", "visviva-c", "--profile", "c-lib"])
+        .args(["--features", "panic-halt", "--crate-type", "staticlib"]);
+    if let Some(t) = target {
+        cmd.args(["--target", t]);
+    }
+    let status = cmd
         .current_dir(root)
         .status()
         .context("starting cargo rustc -p visviva-c")?;
     if !status.success() {
         bail!("building the C static library failed ({status})");
     }
-    Ok(target_dir(root).join("c-lib").join("libvisviva_c.a"))
+    let dir = target.map_or(target_dir(root), |t| target_dir(root).join(t));
+    Ok(dir.join("c-lib").join("libvisviva_c.a"))
+}
+
+/// Build the C firmware for one blob and initial coordinates; returns the ELF.
+fn build_firmware(root: &Path, lib: &Path, blob: &Path, q: &[&str], name: &str) -> Result<PathBuf> {
+    let c = root.join("firmware-example/c");
+    let elf = target_dir(root).join("c-check").join(format!("{name}.elf"));
+    let q_init: Vec<String> = q.iter().map(|v| format!("{v}f")).collect();
+    let status = Command::new("arm-none-eabi-gcc")
+        .args([
+            "-std=c11",
+            "-Wall",
+            "-Wextra",
+            "-Werror",
+            "-O2",
+            "-mcpu=cortex-m4",
+            "-mthumb",
+        ])
+        .args([
+            "-mfloat-abi=hard",
+            "-mfpu=fpv4-sp-d16",
+            "-ffreestanding",
+            "-nostdlib",
+        ])
+        .args(["-fno-common", "-Wl,--no-warn-execstack", "-I"])
+        .arg(root.join("runtime/c-api/include"))
+        .arg(format!("-DVV_BLOB_PATH=\"{}\"", blob.display()))
+        .arg(format!("-DVV_STEPS={STEPS}"))
+        .arg(format!("-DVV_Q_INIT={}", q_init.join(",")))
+        .arg("-T")
+        .arg(c.join("link.ld"))
+        .arg(c.join("startup.c"))
+        .arg(c.join("main.c"))
+        .arg(lib)
+        .arg("-o")
+        .arg(&elf)
+        .status()
+        .context("starting arm-none-eabi-gcc")?;
+    if !status.success() {
+        bail!("building the C firmware for {name} failed ({status})");
+    }
+    Ok(elf)
+}
+
+/// Run a firmware ELF in QEMU; what it wrote through semihosting (QEMU
+/// puts SYS_WRITE0 text on its standard error).
+fn run_in_qemu(elf: &Path) -> Result<String> {
+    let out = Command::new("timeout")
+        .args([
+            "120",
+            "qemu-system-arm",
+            "-machine",
+            crate::tools::QEMU_MACHINE,
+        ])
+        .args([
+            "-cpu",
+            "cortex-m4",
+            "-nographic",
+            "-serial",
+            "null",
+            "-monitor",
+            "none",
+        ])
+        .args(["-semihosting-config", "enable=on,target=native", "-kernel"])
+        .arg(elf)
+        .stdin(std::process::Stdio::null())
+        .output()
+        .context("starting qemu-system-arm")?;
+    let text = String::from_utf8(out.stderr)?;
+    if !out.status.success() {
+        bail!(
+            "{} in QEMU failed ({}): {}",
+            elf.display(),
+            out.status,
+            text.lines().last().unwrap_or("")
+        );
+    }
+    Ok(text)
 }
 
 /// Compile the C example against the library; returns the executable.
@@ -92,15 +178,64 @@ fn state_rows(text: &str, skip_header: bool) -> Vec<Vec<String>> {
         .collect()
 }
 
+/// A corrupted blob, a newer format version and a model too wide for the
+/// build must be refused on the Cortex-M4F through the C interface, with the
+/// status's message in the log and a failing exit.
+fn refusal_drills(root: &Path, lib: &Path) -> Result<bool> {
+    let good = std::fs::read(root.join("models-demo").join(CASES[0].0))?;
+    let mut corrupted = good.clone();
+    let mid = corrupted.len() / 2;
+    corrupted[mid] ^= 0x40;
+    let mut newer = good.clone();
+    newer[4..6].copy_from_slice(&99u16.to_le_bytes());
+    let drills: [(&str, Vec<u8>, &str); 2] = [
+        ("corrupted", corrupted, "CRC-32 does not match"),
+        ("newer-version", newer, "format version is not readable"),
+    ];
+    let dir = target_dir(root).join("c-check");
+    let mut ok = true;
+    for (name, bytes, expected) in drills {
+        let blob = dir.join(format!("{name}.vvb"));
+        std::fs::write(&blob, bytes)?;
+        let elf = build_firmware(root, lib, &blob, &["0.3"], name)?;
+        let refused = match run_in_qemu(&elf) {
+            Ok(_) => false,
+            Err(e) => format!("{e:#}").contains(expected),
+        };
+        println!(
+            "  refusal drill on Cortex-M4F (C): {name} blob {}",
+            if refused {
+                "refused with its status"
+            } else {
+                "NOT REFUSED"
+            }
+        );
+        ok &= refused;
+    }
+    Ok(ok)
+}
+
+/// Count equal rows; print one line per blob.
+fn compare(label: &str, blob: &str, a: &[Vec<String>], b: &[Vec<String>]) -> (usize, usize) {
+    let equal = a.iter().zip(b).filter(|(x, y)| x == y).count();
+    let count = a.len().max(b.len());
+    println!("  {label} {blob}: {equal} of {count} states bit-identical");
+    (equal, count)
+}
+
 /// Run the check; Ok(false) on any difference.
 pub fn run() -> Result<bool> {
     let root = crate::workspace_root();
+    crate::tools::ensure_target()?;
+    crate::tools::ensure_qemu()?;
+    crate::tools::ensure_arm_gcc()?;
     let visviva = crate::tools::build_visviva(&root)?;
-    let lib = build_library(&root)?;
-    let exe = compile_example(&root, &lib)?;
-    let (mut same, mut total) = (0usize, 0usize);
+    let host_lib = build_library(&root, None)?;
+    let exe = compile_example(&root, &host_lib)?;
+    let m4f_lib = build_library(&root, Some(crate::tools::TARGET))?;
+    let (mut host_same, mut m4f_same, mut total) = (0usize, 0usize, 0usize);
     let mut crc_ok = true;
-    for (blob, q) in CASES {
+    for (k, (blob, q)) in CASES.iter().enumerate() {
         let path = root.join("models-demo").join(blob);
         let c_out = stdout_of(
             Command::new(&exe)
@@ -108,7 +243,6 @@ pub fn run() -> Result<bool> {
                 .arg(STEPS.to_string())
                 .args(*q),
         )?;
-        crc_ok &= c_out.lines().next() == Some("# crc32 0xcbf43926");
         let init: Vec<String> = (0..q.len())
             .map(|i| format!("q{}={}", i + 1, q[i]))
             .chain((0..q.len()).map(|i| format!("p{}=0", i + 1)))
@@ -119,23 +253,38 @@ pub fn run() -> Result<bool> {
                 .arg(&path)
                 .args(["--init", &init.join(","), "--steps", &STEPS.to_string()]),
         )?;
-        let (a, b) = (state_rows(&c_out, false), state_rows(&host, true));
-        let equal = a.iter().zip(&b).filter(|(x, y)| x == y).count();
-        let count = a.len().max(b.len());
-        println!(
-            "  {blob}: {equal} of {count} states bit-identical (C example vs visviva rollout)"
+        let elf = build_firmware(&root, &m4f_lib, &path, q, &format!("case{k}"))?;
+        let board = run_in_qemu(&elf)?;
+        for out in [&c_out, &board] {
+            crc_ok &= out.lines().next() == Some("# crc32 0xcbf43926");
+        }
+        let rollout = state_rows(&host, true);
+        let (e, n) = compare(
+            "C on host vs visviva rollout:",
+            blob,
+            &state_rows(&c_out, false),
+            &rollout,
         );
-        same += equal;
-        total += count;
+        host_same += e;
+        let (e, _) = compare(
+            "C on Cortex-M4F vs visviva rollout:",
+            blob,
+            &state_rows(&board, false),
+            &rollout,
+        );
+        m4f_same += e;
+        total += n;
     }
     println!(
-        "  CRC-32 of \"123456789\" through the C interface: {}",
+        "  CRC-32 of \"123456789\" through the C interface, host and Cortex-M4F: {}",
         if crc_ok {
             "0xCBF43926 (catalogue check value)"
         } else {
             "WRONG"
         }
     );
-    println!("c interface (host): {same} of {total} states bit-identical");
-    Ok(crc_ok && same == total && total > 0)
+    let drills_ok = refusal_drills(&root, &m4f_lib)?;
+    println!("target host-c: {host_same} of {total} states bit-identical");
+    println!("target cortex-m4f-c: {m4f_same} of {total} states bit-identical");
+    Ok(crc_ok && drills_ok && host_same == total && m4f_same == total && total > 0)
 }

@@ -86,6 +86,24 @@ pub fn ensure_qemu() -> Result<()> {
     Ok(())
 }
 
+/// The GNU Arm Embedded toolchain (`arm-none-eabi-gcc`) from the
+/// distribution's packages, for the C firmware example.
+pub fn ensure_arm_gcc() -> Result<()> {
+    if output_of("arm-none-eabi-gcc", &["--version"]).is_some() {
+        return Ok(());
+    }
+    let install = "apt-get update && apt-get install -y gcc-arm-none-eabi";
+    if !is_root() {
+        bail!("arm-none-eabi-gcc is missing and this is not root; install it with:\n    sudo sh -c '{install}'");
+    }
+    run_visible(
+        install,
+        Command::new("sh")
+            .args(["-c", install])
+            .env("DEBIAN_FRONTEND", "noninteractive"),
+    )
+}
+
 /// `defmt-print` 1.x, installed with `cargo install --locked` when missing.
 pub fn ensure_defmt_print() -> Result<()> {
     let found = output_of("defmt-print", &["-V"]).unwrap_or_default();

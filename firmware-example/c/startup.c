@@ -1,0 +1,44 @@
+/* Startup for the C example: vector table, .data/.bss set-up, the FPU
+ * switched on (CPACR CP10/CP11 full access), main, and semihosting for
+ * output and exit (ARM semihosting: SYS_WRITE0 = 0x04,
+ * SYS_EXIT_EXTENDED = 0x20, through BKPT 0xAB). No C library. */
+#include <stdint.h>
+
+extern uint32_t __data_start, __data_end, __data_load, __bss_start, __bss_end, __stack_top;
+int main(void);
+
+static uint32_t semihost(uint32_t op, const void *arg) {
+    register uint32_t r0 __asm__("r0") = op;
+    register const void *r1 __asm__("r1") = arg;
+    __asm__ volatile("bkpt 0xab" : "+r"(r0) : "r"(r1) : "memory");
+    return r0;
+}
+
+void vv_write(const char *text) { semihost(0x04, text); }
+
+void vv_exit(int code) {
+    /* ADP_Stopped_ApplicationExit (0x20026) with the exit code. */
+    static uint32_t block[2];
+    block[0] = 0x20026;
+    block[1] = (uint32_t)code;
+    semihost(0x20, block); /* SYS_EXIT_EXTENDED: reason and exit code */
+    for (;;) {}
+}
+
+void reset_handler(void) {
+    uint32_t *src = &__data_load;
+    for (uint32_t *dst = &__data_start; dst < &__data_end;) *dst++ = *src++;
+    for (uint32_t *dst = &__bss_start; dst < &__bss_end;) *dst++ = 0;
+    *(volatile uint32_t *)0xE000ED88 |= 0xFu << 20; /* CPACR: CP10, CP11 full access */
+    __asm__ volatile("dsb\n isb");
+    vv_exit(main());
+}
+
+static void fault_handler(void) { vv_write("hard fault\n"); vv_exit(3); }
+
+__attribute__((section(".vectors"), used))
+static const void *const vectors[16] = {
+    &__stack_top, (const void *)reset_handler, (const void *)fault_handler,
+    (const void *)fault_handler, (const void *)fault_handler,
+    (const void *)fault_handler, (const void *)fault_handler,
+};

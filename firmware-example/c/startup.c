@@ -1,5 +1,6 @@
 /* Startup for the C example: vector table, .data/.bss set-up, the FPU
- * switched on (CPACR CP10/CP11 full access), main, and semihosting for
+ * switched on on cores that have one (CPACR CP10/CP11 full access), main,
+ * and semihosting for
  * output and exit (ARM semihosting: SYS_WRITE0 = 0x04,
  * SYS_EXIT_EXTENDED = 0x20, through BKPT 0xAB). No C library. */
 #include <stdint.h>
@@ -29,8 +30,10 @@ void reset_handler(void) {
     uint32_t *src = &__data_load;
     for (uint32_t *dst = &__data_start; dst < &__data_end;) *dst++ = *src++;
     for (uint32_t *dst = &__bss_start; dst < &__bss_end;) *dst++ = 0;
+#ifdef __ARM_FP
     *(volatile uint32_t *)0xE000ED88 |= 0xFu << 20; /* CPACR: CP10, CP11 full access */
     __asm__ volatile("dsb\n isb");
+#endif
     vv_exit(main());
 }
 

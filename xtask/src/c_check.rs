@@ -31,6 +31,57 @@ const CASES: &[(&str, &[&str])] = &[
 
 const STEPS: usize = 2000;
 
+/// A core the C firmware runs on: Rust target of the library, QEMU board
+/// and CPU, and the C compiler's core flags.
+struct Board {
+    name: &'static str,
+    rust_target: &'static str,
+    machine: &'static str,
+    cpu: &'static str,
+    cflags: &'static [&'static str],
+    /// Linker script in `firmware-example/c` with the board's memory map.
+    memory: &'static str,
+}
+
+/// The Arm cores checked, each on a QEMU board with its memory map in
+/// `firmware-example/c`. The Cortex-M3 has no FPU: its library is
+/// built for `thumbv7m-none-eabi` (soft float), so IEEE 754-2019's correctly
+/// rounded +, -, *, / and sqrt must give the hardware's bits in software.
+const BOARDS: &[Board] = &[
+    Board {
+        name: "cortex-m4f-c",
+        rust_target: "thumbv7em-none-eabihf",
+        machine: "mps2-an386",
+        cpu: "cortex-m4",
+        cflags: &["-mcpu=cortex-m4", "-mfloat-abi=hard", "-mfpu=fpv4-sp-d16"],
+        memory: "mps2-an38x.ld",
+    },
+    Board {
+        name: "cortex-m7-c",
+        rust_target: "thumbv7em-none-eabihf",
+        machine: "mps2-an500",
+        cpu: "cortex-m7",
+        cflags: &["-mcpu=cortex-m7", "-mfloat-abi=hard", "-mfpu=fpv5-d16"],
+        memory: "mps2-an38x.ld",
+    },
+    Board {
+        name: "cortex-m33-c",
+        rust_target: "thumbv8m.main-none-eabihf",
+        machine: "mps2-an505",
+        cpu: "cortex-m33",
+        cflags: &["-mcpu=cortex-m33", "-mfloat-abi=hard", "-mfpu=fpv5-sp-d16"],
+        memory: "mps2-an505.ld",
+    },
+    Board {
+        name: "cortex-m3-softfloat-c",
+        rust_target: "thumbv7m-none-eabi",
+        machine: "mps2-an385",
+        cpu: "cortex-m3",
+        cflags: &["-mcpu=cortex-m3", "-mfloat-abi=soft"],
+        memory: "mps2-an38x.ld",
+    },
+];
+
 fn target_dir(root: &Path) -> PathBuf {
     std::env::var_os("CARGO_TARGET_DIR")
         .map(PathBuf::from)
@@ -57,33 +108,32 @@ fn build_library(root: &Path, target: Option<&str>) -> Result<PathBuf> {
 }
 
 /// Build the C firmware for one blob and initial coordinates; returns the ELF.
-fn build_firmware(root: &Path, lib: &Path, blob: &Path, q: &[&str], name: &str) -> Result<PathBuf> {
+fn build_firmware(
+    root: &Path,
+    board: &Board,
+    lib: &Path,
+    blob: &Path,
+    q: &[&str],
+    name: &str,
+) -> Result<PathBuf> {
     let c = root.join("firmware-example/c");
-    let elf = target_dir(root).join("c-check").join(format!("{name}.elf"));
+    let elf = target_dir(root)
+        .join("c-check")
+        .join(format!("{}-{name}.elf", board.name));
     let q_init: Vec<String> = q.iter().map(|v| format!("{v}f")).collect();
     let status = Command::new("arm-none-eabi-gcc")
-        .args([
-            "-std=c11",
-            "-Wall",
-            "-Wextra",
-            "-Werror",
-            "-O2",
-            "-mcpu=cortex-m4",
-            "-mthumb",
-        ])
-        .args([
-            "-mfloat-abi=hard",
-            "-mfpu=fpv4-sp-d16",
-            "-ffreestanding",
-            "-nostdlib",
-        ])
+        .args(["-std=c11", "-Wall", "-Wextra", "-Werror", "-O2", "-mthumb"])
+        .args(board.cflags)
+        .args(["-ffreestanding", "-nostdlib"])
         .args(["-fno-common", "-Wl,--no-warn-execstack", "-I"])
         .arg(root.join("runtime/c-api/include"))
         .arg(format!("-DVV_BLOB_PATH=\"{}\"", blob.display()))
         .arg(format!("-DVV_STEPS={STEPS}"))
         .arg(format!("-DVV_Q_INIT={}", q_init.join(",")))
+        .arg("-L")
+        .arg(&c)
         .arg("-T")
-        .arg(c.join("link.ld"))
+        .arg(c.join(board.memory))
         .arg(c.join("startup.c"))
         .arg(c.join("main.c"))
         .arg(lib)
@@ -99,23 +149,11 @@ fn build_firmware(root: &Path, lib: &Path, blob: &Path, q: &[&str], name: &str) 
 
 /// Run a firmware ELF in QEMU; what it wrote through semihosting (QEMU
 /// puts SYS_WRITE0 text on its standard error).
-fn run_in_qemu(elf: &Path) -> Result<String> {
+fn run_in_qemu(board: &Board, elf: &Path) -> Result<String> {
     let out = Command::new("timeout")
-        .args([
-            "120",
-            "qemu-system-arm",
-            "-machine",
-            crate::tools::QEMU_MACHINE,
-        ])
-        .args([
-            "-cpu",
-            "cortex-m4",
-            "-nographic",
-            "-serial",
-            "null",
-            "-monitor",
-            "none",
-        ])
+        .args(["120", "qemu-system-arm", "-machine", board.machine])
+        .args(["-cpu", board.cpu, "-nographic", "-serial", "null"])
+        .args(["-monitor", "none"])
         .args(["-semihosting-config", "enable=on,target=native", "-kernel"])
         .arg(elf)
         .stdin(std::process::Stdio::null())
@@ -197,8 +235,8 @@ fn refusal_drills(root: &Path, lib: &Path) -> Result<bool> {
     for (name, bytes, expected) in drills {
         let blob = dir.join(format!("{name}.vvb"));
         std::fs::write(&blob, bytes)?;
-        let elf = build_firmware(root, lib, &blob, &["0.3"], name)?;
-        let refused = match run_in_qemu(&elf) {
+        let elf = build_firmware(root, &BOARDS[0], lib, &blob, &["0.3"], name)?;
+        let refused = match run_in_qemu(&BOARDS[0], &elf) {
             Ok(_) => false,
             Err(e) => format!("{e:#}").contains(expected),
         };
@@ -219,72 +257,75 @@ fn refusal_drills(root: &Path, lib: &Path) -> Result<bool> {
 fn compare(label: &str, blob: &str, a: &[Vec<String>], b: &[Vec<String>]) -> (usize, usize) {
     let equal = a.iter().zip(b).filter(|(x, y)| x == y).count();
     let count = a.len().max(b.len());
-    println!("  {label} {blob}: {equal} of {count} states bit-identical");
+    println!("  {label} {blob}: {equal} of {count} states bit-identical with visviva rollout");
     (equal, count)
+}
+
+/// The host C example's and `visviva rollout`'s states for one case.
+fn host_rows(visviva: &Path, exe: &Path, path: &Path, q: &[&str]) -> Result<(String, String)> {
+    let c_out = stdout_of(Command::new(exe).arg(path).arg(STEPS.to_string()).args(q))?;
+    let init: Vec<String> = (0..q.len())
+        .map(|i| format!("q{}={}", i + 1, q[i]))
+        .chain((0..q.len()).map(|i| format!("p{}=0", i + 1)))
+        .collect();
+    let host = stdout_of(
+        Command::new(visviva)
+            .args(["rollout", "--bits", "--model"])
+            .arg(path)
+            .args(["--init", &init.join(","), "--steps", &STEPS.to_string()]),
+    )?;
+    Ok((c_out, host))
 }
 
 /// Run the check; Ok(false) on any difference.
 pub fn run() -> Result<bool> {
     let root = crate::workspace_root();
-    crate::tools::ensure_target()?;
     crate::tools::ensure_qemu()?;
     crate::tools::ensure_arm_gcc()?;
+    for board in BOARDS {
+        crate::tools::ensure_rust_target(board.rust_target)?;
+    }
     let visviva = crate::tools::build_visviva(&root)?;
     let host_lib = build_library(&root, None)?;
     let exe = compile_example(&root, &host_lib)?;
-    let m4f_lib = build_library(&root, Some(crate::tools::TARGET))?;
-    let (mut host_same, mut m4f_same, mut total) = (0usize, 0usize, 0usize);
+    let libs = BOARDS
+        .iter()
+        .map(|b| build_library(&root, Some(b.rust_target)))
+        .collect::<Result<Vec<_>>>()?;
+    let (mut host_same, mut total) = (0usize, 0usize);
+    let mut board_same = vec![0usize; BOARDS.len()];
     let mut crc_ok = true;
     for (k, (blob, q)) in CASES.iter().enumerate() {
         let path = root.join("models-demo").join(blob);
-        let c_out = stdout_of(
-            Command::new(&exe)
-                .arg(&path)
-                .arg(STEPS.to_string())
-                .args(*q),
-        )?;
-        let init: Vec<String> = (0..q.len())
-            .map(|i| format!("q{}={}", i + 1, q[i]))
-            .chain((0..q.len()).map(|i| format!("p{}=0", i + 1)))
-            .collect();
-        let host = stdout_of(
-            Command::new(&visviva)
-                .args(["rollout", "--bits", "--model"])
-                .arg(&path)
-                .args(["--init", &init.join(","), "--steps", &STEPS.to_string()]),
-        )?;
-        let elf = build_firmware(&root, &m4f_lib, &path, q, &format!("case{k}"))?;
-        let board = run_in_qemu(&elf)?;
-        for out in [&c_out, &board] {
-            crc_ok &= out.lines().next() == Some("# crc32 0xcbf43926");
-        }
+        let (c_out, host) = host_rows(&visviva, &exe, &path, q)?;
+        crc_ok &= c_out.lines().next() == Some("# crc32 0xcbf43926");
         let rollout = state_rows(&host, true);
-        let (e, n) = compare(
-            "C on host vs visviva rollout:",
-            blob,
-            &state_rows(&c_out, false),
-            &rollout,
-        );
+        let (e, n) = compare("host-c", blob, &state_rows(&c_out, false), &rollout);
         host_same += e;
-        let (e, _) = compare(
-            "C on Cortex-M4F vs visviva rollout:",
-            blob,
-            &state_rows(&board, false),
-            &rollout,
-        );
-        m4f_same += e;
         total += n;
+        for (i, board) in BOARDS.iter().enumerate() {
+            let elf = build_firmware(&root, board, &libs[i], &path, q, &format!("case{k}"))?;
+            let out = run_in_qemu(board, &elf)?;
+            crc_ok &= out.lines().next() == Some("# crc32 0xcbf43926");
+            board_same[i] += compare(board.name, blob, &state_rows(&out, false), &rollout).0;
+        }
     }
     println!(
-        "  CRC-32 of \"123456789\" through the C interface, host and Cortex-M4F: {}",
+        "  CRC-32 of \"123456789\" through the C interface on every target: {}",
         if crc_ok {
             "0xCBF43926 (catalogue check value)"
         } else {
             "WRONG"
         }
     );
-    let drills_ok = refusal_drills(&root, &m4f_lib)?;
+    let drills_ok = refusal_drills(&root, &libs[0])?;
     println!("target host-c: {host_same} of {total} states bit-identical");
-    println!("target cortex-m4f-c: {m4f_same} of {total} states bit-identical");
-    Ok(crc_ok && drills_ok && host_same == total && m4f_same == total && total > 0)
+    for (board, same) in BOARDS.iter().zip(&board_same) {
+        println!(
+            "target {}: {same} of {total} states bit-identical",
+            board.name
+        );
+    }
+    let all = host_same == total && board_same.iter().all(|s| *s == total);
+    Ok(crc_ok && drills_ok && all && total > 0)
 }

@@ -41,16 +41,21 @@ fn run_visible(what: &str, cmd: &mut Command) -> Result<()> {
     Ok(())
 }
 
-/// `rustup target add thumbv7em-none-eabihf` unless installed.
-pub fn ensure_target() -> Result<()> {
+/// `rustup target add TARGET` unless installed.
+pub fn ensure_rust_target(target: &str) -> Result<()> {
     let installed = output_of("rustup", &["target", "list", "--installed"]).unwrap_or_default();
-    if installed.lines().any(|l| l.trim() == TARGET) {
+    if installed.lines().any(|l| l.trim() == target) {
         return Ok(());
     }
     run_visible(
-        &format!("rustup target add {TARGET}"),
-        Command::new("rustup").args(["target", "add", TARGET]),
+        &format!("rustup target add {target}"),
+        Command::new("rustup").args(["target", "add", target]),
     )
+}
+
+/// `rustup target add thumbv7em-none-eabihf` unless installed.
+pub fn ensure_target() -> Result<()> {
+    ensure_rust_target(TARGET)
 }
 
 fn is_root() -> bool {

@@ -2,12 +2,13 @@
 //! the static library (`visviva-c`, `panic = "abort"`), compiles
 //! `runtime/c-api/examples/rollout.c` with the host's C compiler as C11
 //! with warnings as errors, and compares every state it prints, bit for
-//! bit, with `visviva rollout --bits` for the undriven demo blobs. On the
-//! Cortex-M4F: builds the library for `thumbv7em-none-eabihf`, the C
-//! firmware `firmware-example/c` with the GNU Arm Embedded toolchain (its
-//! own startup and linker script, the blob in its own flash region), runs
-//! it in QEMU's mps2-an386 and compares its states with the host's. Both
-//! check the library's CRC-32 of "123456789" against the CRC catalogue's
+//! bit, with `visviva rollout --bits` for the undriven demo blobs. On five
+//! cores (Cortex-M4F, M7, M33, a soft-float Cortex-M3, a soft-float 32-bit
+//! RISC-V): builds the library for the core's Rust target and the C
+//! firmware `firmware-example/c` with the distribution's cross compiler
+//! (its own startup and linker script, the blob in its own region), runs it
+//! on a QEMU board and compares its states the same way. Every target also
+//! checks the library's CRC-32 of "123456789" against the CRC catalogue's
 //! check value 0xCBF43926.
 
 use std::path::{Path, PathBuf};
@@ -36,49 +37,90 @@ const STEPS: usize = 2000;
 struct Board {
     name: &'static str,
     rust_target: &'static str,
-    machine: &'static str,
-    cpu: &'static str,
+    /// C compiler and the distribution package that has it.
+    cc: (&'static str, &'static str),
     cflags: &'static [&'static str],
-    /// Linker script in `firmware-example/c` with the board's memory map.
+    /// Startup file and linker script (the board's memory map) in
+    /// `firmware-example/c`.
+    startup: &'static str,
     memory: &'static str,
+    /// QEMU system emulator, its package, and its board arguments.
+    qemu: (&'static str, &'static str),
+    qemu_args: &'static [&'static str],
 }
 
-/// The Arm cores checked, each on a QEMU board with its memory map in
-/// `firmware-example/c`. The Cortex-M3 has no FPU: its library is
-/// built for `thumbv7m-none-eabi` (soft float), so IEEE 754-2019's correctly
-/// rounded +, -, *, / and sqrt must give the hardware's bits in software.
+const ARM_CC: (&str, &str) = ("arm-none-eabi-gcc", "gcc-arm-none-eabi");
+const ARM_QEMU: (&str, &str) = ("qemu-system-arm", "qemu-system-arm");
+
+/// The cores checked, each on a QEMU board with its memory map in
+/// `firmware-example/c`. The Cortex-M3 and the RISC-V core have no FPU:
+/// their libraries do float arithmetic in software, so IEEE 754-2019's
+/// correctly rounded +, -, *, / and sqrt must give the hardware's bits.
 const BOARDS: &[Board] = &[
     Board {
         name: "cortex-m4f-c",
         rust_target: "thumbv7em-none-eabihf",
-        machine: "mps2-an386",
-        cpu: "cortex-m4",
-        cflags: &["-mcpu=cortex-m4", "-mfloat-abi=hard", "-mfpu=fpv4-sp-d16"],
+        cc: ARM_CC,
+        cflags: &[
+            "-mthumb",
+            "-mcpu=cortex-m4",
+            "-mfloat-abi=hard",
+            "-mfpu=fpv4-sp-d16",
+        ],
+        startup: "startup.c",
         memory: "mps2-an38x.ld",
+        qemu: ARM_QEMU,
+        qemu_args: &["-machine", "mps2-an386", "-cpu", "cortex-m4"],
     },
     Board {
         name: "cortex-m7-c",
         rust_target: "thumbv7em-none-eabihf",
-        machine: "mps2-an500",
-        cpu: "cortex-m7",
-        cflags: &["-mcpu=cortex-m7", "-mfloat-abi=hard", "-mfpu=fpv5-d16"],
+        cc: ARM_CC,
+        cflags: &[
+            "-mthumb",
+            "-mcpu=cortex-m7",
+            "-mfloat-abi=hard",
+            "-mfpu=fpv5-d16",
+        ],
+        startup: "startup.c",
         memory: "mps2-an38x.ld",
+        qemu: ARM_QEMU,
+        qemu_args: &["-machine", "mps2-an500", "-cpu", "cortex-m7"],
     },
     Board {
         name: "cortex-m33-c",
         rust_target: "thumbv8m.main-none-eabihf",
-        machine: "mps2-an505",
-        cpu: "cortex-m33",
-        cflags: &["-mcpu=cortex-m33", "-mfloat-abi=hard", "-mfpu=fpv5-sp-d16"],
+        cc: ARM_CC,
+        cflags: &[
+            "-mthumb",
+            "-mcpu=cortex-m33",
+            "-mfloat-abi=hard",
+            "-mfpu=fpv5-sp-d16",
+        ],
+        startup: "startup.c",
         memory: "mps2-an505.ld",
+        qemu: ARM_QEMU,
+        qemu_args: &["-machine", "mps2-an505", "-cpu", "cortex-m33"],
     },
     Board {
         name: "cortex-m3-softfloat-c",
         rust_target: "thumbv7m-none-eabi",
-        machine: "mps2-an385",
-        cpu: "cortex-m3",
-        cflags: &["-mcpu=cortex-m3", "-mfloat-abi=soft"],
+        cc: ARM_CC,
+        cflags: &["-mthumb", "-mcpu=cortex-m3", "-mfloat-abi=soft"],
+        startup: "startup.c",
         memory: "mps2-an38x.ld",
+        qemu: ARM_QEMU,
+        qemu_args: &["-machine", "mps2-an385", "-cpu", "cortex-m3"],
+    },
+    Board {
+        name: "riscv32imac-softfloat-c",
+        rust_target: "riscv32imac-unknown-none-elf",
+        cc: ("riscv64-unknown-elf-gcc", "gcc-riscv64-unknown-elf"),
+        cflags: &["-march=rv32imac", "-mabi=ilp32"],
+        startup: "startup-riscv.c",
+        memory: "riscv-virt.ld",
+        qemu: ("qemu-system-riscv32", "qemu-system-misc"),
+        qemu_args: &["-machine", "virt", "-bios", "none"],
     },
 ];
 
@@ -121,11 +163,17 @@ fn build_firmware(
         .join("c-check")
         .join(format!("{}-{name}.elf", board.name));
     let q_init: Vec<String> = q.iter().map(|v| format!("{v}f")).collect();
-    let status = Command::new("arm-none-eabi-gcc")
-        .args(["-std=c11", "-Wall", "-Wextra", "-Werror", "-O2", "-mthumb"])
+    let status = Command::new(board.cc.0)
+        .args(["-std=c11", "-Wall", "-Wextra", "-Werror", "-O2"])
         .args(board.cflags)
         .args(["-ffreestanding", "-nostdlib"])
-        .args(["-fno-common", "-Wl,--no-warn-execstack", "-I"])
+        .args([
+            "-fno-common",
+            "-ffunction-sections",
+            "-fdata-sections",
+            "-Wl,--gc-sections",
+        ])
+        .args(["-Wl,--no-warn-execstack", "-I"])
         .arg(root.join("runtime/c-api/include"))
         .arg(format!("-DVV_BLOB_PATH=\"{}\"", blob.display()))
         .arg(format!("-DVV_STEPS={STEPS}"))
@@ -134,13 +182,13 @@ fn build_firmware(
         .arg(&c)
         .arg("-T")
         .arg(c.join(board.memory))
-        .arg(c.join("startup.c"))
+        .arg(c.join(board.startup))
         .arg(c.join("main.c"))
         .arg(lib)
         .arg("-o")
         .arg(&elf)
         .status()
-        .context("starting arm-none-eabi-gcc")?;
+        .with_context(|| format!("starting {}", board.cc.0))?;
     if !status.success() {
         bail!("building the C firmware for {name} failed ({status})");
     }
@@ -151,14 +199,14 @@ fn build_firmware(
 /// puts SYS_WRITE0 text on its standard error).
 fn run_in_qemu(board: &Board, elf: &Path) -> Result<String> {
     let out = Command::new("timeout")
-        .args(["120", "qemu-system-arm", "-machine", board.machine])
-        .args(["-cpu", board.cpu, "-nographic", "-serial", "null"])
-        .args(["-monitor", "none"])
+        .args(["120", board.qemu.0])
+        .args(board.qemu_args)
+        .args(["-nographic", "-serial", "null", "-monitor", "none"])
         .args(["-semihosting-config", "enable=on,target=native", "-kernel"])
         .arg(elf)
         .stdin(std::process::Stdio::null())
         .output()
-        .context("starting qemu-system-arm")?;
+        .with_context(|| format!("starting {}", board.qemu.0))?;
     let text = String::from_utf8(out.stderr)?;
     if !out.status.success() {
         bail!(
@@ -216,10 +264,10 @@ fn state_rows(text: &str, skip_header: bool) -> Vec<Vec<String>> {
         .collect()
 }
 
-/// A corrupted blob, a newer format version and a model too wide for the
-/// build must be refused on the Cortex-M4F through the C interface, with the
-/// status's message in the log and a failing exit.
-fn refusal_drills(root: &Path, lib: &Path) -> Result<bool> {
+/// A corrupted blob and a newer format version must be refused on `board`
+/// through the C interface, with the status's message in the log and a
+/// failing exit.
+fn refusal_drills(root: &Path, board: &Board, lib: &Path) -> Result<bool> {
     let good = std::fs::read(root.join("models-demo").join(CASES[0].0))?;
     let mut corrupted = good.clone();
     let mid = corrupted.len() / 2;
@@ -235,13 +283,14 @@ fn refusal_drills(root: &Path, lib: &Path) -> Result<bool> {
     for (name, bytes, expected) in drills {
         let blob = dir.join(format!("{name}.vvb"));
         std::fs::write(&blob, bytes)?;
-        let elf = build_firmware(root, &BOARDS[0], lib, &blob, &["0.3"], name)?;
-        let refused = match run_in_qemu(&BOARDS[0], &elf) {
+        let elf = build_firmware(root, board, lib, &blob, &["0.3"], name)?;
+        let refused = match run_in_qemu(board, &elf) {
             Ok(_) => false,
             Err(e) => format!("{e:#}").contains(expected),
         };
         println!(
-            "  refusal drill on Cortex-M4F (C): {name} blob {}",
+            "  refusal drill on {}: {name} blob {}",
+            board.name,
             if refused {
                 "refused with its status"
             } else {
@@ -280,10 +329,10 @@ fn host_rows(visviva: &Path, exe: &Path, path: &Path, q: &[&str]) -> Result<(Str
 /// Run the check; Ok(false) on any difference.
 pub fn run() -> Result<bool> {
     let root = crate::workspace_root();
-    crate::tools::ensure_qemu()?;
-    crate::tools::ensure_arm_gcc()?;
     for board in BOARDS {
         crate::tools::ensure_rust_target(board.rust_target)?;
+        crate::tools::ensure_package(board.cc.0, board.cc.1)?;
+        crate::tools::ensure_package(board.qemu.0, board.qemu.1)?;
     }
     let visviva = crate::tools::build_visviva(&root)?;
     let host_lib = build_library(&root, None)?;
@@ -294,6 +343,7 @@ pub fn run() -> Result<bool> {
         .collect::<Result<Vec<_>>>()?;
     let (mut host_same, mut total) = (0usize, 0usize);
     let mut board_same = vec![0usize; BOARDS.len()];
+    let mut sizes = vec![None; BOARDS.len()];
     let mut crc_ok = true;
     for (k, (blob, q)) in CASES.iter().enumerate() {
         let path = root.join("models-demo").join(blob);
@@ -306,6 +356,7 @@ pub fn run() -> Result<bool> {
         for (i, board) in BOARDS.iter().enumerate() {
             let elf = build_firmware(&root, board, &libs[i], &path, q, &format!("case{k}"))?;
             let out = run_in_qemu(board, &elf)?;
+            sizes[i].get_or_insert(crate::elf_size::read(&elf)?);
             crc_ok &= out.lines().next() == Some("# crc32 0xcbf43926");
             board_same[i] += compare(board.name, blob, &state_rows(&out, false), &rollout).0;
         }
@@ -318,14 +369,25 @@ pub fn run() -> Result<bool> {
             "WRONG"
         }
     );
-    let drills_ok = refusal_drills(&root, &libs[0])?;
+    let mut drills_ok = true;
+    for (board, lib) in BOARDS.iter().zip(&libs) {
+        drills_ok &= refusal_drills(&root, board, lib)?;
+    }
     println!("target host-c: {host_same} of {total} states bit-identical");
-    for (board, same) in BOARDS.iter().zip(&board_same) {
+    for ((board, same), size) in BOARDS.iter().zip(&board_same).zip(&sizes) {
+        let size: crate::elf_size::ElfSize = size.unwrap_or_default();
         println!(
-            "target {}: {same} of {total} states bit-identical",
-            board.name
+            "target {}: {same} of {total} states bit-identical; C firmware with the library: flash {} B, static RAM {} B (blob apart)",
+            board.name,
+            size.flash(),
+            size.static_ram()
         );
     }
-    let all = host_same == total && board_same.iter().all(|s| *s == total);
-    Ok(crc_ok && drills_ok && all && total > 0)
+    let same: usize = host_same + board_same.iter().sum::<usize>();
+    let targets = BOARDS.len() + 1;
+    println!(
+        "c check: {same} of {} states bit-identical on {targets} targets",
+        total * targets
+    );
+    Ok(crc_ok && drills_ok && same == total * targets && total > 0)
 }

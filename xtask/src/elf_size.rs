@@ -40,7 +40,7 @@ pub fn read(elf: &Path) -> Result<ElfSize> {
     for section in file.sections() {
         let n = section.size();
         match section.name().unwrap_or("") {
-            ".vector_table" | ".text" | ".rodata" => size.flash_code += n,
+            ".vector_table" | ".vectors" | ".text" | ".rodata" => size.flash_code += n,
             ".data" => size.data += n,
             ".bss" | ".uninit" => size.bss += n,
             ".vv_model" => size.model_region += n,

@@ -91,20 +91,24 @@ pub fn ensure_qemu() -> Result<()> {
     Ok(())
 }
 
-/// The GNU Arm Embedded toolchain (`arm-none-eabi-gcc`) from the
-/// distribution's packages, for the C firmware example.
-pub fn ensure_arm_gcc() -> Result<()> {
-    if output_of("arm-none-eabi-gcc", &["--version"]).is_some() {
+/// `binary` from the distribution's package `package`, installed with
+/// apt-get when missing (as root; otherwise the command to run is named).
+pub fn ensure_package(binary: &str, package: &str) -> Result<()> {
+    if Command::new("sh")
+        .args(["-c", &format!("command -v {binary}")])
+        .output()
+        .is_ok_and(|o| o.status.success())
+    {
         return Ok(());
     }
-    let install = "apt-get update && apt-get install -y gcc-arm-none-eabi";
+    let install = format!("apt-get update && apt-get install -y {package}");
     if !is_root() {
-        bail!("arm-none-eabi-gcc is missing and this is not root; install it with:\n    sudo sh -c '{install}'");
+        bail!("{binary} is missing and this is not root; install it with:\n    sudo sh -c '{install}'");
     }
     run_visible(
-        install,
+        &install,
         Command::new("sh")
-            .args(["-c", install])
+            .args(["-c", &install])
             .env("DEBIAN_FRONTEND", "noninteractive"),
     )
 }

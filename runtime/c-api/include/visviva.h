@@ -3,11 +3,9 @@
 #ifndef VISVIVA_H
 #define VISVIVA_H
 
-#include <stdarg.h>
 #include <stdbool.h>
 #include <stddef.h>
 #include <stdint.h>
-#include <stdlib.h>
 
 /**
  * Most degrees of freedom a model may have in this build.

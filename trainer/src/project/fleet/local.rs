@@ -4,6 +4,7 @@
 //! units. A failed unit is reported and the others go on; Ctrl-C stops
 //! units from starting and lets running fits stop at their best so far.
 
+use std::io::Write as _;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 
@@ -48,7 +49,8 @@ pub fn run_fleet(
                 }
                 let line = on_done(&status);
                 if bar.is_hidden() {
-                    println!("{line}");
+                    // A closed stdout (`| head`) must not stop the other units.
+                    let _ = writeln!(std::io::stdout(), "{line}");
                 } else {
                     bar.println(line);
                 }

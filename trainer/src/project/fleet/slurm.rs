@@ -48,6 +48,8 @@ pub fn script(fleet: &Fleet, exe: &Path, dir: &Path) -> String {
     for e in &r.extra {
         s.push_str(&format!("#SBATCH {e}\n"));
     }
+    // Slurm's own log of the task, until the script sends its output beside
+    // the unit.
     let log = dir.join("out").join("slurm").join("%A_%a.out");
     s.push_str(&format!("#SBATCH --output={}\n", log.display()));
     s.push_str("# Written by visviva fleet submit: one array task per unit.\n");
@@ -56,6 +58,15 @@ pub fn script(fleet: &Fleet, exe: &Path, dir: &Path) -> String {
         s.push_str(&format!("#   {i} {}\n", u.name));
     }
     s.push_str("set -eu\n");
+    s.push_str(
+        "# The task's own log goes beside its unit: <unit>/out/slurm-task.log.\nUNIT_DIRS=(",
+    );
+    for u in &fleet.units {
+        let d = std::fs::canonicalize(&u.dir).unwrap_or_else(|_| u.dir.clone());
+        s.push_str(&format!("\n  {}", quote(&d.display().to_string())));
+    }
+    s.push_str("\n)\nUNIT_DIR=\"${UNIT_DIRS[$SLURM_ARRAY_TASK_ID]}\"\n");
+    s.push_str("mkdir -p \"$UNIT_DIR/out\"\nexec >\"$UNIT_DIR/out/slurm-task.log\" 2>&1\n");
     s.push_str(&format!(
         "exec {} fleet task {} --index \"$SLURM_ARRAY_TASK_ID\"\n",
         quote(&exe.display().to_string()),

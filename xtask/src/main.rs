@@ -6,6 +6,8 @@
 //! * `cargo xtask demos [--verify] [--data]`: rerun the demo projects
 //!   (`--data` also rewrites their logs; `--verify` checks that logs and
 //!   blobs reproduce bit for bit).
+//! * `cargo xtask fleet`: the demo fleet locally (`--jobs 2`) and as a job
+//!   array on a throwaway single-node Slurm cluster (a stage of `test`).
 //! * `cargo xtask claims`: every percentage or tolerance figure in README.md
 //!   with the test that asserts it (or "one run"); fails on an unlisted one.
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
@@ -22,11 +24,13 @@ mod device_check;
 mod device_log;
 mod elf_size;
 mod fixtures;
+mod fleet_check;
 mod golden_csv;
 mod host_rollout;
 mod model_swap;
 mod qemu_run;
 mod run_plan;
+mod slurm_cluster;
 mod test_pipeline;
 mod tools;
 
@@ -35,6 +39,7 @@ use std::process::ExitCode;
 
 const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
+  fleet                     demo fleet locally and on a throwaway single-node Slurm
   claims                    README figures and the tests that assert them
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
@@ -47,6 +52,7 @@ fn main() -> ExitCode {
     let result = match args.first().map(String::as_str) {
         Some("test") if args.len() == 1 => test_pipeline::run(),
         Some("claims") if args.len() == 1 => claims::run(),
+        Some("fleet") if args.len() == 1 => fleet_check::run(),
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");

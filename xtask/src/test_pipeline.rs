@@ -18,7 +18,7 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 8] = [
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 9] = [
         (
             "cargo fmt --all -- --check (workspace and firmware-example)",
             &|| {
@@ -79,6 +79,10 @@ pub fn run() -> Result<bool> {
                         "port_project",
                     ])?)
             },
+        ),
+        (
+            "cargo xtask fleet (demo fleet: --jobs 2 locally, then a Slurm job array)",
+            &crate::fleet_check::run,
         ),
         ("cargo xtask device", &|| {
             crate::device_check::run(Vec::new())

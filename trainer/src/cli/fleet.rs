@@ -207,7 +207,11 @@ fn status(dir: &std::path::Path) -> Result<()> {
                 }
             },
         };
-        let key = state.split([' ', ':']).next().unwrap_or("").to_string();
+        let key = if state.starts_with("not started") {
+            "not started".to_string()
+        } else {
+            state.split([' ', ':']).next().unwrap_or("").to_string()
+        };
         *counts.entry(key).or_insert(0usize) += 1;
         println!("  {}: {state}", u.name);
     }

@@ -271,6 +271,7 @@ pub fn run(verify: bool, regenerate_data: bool) -> Result<bool> {
             ok &= same;
         }
     }
+    ok &= crate::fleet_check::logs(&exe, &root, verify, regenerate_data)?;
     println!(
         "demos: {}",
         if ok {

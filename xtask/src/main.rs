@@ -8,6 +8,8 @@
 //!   blobs reproduce bit for bit).
 //! * `cargo xtask c-check`: the C interface used from C on the host (static
 //!   library, `runtime/c-api/examples/rollout.c`, bit-identical states).
+//! * `cargo xtask fleet`: the demo fleet locally (`--jobs 2`) and as a job
+//!   array on a throwaway single-node Slurm cluster (a stage of `test`).
 //! * `cargo xtask claims`: every percentage or tolerance figure in README.md
 //!   with the test that asserts it (or "one run"); fails on an unlisted one.
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
@@ -25,11 +27,13 @@ mod device_check;
 mod device_log;
 mod elf_size;
 mod fixtures;
+mod fleet_check;
 mod golden_csv;
 mod host_rollout;
 mod model_swap;
 mod qemu_run;
 mod run_plan;
+mod slurm_cluster;
 mod test_pipeline;
 mod tools;
 
@@ -38,6 +42,7 @@ use std::process::ExitCode;
 
 const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
+  fleet                     demo fleet locally and on a throwaway single-node Slurm
   claims                    README figures and the tests that assert them
   c-check                   the C interface from C: static library, C example,
                             states bit-identical to visviva rollout
@@ -53,6 +58,7 @@ fn main() -> ExitCode {
         Some("test") if args.len() == 1 => test_pipeline::run(),
         Some("claims") if args.len() == 1 => claims::run(),
         Some("c-check") if args.len() == 1 => c_check::run(),
+        Some("fleet") if args.len() == 1 => fleet_check::run(),
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");

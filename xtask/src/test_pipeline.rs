@@ -18,7 +18,7 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 9] = [
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 10] = [
         (
             "cargo fmt --all -- --check (workspace and firmware-example)",
             &|| {
@@ -83,6 +83,10 @@ pub fn run() -> Result<bool> {
         (
             "cargo xtask c-check (the C interface from C, bit-identical to visviva rollout)",
             &crate::c_check::run,
+        ),
+        (
+            "cargo xtask fleet (demo fleet: --jobs 2 locally, then a Slurm job array)",
+            &crate::fleet_check::run,
         ),
         ("cargo xtask device", &|| {
             crate::device_check::run(Vec::new())

@@ -8,6 +8,7 @@ pub mod check;
 pub mod compare;
 pub mod export;
 pub mod fit;
+pub mod fleet;
 pub mod inspect;
 pub mod rollout;
 pub mod run;
@@ -27,6 +28,8 @@ struct Cli {
 enum Command {
     /// The whole path for a project folder: data, fit, check, export, report.
     Run(run::Args),
+    /// A fleet of units, one model each: run locally, submit to Slurm, status, report.
+    Fleet(fleet::Args),
     /// Generate reference trajectories from a built-in system.
     Simulate(simulate::Args),
     /// Fit an energy model to trajectories and write a model blob.
@@ -50,6 +53,7 @@ pub fn main() -> std::process::ExitCode {
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Run(a) => run::run(a),
+        Command::Fleet(a) => fleet::run(a),
         Command::Simulate(a) => simulate::run(a),
         Command::Fit(a) => fit::run(a),
         Command::Check(a) => check::run(a),

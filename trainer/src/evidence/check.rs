@@ -776,14 +776,16 @@ pub fn reference_modes(system: &dyn ReferenceSystem) -> Vec<ModeDamping> {
     modes_of(&a)
 }
 
-/// Damping per mode at the model's rest state, and driven rollouts of the
-/// held-out trajectories with their logged inputs (none for an undriven
-/// model).
-pub fn check_port(
+/// The model's rest state (f(x) = 0 with u = 0, from the centre of the
+/// fitted range), its residual relative to the data's RMS rates, and the
+/// modes of the linearization there: for a conservative model the
+/// oscillatory pairs are +-i omega (small-amplitude frequencies), for a
+/// damped one they carry the damping ratio.
+pub fn rest_modes(
     model: &HostModel<'_>,
     blob: &crate::deploy::blob::BlobModel,
     data: &Dataset,
-) -> Result<PortCheckReport> {
+) -> Result<(Vec<f64>, f64, Vec<ModeDamping>)> {
     let d = 2 * blob.dof;
     let scale: Vec<f64> = blob.scale.iter().map(|v| *v as f64).collect();
     let rates: Vec<f64> = (0..d)
@@ -813,7 +815,18 @@ pub fn check_port(
         .map(|(v, r)| v.abs() / r)
         .fold(0.0, f64::max);
     let a = field_jacobian(model, &x, &scale)?;
-    let modes = modes_of(&a);
+    Ok((x, rest_residual, modes_of(&a)))
+}
+
+/// Damping per mode at the model's rest state, and driven rollouts of the
+/// held-out trajectories with their logged inputs (none for an undriven
+/// model).
+pub fn check_port(
+    model: &HostModel<'_>,
+    blob: &crate::deploy::blob::BlobModel,
+    data: &Dataset,
+) -> Result<PortCheckReport> {
+    let (rest, rest_residual, modes) = rest_modes(model, blob, data)?;
     let mut rollouts = Vec::new();
     for traj in &data.trajectories {
         let dt = trajectory_dt(traj);
@@ -832,7 +845,7 @@ pub fn check_port(
         });
     }
     Ok(PortCheckReport {
-        rest: x,
+        rest,
         rest_residual,
         modes,
         rollouts,

@@ -3,5 +3,7 @@
 
 pub mod charts;
 pub mod check;
+pub mod fleet_report;
+pub mod outliers;
 pub mod report;
 pub mod svgplot;

@@ -249,6 +249,14 @@ fn esc(s: &str) -> String {
 }
 
 impl<'a> Html<'a> {
+    /// A builder over `json` (the report's own JSON text, parsed back).
+    pub fn new(json: &'a Value) -> Self {
+        Self {
+            json,
+            out: String::new(),
+        }
+    }
+
     /// A value from the report, tagged with its path.
     pub fn num(&self, path: &str) -> String {
         let v = lookup(self.json, path).cloned().unwrap_or(Value::Null);

@@ -149,13 +149,20 @@ pub fn median_step(ds: &Dataset) -> Option<f64> {
 }
 
 /// A flag Ctrl-C sets; the training loop stops and keeps the best so far.
+/// The handler is installed once per process and every caller shares the
+/// flag, so fits running side by side (a fleet's units on a thread pool)
+/// neither fight over the handler nor warn about it.
 pub fn interrupt_flag() -> Arc<AtomicBool> {
-    let interrupt = Arc::new(AtomicBool::new(false));
-    let flag = interrupt.clone();
-    if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
-        eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
-    }
-    interrupt
+    static FLAG: std::sync::OnceLock<Arc<AtomicBool>> = std::sync::OnceLock::new();
+    FLAG.get_or_init(|| {
+        let interrupt = Arc::new(AtomicBool::new(false));
+        let flag = interrupt.clone();
+        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
+            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
+        }
+        interrupt
+    })
+    .clone()
 }
 
 /// What the fit stage produced.

@@ -3,4 +3,5 @@
 
 pub mod cache;
 pub mod file;
+pub mod fleet;
 pub mod pipeline;

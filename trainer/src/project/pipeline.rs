@@ -80,8 +80,14 @@ impl Prepared {
 /// project file, the logs, the model plan and every export target's
 /// integrator.
 pub fn prepare(dir: &Path) -> Result<Prepared> {
-    let project = Project::load(dir)?;
     let file = dir.join("visviva.toml").display().to_string();
+    prepare_project(dir, Project::load(dir)?, &file)
+}
+
+/// [`prepare`] for a project already read (a fleet unit: the fleet's
+/// template with the unit's overrides); `file` names it in errors.
+pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepared> {
+    let file = file.to_string();
     let logs = load_logs(dir, &project)?;
     let m = &project.model;
     let choice = arch_choice(

@@ -30,6 +30,20 @@
 // No heap, so large variants cannot be boxed: they stay inline by design.
 #![allow(clippy::large_enum_variant)]
 
+// Cargo features leave out parts a firmware does not use (default: all).
+#[cfg(not(any(
+    feature = "verlet",
+    feature = "yoshida4",
+    feature = "midpoint",
+    feature = "rk4",
+    feature = "discrete-gradient"
+)))]
+compile_error!(
+    "visviva-runtime needs at least one integrator feature: verlet, yoshida4, midpoint, rk4 or discrete-gradient"
+);
+#[cfg(not(any(feature = "separable", feature = "general")))]
+compile_error!("visviva-runtime needs at least one model kind feature: separable or general");
+
 mod energy;
 pub mod error;
 pub mod format;

@@ -202,6 +202,9 @@ fn check_layer(
                 return Err(BlobError::NonFinite { section });
             }
         }
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {
+            return Err(BlobError::NotInThisBuild { section });
+        }
         WeightsDesc::Int8 { values, scales } => {
             if values.len() != ni * no || scales.0.len() != 4 * no {
                 return Err(shape);
@@ -288,6 +291,8 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
                 }
             }
         }
+        // Refused at validation when left out of the build.
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
         WeightsDesc::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
@@ -356,6 +361,7 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
                 }
             }
         }
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
         WeightsDesc::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= no {

@@ -9,13 +9,28 @@ use crate::error::{BlobError, Section};
 use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
 use crate::math;
 
-/// A validated layer.
+/// A validated layer. Widths are stored as the blob stores them (`u16`),
+/// which keeps a parsed model (and every copy of it on the stack) small.
 #[derive(Debug, Clone, Copy)]
 struct Layer<'a> {
-    inputs: usize,
-    outputs: usize,
+    inputs: u16,
+    outputs: u16,
     weights: WeightsDesc<'a>,
     bias: F32Bytes<'a>,
+}
+
+impl Layer<'_> {
+    /// Input width.
+    #[inline(always)]
+    fn ni(&self) -> usize {
+        self.inputs as usize
+    }
+
+    /// Output width.
+    #[inline(always)]
+    fn no(&self) -> usize {
+        self.outputs as usize
+    }
 }
 
 /// A validated network with inputs of width `inputs` and `outputs` outputs.
@@ -71,8 +86,8 @@ impl<'a, const W: usize> Mlp<'a, W> {
             }
             check_layer(l, ni, no, section, li)?;
             layers[i] = Some(Layer {
-                inputs: ni,
-                outputs: no,
+                inputs: l.inputs,
+                outputs: l.outputs,
                 weights: l.weights,
                 bias: l.bias,
             });
@@ -95,7 +110,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
         self.layers
             .iter()
             .flatten()
-            .map(|l| (l.inputs * l.outputs) as u32)
+            .map(|l| (l.ni() * l.no()) as u32)
             .sum()
     }
 
@@ -104,7 +119,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
         self.layers
             .iter()
             .flatten()
-            .map(|l| (l.inputs * l.outputs + l.outputs) as u32)
+            .map(|l| (l.ni() * l.no() + l.no()) as u32)
             .sum()
     }
 
@@ -140,14 +155,14 @@ impl<'a, const W: usize> Mlp<'a, W> {
         let mut next = [0.0f32; W];
         for (k, layer) in self.layers.iter().take(self.count).enumerate() {
             let Some(l) = layer else { break };
-            let input: &[f32] = if k == 0 { x } else { &cur[..l.inputs] };
-            dense(l, input, &mut next[..l.outputs]);
+            let input: &[f32] = if k == 0 { x } else { &cur[..l.ni()] };
+            dense(l, input, &mut next[..l.no()]);
             if k + 1 == self.count {
-                for (o, v) in out.iter_mut().zip(&next[..l.outputs]) {
+                for (o, v) in out.iter_mut().zip(&next[..l.no()]) {
                     *o = *v;
                 }
             } else {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     let (a, d) = activate(self.activation, next[j]);
                     cur[j] = a;
                     deriv[k][j] = d;
@@ -164,18 +179,18 @@ impl<'a, const W: usize> Mlp<'a, W> {
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
             if k + 1 < self.count {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     g[j] *= deriv[k][j];
                 }
             }
             let target: &mut [f32] = if k == 0 {
-                &mut grad[..l.inputs]
+                &mut grad[..l.ni()]
             } else {
-                &mut gp[..l.inputs]
+                &mut gp[..l.ni()]
             };
-            dense_transpose(&l, &g[..l.outputs], target);
+            dense_transpose(&l, &g[..l.no()], target);
             if k > 0 {
-                g[..l.inputs].copy_from_slice(&gp[..l.inputs]);
+                g[..l.ni()].copy_from_slice(&gp[..l.ni()]);
             }
         }
     }
@@ -255,7 +270,7 @@ fn le_f32(c: &[u8]) -> f32 {
 /// y = W x + b, summing each row in index order.
 #[inline]
 fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
-    let ni = l.inputs;
+    let ni = l.ni();
     let x = &x[..ni.min(x.len())];
     match l.weights {
         WeightsDesc::F32(w) => {
@@ -329,7 +344,7 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
 /// (four rows per pass, same order, same bits).
 #[inline]
 fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
-    let ni = l.inputs;
+    let ni = l.ni();
     gx.iter_mut().for_each(|v| *v = 0.0);
     let no = g.len();
     match l.weights {

@@ -43,7 +43,8 @@ pub const MAX_LAYERS: usize = 5;
 const CRC32: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
 /// Without the `crc-table` feature: the same CRC-32 bit by bit, no table.
 #[cfg(not(feature = "crc-table"))]
-const CRC32: crc::Crc<u32, crc::NoTable> = crc::Crc::<u32, crc::NoTable>::new(&crc::CRC_32_ISO_HDLC);
+const CRC32: crc::Crc<u32, crc::NoTable> =
+    crc::Crc::<u32, crc::NoTable>::new(&crc::CRC_32_ISO_HDLC);
 
 /// Little-endian `f32` values stored as bytes (length a multiple of 4).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

@@ -243,7 +243,9 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         };
         Ok(match fields.take::<InputDesc<'a>>()? {
             InputDesc::None => None,
-            _ if !cfg!(feature = "port-terms") => return Err(BlobError::NotInThisBuild { section }),
+            _ if !cfg!(feature = "port-terms") => {
+                return Err(BlobError::NotInThisBuild { section })
+            }
             InputDesc::Constant { inputs, matrix } => {
                 let m = input_count(inputs)?;
                 Some((m, PortMatrix::constant(matrix, n2 * m, section)?))

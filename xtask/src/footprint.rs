@@ -133,7 +133,11 @@ fn measure(
         bail!(
             "QEMU exit {:?}{}: {}",
             outcome.exit_code,
-            if outcome.timed_out { " (timed out)" } else { "" },
+            if outcome.timed_out {
+                " (timed out)"
+            } else {
+                ""
+            },
             text.trim()
         );
     }
@@ -207,12 +211,22 @@ pub fn read_table(path: &Path) -> Result<Vec<(String, Footprint)>> {
         }
         let f: Vec<&str> = line.split(',').map(str::trim).collect();
         let num = |k: usize| -> Result<u64> {
-            f.get(k)
-                .and_then(|v| v.parse().ok())
-                .with_context(|| format!("{}:{}: field {} is not a byte count", path.display(), i + 1, k + 1))
+            f.get(k).and_then(|v| v.parse().ok()).with_context(|| {
+                format!(
+                    "{}:{}: field {} is not a byte count",
+                    path.display(),
+                    i + 1,
+                    k + 1
+                )
+            })
         };
         if f.len() != 4 {
-            bail!("{}:{}: expected 4 fields, found {}", path.display(), i + 1, f.len());
+            bail!(
+                "{}:{}: expected 4 fields, found {}",
+                path.display(),
+                i + 1,
+                f.len()
+            );
         }
         rows.push((
             f[0].to_string(),
@@ -273,7 +287,12 @@ mod tests {
     fn committed_table_names_every_configuration_once() {
         let rows = read_table(&crate::workspace_root().join(TABLE)).expect("table parses");
         for c in &CONFIGS {
-            assert_eq!(rows.iter().filter(|(n, _)| n == c.name).count(), 1, "{}", c.name);
+            assert_eq!(
+                rows.iter().filter(|(n, _)| n == c.name).count(),
+                1,
+                "{}",
+                c.name
+            );
         }
         assert_eq!(rows.len(), CONFIGS.len());
     }

@@ -32,7 +32,12 @@ pub enum Energy<'a, const W: usize> {
 impl<'a, const W: usize> Energy<'a, W> {
     /// Validate the description for `n` degrees of freedom.
     pub fn validate(desc: &EnergyDesc<'a>, n: usize) -> Result<Self, BlobError> {
+        let left_out = |section| Err(BlobError::NotInThisBuild { section });
         match desc {
+            EnergyDesc::General(_) if !cfg!(feature = "general") => left_out(Section::General),
+            EnergyDesc::Separable { .. } if !cfg!(feature = "separable") => {
+                left_out(Section::Potential)
+            }
             EnergyDesc::General(mlp) => Ok(Self::General(Mlp::validate(
                 mlp,
                 2 * n,

@@ -75,6 +75,9 @@ pub enum BlobError {
     MethodIgnoresPortTerms,
     /// A header whose payload length makes the blob longer than 2^32 - 1 bytes.
     LengthOutOfRange { payload_len: u32 },
+    /// The blob needs a part of the runtime (model kind, integrator, port
+    /// terms, int8 weights) that this build leaves out by its cargo features.
+    NotInThisBuild { section: Section },
 }
 
 impl fmt::Display for BlobError {
@@ -137,6 +140,11 @@ impl fmt::Display for BlobError {
             Self::LengthOutOfRange { payload_len } => write!(
                 f,
                 "blob header states a payload of {payload_len} bytes: the blob would not fit in 2^32 - 1 bytes"
+            ),
+            Self::NotInThisBuild { section } => write!(
+                f,
+                "{section:?} needs a part of visviva-runtime this firmware was built without; \
+                 enable the matching cargo feature (or the default features)"
             ),
         }
     }

@@ -39,7 +39,12 @@ pub const TRAILER_LEN: usize = 4;
 /// Most layers (hidden plus output) in one network.
 pub const MAX_LAYERS: usize = 5;
 
+#[cfg(feature = "crc-table")]
 const CRC32: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+/// Without the `crc-table` feature: the same CRC-32 bit by bit, no table.
+#[cfg(not(feature = "crc-table"))]
+const CRC32: crc::Crc<u32, crc::NoTable> =
+    crc::Crc::<u32, crc::NoTable>::new(&crc::CRC_32_ISO_HDLC);
 
 /// The CRC-32 a blob's trailer holds (CRC-32/ISO-HDLC, the catalogue's
 /// "CRC-32": check value 0xCBF43926 for the ASCII string "123456789").
@@ -209,16 +214,21 @@ pub enum InputDesc<'a> {
 impl ModelDesc<'_> {
     /// The oldest format version that can express this model.
     pub fn needed_version(&self) -> u16 {
-        let networks = matches!(self.dissipation, DissipationDesc::Network(_))
-            || matches!(self.input, InputDesc::Network { .. });
-        let port = self.dissipation != DissipationDesc::None || self.input != InputDesc::None;
-        if networks {
-            3
-        } else if port {
-            2
-        } else {
-            OLDEST_READABLE_VERSION
-        }
+        version_for(&self.dissipation, &self.input)
+    }
+}
+
+/// The oldest format version that can express these port terms.
+fn version_for(dissipation: &DissipationDesc<'_>, input: &InputDesc<'_>) -> u16 {
+    let networks = matches!(dissipation, DissipationDesc::Network(_))
+        || matches!(input, InputDesc::Network { .. });
+    let port = *dissipation != DissipationDesc::None || *input != InputDesc::None;
+    if networks {
+        3
+    } else if port {
+        2
+    } else {
+        OLDEST_READABLE_VERSION
     }
 }
 
@@ -380,4 +390,61 @@ pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
         return Err(BlobError::Malformed);
     }
     Ok(desc)
+}
+
+/// The payload read one field of [`ModelDesc`] at a time, in its order
+/// (postcard writes a struct as its fields in order with nothing between
+/// them, so this reads exactly what [`decode`] reads). A firmware parse
+/// then never holds more than one section's description on the stack:
+/// the whole description, decoded at once, costs several KiB of stack.
+#[derive(Debug, Clone, Copy)]
+pub struct Fields<'a> {
+    rest: &'a [u8],
+}
+
+impl<'a> Fields<'a> {
+    /// The next field.
+    pub fn take<T: Deserialize<'a>>(&mut self) -> Result<T, BlobError> {
+        let (value, rest) =
+            postcard::take_from_bytes::<T>(self.rest).map_err(|_| BlobError::Malformed)?;
+        self.rest = rest;
+        Ok(value)
+    }
+
+    /// Skip the next field (decoded in its own stack frame, then dropped).
+    #[inline(never)]
+    fn skip<T: Deserialize<'a>>(&mut self) -> Result<(), BlobError> {
+        self.take::<T>().map(drop)
+    }
+
+    /// Read the two port-term fields; return the format version they need.
+    #[inline(never)]
+    fn port_version(&mut self) -> Result<u16, BlobError> {
+        let dissipation = self.take::<DissipationDesc<'a>>()?;
+        let input = self.take::<InputDesc<'a>>()?;
+        Ok(version_for(&dissipation, &input))
+    }
+}
+
+/// Every check of [`decode`], in its order (container, every field decodes,
+/// nothing left over, version covers the content), field by field without
+/// keeping the description; returns the payload's fields to read again.
+pub fn check_fields(bytes: &[u8]) -> Result<Fields<'_>, BlobError> {
+    let (env, payload) = open(bytes)?;
+    let start = Fields { rest: payload };
+    let mut f = start;
+    f.skip::<u8>()?;
+    f.skip::<F32Bytes<'_>>()?;
+    f.skip::<F32Bytes<'_>>()?;
+    f.skip::<f32>()?;
+    f.skip::<EnergyDesc<'_>>()?;
+    f.skip::<Integrator>()?;
+    let needed = f.port_version()?;
+    if !f.rest.is_empty() {
+        return Err(BlobError::TrailingBytes);
+    }
+    if env.version < needed {
+        return Err(BlobError::Malformed);
+    }
+    Ok(start)
 }

@@ -42,19 +42,38 @@
 // No heap, so large variants cannot be boxed: they stay inline by design.
 #![allow(clippy::large_enum_variant)]
 
+// Cargo features leave out parts a firmware does not use (default: all).
+#[cfg(not(any(
+    feature = "verlet",
+    feature = "yoshida4",
+    feature = "midpoint",
+    feature = "rk4",
+    feature = "discrete-gradient"
+)))]
+compile_error!(
+    "visviva-runtime needs at least one integrator feature: verlet, yoshida4, midpoint, rk4 or discrete-gradient"
+);
+#[cfg(not(any(feature = "separable", feature = "general")))]
+compile_error!("visviva-runtime needs at least one model kind feature: separable or general");
+
 mod energy;
 pub mod error;
 pub mod format;
 pub mod hamiltonian;
 pub mod integrate;
+#[cfg(feature = "observer")]
 pub mod jacobian;
+#[cfg(feature = "observer")]
 pub mod linalg;
 pub mod math;
 mod mlp;
 pub mod model;
+#[cfg(feature = "observer")]
 pub mod monitor;
+#[cfg(feature = "observer")]
 pub mod observer;
 pub mod state;
+#[cfg(feature = "observer")]
 pub mod tangent;
 
 pub use error::{BlobError, Section, StepError};
@@ -62,8 +81,10 @@ pub use format::blob_len;
 pub use hamiltonian::Hamiltonian;
 pub use integrate::{Integrator, Method};
 pub use model::{Cost, Model};
+#[cfg(feature = "observer")]
 pub use observer::{Channel, Measurement, Observer, ObserverError};
 pub use state::State;
+#[cfg(feature = "observer")]
 pub use tangent::Tangent;
 
 /// Largest number of degrees of freedom any build of the runtime accepts;

@@ -9,15 +9,31 @@ use crate::error::{BlobError, Section};
 use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
 use crate::math;
 
+#[cfg(feature = "observer")]
 mod tangent;
 
-/// A validated layer.
+/// A validated layer. Widths are stored as the blob stores them (`u16`),
+/// which keeps a parsed model (and every copy of it on the stack) small.
 #[derive(Debug, Clone, Copy)]
 struct Layer<'a> {
-    inputs: usize,
-    outputs: usize,
+    inputs: u16,
+    outputs: u16,
     weights: WeightsDesc<'a>,
     bias: F32Bytes<'a>,
+}
+
+impl Layer<'_> {
+    /// Input width.
+    #[inline(always)]
+    fn ni(&self) -> usize {
+        self.inputs as usize
+    }
+
+    /// Output width.
+    #[inline(always)]
+    fn no(&self) -> usize {
+        self.outputs as usize
+    }
 }
 
 /// A validated network with inputs of width `inputs` and `outputs` outputs.
@@ -73,8 +89,8 @@ impl<'a, const W: usize> Mlp<'a, W> {
             }
             check_layer(l, ni, no, section, li)?;
             layers[i] = Some(Layer {
-                inputs: ni,
-                outputs: no,
+                inputs: l.inputs,
+                outputs: l.outputs,
                 weights: l.weights,
                 bias: l.bias,
             });
@@ -97,7 +113,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
         self.layers
             .iter()
             .flatten()
-            .map(|l| (l.inputs * l.outputs) as u32)
+            .map(|l| (l.ni() * l.no()) as u32)
             .sum()
     }
 
@@ -106,7 +122,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
         self.layers
             .iter()
             .flatten()
-            .map(|l| (l.inputs * l.outputs + l.outputs) as u32)
+            .map(|l| (l.ni() * l.no() + l.no()) as u32)
             .sum()
     }
 
@@ -142,14 +158,14 @@ impl<'a, const W: usize> Mlp<'a, W> {
         let mut next = [0.0f32; W];
         for (k, layer) in self.layers.iter().take(self.count).enumerate() {
             let Some(l) = layer else { break };
-            let input: &[f32] = if k == 0 { x } else { &cur[..l.inputs] };
-            dense(l, input, &mut next[..l.outputs]);
+            let input: &[f32] = if k == 0 { x } else { &cur[..l.ni()] };
+            dense(l, input, &mut next[..l.no()]);
             if k + 1 == self.count {
-                for (o, v) in out.iter_mut().zip(&next[..l.outputs]) {
+                for (o, v) in out.iter_mut().zip(&next[..l.no()]) {
                     *o = *v;
                 }
             } else {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     let (a, d) = activate(self.activation, next[j]);
                     cur[j] = a;
                     deriv[k][j] = d;
@@ -166,18 +182,18 @@ impl<'a, const W: usize> Mlp<'a, W> {
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
             if k + 1 < self.count {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     g[j] *= deriv[k][j];
                 }
             }
             let target: &mut [f32] = if k == 0 {
-                &mut grad[..l.inputs]
+                &mut grad[..l.ni()]
             } else {
-                &mut gp[..l.inputs]
+                &mut gp[..l.ni()]
             };
-            dense_transpose(&l, &g[..l.outputs], target);
+            dense_transpose(&l, &g[..l.no()], target);
             if k > 0 {
-                g[..l.inputs].copy_from_slice(&gp[..l.inputs]);
+                g[..l.ni()].copy_from_slice(&gp[..l.ni()]);
             }
         }
     }
@@ -203,6 +219,9 @@ fn check_layer(
             if !all_finite(w) {
                 return Err(BlobError::NonFinite { section });
             }
+        }
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {
+            return Err(BlobError::NotInThisBuild { section });
         }
         WeightsDesc::Int8 { values, scales } => {
             if values.len() != ni * no || scales.0.len() != 4 * no {
@@ -254,7 +273,7 @@ fn le_f32(c: &[u8]) -> f32 {
 /// y = W x + b, summing each row in index order.
 #[inline]
 fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
-    let ni = l.inputs;
+    let ni = l.ni();
     let x = &x[..ni.min(x.len())];
     match l.weights {
         WeightsDesc::F32(w) => {
@@ -290,6 +309,8 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
                 }
             }
         }
+        // Refused at validation when left out of the build.
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
         WeightsDesc::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
@@ -326,7 +347,7 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
 /// (four rows per pass, same order, same bits).
 #[inline]
 fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
-    let ni = l.inputs;
+    let ni = l.ni();
     gx.iter_mut().for_each(|v| *v = 0.0);
     let no = g.len();
     match l.weights {
@@ -358,6 +379,7 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
                 }
             }
         }
+        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
         WeightsDesc::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= no {

@@ -6,12 +6,13 @@
 
 use crate::energy::Energy;
 use crate::error::{BlobError, Section, StepError};
-use crate::format::{self, DissipationDesc, F32Bytes, InputDesc};
+use crate::format::{self, DissipationDesc, EnergyDesc, F32Bytes, Fields, InputDesc};
 use crate::hamiltonian::Hamiltonian;
 use crate::integrate::Integrator;
 use crate::mlp::Mlp;
 use crate::state::State;
 
+#[cfg(feature = "observer")]
 mod tangent;
 
 /// A port matrix (the factor L of R, or G): constant, or a network of the
@@ -129,9 +130,19 @@ pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
 impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
     /// Parse and validate a blob. Never panics; every defect is a
     /// [`BlobError`]. Weights stay in `bytes` (no copy).
+    ///
+    /// Never inlined: the decoder's temporaries (the whole description,
+    /// several hundred bytes) then leave the stack before the first step
+    /// instead of staying in the caller's frame.
+    #[inline(never)]
     pub fn from_bytes(bytes: &'a [u8]) -> Result<Self, BlobError> {
-        let desc = format::decode(bytes)?;
-        let n = desc.dof as usize;
+        // Every decoding check of `format::decode` first, in its order; then
+        // the fields again, one section at a time, validated in order.
+        let mut fields = format::check_fields(bytes)?;
+        let n = fields.take::<u8>()? as usize;
+        let offset: F32Bytes<'a> = fields.take()?;
+        let scale: F32Bytes<'a> = fields.take()?;
+        let es: f32 = fields.take()?;
         let max = D.min(crate::MAX_DOF_SUPPORTED);
         if n == 0 || n > max {
             return Err(BlobError::DofOutOfRange {
@@ -140,24 +151,18 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
             });
         }
         let norm = Section::Normalization;
-        if desc.offset.0.len() != 8 * n || desc.scale.0.len() != 8 * n {
+        if offset.0.len() != 8 * n || scale.0.len() != 8 * n {
             return Err(BlobError::ShapeMismatch {
                 section: norm,
                 layer: 0,
             });
         }
-        if !desc
-            .offset
-            .iter()
-            .chain(desc.scale.iter())
-            .all(f32::is_finite)
-        {
+        if !offset.iter().chain(scale.iter()).all(f32::is_finite) {
             return Err(BlobError::NonFinite { section: norm });
         }
-        if !desc.scale.iter().all(|s| s > 0.0) {
+        if !scale.iter().all(|s| s > 0.0) {
             return Err(BlobError::NotPositive { section: norm });
         }
-        let es = desc.energy_scale;
         if !es.is_finite() {
             return Err(BlobError::NonFinite {
                 section: Section::EnergyScale,
@@ -168,23 +173,68 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
                 section: Section::EnergyScale,
             });
         }
-        let energy = Energy::validate(&desc.energy, n)?;
+        let energy = Self::read_energy(&mut fields, n)?;
+        let integrator: Integrator = fields.take()?;
+        let dissipation = Self::read_dissipation(&mut fields, n)?;
+        let input = Self::read_input(&mut fields, n)?;
+        let mut m = Self {
+            dof: n,
+            offset_q: [0.0; D],
+            offset_p: [0.0; D],
+            scale_q: [1.0; D],
+            scale_p: [1.0; D],
+            energy_scale: es,
+            energy,
+            integrator,
+            dissipation,
+            input,
+        };
+        for i in 0..n {
+            m.offset_q[i] = offset.get(i);
+            m.offset_p[i] = offset.get(n + i);
+            m.scale_q[i] = scale.get(i);
+            m.scale_p[i] = scale.get(n + i);
+        }
+        m.check_integrator(integrator)?;
+        Ok(m)
+    }
+
+    /// The energy section, decoded and validated in its own stack frame.
+    #[inline(never)]
+    fn read_energy(fields: &mut Fields<'a>, n: usize) -> Result<Energy<'a, W>, BlobError> {
+        Energy::validate(&fields.take::<EnergyDesc<'a>>()?, n)
+    }
+
+    /// The dissipation section (the factor L of R = L L^T).
+    #[inline(never)]
+    fn read_dissipation(
+        fields: &mut Fields<'a>,
+        n: usize,
+    ) -> Result<Option<PortMatrix<'a, W>>, BlobError> {
         let n2 = 2 * n;
         let l_entries = n2 * (n2 + 1) / 2;
-        let dissipation = match &desc.dissipation {
+        let section = Section::Dissipation;
+        Ok(match fields.take::<DissipationDesc<'a>>()? {
             DissipationDesc::None => None,
-            DissipationDesc::Constant { factor } => Some(PortMatrix::constant(
-                *factor,
-                l_entries,
-                Section::Dissipation,
-            )?),
-            DissipationDesc::Network(net) => Some(PortMatrix::network(
-                net,
-                n,
-                l_entries,
-                Section::Dissipation,
-            )?),
-        };
+            _ if !cfg!(feature = "port-terms") => {
+                return Err(BlobError::NotInThisBuild { section })
+            }
+            DissipationDesc::Constant { factor } => {
+                Some(PortMatrix::constant(factor, l_entries, section)?)
+            }
+            DissipationDesc::Network(net) => {
+                Some(PortMatrix::network(&net, n, l_entries, section)?)
+            }
+        })
+    }
+
+    /// The input section: the number of inputs m and G.
+    #[inline(never)]
+    fn read_input(
+        fields: &mut Fields<'a>,
+        n: usize,
+    ) -> Result<Option<(usize, PortMatrix<'a, W>)>, BlobError> {
+        let n2 = 2 * n;
         let section = Section::InputCoupling;
         let input_count = |inputs: u8| {
             let m = inputs as usize;
@@ -194,43 +244,40 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
                 Ok(m)
             }
         };
-        let input = match &desc.input {
+        Ok(match fields.take::<InputDesc<'a>>()? {
             InputDesc::None => None,
+            _ if !cfg!(feature = "port-terms") => {
+                return Err(BlobError::NotInThisBuild { section })
+            }
             InputDesc::Constant { inputs, matrix } => {
-                let m = input_count(*inputs)?;
-                Some((m, PortMatrix::constant(*matrix, n2 * m, section)?))
+                let m = input_count(inputs)?;
+                Some((m, PortMatrix::constant(matrix, n2 * m, section)?))
             }
             InputDesc::Network { inputs, net } => {
-                let m = input_count(*inputs)?;
-                Some((m, PortMatrix::network(net, n, n2 * m, section)?))
+                let m = input_count(inputs)?;
+                Some((m, PortMatrix::network(&net, n, n2 * m, section)?))
             }
-        };
-        let mut m = Self {
-            dof: n,
-            offset_q: [0.0; D],
-            offset_p: [0.0; D],
-            scale_q: [1.0; D],
-            scale_p: [1.0; D],
-            energy_scale: es,
-            energy,
-            integrator: desc.integrator,
-            dissipation,
-            input,
-        };
-        for i in 0..n {
-            m.offset_q[i] = desc.offset.get(i);
-            m.offset_p[i] = desc.offset.get(n + i);
-            m.scale_q[i] = desc.scale.get(i);
-            m.scale_p[i] = desc.scale.get(n + i);
-        }
-        m.with_integrator(desc.integrator)
+        })
     }
 
     /// The same model with other integrator settings, checked as at parse
     /// time (a separable-only method on a general model is refused).
     pub fn with_integrator(mut self, integrator: Integrator) -> Result<Self, BlobError> {
+        self.check_integrator(integrator)?;
+        self.integrator = integrator;
+        Ok(self)
+    }
+
+    /// Whether `integrator` may step this model (checked by reference, so
+    /// parsing does not move the model through another `Result`).
+    fn check_integrator(&self, integrator: Integrator) -> Result<(), BlobError> {
         if !integrator.is_valid() {
             return Err(BlobError::BadIntegratorSettings);
+        }
+        if !integrator.method.is_built() {
+            return Err(BlobError::NotInThisBuild {
+                section: Section::Integrator,
+            });
         }
         if integrator.method.needs_separable() && !self.energy.is_separable() {
             return Err(BlobError::MethodNeedsSeparableModel);
@@ -238,8 +285,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         if self.has_port_terms() && !integrator.method.handles_port_terms() {
             return Err(BlobError::MethodIgnoresPortTerms);
         }
-        self.integrator = integrator;
-        Ok(self)
+        Ok(())
     }
 
     /// The integrator settings in use.
@@ -373,6 +419,9 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
             fq[i] = gp[i];
             fp[i] = -gq[i];
         }
+        if !cfg!(feature = "port-terms") {
+            return; // no blob with port terms parses in this build
+        }
         // Coordinate k of the 2n-vectors: q for k < n, p after.
         let at = |a: &[f32; D], b: &[f32; D], k: usize| if k < n { a[k] } else { b[k - n] };
         let n2 = 2 * n;
@@ -430,15 +479,17 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         Self::normalize(&x.q, &self.offset_q, &self.scale_q, n, &mut zq);
         Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut zp);
         let e = match &self.energy {
-            Energy::General(m) => {
+            Energy::General(m) if cfg!(feature = "general") => {
                 let mut z = [0.0f32; 32];
                 z[..n].copy_from_slice(&zq[..n]);
                 z[n..2 * n].copy_from_slice(&zp[..n]);
                 m.value(&z[..2 * n])
             }
-            Energy::Separable { potential, kinetic } => {
+            Energy::Separable { potential, kinetic } if cfg!(feature = "separable") => {
                 potential.value(&zq[..n]) + kinetic.eval(&zp[..n], None)
             }
+            // A kind this build leaves out never parses.
+            _ => return Err(StepError::NotSeparable),
         };
         Ok(self.energy_scale * e)
     }
@@ -451,7 +502,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
     ) -> Result<(), StepError> {
         self.check(x)?;
         match &self.energy {
-            Energy::General(m) => {
+            Energy::General(m) if cfg!(feature = "general") => {
                 let n = self.dof;
                 let mut z = [0.0f32; 32];
                 let mut g = [0.0f32; 32];
@@ -464,10 +515,12 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
                 }
                 Ok(())
             }
-            Energy::Separable { .. } => {
+            Energy::Separable { .. } if cfg!(feature = "separable") => {
                 self.potential_gradient(&x.q, dh_dq)?;
                 self.kinetic_gradient(&x.p, dh_dp)
             }
+            // A kind this build leaves out never parses.
+            _ => Err(StepError::NotSeparable),
         }
     }
 
@@ -475,6 +528,9 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         let Energy::Separable { potential, .. } = &self.energy else {
             return Err(StepError::NotSeparable);
         };
+        if !cfg!(feature = "separable") {
+            return Err(StepError::NotSeparable);
+        }
         self.half_gradient(q, &self.offset_q, &self.scale_q, out, |z, g| {
             potential.value_and_gradient(z, g);
         });
@@ -485,6 +541,9 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         let Energy::Separable { kinetic, .. } = &self.energy else {
             return Err(StepError::NotSeparable);
         };
+        if !cfg!(feature = "separable") {
+            return Err(StepError::NotSeparable);
+        }
         self.half_gradient(p, &self.offset_p, &self.scale_p, out, |z, g| {
             kinetic.eval(z, Some(g));
         });

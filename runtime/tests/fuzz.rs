@@ -10,8 +10,8 @@ mod common;
 
 use common::*;
 use proptest::prelude::{any, proptest, ProptestConfig};
-use visviva_runtime::format::{Activation, HEADER_LEN};
-use visviva_runtime::{Hamiltonian, Integrator, Method, Model, State};
+use visviva_runtime::format::{self, Activation, HEADER_LEN};
+use visviva_runtime::{BlobError, Hamiltonian, Integrator, Method, Model, State};
 
 fn seeds() -> Vec<Vec<u8>> {
     let mut rng = XorShift64Star(0xf22);
@@ -174,6 +174,50 @@ fn a_million_mutated_blobs_never_panic() {
     println!("fuzz: {cases} mutated blobs ({resealed} with CRC recomputed), {parsed} still valid and stepped");
     // The mutations must reach past the checksum for the run to mean much.
     assert!(parsed > 10_000, "only {parsed} mutated blobs parsed");
+}
+
+/// `Model::from_bytes` decodes section by section (to keep the stack
+/// small); the reference is `format::decode`, serde's derived decoder of
+/// the whole description at once. On every mutated blob the whole-struct
+/// decoder rejects, the section-by-section parse must give the same error,
+/// and no blob the reference accepts may fail to decode section by section.
+#[test]
+fn section_by_section_parse_reports_what_the_whole_description_decoder_reports() {
+    let seeds = seeds();
+    let mut rng = XorShift64Star(0x5eed_f00d_0bad_cafe);
+    let (mut rejected, mut accepted) = (0u32, 0u32);
+    for k in 0..200_000u32 {
+        let mut b = seeds[k as usize % seeds.len()].clone();
+        mutate(&mut rng, &mut b);
+        if k % 2 == 0 {
+            reseal(&mut b);
+        }
+        let parsed = Model::<8, 16>::from_bytes(&b).map(|_| ());
+        let reference = format::decode(&b).map(|_| ());
+        match reference {
+            Err(e) => {
+                rejected += 1;
+                assert_eq!(parsed, Err(e), "case {k}");
+            }
+            Ok(_) => {
+                accepted += 1;
+                let decoding_error = matches!(
+                    parsed,
+                    Err(BlobError::Malformed
+                        | BlobError::TrailingBytes
+                        | BlobError::Truncated { .. }
+                        | BlobError::CrcMismatch { .. }
+                        | BlobError::BadMagic
+                        | BlobError::UnsupportedVersion { .. })
+                );
+                assert!(!decoding_error, "case {k}: {parsed:?}");
+            }
+        }
+    }
+    assert!(
+        rejected > 10_000 && accepted > 10_000,
+        "{rejected} rejected, {accepted} accepted"
+    );
 }
 
 #[test]

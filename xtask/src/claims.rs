@@ -197,6 +197,11 @@ pub const CLAIMS: &[Claim] = &[
         context: "Adam lr",
         backing: Backing::Setting("the benchmark's learning rate"),
     },
+    Claim {
+        figure: "5 %",
+        context: "table by more than",
+        backing: Backing::Setting("the footprint check's margin (xtask/src/footprint.rs MARGIN_FRACTION)"),
+    },
 ];
 
 /// Figures on one prose line: numbers directly before " %" or "%",

@@ -3,7 +3,9 @@
 //! given with `--blob`), build the example firmware
 //! with it, run it in QEMU, and compare every logged state bit for bit with
 //! the host rollout; check that defective blobs and faults end the firmware
-//! with a logged error and a non-zero exit; print a resource report; end with
+//! with a logged error and a non-zero exit; print a resource report and the
+//! runtime's own footprint (one `footprint <config>: ...` line per
+//! configuration, see `footprint.rs`); end with
 //! exactly one line `device check: <M> of <N> states bit-identical`.
 
 use std::path::{Path, PathBuf};
@@ -545,6 +547,12 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);
     }
+    println!();
+    println!("runtime footprint (firmware-example/examples/footprint.rs, D = 2, W = 32)");
+    let footprint_ok = crate::footprint::run(&root, &work, &host).unwrap_or_else(|e| {
+        println!("  footprint: FAILED: {e:#}");
+        false
+    });
     println!(
         "device check took {:.1} s; artifacts in {}",
         started.elapsed().as_secs_f64(),
@@ -564,6 +572,17 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     if !minimal_ok {
         println!("device check: the minimal example did not build, run and exit cleanly");
     }
+    if !footprint_ok {
+        println!(
+            "device check: a footprint configuration failed or differs from the committed table"
+        );
+    }
     println!("device check: {matched} of {total} states bit-identical");
-    Ok(matched == total && total > 0 && refusals_ok && minimal_ok && swap_ok && golden_ok)
+    Ok(matched == total
+        && total > 0
+        && refusals_ok
+        && minimal_ok
+        && swap_ok
+        && golden_ok
+        && footprint_ok)
 }

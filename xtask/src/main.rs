@@ -16,7 +16,10 @@
 //!   Visviva against PyTorch and JAX references (see `bench/README.md`).
 //! * `cargo xtask device [--blob FILE.vvb]...`: installs missing tools, runs
 //!   the example firmware in QEMU for every device blob and compares every
-//!   state bit for bit with the host rollout.
+//!   state bit for bit with the host rollout, and measures the runtime's own
+//!   footprint.
+//! * `cargo xtask footprint`: that footprint alone (flash, static RAM and
+//!   stack of the minimal firmware per configuration).
 
 mod bench;
 mod c_check;
@@ -28,6 +31,7 @@ mod device_log;
 mod elf_size;
 mod fixtures;
 mod fleet_check;
+mod footprint;
 mod golden_csv;
 mod host_rollout;
 mod model_swap;
@@ -49,6 +53,7 @@ const USAGE: &str = "usage: cargo xtask <task>
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
                             (default: the generated fixture blobs)
+  footprint                 the runtime's own flash, static RAM and stack
   bench [--rounds N] [--steps N] [--only visviva,torch,jax]
                             training throughput against PyTorch and JAX (CPU)";
 
@@ -70,6 +75,7 @@ fn main() -> ExitCode {
             demos::run(verify, data)
         }
         Some("device") => parse_blob_args(&args[1..]).and_then(device_check::run),
+        Some("footprint") if args.len() == 1 => footprint::run_alone(),
         Some("-h" | "--help" | "help") => {
             println!("{USAGE}");
             return ExitCode::SUCCESS;

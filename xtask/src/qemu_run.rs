@@ -67,35 +67,71 @@ pub fn build_firmware(
 /// Build `firmware-example/examples/minimal.rs` with `blob` and nothing
 /// else (no run plan, no drill); copy the ELF to `work/minimal.elf`.
 pub fn build_minimal_example(root: &Path, work: &Path, blob: &Path) -> Result<PathBuf> {
-    let mut cmd = firmware_cargo(root, blob, &["--example", "minimal"])?;
+    build_example(root, work, blob, "minimal", "release", &[], "minimal")
+}
+
+/// Build `firmware-example/examples/footprint.rs` with `blob` in the
+/// `footprint` profile with only the firmware feature `feature` (which
+/// selects the runtime's features); copy the ELF to `work/<name>.elf`.
+pub fn build_footprint(
+    root: &Path,
+    work: &Path,
+    blob: &Path,
+    feature: &str,
+    name: &str,
+) -> Result<PathBuf> {
+    let features = ["--no-default-features", "--features", feature];
+    build_example(root, work, blob, "footprint", "footprint", &features, name)
+}
+
+/// Build one example of the firmware crate in `profile` with `blob` (no run
+/// plan, no drill) and copy its ELF to `work/<name>.elf`.
+fn build_example(
+    root: &Path,
+    work: &Path,
+    blob: &Path,
+    example: &str,
+    profile: &str,
+    extra: &[&str],
+    name: &str,
+) -> Result<PathBuf> {
+    let mut args = vec!["--profile", profile, "--example", example];
+    args.extend_from_slice(extra);
+    let mut cmd = firmware_cargo(root, blob, &args)?;
     cmd.env_remove("VISVIVA_RUN_PLAN")
         .env_remove("VISVIVA_DRILL");
     let status = cmd
         .status()
-        .context("starting cargo for the minimal example")?;
+        .with_context(|| format!("starting cargo for the {example} example"))?;
     if !status.success() {
-        bail!("building the minimal example failed ({status})");
+        bail!("building the {example} example ({name}) failed ({status})");
     }
     let built = root
         .join("firmware-example/target")
         .join(TARGET)
-        .join("release/examples/minimal");
-    let elf = work.join("minimal.elf");
+        .join(profile)
+        .join("examples")
+        .join(example);
+    let elf = work.join(format!("{name}.elf"));
     std::fs::copy(&built, &elf)
         .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;
     Ok(elf)
 }
 
-/// `cargo build --release` of the firmware crate with `blob` embedded, in its
-/// own directory and target folder, free of the caller's target settings.
+/// `cargo build` of the firmware crate with `blob` embedded, in its own
+/// directory and target folder, free of the caller's target settings.
+/// `extra` names the profile (`--release` when it does not).
 fn firmware_cargo(root: &Path, blob: &Path, extra: &[&str]) -> Result<Command> {
     // The firmware's build runs in its own directory: pass absolute paths.
     let blob = std::path::absolute(blob)?;
     let dir = root.join("firmware-example");
     let mut cmd = Command::new(cargo());
     cmd.current_dir(&dir)
-        .args(["build", "--release", "--quiet", "--target", TARGET])
-        .args(extra)
+        .args(["build", "--quiet", "--target", TARGET]);
+    if !extra.contains(&"--profile") {
+        cmd.arg("--release");
+    }
+    cmd.args(extra)
         .arg("--target-dir")
         .arg(dir.join("target"))
         .env("VISVIVA_BLOB", &blob)
@@ -106,9 +142,21 @@ fn firmware_cargo(root: &Path, blob: &Path, extra: &[&str]) -> Result<Command> {
     Ok(cmd)
 }
 
-/// Run `elf` in QEMU (stdout = raw defmt frames) and decode the log.
-pub fn run(elf: &Path, work: &Path, name: &str) -> Result<RunOutcome> {
-    let raw_path = work.join(format!("{name}.defmt"));
+/// What QEMU wrote to stdout, undecoded.
+pub struct RawOutcome {
+    /// Exit status of QEMU (None when killed).
+    pub exit_code: Option<i32>,
+    /// Killed after [`RUN_TIMEOUT`].
+    pub timed_out: bool,
+    /// The file holding QEMU's stdout.
+    pub stdout: PathBuf,
+    /// Wall time of the emulator run.
+    pub seconds: f64,
+}
+
+/// Run `elf` in QEMU with stdout into `work/<stdout_file>` (raw bytes).
+pub fn run_raw(elf: &Path, work: &Path, name: &str, stdout_file: &str) -> Result<RawOutcome> {
+    let raw_path = work.join(stdout_file);
     let err_path = work.join(format!("{name}.qemu-stderr.txt"));
     let raw =
         File::create(&raw_path).with_context(|| format!("creating {}", raw_path.display()))?;
@@ -140,26 +188,37 @@ pub fn run(elf: &Path, work: &Path, name: &str) -> Result<RunOutcome> {
         std::thread::sleep(Duration::from_millis(20));
     };
     let seconds = started.elapsed().as_secs_f64();
-    let raw_bytes = std::fs::metadata(&raw_path).map(|m| m.len()).unwrap_or(0);
+    let stderr = std::fs::read_to_string(&err_path).unwrap_or_default();
+    if !stderr.trim().is_empty() {
+        eprintln!("qemu ({name}) stderr: {}", stderr.trim());
+    }
+    Ok(RawOutcome {
+        exit_code: status.and_then(|s| s.code()),
+        timed_out,
+        stdout: raw_path,
+        seconds,
+    })
+}
+
+/// Run `elf` in QEMU (stdout = raw defmt frames) and decode the log.
+pub fn run(elf: &Path, work: &Path, name: &str) -> Result<RunOutcome> {
+    let raw = run_raw(elf, work, name, &format!("{name}.defmt"))?;
+    let raw_bytes = std::fs::metadata(&raw.stdout).map(|m| m.len()).unwrap_or(0);
     let decoded = Command::new("defmt-print")
         .arg("-e")
         .arg(elf)
         .args(["--log-format", "{s}"])
-        .stdin(File::open(&raw_path)?)
+        .stdin(File::open(&raw.stdout)?)
         .stderr(Stdio::inherit())
         .output()
         .context("starting defmt-print")?;
     let log = String::from_utf8_lossy(&decoded.stdout).into_owned();
     std::fs::write(work.join(format!("{name}.log.txt")), &log)?;
-    let stderr = std::fs::read_to_string(&err_path).unwrap_or_default();
-    if !stderr.trim().is_empty() {
-        eprintln!("qemu ({name}) stderr: {}", stderr.trim());
-    }
     Ok(RunOutcome {
-        exit_code: status.and_then(|s| s.code()),
-        timed_out,
+        exit_code: raw.exit_code,
+        timed_out: raw.timed_out,
         log,
-        seconds,
+        seconds: raw.seconds,
         raw_bytes,
     })
 }

@@ -12,7 +12,7 @@ use crate::math;
 /// (int8: value times row scale).
 #[inline(always)]
 fn weight(l: &Layer<'_>, j: usize, i: usize) -> f32 {
-    let k = j * l.inputs + i;
+    let k = j * l.ni() + i;
     match l.weights {
         WeightsDesc::F32(w) => w.get(k),
         WeightsDesc::Int8 { values, scales } => {
@@ -66,11 +66,11 @@ impl<const W: usize> Mlp<'_, W> {
             let (input, dinput): (&[f32], &[f32]) = if k == 0 {
                 (x, dx)
             } else {
-                (&h[..l.inputs], &dh[..l.inputs])
+                (&h[..l.ni()], &dh[..l.ni()])
             };
-            for j in 0..l.outputs {
+            for j in 0..l.no() {
                 let (mut a, mut da) = (0.0f32, 0.0f32);
-                for i in 0..l.inputs {
+                for i in 0..l.ni() {
                     let w = weight(l, j, i);
                     a += w * input.get(i).copied().unwrap_or(0.0);
                     da += w * dinput.get(i).copied().unwrap_or(0.0);
@@ -79,11 +79,11 @@ impl<const W: usize> Mlp<'_, W> {
                 ndh[j] = da;
             }
             if k + 1 == self.count {
-                let m = l.outputs.min(out.len()).min(dout.len()).min(W);
+                let m = l.no().min(out.len()).min(dout.len()).min(W);
                 out[..m].copy_from_slice(&nh[..m]);
                 dout[..m].copy_from_slice(&ndh[..m]);
             } else {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     let (v, d1, d2) = activate2(self.activation, nh[j]);
                     tape.d1[k][j] = d1;
                     tape.d2[k][j] = d2;
@@ -112,16 +112,16 @@ impl<const W: usize> Mlp<'_, W> {
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
             if k + 1 < self.count {
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     let (d1, d2, da) = (tape.d1[k][j], tape.d2[k][j], tape.da[k][j]);
                     dg[j] = dg[j] * d1 + g[j] * d2 * da;
                     g[j] *= d1;
                 }
             }
             let (mut pg, mut pdg) = ([0.0f32; W], [0.0f32; W]);
-            for i in 0..l.inputs {
+            for i in 0..l.ni() {
                 let (mut acc, mut dacc) = (0.0f32, 0.0f32);
-                for j in 0..l.outputs {
+                for j in 0..l.no() {
                     let w = weight(&l, j, i);
                     acc += w * g[j];
                     dacc += w * dg[j];

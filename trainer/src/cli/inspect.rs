@@ -73,6 +73,31 @@ pub fn run(args: Args) -> Result<()> {
             r.runtime_ram_bytes, r.max_width
         ),
     );
+    match &r.runtime {
+        Some(rt) => {
+            row(
+                "runtime flash",
+                format!(
+                    "{} bytes + blob {} bytes = {} bytes ({})",
+                    rt.flash_bytes,
+                    r.bytes,
+                    rt.flash_bytes + r.bytes as u64,
+                    rt.config
+                ),
+            );
+            row(
+                "runtime stack",
+                format!(
+                    "{} bytes, static RAM {} bytes (measured at D = 2, W = 32)",
+                    rt.stack_bytes, rt.static_ram_bytes
+                ),
+            );
+        }
+        None => row(
+            "runtime flash, stack",
+            "not measured for this model kind, integrator and weights (see `cargo xtask footprint`)".into(),
+        ),
+    }
     row("MAC per gradient", r.macs_per_gradient.to_string());
     row(
         "MAC per step",
@@ -86,5 +111,6 @@ pub fn run(args: Args) -> Result<()> {
             }
         ),
     );
+    println!("  (runtime figures: {})", r.runtime_source);
     Ok(())
 }

@@ -1,12 +1,14 @@
 //! Inspection: what a blob holds and what it costs on a device (format
 //! version, CRC status, architecture, weight storage, bytes per section,
-//! runtime RAM and multiply-accumulates).
+//! runtime RAM and multiply-accumulates, and the runtime's own measured
+//! flash and stack for the blob's configuration).
 
 use anyhow::{anyhow, Result};
 use serde::Serialize;
 use visviva_runtime::format::{self, EnergyDesc, KineticDesc};
 
 use crate::deploy::blob::{BlobModel, HostModel};
+use crate::deploy::footprint::{self, RuntimeFootprint};
 use crate::deploy::integrator::method_name;
 
 /// Everything `inspect` reports.
@@ -56,6 +58,11 @@ pub struct Inspection {
     pub dissipation_form: Option<String>,
     /// Form of G, likewise.
     pub input_form: Option<String>,
+    /// The runtime's own flash, static RAM and stack for this blob's
+    /// configuration (None when that configuration was not measured).
+    pub runtime: Option<RuntimeFootprint>,
+    /// Where `runtime` comes from.
+    pub runtime_source: String,
 }
 
 fn postcard_len<T: Serialize>(v: &T) -> usize {
@@ -127,5 +134,7 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
         inputs: model.input.as_ref().map_or(0, |(m, _)| *m),
         dissipation_form: model.dissipation.as_ref().map(|t| t.label()),
         input_form: model.input.as_ref().map(|(_, g)| g.label()),
+        runtime: footprint::for_model(&desc),
+        runtime_source: footprint::SOURCE.into(),
     })
 }

@@ -6,6 +6,7 @@ pub mod budget;
 pub mod compare;
 pub mod export;
 pub mod fitted_blob;
+pub mod footprint;
 pub mod inspect;
 pub mod integrator;
 pub mod rollout;

@@ -86,7 +86,12 @@ pub struct FitSummary {
 /// Pass/fail of one blob against the device budget.
 #[derive(Debug, Clone, Serialize)]
 pub struct BudgetVerdict {
-    /// Blob fits the flash budget (None when not set).
+    /// Flash judged: the blob plus the runtime's measured flash.
+    pub flash_needed_bytes: u64,
+    /// RAM judged: the larger of the estimate and the runtime's measured
+    /// stack plus static RAM.
+    pub ram_needed_bytes: u64,
+    /// Blob plus runtime fit the flash budget (None when not set).
     pub flash_ok: Option<bool>,
     /// Runtime RAM fits (None when not set).
     pub ram_ok: Option<bool>,
@@ -111,6 +116,9 @@ pub struct DeviceBlob {
     pub export: ExportReport,
     /// Runtime RAM estimate (bytes).
     pub ram_bytes: usize,
+    /// The runtime's own measured flash and stack for this blob's
+    /// configuration (`deploy::footprint`), None when not measured.
+    pub runtime: Option<crate::deploy::footprint::RuntimeFootprint>,
     /// Emulator instructions per step, from the last device check, if run.
     pub emulator_instructions_per_step: Option<f64>,
     /// Golden rollout files for the device check.
@@ -389,7 +397,7 @@ fn fit_section(h: &mut Html<'_>, report: &RunReport) {
 
 /// Device blobs: size, cost, budget and the price of quantization.
 fn device_section(h: &mut Html<'_>, report: &RunReport) {
-    h.p("<h2 id=\"device\">Device blobs</h2><table><tr><th>blob</th><th>weights</th><th>integrator</th><th>dt (s)</th><th>bytes</th><th>bytes/parameter</th><th>runtime RAM (bytes)</th><th>MAC/step</th><th>emulator instructions/step</th><th>est. step time (s)</th><th>budget</th></tr>");
+    h.p("<h2 id=\"device\">Device blobs</h2><table><tr><th>blob</th><th>weights</th><th>integrator</th><th>dt (s)</th><th>bytes</th><th>bytes/parameter</th><th>runtime flash (bytes)</th><th>flash, blob + runtime</th><th>runtime stack (bytes)</th><th>runtime RAM (bytes)</th><th>MAC/step</th><th>emulator instructions/step</th><th>est. step time (s)</th><th>budget</th></tr>");
     for i in 0..report.devices.len() {
         let d = |f: &str| h.num(&format!("devices/{i}/{f}"));
         let pass = if report.devices[i].budget.pass {
@@ -398,13 +406,16 @@ fn device_section(h: &mut Html<'_>, report: &RunReport) {
             "<span class=\"fail\">fail</span>"
         };
         let row = format!(
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{pass}</td></tr>",
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{pass}</td></tr>",
             d("name"),
             d("export/weights"),
             d("export/integrator"),
             d("export/dt"),
             d("export/bytes"),
             d("export/bytes_per_parameter"),
+            d("runtime/flash_bytes"),
+            d("budget/flash_needed_bytes"),
+            d("runtime/stack_bytes"),
             d("ram_bytes"),
             d("export/macs_per_step"),
             d("emulator_instructions_per_step"),
@@ -433,6 +444,10 @@ fn device_section(h: &mut Html<'_>, report: &RunReport) {
         h.num("budget/clock_hz"),
         h.num("budget/control_period_s"),
         h.num("budget/cycles_per_mac"),
+    ));
+    h.p(&format!(
+        "<p class=\"note\">Runtime flash and stack: {} The budget judges the blob plus the runtime's flash, and the larger of the RAM estimate and the runtime's stack plus static RAM.</p>",
+        esc(crate::deploy::footprint::SOURCE)
     ));
     for d in &report.devices {
         for a in &d.budget.advice {

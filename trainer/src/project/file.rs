@@ -223,9 +223,9 @@ fn default_weights() -> WeightKind {
 #[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq)]
 #[serde(deny_unknown_fields, default)]
 pub struct DeviceBudget {
-    /// Flash available for the blob, bytes.
+    /// Flash available for the blob and the runtime's own code, bytes.
     pub flash_bytes: u64,
-    /// RAM available to the runtime, bytes.
+    /// RAM available to the runtime (stack and static), bytes.
     pub ram_bytes: u64,
     /// Core clock, Hz.
     pub clock_hz: u64,

@@ -607,11 +607,13 @@ fn export_target(
         report.bytes,
         ins.runtime_ram_bytes,
         report.macs_per_step,
+        ins.runtime.as_ref(),
     );
     let device = DeviceBlob {
         name: t.name.clone(),
         file: format!("{}.vvb", t.name),
         ram_bytes: ins.runtime_ram_bytes,
+        runtime: ins.runtime.clone(),
         emulator_instructions_per_step: measured
             .as_ref()
             .and_then(|v| v.get("instructions_per_step"))

@@ -260,10 +260,11 @@ fn rk4_jacobian<const D: usize, const S: usize, H: Tangent<D> + ?Sized>(
     Ok(jac)
 }
 
-/// A state as a vector over the 2n coordinates.
+/// A state as a vector over the 2n coordinates (q then p); also the
+/// observer's.
 // Index loops bounded by the active size: no slice length can panic.
 #[allow(clippy::manual_memcpy)]
-fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
+pub(crate) fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
     let n = x.dof();
     let mut v = [0.0f32; S];
     for i in 0..n.min(S / 2) {

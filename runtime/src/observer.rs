@@ -117,19 +117,6 @@ pub struct Observer<'m, H: ?Sized, const D: usize, const S: usize> {
     jac: Mat<S>,
 }
 
-/// A state as a vector over the 2n coordinates (q then p).
-// Index loops bounded by the active size: no slice length can panic.
-#[allow(clippy::manual_memcpy)]
-fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
-    let n = x.dof();
-    let mut v = [0.0f32; S];
-    for i in 0..n.min(S / 2) {
-        v[i] = x.q[i];
-        v[n + i] = x.p[i];
-    }
-    v
-}
-
 // Index loops bounded by the active size: no slice length can panic.
 #[allow(clippy::manual_memcpy)]
 fn unflat<const D: usize, const S: usize>(v: &[f32; S], x: &mut State<D>) {
@@ -266,7 +253,7 @@ impl<'m, H: Tangent<D> + ?Sized, const D: usize, const S: usize> Observer<'m, H,
                 return Err(ObserverError::BadMeasurement { index: i as u32 });
             }
         }
-        let xp = flat::<D, S>(&self.x);
+        let xp = jacobian::flat::<D, S>(&self.x);
         let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
         let mut hess = [[0.0f32; S]; S];
         if meas

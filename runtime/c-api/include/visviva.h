@@ -19,8 +19,7 @@
 
 /**
  * 8-byte words of storage in a [`VvModel`]: at least the runtime's model
- * value on every target (1448 bytes on 64-bit hosts at the bounds above,
- * less on 32-bit cores; checked at compile time).
+ * value at the bounds above on every target (checked at compile time).
  */
 #define VV_MODEL_WORDS 192
 

@@ -28,8 +28,7 @@ pub const VV_MAX_DOF: usize = 4;
 /// Most units in any layer of a model in this build.
 pub const VV_MAX_WIDTH: usize = 64;
 /// 8-byte words of storage in a [`VvModel`]: at least the runtime's model
-/// value on every target (1448 bytes on 64-bit hosts at the bounds above,
-/// less on 32-bit cores; checked at compile time).
+/// value at the bounds above on every target (checked at compile time).
 pub const VV_MODEL_WORDS: usize = 192;
 
 /// The runtime's model at this build's bounds.

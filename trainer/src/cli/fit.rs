@@ -6,16 +6,18 @@
 
 use std::path::{Path, PathBuf};
 
-use anyhow::{bail, Context, Result};
+use anyhow::{anyhow, bail, Context, Result};
 
+use crate::data::columns::{self, ColumnMap, RigSummary};
 use crate::data::dataset::Dataset;
 use crate::data::log::{self, LoadOptions};
 use crate::deploy::fitted_blob;
 use crate::deploy::integrator::MethodName;
 use crate::learn::fit::{self, FitSettings, TrainReport};
 use crate::learn::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
+use crate::learn::mode::{plan_mode, FitMode, ModeRequest};
 use crate::learn::stage::{
-    fit_stage, interrupt_flag, plan_model, stop_text, FitOutcome, ModelPlan, SettingNames,
+    fit_stage_mode, interrupt_flag, plan_model, stop_text, FitOutcome, ModelPlan, SettingNames,
 };
 use crate::learn::structure::{arch_choice, ActivationName, Arch, KineticKind};
 
@@ -123,6 +125,25 @@ pub struct Args {
     /// No progress bar.
     #[arg(long, short)]
     pub quiet: bool,
+    /// Read the log through the `[columns]` table of this TOML file (a
+    /// project's visviva.toml or a file of its own): the logger's column
+    /// names, scales and units.
+    #[arg(long, value_name = "FILE.toml")]
+    pub columns: Option<PathBuf>,
+    /// Split trajectories where a step exceeds this multiple of the median
+    /// step (overrides the mapping's gap_factor; default 1.5).
+    #[arg(long, value_name = "X")]
+    pub gap_factor: Option<f64>,
+    /// Fit mode (default: trajectory for a positions-only log, derivative
+    /// otherwise).
+    #[arg(long, value_enum)]
+    pub fit_mode: Option<FitMode>,
+    /// Log steps per trajectory-matching window (default 25).
+    #[arg(long, value_name = "K")]
+    pub window_steps: Option<usize>,
+    /// Epochs of trajectory matching after the warm start (default 60).
+    #[arg(long, value_name = "N")]
+    pub trajectory_epochs: Option<usize>,
     /// Output model blob.
     #[arg(long, value_name = "MODEL.vvb")]
     pub out: PathBuf,
@@ -275,7 +296,12 @@ fn plan(args: &Args, train: &Dataset) -> Result<ModelPlan> {
 
 /// The training and validation data: `--validation`, or whole trajectories
 /// held out of `--train` (none when the fraction is 0 or there is only one).
-fn split(args: &Args, all: Dataset, opts: &LoadOptions) -> Result<(Dataset, Option<Dataset>)> {
+fn split(
+    args: &Args,
+    all: Dataset,
+    map: Option<&ColumnMap>,
+    opts: &LoadOptions,
+) -> Result<(Dataset, Option<Dataset>)> {
     if !(0.0..1.0).contains(&args.val_fraction) {
         bail!(
             "--val-fraction must be in [0, 1), got {}",
@@ -284,7 +310,7 @@ fn split(args: &Args, all: Dataset, opts: &LoadOptions) -> Result<(Dataset, Opti
     }
     match &args.val {
         Some(path) => {
-            let v = log::load_csv(path, opts)?;
+            let (v, _) = columns::load_any(path, map, opts)?;
             if v.dof != all.dof || v.inputs != all.inputs {
                 bail!(
                     "{}: {} degrees of freedom and {} input columns, but {} has {} and {}",
@@ -332,16 +358,66 @@ fn write_outputs(args: &Args, out: &FitOutcome, plan: &ModelPlan) -> Result<()> 
     Ok(())
 }
 
+/// The `[columns]` mapping of `--columns`, with `--gap-factor` applied.
+fn column_map(args: &Args) -> Result<Option<ColumnMap>> {
+    let Some(path) = &args.columns else {
+        if args.gap_factor.is_some() {
+            bail!("--gap-factor needs --columns (the canonical layout is never split at gaps)");
+        }
+        return Ok(None);
+    };
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("{}: cannot read", path.display()))?;
+    let mut map = ColumnMap::from_toml(&text).map_err(|e| anyhow!("{}: {e}", path.display()))?;
+    if let Some(g) = args.gap_factor {
+        if !(g.is_finite() && g > 1.0) {
+            bail!("--gap-factor {g} must be a finite number above 1");
+        }
+        map.gap_factor = g;
+    }
+    Ok(Some(map))
+}
+
+/// The fit mode (printed with the reason) and trajectory matching's plan.
+fn fit_mode(
+    args: &Args,
+    rig: Option<&RigSummary>,
+    train: &Dataset,
+    plan: &ModelPlan,
+) -> Result<Option<crate::learn::mode::TrajectoryPlan>> {
+    if let Some(r) = rig {
+        r.lines().iter().for_each(|l| println!("{l}"));
+    }
+    let request = ModeRequest {
+        mode: args.fit_mode,
+        window_steps: args.window_steps,
+        epochs: args.trajectory_epochs,
+        masses: args.mass.clone(),
+    };
+    let names = |key: &str| match key {
+        "mode" => "--fit-mode".to_string(),
+        other => format!("--{}", other.replace('_', "-")),
+    };
+    let (words, tp) = plan_mode(&request, rig, train, plan, &names)?;
+    println!("{words}");
+    if let Some(tp) = &tp {
+        println!("{}", tp.energy_scale_note());
+    }
+    Ok(tp)
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let opts = LoadOptions {
         masses: args.mass.clone(),
         ..LoadOptions::default()
     };
-    let all = log::load_csv(&args.data, &opts)?;
-    let (train, val) = split(&args, all, &opts)?;
+    let map = column_map(&args)?;
+    let (all, rig) = columns::load_any(&args.data, map.as_ref(), &opts)?;
+    let (train, val) = split(&args, all, map.as_ref(), &opts)?;
     let plan = plan(&args, &train)?;
     let settings = fit_settings(&args);
+    let trajectory = fit_mode(&args, rig.as_ref(), &train, &plan)?;
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} parameters{}",
         train.samples(),
@@ -354,7 +430,14 @@ pub fn run(args: Args) -> Result<()> {
             String::new()
         }
     );
-    let out = fit_stage(&train, val.as_ref(), &plan, &settings, args.baseline)?;
+    let out = fit_stage_mode(
+        &train,
+        val.as_ref(),
+        &plan,
+        &settings,
+        args.baseline,
+        trajectory.as_ref(),
+    )?;
     write_outputs(&args, &out, &plan)?;
     if let Some(path) = &args.json {
         write_summary(path, &out.model, settings.threads, &train)?;

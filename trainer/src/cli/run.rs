@@ -76,6 +76,19 @@ fn print_data(prep: &Prepared) {
             String::new()
         }
     );
+    if let Some(rig) = &prep.logs.rig {
+        for line in rig.lines() {
+            println!("      {line}");
+        }
+    }
+    println!("      {}", prep.mode);
+    if let Some(tp) = &prep.trajectory {
+        println!(
+            "      trajectory matching: windows of {} steps, {} epochs after a derivative warm start",
+            tp.window_steps, tp.epochs
+        );
+        println!("      {}", tp.energy_scale_note());
+    }
 }
 
 fn fit_step(prep: &Prepared, args: &Args) -> Result<pipeline::FitResult> {

@@ -7,6 +7,7 @@ use clap::builder::PossibleValue;
 
 use crate::deploy::blob::WeightKind;
 use crate::deploy::integrator::{IntegratorOverrides, MethodName};
+use crate::learn::mode::FitMode;
 use crate::learn::structure::{ActivationName, Arch, KineticKind};
 
 /// Optional overrides; anything not given keeps the blob's value.
@@ -111,6 +112,21 @@ impl clap::ValueEnum for ActivationName {
             ActivationName::Relu => {
                 PossibleValue::new("relu").help("refused for energy networks (see the message)")
             }
+        })
+    }
+}
+
+impl clap::ValueEnum for FitMode {
+    fn value_variants<'a>() -> &'a [Self] {
+        &[FitMode::Derivative, FitMode::Trajectory]
+    }
+
+    fn to_possible_value(&self) -> Option<PossibleValue> {
+        Some(match self {
+            FitMode::Derivative => PossibleValue::new("derivative")
+                .help("match dx/dt (given or estimated) with J dH/dx"),
+            FitMode::Trajectory => PossibleValue::new("trajectory")
+                .help("match logged positions with rollouts through the device's integrator"),
         })
     }
 }

@@ -136,12 +136,22 @@ impl ArchChoice {
 }
 
 /// Why training ended.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub enum StopReason {
     /// All epochs or steps done.
     Completed,
     /// No validation improvement for `patience` epochs.
     EarlyStopped,
+    /// The plateau test: over the last `epochs` epochs the best validation
+    /// loss improved by `gain` (relative), less than `threshold`.
+    Plateau {
+        /// Epochs compared.
+        epochs: usize,
+        /// Relative improvement over them.
+        gain: f64,
+        /// Smallest relative improvement that counts.
+        threshold: f64,
+    },
     /// Interrupted (Ctrl-C).
     Interrupted,
     /// The loss or gradient became NaN or infinite at this step.

@@ -3,8 +3,11 @@
 
 pub mod fit;
 pub mod hnn;
+pub mod mode;
 pub mod net;
 pub mod optim;
 pub mod port;
+pub mod rollout_loss;
 pub mod stage;
 pub mod structure;
+pub mod trajectory;

@@ -337,3 +337,17 @@ pub fn backprop_output_loss(
         }
     }
 }
+
+/// The Hessian-vector product (d^2 y / dx^2) r of the scalar output for the
+/// rows of the last [`backprop_input_gradient_loss`] with `r` (rows x
+/// inputs): the input adjoint of the directional derivative r . dy/dx,
+/// zbar_0 W_0 in the notation of the module doc (x enters only z_0 =
+/// x W_0^T + b_0; the tangent seed r does not depend on x). A network
+/// without hidden layers is linear, so its Hessian is zero.
+pub fn input_hessian_product(shape: &MlpShape, p: &[f32], work: &MlpWork) -> Array2<f32> {
+    if shape.layers() < 2 {
+        return Array2::zeros((work.rows, shape.inputs()));
+    }
+    let (w, _) = shape.layer(p, 0);
+    work.zbar[0].dot(&w)
+}

@@ -184,7 +184,24 @@ pub fn fit_stage(
     settings: &FitSettings,
     baseline: bool,
 ) -> Result<FitOutcome> {
-    let model = fit_model(train, val, &plan.arch, &plan.terms, settings)?;
+    fit_stage_mode(train, val, plan, settings, baseline, None)
+}
+
+/// [`fit_stage`] in either fit mode: derivative matching, or with a
+/// trajectory plan a derivative warm start and trajectory matching
+/// ([`crate::learn::mode::fit_by_trajectories`]).
+pub fn fit_stage_mode(
+    train: &Dataset,
+    val: Option<&Dataset>,
+    plan: &ModelPlan,
+    settings: &FitSettings,
+    baseline: bool,
+    trajectory: Option<&crate::learn::mode::TrajectoryPlan>,
+) -> Result<FitOutcome> {
+    let model = match trajectory {
+        Some(tp) => crate::learn::mode::fit_by_trajectories(train, val, plan, settings, tp)?,
+        None => fit_model(train, val, &plan.arch, &plan.terms, settings)?,
+    };
     let blob =
         crate::deploy::fitted_blob::energy_blob(&model.model, plan.integrator, WeightKind::F32)?;
     let interrupted = settings
@@ -215,6 +232,16 @@ pub fn stop_text(stop: StopReason) -> String {
     match stop {
         StopReason::Completed => "all epochs done".into(),
         StopReason::EarlyStopped => "early stop (validation loss stopped improving)".into(),
+        StopReason::Plateau {
+            epochs,
+            gain,
+            threshold,
+        } => format!(
+            "plateau: the best validation loss improved by {:.3} % over the last {epochs} epochs, \
+             less than the {:.3} % that counts (its own sampling spread)",
+            100.0 * gain,
+            100.0 * threshold
+        ),
         StopReason::Interrupted => "interrupted; kept the best parameters so far".into(),
         StopReason::NonFinite { step } => format!(
             "loss became NaN or infinite at step {step}; kept the last good parameters \

@@ -8,6 +8,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context, Result};
 use serde::{Deserialize, Serialize};
 
+use crate::data::columns::ColumnMap;
 use crate::deploy::blob::WeightKind;
 use crate::deploy::integrator::MethodName;
 use crate::learn::structure::energy_activation;
@@ -33,6 +34,10 @@ pub struct Project {
     pub exports: Vec<ExportTarget>,
     /// The device's resources, to judge the blobs against.
     pub device: DeviceBudget,
+    /// The logger's own column names, scales and units (default: the
+    /// canonical layout `traj,t,q1..`); see [`crate::data::columns`].
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub columns: Option<ColumnMap>,
 }
 
 /// `[data]`
@@ -150,6 +155,16 @@ pub struct FitSection {
     pub threads: usize,
     /// Also fit the plain vector-field baseline (default true).
     pub baseline: bool,
+    /// `derivative` or `trajectory` (default: trajectory for a
+    /// positions-only log, derivative otherwise).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub mode: Option<crate::learn::mode::FitMode>,
+    /// Log steps per trajectory-matching window (default 25).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub window_steps: Option<usize>,
+    /// Epochs of trajectory matching after the warm start (default 60).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub trajectory_epochs: Option<usize>,
 }
 
 impl Default for FitSection {
@@ -162,6 +177,9 @@ impl Default for FitSection {
             seed: 0,
             threads: 1,
             baseline: true,
+            mode: None,
+            window_steps: None,
+            trajectory_epochs: None,
         }
     }
 }

@@ -15,7 +15,7 @@ use visviva_runtime::Method;
 
 use crate::atomic::write_atomic;
 use crate::data::dataset::{Dataset, DerivativeSource};
-use crate::data::log::{load_csv, split_by_trajectory, LoadOptions};
+use crate::data::log::{split_by_trajectory, LoadOptions};
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::budget::budget_verdict;
 use crate::deploy::export::{export as export_blob, ExportReport};
@@ -31,7 +31,7 @@ use crate::evidence::report::{
 use crate::learn::fit::{FitSettings, TrainReport};
 use crate::learn::hnn::BaselineModel;
 use crate::learn::stage::{
-    check_method, fit_stage, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
+    check_method, fit_stage_mode, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
 };
 use crate::learn::structure::arch_choice;
 use crate::project::cache::{read_json, sha, write_json};
@@ -49,6 +49,9 @@ pub struct Logs {
     pub train_bytes: Vec<u8>,
     /// The validation log's bytes, if it is a file of its own.
     pub val_bytes: Vec<u8>,
+    /// What a mapped or positions-only training log told (gaps, noise
+    /// model, units); `None` for a log in the canonical layout.
+    pub rig: Option<crate::data::columns::RigSummary>,
 }
 
 /// A project checked and loaded: nothing has been written yet.
@@ -67,6 +70,10 @@ pub struct Prepared {
     pub plan: ModelPlan,
     /// What the data hold.
     pub data: DataSummary,
+    /// The fit mode in words (which and why).
+    pub mode: String,
+    /// Trajectory matching's plan, in fit mode trajectory.
+    pub trajectory: Option<crate::learn::mode::TrajectoryPlan>,
 }
 
 impl Prepared {
@@ -119,6 +126,7 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
             .with_context(|| file.clone())?;
         }
     }
+    let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
     let data = data_summary(&project.data.train.display().to_string(), &logs);
     let name = project.name.clone().unwrap_or_else(|| {
         dir.file_name()
@@ -133,7 +141,25 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         logs,
         plan,
         data,
+        mode,
+        trajectory,
     })
+}
+
+/// The fit mode from `[fit]` and the log (see [`crate::learn::mode`]).
+fn fit_mode(
+    project: &Project,
+    logs: &Logs,
+    plan: &ModelPlan,
+) -> Result<(String, Option<crate::learn::mode::TrajectoryPlan>)> {
+    let request = crate::learn::mode::ModeRequest {
+        mode: project.fit.mode,
+        window_steps: project.fit.window_steps,
+        epochs: project.fit.trajectory_epochs,
+        masses: project.data.masses.clone(),
+    };
+    let names = |key: &str| format!("[fit] {key}");
+    crate::learn::mode::plan_mode(&request, logs.rig.as_ref(), &logs.train, plan, &names)
 }
 
 /// The logs named by `[data]`: a validation file of its own (same degrees
@@ -147,7 +173,8 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
     let train_path = dir.join(&project.data.train);
     let train_bytes = std::fs::read(&train_path)
         .with_context(|| format!("{}: cannot read", train_path.display()))?;
-    let all = load_csv(&train_path, &opts)?;
+    let map = project.columns.as_ref();
+    let (all, rig) = crate::data::columns::load_any(&train_path, map, &opts)?;
     let Some(v) = &project.data.validation else {
         let (frac, seed) = (project.data.val_fraction, project.fit.seed);
         let (train, val) = split_by_trajectory(&all, frac, seed);
@@ -159,11 +186,12 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
             val,
             train_bytes,
             val_bytes: Vec::new(),
+            rig,
         });
     };
     let p = dir.join(v);
     let val_bytes = std::fs::read(&p).with_context(|| format!("{}: cannot read", p.display()))?;
-    let val = load_csv(&p, &opts)?;
+    let (val, _) = crate::data::columns::load_any(&p, map, &opts)?;
     if val.dof != all.dof {
         bail!(
             "{}: {} degrees of freedom, the training log {}",
@@ -186,6 +214,7 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
         val,
         train_bytes,
         val_bytes,
+        rig,
     })
 }
 
@@ -275,12 +304,17 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
     std::fs::create_dir_all(out.join("golden"))
         .with_context(|| format!("{}: cannot create", out.display()))?;
-    let settings_json = serde_json::to_vec(&(
+    let mut settings_json = serde_json::to_vec(&(
         &project.data,
         &project.model,
         &project.fit,
         env!("CARGO_PKG_VERSION"),
     ))?;
+    // A column mapping changes what the log means; a project without one
+    // hashes as before.
+    if let Some(columns) = &project.columns {
+        settings_json.extend(serde_json::to_vec(columns)?);
+    }
     let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
     let (model_path, baseline_path) = (out.join("model.vvb"), out.join("model.baseline.json"));
     let (fit_path, hash_path) = (out.join("fit.json"), out.join("fit.sha256"));
@@ -309,12 +343,13 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         interrupt: Some(interrupt_flag()),
         ..FitSettings::default()
     };
-    let done = fit_stage(
+    let done = fit_stage_mode(
         &logs.train,
         Some(&logs.val),
         &prep.plan,
         &settings,
         project.fit.baseline,
+        prep.trajectory.as_ref(),
     )?;
     write_atomic(&model_path, &done.blob)?;
     let m = &done.model.model;

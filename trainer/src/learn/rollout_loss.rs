@@ -207,6 +207,13 @@ impl RolloutLoss {
         tape
     }
 
+    /// The rolled-out positions at samples 0..=`steps` (each B x n) from
+    /// the initial states `x0` (B x 2n).
+    pub fn positions(&self, params: &[f32], x0: &Array2<f64>, steps: usize) -> Vec<Array2<f64>> {
+        let tape = self.forward(params, x0, steps, &mut MlpWork::default());
+        tape.q.into_iter().step_by(self.hs.len()).collect()
+    }
+
     /// Mean squared normalized position error of `batch`; with `grad`, its
     /// gradient by the discrete adjoint (see the module doc).
     pub fn loss(

@@ -10,6 +10,7 @@
 //! Also: the training-side rollout agrees with `visviva-runtime`'s step of
 //! the exported blob (the arithmetic every check and device uses).
 
+#[allow(dead_code)]
 mod common;
 
 use common::{directional_error, mlp_generic};

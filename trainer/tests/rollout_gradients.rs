@@ -7,6 +7,7 @@
 //!   numbers (hyper-dual inside the potential, eps1 along an input
 //!   coordinate for dV/dz, eps2 along the direction);
 //! * against central finite differences of the trainer's own loss.
+//!
 //! Also: the training-side rollout agrees with `visviva-runtime`'s step of
 //! the exported blob (the arithmetic every check and device uses).
 

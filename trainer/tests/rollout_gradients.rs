@@ -11,6 +11,8 @@
 //! Also: the training-side rollout agrees with `visviva-runtime`'s step of
 //! the exported blob (the arithmetic every check and device uses).
 
+#![allow(clippy::needless_range_loop)]
+
 #[allow(dead_code)]
 mod common;
 

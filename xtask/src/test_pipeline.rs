@@ -65,7 +65,7 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test --release: visviva-tests and the trainer's port checks (outside references)",
+            "cargo test --release: visviva-tests (incl. rig_logs: positions-only encoder and noisy logs) and the trainer's port checks (outside references)",
             &|| {
                 Ok(cargo_stage(&["test", "-p", "visviva-tests", "--release"])?
                     && cargo_stage(&[

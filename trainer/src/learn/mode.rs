@@ -77,9 +77,9 @@ impl TrajectoryPlan {
     pub fn new(dt: f64, sigma: Vec<f64>, mass1: Option<f64>) -> Self {
         Self {
             window_steps: 25,
-            windows_per_batch: 16,
-            epochs: 60,
-            lr: 1e-3,
+            windows_per_batch: 32,
+            epochs: 150,
+            lr: 3e-4,
             dt,
             sigma,
             mass1: mass1.unwrap_or(1.0),

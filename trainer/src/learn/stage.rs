@@ -237,8 +237,8 @@ pub fn stop_text(stop: StopReason) -> String {
             gain,
             threshold,
         } => format!(
-            "plateau: the best validation loss improved by {:.3} % over the last {epochs} epochs, \
-             less than the {:.3} % that counts (its own sampling spread)",
+            "plateau: the best loss improved by {:.3} % over the last {epochs} epochs, less than \
+             the {:.3} % that counts (the loss's own sampling spread)",
             100.0 * gain,
             100.0 * threshold
         ),

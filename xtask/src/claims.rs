@@ -48,6 +48,21 @@ pub const CLAIMS: &[Claim] = &[
         backing: Backing::Setting("default of [data] step_tolerance"),
     },
     Claim {
+        figure: "0.5 %",
+        context: "K(sin 45 deg) each within",
+        backing: Backing::Test("tests/tests/rig_logs.rs::encoder_logged_pendulum_has_the_closed_form_periods_and_trajectory_matching_beats_derivatives"),
+    },
+    Claim {
+        figure: "1 %",
+        context: "positions with 1 % noise",
+        backing: Backing::Setting("the noise level of the release check's mass-spring log"),
+    },
+    Claim {
+        figure: "0.5 %",
+        context: "sqrt(k/m) within",
+        backing: Backing::Test("tests/tests/rig_logs.rs::mass_spring_logged_in_millimetres_with_noise_has_the_natural_frequency"),
+    },
+    Claim {
         figure: "0.05 %",
         context: "logarithmic decrement",
         backing: Backing::Test("trainer/tests/port_checks.rs::damped_flexure_log_decrement_gives_the_simulated_damping_ratio"),

@@ -66,14 +66,17 @@ pub struct TrajectoryPlan {
     pub dt: f64,
     /// Noise standard deviation per coordinate (SI units).
     pub sigma: Vec<f64>,
-    /// Mass or inertia of coordinate 1 fixing the energy scale.
-    pub mass1: f64,
+    /// Mass or inertia of coordinate 1 fixing the energy scale; `None` for
+    /// a log with velocities or momenta (they fix it; the warm start's is
+    /// kept).
+    pub mass1: Option<f64>,
     /// Whether `mass1` was stated by the user (else 1 by normalization).
     pub mass_stated: bool,
 }
 
 impl TrajectoryPlan {
-    /// Defaults for a log sampled every `dt` with noise `sigma`.
+    /// Defaults for a positions-only log sampled every `dt` with noise
+    /// `sigma`: coordinate 1's mass `mass1` when stated, else 1.
     pub fn new(dt: f64, sigma: Vec<f64>, mass1: Option<f64>) -> Self {
         Self {
             window_steps: 25,
@@ -82,18 +85,22 @@ impl TrajectoryPlan {
             lr: 3e-4,
             dt,
             sigma,
-            mass1: mass1.unwrap_or(1.0),
+            mass1: Some(mass1.unwrap_or(1.0)),
             mass_stated: mass1.is_some(),
         }
     }
 
     /// The statement printed with every trajectory fit.
     pub fn energy_scale_note(&self) -> String {
+        let Some(m1) = self.mass1 else {
+            return "energy scale: from the logged velocities or momenta (derivative warm \
+                    start), held during trajectory matching"
+                .into();
+        };
         if self.mass_stated {
             format!(
                 "energy scale: positions do not fix it; fixed by coordinate 1's stated mass \
-                 (or inertia) m1 = {} (energies in the units that mass implies)",
-                self.mass1
+                 (or inertia) m1 = {m1} (energies in the units that mass implies)"
             )
         } else {
             "energy scale: positions do not fix it; fixed by normalization, coordinate 1's \
@@ -206,6 +213,10 @@ pub fn plan_mode(
         .collect();
     let mass1 = request.masses.as_ref().and_then(|m| m.first().copied());
     let mut tp = TrajectoryPlan::new(dt, sigma, mass1);
+    if !positions_only {
+        tp.mass1 = None;
+        tp.mass_stated = false;
+    }
     if let Some(k) = request.window_steps {
         if k == 0 {
             bail!("{} must be at least 1", names("window_steps"));

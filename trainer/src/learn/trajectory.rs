@@ -75,8 +75,9 @@ pub struct TrajectorySettings {
     pub dt: f64,
     /// Noise standard deviation per coordinate (SI units).
     pub sigma: Vec<f64>,
-    /// Mass (or inertia) of coordinate 1 fixing the energy scale.
-    pub mass1: f64,
+    /// Mass (or inertia) of coordinate 1 fixing the energy scale; `None`
+    /// keeps the warm start's (a log with velocities or momenta fixes it).
+    pub mass1: Option<f64>,
 }
 
 /// Windows of one data set: logged positions (K + 1 rows x n each) and
@@ -169,15 +170,19 @@ impl StateOptimizer {
 }
 
 /// Fix the energy scale: coordinate 1's inverse mass becomes 1 / `mass1`
-/// (L_11 = s_p1 / sqrt(es m1)); returns the index of the frozen parameter.
-fn fix_energy_scale(model: &mut EnergyModel, mass1: f64) -> Result<usize> {
+/// (L_11 = s_p1 / sqrt(es m1)), or stays the warm start's without one;
+/// returns the index of the frozen parameter.
+fn fix_energy_scale(model: &mut EnergyModel, mass1: Option<f64>) -> Result<usize> {
+    let n = model.dof;
+    let index = model.params.len() - n * (n + 1) / 2;
+    let Some(mass1) = mass1 else {
+        return Ok(index);
+    };
     if !(mass1.is_finite() && mass1 > 0.0) {
         bail!("the mass fixing the energy scale must be finite and positive, got {mass1}");
     }
-    let n = model.dof;
     let es = model.norm.energy_scale as f64;
     let sp = model.norm.scale[n] as f64;
-    let index = model.params.len() - n * (n + 1) / 2;
     model.params[index] = (sp / (es * mass1).sqrt()).ln() as f32;
     Ok(index)
 }

@@ -152,5 +152,18 @@ fn validate_cholesky(l: F32Bytes<'_>, n: usize) -> Result<(), BlobError> {
             return Err(BlobError::NotPositive { section });
         }
     }
+    for i in 0..n {
+        for j in 0..=i {
+            let v = l.get(i * (i + 1) / 2 + j);
+            let ok = if i == j {
+                crate::format::scale_in_range(v)
+            } else {
+                crate::format::offset_in_range(v)
+            };
+            if !ok {
+                return Err(BlobError::OutOfRange { section });
+            }
+        }
+    }
     Ok(())
 }

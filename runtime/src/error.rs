@@ -63,6 +63,10 @@ pub enum BlobError {
     NonFinite { section: Section },
     /// A zero or negative scale, or a non-positive diagonal entry.
     NotPositive { section: Section },
+    /// A finite value outside the range its field accepts (a subnormal or
+    /// absurdly large scale, offset or inverse-mass entry; see the table in
+    /// [`crate::format`]).
+    OutOfRange { section: Section },
     /// ReLU refused in an energy network (see the `Display` text).
     ReluInEnergyNetwork { section: Section },
     /// Step, substeps, iteration limit or tolerance out of range.
@@ -116,6 +120,11 @@ impl fmt::Display for BlobError {
             Self::NotPositive { section } => {
                 write!(f, "{section:?} holds a zero or negative value where a positive one is required")
             }
+            Self::OutOfRange { section } => write!(
+                f,
+                "{section:?} holds a value no model can mean (subnormal or out of range: scales \
+                 must lie in [1e-18, 1e18], offsets and other entries within +-1e18)"
+            ),
             Self::ReluInEnergyNetwork { section } => write!(
                 f,
                 "{section:?} network uses ReLU: its derivative is piecewise constant, so the vector field \
@@ -123,8 +132,8 @@ impl fmt::Display for BlobError {
                  use tanh or softplus"
             ),
             Self::BadIntegratorSettings => f.write_str(
-                "integrator settings out of range (time step must be finite and > 0, substeps 1..=1024, \
-                 iteration limit 1..=1000, tolerance finite and > 0)",
+                "integrator settings out of range (time step must lie in [1e-12, 1e6] s, substeps \
+                 1..=1024, iteration limit 1..=1000, tolerance in [1e-12, 1])",
             ),
             Self::MethodNeedsSeparableModel => f.write_str(
                 "Stormer-Verlet and Yoshida-4 need a separable model H = T(p) + V(q); \

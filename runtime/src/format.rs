@@ -16,6 +16,27 @@
 //! straight from the blob (flash) with no copy. Enum variants are encoded by
 //! index: new variants are appended, never reordered, and any change a reader
 //! of the current version cannot skip bumps [`FORMAT_VERSION`].
+//!
+//! Value ranges (checked by [`crate::Model::from_bytes`]; a value that is
+//! finite but outside its range is refused with [`BlobError::OutOfRange`],
+//! since no fitted model can mean it and it would give frozen or absurd
+//! rollouts):
+//!
+//! ```text
+//! field                                  accepted
+//! normalization scales, energy scale     [MIN_SCALE, MAX_SCALE] = [1e-18, 1e18]
+//! normalization offsets                  |offset| <= MAX_OFFSET = 1e18
+//! inverse-mass Cholesky diagonal         [1e-18, 1e18]; other entries |v| <= 1e18
+//! int8 row scales                        [1e-18, 1e18]
+//! time step dt (s)                       [MIN_DT, MAX_DT] = [1e-12, 1e6]
+//! substeps                               1..=1024 (dt / substeps stays normal)
+//! iteration limit                        1..=1000
+//! implicit-method tolerance              [MIN_TOLERANCE, 1] = [1e-12, 1]
+//! ```
+//!
+//! Subnormal values (below 1.18e-38) lie below every range above. Network
+//! weights and biases, port-term constants and offsets inside the range are
+//! only required to be finite: a tiny or zero weight is a legitimate fit.
 
 use serde::{Deserialize, Serialize};
 
@@ -38,6 +59,25 @@ pub const HEADER_LEN: usize = 10;
 pub const TRAILER_LEN: usize = 4;
 /// Most layers (hidden plus output) in one network.
 pub const MAX_LAYERS: usize = 5;
+/// Smallest accepted scale: normalization scales, the energy scale, the
+/// inverse-mass diagonal and int8 row scales.
+pub const MIN_SCALE: f32 = 1e-18;
+/// Largest accepted scale (the same fields as [`MIN_SCALE`]).
+pub const MAX_SCALE: f32 = 1e18;
+/// Largest accepted |offset| of a coordinate, and |entry| of the
+/// inverse-mass factor off its diagonal.
+pub const MAX_OFFSET: f32 = 1e18;
+
+/// Whether `v` is a scale this format accepts (in `[MIN_SCALE, MAX_SCALE]`;
+/// false for NaN).
+pub fn scale_in_range(v: f32) -> bool {
+    (MIN_SCALE..=MAX_SCALE).contains(&v)
+}
+
+/// Whether `|v| <= MAX_OFFSET` (false for NaN).
+pub fn offset_in_range(v: f32) -> bool {
+    v.abs() <= MAX_OFFSET
+}
 
 #[cfg(feature = "crc-table")]
 const CRC32: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);

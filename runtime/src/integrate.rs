@@ -14,6 +14,15 @@ use crate::state::State;
 pub const MAX_SUBSTEPS: u16 = 1024;
 /// Largest fixed-point iteration limit accepted for implicit midpoint.
 pub const MAX_ITERATIONS: u16 = 1000;
+/// Smallest time step accepted in settings, in seconds (with
+/// [`MAX_SUBSTEPS`] the substep stays far above the subnormal range).
+pub const MIN_DT: f32 = 1e-12;
+/// Largest time step accepted in settings, in seconds (about 11.6 days).
+pub const MAX_DT: f32 = 1e6;
+/// Smallest relative tolerance accepted for the implicit methods.
+pub const MIN_TOLERANCE: f32 = 1e-12;
+/// Largest relative tolerance accepted for the implicit methods.
+pub const MAX_TOLERANCE: f32 = 1.0;
 
 /// Integration method. The discriminants are part of the blob format:
 /// append new methods, never reorder.
@@ -120,12 +129,10 @@ impl Integrator {
 
     /// Whether the numbers are in range.
     pub fn is_valid(&self) -> bool {
-        self.dt.is_finite()
-            && self.dt > 0.0
+        (MIN_DT..=MAX_DT).contains(&self.dt)
             && (1..=MAX_SUBSTEPS).contains(&self.substeps)
             && (1..=MAX_ITERATIONS).contains(&self.max_iterations)
-            && self.tolerance.is_finite()
-            && self.tolerance > 0.0
+            && (MIN_TOLERANCE..=MAX_TOLERANCE).contains(&self.tolerance)
     }
 
     /// Advance `x` by `dt` with no input. On error `x` is unchanged.

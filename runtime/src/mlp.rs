@@ -230,6 +230,9 @@ fn check_layer(
             if !all_finite(scales) {
                 return Err(BlobError::NonFinite { section });
             }
+            if !scales.iter().all(crate::format::scale_in_range) {
+                return Err(BlobError::OutOfRange { section });
+            }
         }
     }
     if !all_finite(l.bias) {

@@ -163,16 +163,11 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         if !scale.iter().all(|s| s > 0.0) {
             return Err(BlobError::NotPositive { section: norm });
         }
-        if !es.is_finite() {
-            return Err(BlobError::NonFinite {
-                section: Section::EnergyScale,
-            });
+        if !scale.iter().all(format::scale_in_range) || !offset.iter().all(format::offset_in_range)
+        {
+            return Err(BlobError::OutOfRange { section: norm });
         }
-        if es <= 0.0 {
-            return Err(BlobError::NotPositive {
-                section: Section::EnergyScale,
-            });
-        }
+        Self::check_energy_scale(es)?;
         let energy = Self::read_energy(&mut fields, n)?;
         let integrator: Integrator = fields.take()?;
         let dissipation = Self::read_dissipation(&mut fields, n)?;
@@ -197,6 +192,21 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         }
         m.check_integrator(integrator)?;
         Ok(m)
+    }
+
+    /// The energy scale: finite, positive, in the format's scale range.
+    fn check_energy_scale(es: f32) -> Result<(), BlobError> {
+        let section = Section::EnergyScale;
+        if !es.is_finite() {
+            return Err(BlobError::NonFinite { section });
+        }
+        if es <= 0.0 {
+            return Err(BlobError::NotPositive { section });
+        }
+        if !format::scale_in_range(es) {
+            return Err(BlobError::OutOfRange { section });
+        }
+        Ok(())
     }
 
     /// The energy section, decoded and validated in its own stack frame.

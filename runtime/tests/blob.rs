@@ -438,3 +438,133 @@ fn blob_len_refuses_a_length_beyond_32_bits() {
         );
     }
 }
+
+/// An edit of a fixture model.
+type Edit = Box<dyn Fn(&mut OwnedModel)>;
+
+/// Values that are finite but no fitted model can mean: subnormal or
+/// absurdly large scales, offsets, inverse-mass entries, int8 row scales,
+/// time steps and tolerances. Each is refused with its section named, and
+/// the edges of every documented range (`format`'s table) still parse.
+/// (The subnormal range of f32 ends at 2^-126 = 1.1754944e-38, IEEE 754.)
+#[test]
+fn refuses_subnormal_and_out_of_range_values_naming_the_section() {
+    let owned = sample();
+    let out_of_range = |section| BlobError::OutOfRange { section };
+    let norm = Section::Normalization;
+    let cases: [(&str, Edit, BlobError); 8] = [
+        (
+            "subnormal q scale",
+            Box::new(|m| m.scale_bytes[0..4].copy_from_slice(&1e-40f32.to_le_bytes())),
+            out_of_range(norm),
+        ),
+        (
+            "p scale 1e30",
+            Box::new(|m| m.scale_bytes[8..12].copy_from_slice(&1e30f32.to_le_bytes())),
+            out_of_range(norm),
+        ),
+        (
+            "offset -1e20",
+            Box::new(|m| m.offset_bytes[4..8].copy_from_slice(&(-1e20f32).to_le_bytes())),
+            out_of_range(norm),
+        ),
+        (
+            "subnormal energy scale",
+            Box::new(|m| m.energy_scale = 1e-39),
+            out_of_range(Section::EnergyScale),
+        ),
+        (
+            "subnormal inverse-mass diagonal",
+            Box::new(|m| {
+                if let OwnedEnergy::Separable {
+                    kinetic: OwnedKinetic::Quadratic(_, bytes),
+                    ..
+                } = &mut m.energy
+                {
+                    bytes[0..4].copy_from_slice(&1e-42f32.to_le_bytes());
+                }
+            }),
+            out_of_range(Section::InverseMass),
+        ),
+        (
+            "inverse-mass entry 1e25 off the diagonal",
+            Box::new(|m| {
+                if let OwnedEnergy::Separable {
+                    kinetic: OwnedKinetic::Quadratic(_, bytes),
+                    ..
+                } = &mut m.energy
+                {
+                    bytes[4..8].copy_from_slice(&1e25f32.to_le_bytes());
+                }
+            }),
+            out_of_range(Section::InverseMass),
+        ),
+        (
+            "subnormal time step",
+            Box::new(|m| m.integrator.dt = 1e-41),
+            BlobError::BadIntegratorSettings,
+        ),
+        (
+            "time step 1e9 s",
+            Box::new(|m| m.integrator.dt = 1e9),
+            BlobError::BadIntegratorSettings,
+        ),
+    ];
+    for (what, edit, want) in cases {
+        let mut bad = owned.clone();
+        edit(&mut bad);
+        assert_eq!(
+            M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
+            want,
+            "{what}"
+        );
+    }
+    for it in [
+        Integrator {
+            tolerance: 1e-40,
+            ..owned.integrator
+        },
+        Integrator {
+            tolerance: 2.0,
+            ..owned.integrator
+        },
+    ] {
+        let mut bad = owned.clone();
+        bad.integrator = it;
+        assert_eq!(
+            M::from_bytes(&bad.blob().unwrap()).unwrap_err(),
+            BlobError::BadIntegratorSettings
+        );
+    }
+
+    // An int8 network with a subnormal row scale.
+    let mut rng = XorShift64Star(12);
+    let mut q = separable(
+        &mut rng,
+        1,
+        &[4],
+        Activation::Tanh,
+        Precision::Int8,
+        Method::StormerVerlet,
+        0.01,
+    );
+    if let OwnedEnergy::Separable { potential, .. } = &mut q.energy {
+        potential.layers[0].s_bytes[0..4].copy_from_slice(&1e-40f32.to_le_bytes());
+    }
+    assert_eq!(
+        M::from_bytes(&q.blob().unwrap()).unwrap_err(),
+        out_of_range(Section::Potential)
+    );
+
+    // The edges of each range are accepted.
+    let mut edge = owned.clone();
+    edge.scale_bytes[0..4].copy_from_slice(&format::MIN_SCALE.to_le_bytes());
+    edge.scale_bytes[4..8].copy_from_slice(&format::MAX_SCALE.to_le_bytes());
+    edge.offset_bytes[0..4].copy_from_slice(&(-format::MAX_OFFSET).to_le_bytes());
+    edge.energy_scale = format::MAX_SCALE;
+    edge.integrator.dt = visviva_runtime::integrate::MIN_DT;
+    edge.integrator.tolerance = 1.0;
+    M::from_bytes(&edge.blob().unwrap()).unwrap();
+    edge.integrator.dt = visviva_runtime::integrate::MAX_DT;
+    M::from_bytes(&edge.blob().unwrap()).unwrap();
+}

@@ -243,3 +243,169 @@ proptest! {
         let _ = Model::<8, 16>::from_bytes(&with_magic);
     }
 }
+
+// ---------------------------------------------------------------------------
+// Models of the sizes the tools build: the trainer parses blobs as
+// `Model<16, 128>` (up to 16 degrees of freedom, layers up to 128 wide, up to
+// `MAX_LAYERS` layers, up to `MAX_INPUTS` inputs), with every integrator,
+// driven steps with fuzzed inputs, and subnormal and extreme states.
+
+/// States and inputs the size fuzz draws from besides ordinary values:
+/// subnormals, the edges of the f32 range, zeros and non-finite values.
+const EXTREME: [f32; 14] = [
+    0.0,
+    -0.0,
+    1e-45,
+    -1e-45,
+    1e-40,
+    -3e-39,
+    f32::MIN_POSITIVE,
+    f32::MAX,
+    -f32::MAX,
+    1e19,
+    -1e30,
+    f32::NAN,
+    f32::INFINITY,
+    f32::NEG_INFINITY,
+];
+
+const METHODS: [Method; 5] = [
+    Method::StormerVerlet,
+    Method::Yoshida4,
+    Method::ImplicitMidpoint,
+    Method::Rk4,
+    Method::DiscreteGradient,
+];
+
+/// A value: ordinary (within a few scales) most of the time, else extreme.
+fn fuzz_value(rng: &mut XorShift64Star) -> f32 {
+    match rng.below(6) {
+        0 => EXTREME[rng.below(EXTREME.len())],
+        1 => rng.uniform(-1e4, 1e4) as f32,
+        _ => rng.uniform(-3.0, 3.0) as f32,
+    }
+}
+
+/// Hidden widths: one to four layers, each 1..=128 wide, often 128.
+fn hidden_widths(rng: &mut XorShift64Star) -> Vec<usize> {
+    (0..1 + rng.below(4))
+        .map(|_| match rng.below(3) {
+            0 => 128,
+            _ => 1 + rng.below(128),
+        })
+        .collect()
+}
+
+/// A random model within the tools' bounds: separable or general, f32 or
+/// int8, tanh or softplus, any method the energy kind allows, and port
+/// terms (constant, or networks where their outputs fit in 128) for the
+/// methods that step them. Returns the model and its widest hidden layer.
+fn tool_sized_model(rng: &mut XorShift64Star) -> (OwnedModel, usize) {
+    let dof = 1 + rng.below(16);
+    let act = [Activation::Tanh, Activation::Softplus][rng.below(2)];
+    let kind = [Precision::F32, Precision::Int8][rng.below(2)];
+    let method = METHODS[rng.below(METHODS.len())];
+    let hidden = hidden_widths(rng);
+    let dt = [1e-3, 0.05, 0.5][rng.below(3)];
+    let sep = method.needs_separable() || rng.below(2) == 0;
+    let mut m = if sep {
+        separable(rng, dof, &hidden, act, kind, method, dt)
+    } else {
+        general(rng, dof, &hidden, act, kind, method, dt)
+    };
+    m.integrator.substeps = 1 + rng.below(4) as u16;
+    m.integrator.max_iterations = 1 + rng.below(60) as u16;
+    if method.handles_port_terms() && rng.below(3) > 0 {
+        let n2 = 2 * dof;
+        let inputs = rng.below(visviva_runtime::MAX_INPUTS + 1);
+        let nets_fit = n2 * (n2 + 1) / 2 <= 128 && n2 * inputs <= 128;
+        m = if nets_fit && rng.below(2) == 0 {
+            let width = 1 + rng.below(128);
+            m.with_port_networks(rng, 0.5, inputs, width, kind)
+        } else {
+            m.with_port(rng, 0.3, inputs)
+        };
+    }
+    (m, hidden.iter().copied().max().unwrap_or(0))
+}
+
+/// One driven step from a fuzzed state with fuzzed inputs: an error must
+/// leave the state bit for bit as it was, and success must give a finite
+/// state.
+fn fuzzed_step(model: &Model<'_, 16, 128>, rng: &mut XorShift64Star) -> bool {
+    let n = model.dof();
+    let mut v = [0.0f32; 32];
+    v.iter_mut().take(2 * n).for_each(|x| *x = fuzz_value(rng));
+    let mut s = State::<16>::new(&v[..n], &v[n..2 * n]).unwrap();
+    let mut u = [0.0f32; visviva_runtime::MAX_INPUTS + 1];
+    u.iter_mut().for_each(|x| *x = fuzz_value(rng));
+    // Usually the model's input count; sometimes a wrong one.
+    let m = match rng.below(8) {
+        0 => rng.below(u.len() + 1),
+        _ => model.inputs(),
+    };
+    let before = s;
+    let _ = model.energy(&s);
+    let ok = model.step_driven(&mut s, &u[..m]).is_ok();
+    let q: Vec<u32> = s.q().iter().chain(s.p()).map(|x| x.to_bits()).collect();
+    let q0: Vec<u32> = before
+        .q()
+        .iter()
+        .chain(before.p())
+        .map(|x| x.to_bits())
+        .collect();
+    if ok {
+        assert!(
+            s.is_finite(),
+            "a step reported success with a non-finite state"
+        );
+    } else {
+        assert_eq!(q, q0, "a failed step changed the state");
+    }
+    ok
+}
+
+#[test]
+fn tool_sized_models_take_fuzzed_driven_steps_without_panic() {
+    let mut rng = XorShift64Star(0x7001_5123_dead_beef);
+    let models = 3_000u32;
+    let steps_per_model = 12u32;
+    let (mut built, mut stepped_ok, mut per_method) = (0u32, 0u32, [0u32; 5]);
+    let mut attempted = 0u32;
+    let mut max_width_seen = 0usize;
+    for _ in 0..models {
+        let (owned, widest) = tool_sized_model(&mut rng);
+        max_width_seen = max_width_seen.max(widest);
+        let b = owned.blob().unwrap();
+        let model = Model::<16, 128>::from_bytes(&b).expect("a tool-sized fixture parses");
+        built += 1;
+        let k = METHODS
+            .iter()
+            .position(|m| *m == owned.integrator.method)
+            .unwrap();
+        per_method[k] += 1;
+        for _ in 0..steps_per_model {
+            stepped_ok += fuzzed_step(&model, &mut rng) as u32;
+            attempted += 1;
+        }
+        // The same model under every other method it can take.
+        for method in METHODS {
+            if let Ok(other) = model.with_integrator(Integrator {
+                method,
+                ..owned.integrator
+            }) {
+                stepped_ok += fuzzed_step(&other, &mut rng) as u32;
+                attempted += 1;
+            }
+        }
+    }
+    println!(
+        "size fuzz: {built} models (dof 1..=16, widths up to {max_width_seen}; per stored method \
+         verlet/yoshida4/midpoint/rk4/discrete-gradient {per_method:?}), {attempted} fuzzed driven steps, \
+         {stepped_ok} succeeded"
+    );
+    assert_eq!(max_width_seen, 128);
+    assert!(per_method.iter().all(|c| *c > 100), "{per_method:?}");
+    // Ordinary states must step too, or the run only exercised refusals.
+    assert!(stepped_ok > built, "only {stepped_ok} steps succeeded");
+}

@@ -1,11 +1,43 @@
 //! All-or-nothing file writes: output goes to a temporary file in the target's
 //! directory and is renamed over the target only once it is complete, so a
-//! failed run never leaves a half-written file behind.
+//! failed run never leaves a half-written file behind. A Ctrl-C pressed while
+//! a file is written stops the writer with an error and removes the
+//! temporary file (it is dropped, not persisted).
 
 use anyhow::Context;
 use std::io::{BufWriter, Write};
 use std::path::Path;
 use tempfile::NamedTempFile;
+
+use crate::interrupt::{Interrupted, Watch};
+
+/// A writer that fails once Ctrl-C is pressed (polled at every buffered
+/// write, so every few kilobytes of output).
+struct Polled<W> {
+    inner: W,
+    watch: Watch,
+}
+
+impl<W: Write> Write for Polled<W> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.watch.check().map_err(std::io::Error::other)?;
+        self.inner.write(buf)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.inner.flush()
+    }
+}
+
+/// Whether `e` (or anything in its chain) is a Ctrl-C.
+fn was_interrupted(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| {
+        c.is::<Interrupted>()
+            || c.downcast_ref::<std::io::Error>()
+                .and_then(|io| io.get_ref())
+                .is_some_and(|inner| inner.is::<Interrupted>())
+    })
+}
 
 /// Write `bytes` to `path` atomically (temporary file + rename).
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> anyhow::Result<()> {
@@ -33,12 +65,21 @@ where
             dir.display()
         )
     })?;
+    let watch = Watch::new();
     {
-        let mut buffered = BufWriter::new(tmp.as_file_mut());
-        write(&mut buffered).with_context(|| format!("{}: writing failed", path.display()))?;
-        buffered
-            .flush()
-            .with_context(|| format!("{}: writing failed", path.display()))?;
+        let mut buffered = BufWriter::new(Polled {
+            inner: tmp.as_file_mut(),
+            watch,
+        });
+        let written = write(&mut buffered).and_then(|()| Ok(buffered.flush()?));
+        let written = written.and_then(|()| Ok(watch.check()?));
+        if let Err(e) = written {
+            // Dropping `tmp` on return removes the temporary file.
+            if was_interrupted(&e) {
+                anyhow::bail!("{}: interrupted by Ctrl-C; nothing written", path.display());
+            }
+            return Err(e.context(format!("{}: nothing written", path.display())));
+        }
     }
     tmp.as_file()
         .sync_all()

@@ -14,12 +14,16 @@
 //! * [`project`]: the project file and the stages `visviva run` chains.
 //! * [`cli`]: the command line (the only place clap types live).
 //! * [`atomic`]: all-or-nothing file writes.
+//! * [`interrupt`]: Ctrl-C, polled by long work and every writer.
+//! * [`capacity`]: sizes a user types, checked against this machine.
 
 pub mod atomic;
+pub mod capacity;
 pub mod cli;
 pub mod data;
 pub mod deploy;
 pub mod evidence;
+pub mod interrupt;
 pub mod learn;
 pub mod project;
 pub mod reference;

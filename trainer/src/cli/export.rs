@@ -7,6 +7,7 @@ use std::path::PathBuf;
 use anyhow::{bail, Result};
 
 use crate::atomic::write_atomic;
+use crate::capacity::check_memory;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, WeightKind};
 use crate::deploy::export::export;
@@ -22,7 +23,8 @@ pub struct Args {
     pub weights: WeightKind,
     #[command(flatten)]
     pub integrator: IntegratorArgs,
-    /// Steps of the rollouts that measure the accuracy price.
+    /// Steps of the rollouts that measure the accuracy price (any number:
+    /// they stream).
     #[arg(long, default_value_t = 10_000)]
     pub check_steps: usize,
     /// Number of initial states for those rollouts.
@@ -42,6 +44,8 @@ pub fn run(args: Args) -> Result<()> {
     if args.check_states == 0 {
         bail!("--check-states must be at least 1");
     }
+    let state_bytes = 24 + 8 * src.dof as u128;
+    check_memory("--check-states", args.check_states as u128, state_bytes)?;
     let (bytes, r) = export(
         &src,
         args.weights,

@@ -1,15 +1,21 @@
 //! `visviva rollout`: step a blob on the host through `visviva-runtime` — the
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
-//! f32 bit patterns for bit-for-bit comparison with a board.
+//! f32 bit patterns for bit-for-bit comparison with a board. The rollout
+//! streams: each row is written as its state is computed, so memory does not
+//! grow with `--steps`; a file output appears only when complete.
 
 use std::path::PathBuf;
 
 use anyhow::{anyhow, bail, Result};
 
-use crate::atomic::write_atomic;
+use std::io::Write as _;
+
+use crate::atomic::write_atomic_with;
+use crate::capacity::check_disk;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::HostModel;
-use crate::deploy::rollout::{parse_init, read_inputs, roll_driven, to_csv};
+use crate::deploy::rollout::{csv_row_bytes, parse_init, stream_csv, InputRows};
+use crate::interrupt::Watch;
 
 /// Arguments of `visviva rollout`.
 #[derive(Debug, clap::Args)]
@@ -20,7 +26,8 @@ pub struct Args {
     /// Initial state, every coordinate named once: "q1=0.5,p1=0".
     #[arg(long)]
     pub init: String,
-    /// Number of steps.
+    /// Number of steps (any number: the rollout streams; with --out the
+    /// disk must have room for the file).
     #[arg(long)]
     pub steps: usize,
     /// Input sequence for a driven model: CSV `t,u1..um`, row k held over
@@ -49,37 +56,54 @@ pub fn run(args: Args) -> Result<()> {
         .map_err(|e| anyhow!("{e}"))?;
     let dof = visviva_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;
-    let m = visviva_runtime::Hamiltonian::inputs(&model);
-    let inputs = match &args.inputs {
+    let mut inputs = open_inputs(&args, visviva_runtime::Hamiltonian::inputs(&model))?;
+    let fill = |_: usize, u: &mut [f32]| match inputs.as_mut() {
+        Some(rows) => rows.next_into(u).map(|_| ()),
+        None => Ok(()),
+    };
+    let watch = Watch::new();
+    match &args.out {
         Some(p) => {
-            let rows = read_inputs(p, m)?;
-            if rows.len() < args.steps {
+            let rows = (args.steps as u128).saturating_add(1);
+            check_disk(
+                "--steps",
+                p,
+                rows.saturating_mul(csv_row_bytes(dof, args.bits)),
+            )?;
+            write_atomic_with(p, |w| {
+                stream_csv(&model, &x0, args.steps, fill, args.bits, watch, w)
+            })?;
+            eprintln!("wrote {} ({} states)", p.display(), rows);
+        }
+        None => {
+            let mut w = std::io::BufWriter::new(std::io::stdout().lock());
+            stream_csv(&model, &x0, args.steps, fill, args.bits, watch, &mut w)
+                .map_err(|e| anyhow!("{e:#}; standard output stops before that step"))?;
+            w.flush()?;
+        }
+    }
+    eprintln!("{}", crate::CAUTION);
+    Ok(())
+}
+
+/// The input rows of a driven model, checked whole (values and count)
+/// before the first step and then read one at a time.
+fn open_inputs(args: &Args, m: usize) -> Result<Option<InputRows>> {
+    match &args.inputs {
+        Some(p) => {
+            let rows = InputRows::count(p, m)?;
+            if rows < args.steps {
                 bail!(
-                    "{}: {} input rows for {} steps",
+                    "{}: {rows} input rows for {} steps",
                     p.display(),
-                    rows.len(),
                     args.steps
                 );
             }
-            rows
+            Ok(Some(InputRows::open(p, m)?))
         }
         None if m > 0 => {
             bail!("the model takes {m} inputs: pass --inputs FILE.csv (columns t,u1..u{m})")
         }
-        None => Vec::new(),
-    };
-    let r = roll_driven(&model, &x0, args.steps, &inputs)?;
-    if let Some((k, e)) = r.failure {
-        bail!("step {} of {}: {e}; nothing written", k + 1, args.steps);
+        None => Ok(None),
     }
-    let csv = to_csv(&r.states, dof, model.integrator().dt, args.bits);
-    match &args.out {
-        Some(p) => {
-            write_atomic(p, csv.as_bytes())?;
-            eprintln!("wrote {} ({} states)", p.display(), r.states.len());
-        }
-        None => print!("{csv}"),
-    }
-    eprintln!("{}", crate::CAUTION);
-    Ok(())
 }

@@ -1,13 +1,17 @@
 //! Export: turn a fitted model into a device blob (weight storage and
 //! integrator) and measure what that costs in bytes and in accuracy before
-//! anything is flashed.
+//! anything is flashed. The two rollouts of each check run side by side and
+//! keep only running maxima, so memory does not grow with the check steps.
 
 use anyhow::Result;
 use serde::{Deserialize, Serialize};
 
+use crate::deploy::blob::HOST_MAX_DOF;
 use crate::deploy::blob::{BlobModel, HostModel, WeightKind};
 use crate::deploy::integrator::{method_name, IntegratorOverrides};
-use crate::deploy::rollout::{roll, sample_states};
+use crate::deploy::rollout::{sample_states, state_of};
+use crate::interrupt::Watch;
+use visviva_runtime::{Hamiltonian, State};
 
 /// What an export cost.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -66,17 +70,13 @@ pub fn export(
     let mut dev = 0.0f64;
     let (mut drift_ref, mut drift_exp) = (0.0f64, 0.0f64);
     let mut failed = 0;
+    let watch = Watch::new();
     for x0 in sample_states(&src.offset, &src.scale, 1.0, states, 0x7676_6578) {
-        let a = roll(&reference, &x0, steps)?;
-        let b = roll(&exported, &x0, steps)?;
-        failed += a.failure.is_some() as usize + b.failure.is_some() as usize;
-        for (sa, sb) in a.states.iter().zip(&b.states) {
-            for ((va, vb), s) in sa.iter().zip(sb).zip(&src.scale) {
-                dev = dev.max(((*va as f64) - (*vb as f64)).abs() / *s as f64);
-            }
-        }
-        drift_ref = drift_ref.max(a.energy_excursion() / src.energy_scale as f64);
-        drift_exp = drift_exp.max(b.energy_excursion() / src.energy_scale as f64);
+        let p = paired(&reference, &exported, &x0, steps, &src.scale, watch)?;
+        failed += p.failed;
+        dev = dev.max(p.deviation);
+        drift_ref = drift_ref.max(p.excursion[0] / src.energy_scale as f64);
+        drift_exp = drift_exp.max(p.excursion[1] / src.energy_scale as f64);
     }
     let cost = exported.cost();
     let params = out.parameters();
@@ -97,4 +97,71 @@ pub fn export(
         failed_rollouts: failed,
     };
     Ok((bytes, report))
+}
+
+/// What one pair of rollouts (reference and exported blob, same start)
+/// measured.
+struct Paired {
+    /// Largest |a - b| / scale over the steps both completed.
+    deviation: f64,
+    /// Largest |H(t) - H(0)| of each rollout while it ran.
+    excursion: [f64; 2],
+    /// Rollouts of the two that stopped with an error.
+    failed: usize,
+}
+
+/// Step `a` and `b` from `x0` side by side for `steps` steps, keeping only
+/// running maxima; a rollout that fails stops there, the other goes on.
+fn paired(
+    a: &HostModel<'_>,
+    b: &HostModel<'_>,
+    x0: &[f32],
+    steps: usize,
+    scale: &[f32],
+    watch: Watch,
+) -> Result<Paired> {
+    let models = [a, b];
+    let mut s: [State<HOST_MAX_DOF>; 2] = [state_of(x0)?, state_of(x0)?];
+    let e0 = [energy(a, &s[0])?, energy(b, &s[1])?];
+    let mut alive = [true, true];
+    let mut out = Paired {
+        deviation: 0.0,
+        excursion: [0.0, 0.0],
+        failed: 0,
+    };
+    for k in 0..steps {
+        if k % 4096 == 0 {
+            watch.check()?;
+        }
+        for i in 0..2 {
+            if alive[i] && models[i].step(&mut s[i]).is_err() {
+                alive[i] = false;
+                out.failed += 1;
+            }
+            if alive[i] {
+                if let Ok(e) = models[i].energy(&s[i]) {
+                    out.excursion[i] = out.excursion[i].max((e as f64 - e0[i] as f64).abs());
+                }
+            }
+        }
+        if alive == [false, false] {
+            break;
+        }
+        if alive == [true, true] {
+            let [sa, sb] = &s;
+            let va = sa.q().iter().chain(sa.p());
+            let vb = sb.q().iter().chain(sb.p());
+            for ((x, y), sc) in va.zip(vb).zip(scale) {
+                out.deviation = out
+                    .deviation
+                    .max((*x as f64 - *y as f64).abs() / *sc as f64);
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// The learned energy at `s`, as an error when it cannot be evaluated.
+fn energy(m: &HostModel<'_>, s: &State<HOST_MAX_DOF>) -> Result<f32> {
+    m.energy(s).map_err(|e| anyhow::anyhow!("{e}"))
 }

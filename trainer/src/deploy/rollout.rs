@@ -3,6 +3,7 @@
 //! test states inside a model's normalization range, and drift measures.
 
 use std::fmt::Write as _;
+use std::io::Write;
 
 use anyhow::{bail, Context, Result};
 use rand::{Rng, SeedableRng};
@@ -44,83 +45,223 @@ pub fn roll(model: &HostModel<'_>, x0: &[f32], steps: usize) -> Result<Rollout> 
 }
 
 /// As [`roll`], with input row `k` of `inputs` held over step `k` (zero
-/// inputs when `inputs` is shorter).
+/// inputs when `inputs` is shorter). Keeps every state: for rollouts as
+/// long as a log; long ones stream through [`roll_each`].
 pub fn roll_driven(
     model: &HostModel<'_>,
     x0: &[f32],
     steps: usize,
     inputs: &[Vec<f32>],
 ) -> Result<Rollout> {
-    let zeros = vec![0.0f32; model.inputs()];
-    let mut s = state_of(x0)?;
-    let n = s.dof();
-    let flat = |s: &State<HOST_MAX_DOF>| {
-        let mut v = s.q().to_vec();
-        v.extend_from_slice(s.p());
-        v
-    };
     let mut out = Rollout {
-        states: vec![flat(&s)],
-        energy: vec![model.energy(&s).map_err(|e| anyhow::anyhow!("{e}"))?],
+        states: Vec::new(),
+        energy: Vec::new(),
         failure: None,
     };
-    out.states.reserve(steps);
-    for k in 0..steps {
-        let u = inputs.get(k).map_or(zeros.as_slice(), Vec::as_slice);
-        if let Err(e) = model.step_driven(&mut s, u) {
-            out.failure = Some((k, e));
-            break;
+    let fill = |k: usize, u: &mut [f32]| {
+        if let Some(row) = inputs.get(k) {
+            u.copy_from_slice(row);
         }
-        debug_assert_eq!(s.dof(), n);
-        out.states.push(flat(&s));
-        out.energy.push(model.energy(&s).unwrap_or(f32::NAN));
-    }
+        Ok(())
+    };
+    out.failure = roll_each(model, x0, steps, fill, |k, s| {
+        let e = model.energy(s);
+        // The initial state's energy must exist; later a NaN marks a state
+        // the model cannot evaluate.
+        let e = if k == 0 {
+            e.map_err(|e| anyhow::anyhow!("{e}"))?
+        } else {
+            e.unwrap_or(f32::NAN)
+        };
+        out.states.push(flat(s));
+        out.energy.push(e);
+        Ok(())
+    })?;
     Ok(out)
 }
 
-/// Read an input sequence: CSV with header `t,u1..um`, one row per step.
-/// Errors name the file, line and column.
-pub fn read_inputs(path: &std::path::Path, m: usize) -> Result<Vec<Vec<f32>>> {
-    let mut r =
-        csv::Reader::from_path(path).with_context(|| format!("{}: cannot read", path.display()))?;
-    let header: Vec<String> = r
-        .headers()
-        .with_context(|| format!("{}: line 1: cannot read the header", path.display()))?
-        .iter()
-        .map(|h| h.trim().to_string())
-        .collect();
-    let want: Vec<String> = std::iter::once("t".to_string())
-        .chain((1..=m).map(|i| format!("u{i}")))
-        .collect();
-    if header != want {
-        bail!(
-            "{}: line 1: columns {:?}, the model needs {:?}",
-            path.display(),
-            header,
-            want
-        );
+/// The state as a flat (q1..qn, p1..pn) vector.
+pub fn flat(s: &State<HOST_MAX_DOF>) -> Vec<f32> {
+    let mut v = s.q().to_vec();
+    v.extend_from_slice(s.p());
+    v
+}
+
+/// Step `model` `steps` times from `x0`, handing every state to
+/// `visit(k, state)` as it is computed (the initial state as k = 0) and
+/// keeping none: memory does not grow with `steps`. `fill(k, u)` writes
+/// the inputs held over step k into `u` (zeros unless it writes). Returns
+/// the step index and error where stepping stopped, if it did.
+pub fn roll_each(
+    model: &HostModel<'_>,
+    x0: &[f32],
+    steps: usize,
+    mut fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
+    mut visit: impl FnMut(usize, &State<HOST_MAX_DOF>) -> Result<()>,
+) -> Result<Option<(usize, StepError)>> {
+    let mut u = vec![0.0f32; model.inputs()];
+    let mut s = state_of(x0)?;
+    visit(0, &s)?;
+    for k in 0..steps {
+        u.iter_mut().for_each(|v| *v = 0.0);
+        fill(k, &mut u)?;
+        if let Err(e) = model.step_driven(&mut s, &u) {
+            return Ok(Some((k, e)));
+        }
+        visit(k + 1, &s)?;
     }
-    let mut rows = Vec::new();
-    for (k, rec) in r.records().enumerate() {
-        let line = k + 2;
-        let rec = rec.with_context(|| format!("{}: line {line}: malformed row", path.display()))?;
-        let mut row = Vec::with_capacity(m);
-        for (c, name) in want.iter().enumerate().skip(1) {
-            let text = rec.get(c).unwrap_or("").trim();
+    Ok(None)
+}
+
+/// The CSV header `t,q1..qn,p1..pn`.
+pub fn write_csv_header(w: &mut dyn Write, dof: usize) -> std::io::Result<()> {
+    let mut s = String::from("t");
+    for k in ["q", "p"] {
+        for i in 1..=dof {
+            let _ = write!(s, ",{k}{i}");
+        }
+    }
+    s.push('\n');
+    w.write_all(s.as_bytes())
+}
+
+/// One CSV row: time `k dt`, then the values, as exact bit patterns
+/// (`bits`) or shortest round-trip decimals.
+pub fn write_csv_row(
+    w: &mut dyn Write,
+    k: usize,
+    dt: f32,
+    x: &[f32],
+    bits: bool,
+) -> std::io::Result<()> {
+    write!(w, "{}", k as f64 * dt as f64)?;
+    for v in x {
+        if bits {
+            write!(w, ",{:#010x}", v.to_bits())?;
+        } else {
+            write!(w, ",{v}")?;
+        }
+    }
+    w.write_all(b"\n")
+}
+
+/// About how many bytes a CSV row of `dof` degrees of freedom takes (for
+/// the disk-space check before a long rollout).
+pub fn csv_row_bytes(dof: usize, bits: bool) -> u128 {
+    let value = if bits { 11 } else { 10 };
+    8 + 2 * dof as u128 * value
+}
+
+/// Stream a rollout into `w` as CSV (`t,q1..qn,p1..pn`), each row written
+/// as its state is computed. A step that fails is an error naming it; a
+/// Ctrl-C (seen through `watch`) stops the rollout with an error.
+#[allow(clippy::too_many_arguments)]
+pub fn stream_csv(
+    model: &HostModel<'_>,
+    x0: &[f32],
+    steps: usize,
+    fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
+    bits: bool,
+    watch: crate::interrupt::Watch,
+    w: &mut dyn Write,
+) -> Result<()> {
+    let dof = model.dof();
+    let dt = model.integrator().dt;
+    write_csv_header(w, dof)?;
+    let mut x = vec![0.0f32; 2 * dof];
+    let failure = roll_each(model, x0, steps, fill, |k, s| {
+        if k % 4096 == 0 {
+            watch.check()?;
+        }
+        x[..dof].copy_from_slice(s.q());
+        x[dof..].copy_from_slice(s.p());
+        Ok(write_csv_row(w, k, dt, &x, bits)?)
+    })?;
+    if let Some((k, e)) = failure {
+        bail!("step {} of {steps}: {e}", k + 1);
+    }
+    Ok(())
+}
+
+/// An input sequence read row by row: CSV with header `t,u1..um`, one row
+/// per step. Errors name the file, line and column. Memory does not grow
+/// with the number of rows.
+pub struct InputRows {
+    path: std::path::PathBuf,
+    reader: csv::Reader<std::fs::File>,
+    record: csv::StringRecord,
+    names: Vec<String>,
+    line: usize,
+}
+
+impl InputRows {
+    /// Open `path` and check its header for `m` inputs.
+    pub fn open(path: &std::path::Path, m: usize) -> Result<Self> {
+        let mut reader = csv::Reader::from_path(path)
+            .with_context(|| format!("{}: cannot read", path.display()))?;
+        let header: Vec<String> = reader
+            .headers()
+            .with_context(|| format!("{}: line 1: cannot read the header", path.display()))?
+            .iter()
+            .map(|h| h.trim().to_string())
+            .collect();
+        let names: Vec<String> = std::iter::once("t".to_string())
+            .chain((1..=m).map(|i| format!("u{i}")))
+            .collect();
+        if header != names {
+            bail!(
+                "{}: line 1: columns {:?}, the model needs {:?}",
+                path.display(),
+                header,
+                names
+            );
+        }
+        Ok(Self {
+            path: path.to_path_buf(),
+            reader,
+            record: csv::StringRecord::new(),
+            names,
+            line: 1,
+        })
+    }
+
+    /// The next row's inputs into `u`; `false` at the end of the file.
+    pub fn next_into(&mut self, u: &mut [f32]) -> Result<bool> {
+        let path = self.path.display();
+        self.line += 1;
+        let line = self.line;
+        let more = self
+            .reader
+            .read_record(&mut self.record)
+            .with_context(|| format!("{path}: line {line}: malformed row"))?;
+        if !more {
+            return Ok(false);
+        }
+        for (c, name) in self.names.iter().enumerate().skip(1) {
+            let text = self.record.get(c).unwrap_or("").trim();
             let v: f32 = text.parse().with_context(|| {
-                format!(
-                    "{}: line {line}, column {name}: '{text}' is not a number",
-                    path.display()
-                )
+                format!("{path}: line {line}, column {name}: '{text}' is not a number")
             })?;
             if !v.is_finite() {
-                bail!("{}: line {line}, column {name}: not finite", path.display());
+                bail!("{path}: line {line}, column {name}: not finite");
             }
-            row.push(v);
+            if let Some(slot) = u.get_mut(c - 1) {
+                *slot = v;
+            }
         }
-        rows.push(row);
+        Ok(true)
     }
-    Ok(rows)
+
+    /// Check every row of `path` and count them, holding one row at a time.
+    pub fn count(path: &std::path::Path, m: usize) -> Result<usize> {
+        let mut rows = Self::open(path, m)?;
+        let mut u = vec![0.0f32; m];
+        let mut n = 0usize;
+        while rows.next_into(&mut u)? {
+            n += 1;
+        }
+        Ok(n)
+    }
 }
 
 /// Parse `q1=0.1,p1=0` (every coordinate named once) for `dof` degrees of
@@ -194,23 +335,10 @@ pub fn sample_states(
 
 /// Render a rollout as CSV `t,q1..qn,p1..pn`.
 pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
-    let mut s = String::from("t");
-    for k in ["q", "p"] {
-        for i in 1..=dof {
-            let _ = write!(s, ",{k}{i}");
-        }
-    }
-    s.push('\n');
+    let mut out = Vec::new();
+    write_csv_header(&mut out, dof).expect("writing to memory");
     for (k, x) in states.iter().enumerate() {
-        let _ = write!(s, "{}", k as f64 * dt as f64);
-        for v in x {
-            if bits {
-                let _ = write!(s, ",{:#010x}", v.to_bits());
-            } else {
-                let _ = write!(s, ",{v}");
-            }
-        }
-        s.push('\n');
+        write_csv_row(&mut out, k, dt, x, bits).expect("writing to memory");
     }
-    s
+    String::from_utf8(out).expect("ASCII")
 }

@@ -281,6 +281,10 @@ fn run_one(
             - es.iter().cloned().fold(f64::INFINITY, f64::min)
     });
     let (mut td, mut ld) = (0.0f64, 0.0f64);
+    // The energy series is decimated as it is produced (every `stride`-th
+    // step, as `decimate` would keep them), so memory does not grow with
+    // the horizon.
+    let stride = (horizon + 1).div_ceil(keep.max(1)).max(1);
     let mut energy = vec![(0.0, t0.or(l0).unwrap_or(f64::NAN))];
     let mut done = 0;
     for k in 1..=horizon {
@@ -296,7 +300,9 @@ fn run_one(
         if let (Some(l), Some(l0)) = (l, l0) {
             ld = ld.max((l - l0).abs());
         }
-        energy.push((k as f64 * dt, t.or(l).unwrap_or(f64::NAN)));
+        if k % stride == 0 {
+            energy.push((k as f64 * dt, t.or(l).unwrap_or(f64::NAN)));
+        }
     }
     m.horizon_steps_done = done;
     let broke = done < horizon;
@@ -318,7 +324,7 @@ fn run_one(
     Run {
         metrics: m,
         phase: decimate(phase, keep),
-        energy: decimate(energy, keep),
+        energy,
     }
 }
 

@@ -428,6 +428,10 @@ pub fn fit_baseline(
     })
 }
 
+/// The most worker threads a fit starts (each is an operating-system
+/// thread; beyond the cores they only cost memory).
+pub const MAX_THREADS: usize = 256;
+
 /// Per-thread buffers.
 struct Lanes<W> {
     works: Vec<W>,
@@ -577,6 +581,12 @@ fn check_settings(s: &FitSettings) -> Result<()> {
     if s.batch == 0 {
         bail!("batch size must be at least 1");
     }
+    if s.threads > MAX_THREADS {
+        bail!(
+            "--threads ([fit] threads) {} is more than {MAX_THREADS}, the most a fit starts",
+            s.threads
+        );
+    }
     if !(s.lr.is_finite() && s.lr > 0.0) {
         bail!("learning rate must be positive, got {}", s.lr);
     }
@@ -639,7 +649,7 @@ fn run_arrays<O: Objective>(
     let rows = z.nrows();
     let batch = s.batch.min(rows);
     let per_epoch = rows.div_ceil(batch);
-    let total = s.steps.unwrap_or(s.epochs * per_epoch).max(1);
+    let total = s.steps.unwrap_or(s.epochs.saturating_mul(per_epoch)).max(1);
     let epochs = total.div_ceil(per_epoch);
     let schedule = crate::learn::optim::Schedule {
         peak: s.lr,
@@ -648,6 +658,9 @@ fn run_arrays<O: Objective>(
         floor: s.lr_floor,
     };
     let np = obj.param_count();
+    // Each thread keeps a gradient and its workspace (about as large).
+    let lane = 8 * np as u128;
+    crate::capacity::check_memory("--threads ([fit] threads)", s.threads as u128, lane)?;
     let mut adam = crate::learn::optim::Adam::new(np);
     let mut buf = BatchBuffers::<O::Work> {
         lanes: Lanes::new(s.threads.max(1), np),

@@ -153,16 +153,7 @@ pub fn median_step(ds: &Dataset) -> Option<f64> {
 /// flag, so fits running side by side (a fleet's units on a thread pool)
 /// neither fight over the handler nor warn about it.
 pub fn interrupt_flag() -> Arc<AtomicBool> {
-    static FLAG: std::sync::OnceLock<Arc<AtomicBool>> = std::sync::OnceLock::new();
-    FLAG.get_or_init(|| {
-        let interrupt = Arc::new(AtomicBool::new(false));
-        let flag = interrupt.clone();
-        if let Err(e) = ctrlc::set_handler(move || flag.store(true, Ordering::SeqCst)) {
-            eprintln!("warning: Ctrl-C will not stop training cleanly ({e})");
-        }
-        interrupt
-    })
-    .clone()
+    crate::interrupt::flag()
 }
 
 /// What the fit stage produced.

@@ -13,7 +13,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, bail, Context, Result};
 use visviva_runtime::Method;
 
-use crate::atomic::write_atomic;
+use crate::atomic::{write_atomic, write_atomic_with};
+use crate::capacity::{check_disk, check_memory};
 use crate::data::dataset::{Dataset, DerivativeSource};
 use crate::data::log::{split_by_trajectory, LoadOptions};
 use crate::deploy::blob::{BlobModel, HostModel};
@@ -21,13 +22,14 @@ use crate::deploy::budget::budget_verdict;
 use crate::deploy::export::{export as export_blob, ExportReport};
 use crate::deploy::inspect::inspect;
 use crate::deploy::integrator::IntegratorOverrides;
-use crate::deploy::rollout::{roll_driven, sample_states, to_csv};
+use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
 use crate::evidence::charts::{charts, driven_charts, loss_chart, units, HistoryFile};
 use crate::evidence::check::{check_port, driven_baseline, reference_modes, CheckSettings};
 use crate::evidence::report::{
     CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison, Evidence, FitSummary, PortReport,
     RunReport,
 };
+use crate::interrupt::Watch;
 use crate::learn::fit::{FitSettings, TrainReport};
 use crate::learn::hnn::BaselineModel;
 use crate::learn::stage::{
@@ -127,6 +129,7 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         }
     }
     let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
+    check_sizes(&project, dir, logs.train.dof).with_context(|| file.clone())?;
     let data = data_summary(&project.data.train.display().to_string(), &logs);
     let name = project.name.clone().unwrap_or_else(|| {
         dir.file_name()
@@ -160,6 +163,27 @@ fn fit_mode(
     };
     let names = |key: &str| format!("[fit] {key}");
     crate::learn::mode::plan_mode(&request, logs.rig.as_ref(), &logs.train, plan, &names)
+}
+
+/// The sizes `[check]` asks for, against this machine before any work:
+/// the golden initial states held at once, and the golden rollout files of
+/// every export target on the disk that holds `out/` (the long horizon and
+/// the rollouts themselves stream).
+fn check_sizes(project: &Project, dir: &Path, dof: usize) -> Result<()> {
+    let c = &project.check;
+    let states = c.golden_states as u128;
+    check_memory("[check] golden_states", states, 24 + 8 * dof as u128)?;
+    let rows = (c.golden_steps as u128).saturating_add(1);
+    let per_target = rows
+        .saturating_mul(csv_row_bytes(dof, true))
+        .saturating_mul(states);
+    let targets = project.export_targets().len() as u128;
+    let golden = dir.join("out").join("golden").join("x.csv");
+    check_disk(
+        "[check] golden_steps x golden_states",
+        &golden,
+        per_target.saturating_mul(targets),
+    )
 }
 
 /// The logs named by `[data]`: a validation file of its own (same degrees
@@ -682,14 +706,19 @@ fn write_golden(
         0x676f6c64,
     );
     let mut golden = Vec::new();
+    let watch = Watch::new();
     for (k, x0) in states.iter().enumerate() {
-        let r = roll_driven(&dev, x0, steps, inputs)?;
-        if let Some((step, e)) = r.failure {
-            bail!("golden rollout {k} of {name} failed at step {step}: {e}");
-        }
         let file = format!("golden/{name}-{k}.csv");
-        let csv = to_csv(&r.states, src.dof, dev.integrator().dt, true);
-        write_atomic(&out.join(&file), csv.as_bytes())?;
+        let fill = |k: usize, u: &mut [f32]| {
+            if let Some(row) = inputs.get(k) {
+                u.copy_from_slice(row);
+            }
+            Ok(())
+        };
+        write_atomic_with(&out.join(&file), |w| {
+            stream_csv(&dev, x0, steps, fill, true, watch, w)
+        })
+        .with_context(|| format!("golden rollout {k} of {name}"))?;
         golden.push(file);
     }
     let inputs_file = prep

@@ -48,6 +48,43 @@ impl SimulationSpec {
         (0..=last).map(|k| k as f64 / self.rate).collect()
     }
 
+    /// Samples per trajectory (saturating for absurd durations and rates).
+    pub fn samples(&self) -> u128 {
+        ((self.duration * self.rate * (1.0 + 1e-12)).floor() as u128).saturating_add(1)
+    }
+
+    /// Whether the whole data set (time, state, derivatives and inputs of
+    /// every sample, in f64) fits in this machine's memory: refused before
+    /// any work, naming the flags, when it does not.
+    pub fn check_size(&self, system: &dyn ReferenceSystem) -> anyhow::Result<()> {
+        let columns = 1 + 4 * system.dof() + system.inputs();
+        let per_trajectory = self
+            .samples()
+            .saturating_mul(8 * columns as u128)
+            .saturating_add(512);
+        crate::capacity::check_memory(
+            "--trajectories x --duration x --rate",
+            self.trajectories as u128,
+            per_trajectory,
+        )
+    }
+
+    /// Whether the CSV of the whole data set (about 12 bytes a value) fits
+    /// on the disk that holds `out`.
+    pub fn check_output(
+        &self,
+        system: &dyn ReferenceSystem,
+        out: &std::path::Path,
+    ) -> anyhow::Result<()> {
+        let columns = 2 + 4 * system.dof() + system.inputs();
+        let rows = (self.trajectories as u128).saturating_mul(self.samples());
+        crate::capacity::check_disk(
+            "--trajectories x --duration x --rate",
+            out,
+            rows.saturating_mul(12 * columns as u128),
+        )
+    }
+
     fn validate(&self) -> anyhow::Result<()> {
         anyhow::ensure!(self.trajectories >= 1, "--trajectories must be at least 1");
         anyhow::ensure!(
@@ -230,6 +267,8 @@ pub fn integrate_field(
 /// (and, for a driven system, the inputs at every sample). Initial states
 /// come from the system's sampler seeded with `spec.seed`.
 pub fn simulate(system: &dyn ReferenceSystem, spec: &SimulationSpec) -> anyhow::Result<Dataset> {
+    spec.validate()?;
+    spec.check_size(system)?;
     if system.has_port_terms() {
         simulate_port(system, spec)
     } else {

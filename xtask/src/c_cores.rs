@@ -244,6 +244,20 @@ pub fn run(root: &Path, work: &Path, cases: &[CoreCase]) -> Result<(Vec<TargetRe
             "WRONG on some core"
         }
     );
+    // IEEE 754-2019 requires +, -, *, / and sqrt correctly rounded, so the
+    // software float of the cores without an FPU must give the host's bits.
+    let soft_same = results
+        .iter()
+        .filter(|r| r.name.contains("softfloat"))
+        .all(|r| r.same == r.total && r.total > 0);
+    println!(
+        "  soft-float cores (no FPU) against the host's hardware float, IEEE 754-2019 correctly rounded +, -, *, /, sqrt: {}",
+        if soft_same {
+            "every state bit-identical"
+        } else {
+            "DIFFERENT"
+        }
+    );
     Ok((results, ok))
 }
 

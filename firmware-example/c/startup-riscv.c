@@ -1,11 +1,14 @@
 /* Startup for the C example on a 32-bit RISC-V core (QEMU's virt board):
- * stack, .data/.bss set-up, main, and semihosting for output and exit
+ * stack, .data/.bss set-up, the stack region painted for the high-water
+ * mark (probe.h), main, and semihosting for output and exit
  * (the RISC-V semihosting sequence slli/ebreak/srai with the ARM
  * semihosting operations SYS_WRITE0 = 0x04 and SYS_EXIT_EXTENDED = 0x20).
  * No C library. */
 #include <stdint.h>
+#include "probe.h"
 
 extern uint32_t __data_start, __data_end, __data_load, __bss_start, __bss_end, __stack_top;
+extern uint32_t __stack_limit[];
 int main(void);
 
 static uint32_t semihost(uint32_t op, const void *arg) {
@@ -31,6 +34,11 @@ void vv_exit(int code) {
 }
 
 void start_c(void) {
+    /* Paint below the stack pointer only: this frame is above it, and no
+     * call happens before the loop ends (volatile: never a memset call). */
+    uint32_t *sp;
+    __asm__ volatile("mv %0, sp" : "=r"(sp));
+    for (volatile uint32_t *w = __stack_limit; w < sp; w++) *w = VV_STACK_PAINT;
     uint32_t *src = &__data_load;
     for (uint32_t *dst = &__data_start; dst < &__data_end;) *dst++ = *src++;
     for (uint32_t *dst = &__bss_start; dst < &__bss_end;) *dst++ = 0;

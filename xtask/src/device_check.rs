@@ -5,14 +5,19 @@
 //! the host rollout; check that defective blobs and faults end the firmware
 //! with a logged error and a non-zero exit; print a resource report and the
 //! runtime's own footprint (one `footprint <config>: ...` line per
-//! configuration, see `footprint.rs`); end with
-//! exactly one line `device check: <M> of <N> states bit-identical`.
+//! configuration, see `footprint.rs`). By default it also runs the core
+//! blobs (`c_cores::CASES`) on the Rust firmware and the C firmware on five
+//! cores (`c_cores`), then prints the resource table per target, one
+//! `target <name>: M of N states bit-identical` line per target and ends
+//! with exactly one line
+//! `device check: <M> of <N> states bit-identical on <K> targets`.
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::{Context, Result};
 
+use crate::c_cores::{self, CoreCase};
 use crate::device_log::{self, DeviceLog};
 use crate::elf_size::{self, ElfSize};
 use crate::fixtures;
@@ -21,7 +26,13 @@ use crate::host_rollout::{self, HostRollout, Trajectories, VisvivaCommand};
 use crate::model_swap;
 use crate::qemu_run::{self, ICOUNT_SHIFT, SYSTICK_NS};
 use crate::run_plan::RunPlan;
+use crate::target_report::{self, TargetResult};
 use crate::tools;
+
+/// The Rust firmware's target name in the per-target lines.
+const RUST_TARGET: &str = "cortex-m4f-rust";
+/// Prefix of the Rust firmware's runs of the core blobs.
+const CORE_PREFIX: &str = "cores-";
 
 /// `MAX_DOF` in firmware-example/src/main.rs (the firmware logs its bounds
 /// and the check fails if they differ).
@@ -436,6 +447,22 @@ fn minimal_example_check(root: &Path, work: &Path, blob: &Path) -> Result<bool> 
     Ok(pass)
 }
 
+/// Emulated instructions per multiply-accumulate, per blob.
+fn print_instructions_per_mac(rows: &[ReportRow]) {
+    for r in rows {
+        if let (Some(i), Some(m)) = (r.instructions_per_step, r.macs_per_step) {
+            println!(
+                "device {}: {i:.0} instructions/step, {m} MAC/step, {:.2} instr/MAC",
+                r.name,
+                i / f64::from(m.max(1))
+            );
+        }
+    }
+    println!(
+        "  (instr/MAC: emulated instructions per multiply-accumulate; for the implicit methods\n   MAC/step is the bound at the iteration limit, so their ratio understates the real cost)"
+    );
+}
+
 fn print_report(rows: &[ReportRow]) {
     println!();
     println!("resource report (firmware-example, thumbv7em-none-eabihf, release)");
@@ -475,6 +502,72 @@ fn print_report(rows: &[ReportRow]) {
     );
 }
 
+/// The core blobs as Rust firmware cases (`cores-<blob>`), on the same
+/// initial states as the C firmware.
+fn core_device_cases(core_cases: &[CoreCase]) -> Vec<DeviceCase> {
+    core_cases
+        .iter()
+        .map(|c| DeviceCase {
+            name: format!("{CORE_PREFIX}{}", c.name),
+            blob: c.blob.clone(),
+            plan: c.plan.clone(),
+            golden: None,
+        })
+        .collect()
+}
+
+/// The Rust firmware as one target: every state it logged, and the
+/// resources of its runs of the core blobs.
+fn rust_target(
+    matched: usize,
+    total: usize,
+    rows: &[ReportRow],
+    cores: &[CoreCase],
+) -> TargetResult {
+    let core_row = |c: &CoreCase| {
+        rows.iter()
+            .find(|r| r.name == format!("{CORE_PREFIX}{}", c.name))
+    };
+    TargetResult {
+        name: RUST_TARGET.into(),
+        same: matched,
+        total,
+        size: cores.first().and_then(core_row).map(|r| r.size),
+        stack_used: cores
+            .iter()
+            .filter_map(core_row)
+            .filter_map(|r| r.stack_used)
+            .max(),
+        instructions_per_step: cores
+            .iter()
+            .map(|c| core_row(c).and_then(|r| r.instructions_per_step))
+            .collect(),
+    }
+}
+
+/// The C firmware on the five cores (default run only); Ok(true) when
+/// there is nothing to run.
+fn c_targets(root: &Path, work: &Path, cores: &[CoreCase]) -> (Vec<TargetResult>, bool) {
+    if cores.is_empty() {
+        return (Vec::new(), true);
+    }
+    println!();
+    println!("device check: the C firmware (firmware-example/c) on five cores");
+    c_cores::run(root, &work.join("c"), cores).unwrap_or_else(|e| {
+        println!("  C firmware on the cores: FAILED: {e:#}");
+        (Vec::new(), false)
+    })
+}
+
+/// Print what failed, by name.
+fn print_failures(checks: &[(bool, &str)]) {
+    for (ok, what) in checks {
+        if !ok {
+            println!("device check: {what}");
+        }
+    }
+}
+
 /// Run the whole device check. Ok(true) when every state matched and every
 /// refusal and fault drill behaved.
 pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
@@ -483,20 +576,21 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     let root = crate::workspace_root();
     let work = root.join("firmware-example/target/visviva-device");
     std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
+    let host = VisvivaCommand::build(&root, &work)?;
+    println!("device check: host reference = {}", host.describe());
 
-    let cases = if blobs.is_empty() {
+    let (mut cases, core_cases) = if blobs.is_empty() {
         let exported = exported_demo_blobs(&root);
         for b in &exported {
             println!("device check: found exported demo blob {}", b.display());
         }
         let mut cases = fixture_cases(&work)?;
         cases.extend(file_cases(&exported)?);
-        cases
+        (cases, c_cores::cases(&root, &host)?)
     } else {
-        file_cases(&blobs)?
+        (file_cases(&blobs)?, Vec::new())
     };
-    let host = VisvivaCommand::build(&root, &work)?;
-    println!("device check: host reference = {}", host.describe());
+    cases.extend(core_device_cases(&core_cases));
     let mut total = 0usize;
     let mut matched = 0usize;
     let mut rows = Vec::new();
@@ -532,18 +626,7 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     };
 
     print_report(&rows);
-    for r in &rows {
-        if let (Some(i), Some(m)) = (r.instructions_per_step, r.macs_per_step) {
-            println!(
-                "device {}: {i:.0} instructions/step, {m} MAC/step, {:.2} instr/MAC",
-                r.name,
-                i / f64::from(m.max(1))
-            );
-        }
-    }
-    println!(
-        "  (instr/MAC: emulated instructions per multiply-accumulate; for the implicit methods\n   MAC/step is the bound at the iteration limit, so their ratio understates the real cost)"
-    );
+    print_instructions_per_mac(&rows);
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);
     }
@@ -553,36 +636,38 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         println!("  footprint: FAILED: {e:#}");
         false
     });
+    let (c_results, c_ok) = c_targets(&root, &work, &core_cases);
+    let mut targets = vec![rust_target(matched, total, &rows, &core_cases)];
+    targets.extend(c_results);
+    let names: Vec<String> = core_cases.iter().map(|c| c.name.clone()).collect();
+    if !core_cases.is_empty() {
+        target_report::print_resources(&targets, &names);
+    }
     println!(
         "device check took {:.1} s; artifacts in {}",
         started.elapsed().as_secs_f64(),
         work.display()
     );
-    if !golden_ok {
-        println!("device check: the device disagrees with a golden rollout file (see above)");
-    }
-    if !swap_ok {
-        println!(
-            "device check: the model swap without rebuilding did not reproduce the host rollout"
-        );
-    }
-    if !refusals_ok {
-        println!("device check: a refusal or fault drill did not behave (see above)");
-    }
-    if !minimal_ok {
-        println!("device check: the minimal example did not build, run and exit cleanly");
-    }
-    if !footprint_ok {
-        println!(
-            "device check: a footprint configuration failed or differs from the committed table"
-        );
-    }
-    println!("device check: {matched} of {total} states bit-identical");
-    Ok(matched == total
+    print_failures(&[
+        (golden_ok, "the device disagrees with a golden rollout file (see above)"),
+        (swap_ok, "the model swap without rebuilding did not reproduce the host rollout"),
+        (refusals_ok, "a refusal or fault drill did not behave (see above)"),
+        (minimal_ok, "the minimal example did not build, run and exit cleanly"),
+        (footprint_ok, "a footprint configuration failed or differs from the committed table"),
+        (c_ok, "a C firmware check (CRC, instruction clock, stack or refusal drill) failed (see above)"),
+    ]);
+    let (same, expected) = target_report::print_lines(&targets);
+    println!(
+        "device check: {same} of {expected} states bit-identical on {} target{}",
+        targets.len(),
+        if targets.len() == 1 { "" } else { "s" }
+    );
+    Ok(same == expected
         && total > 0
         && refusals_ok
         && minimal_ok
         && swap_ok
         && golden_ok
-        && footprint_ok)
+        && footprint_ok
+        && c_ok)
 }

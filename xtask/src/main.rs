@@ -7,7 +7,9 @@
 //!   (`--data` also rewrites their logs; `--verify` checks that logs and
 //!   blobs reproduce bit for bit).
 //! * `cargo xtask c-check`: the C interface used from C on the host (static
-//!   library, `runtime/c-api/examples/rollout.c`, bit-identical states).
+//!   library, `runtime/c-api/examples/rollout.c`, bit-identical states,
+//!   refusal drills) and the C firmware on five cores (`--host`: the host
+//!   part alone, as the test command runs it).
 //! * `cargo xtask fleet`: the demo fleet locally (`--jobs 2`) and as a job
 //!   array on a throwaway single-node Slurm cluster (a stage of `test`).
 //! * `cargo xtask claims`: every percentage or tolerance figure in README.md
@@ -16,13 +18,15 @@
 //!   Visviva against PyTorch and JAX references (see `bench/README.md`).
 //! * `cargo xtask device [--blob FILE.vvb]...`: installs missing tools, runs
 //!   the example firmware in QEMU for every device blob and compares every
-//!   state bit for bit with the host rollout, and measures the runtime's own
-//!   footprint.
+//!   state bit for bit with the host rollout, measures the runtime's own
+//!   footprint, and (without `--blob`) runs the C firmware on five cores.
 //! * `cargo xtask footprint`: that footprint alone (flash, static RAM and
 //!   stack of the minimal firmware per configuration).
 
 mod bench;
 mod c_check;
+mod c_cores;
+mod c_firmware;
 mod claims;
 mod demo_modes;
 mod demos;
@@ -38,6 +42,7 @@ mod model_swap;
 mod qemu_run;
 mod run_plan;
 mod slurm_cluster;
+mod target_report;
 mod test_pipeline;
 mod tools;
 
@@ -48,11 +53,13 @@ const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
   fleet                     demo fleet locally and on a throwaway single-node Slurm
   claims                    README figures and the tests that assert them
-  c-check                   the C interface from C: static library, C example,
-                            states bit-identical to visviva rollout
+  c-check [--host]          the C interface from C: static library, C example,
+                            C firmware on five cores, states bit-identical to
+                            visviva rollout (--host: the host C example alone)
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
-                            (default: the generated fixture blobs)
+                            (default: the generated fixture and demo blobs on
+                            the Rust firmware, the C firmware on five cores)
   footprint                 the runtime's own flash, static RAM and stack
   bench [--rounds N] [--steps N] [--only visviva,torch,jax]
                             training throughput against PyTorch and JAX (CPU)";
@@ -63,6 +70,7 @@ fn main() -> ExitCode {
         Some("test") if args.len() == 1 => test_pipeline::run(),
         Some("claims") if args.len() == 1 => claims::run(),
         Some("c-check") if args.len() == 1 => c_check::run(),
+        Some("c-check") if args.len() == 2 && args[1] == "--host" => c_check::run_host(),
         Some("fleet") if args.len() == 1 => fleet_check::run(),
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {

@@ -91,8 +91,8 @@ pub fn run() -> Result<bool> {
             },
         ),
         (
-            "cargo xtask c-check (the C interface from C, bit-identical to visviva rollout)",
-            &crate::c_check::run,
+            "cargo xtask c-check --host (the C interface from C on the host; the cores run in the device check)",
+            &crate::c_check::run_host,
         ),
         (
             "cargo xtask fleet (demo fleet: --jobs 2 locally, then a Slurm job array)",

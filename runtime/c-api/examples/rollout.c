@@ -1,9 +1,10 @@
 /* Step a Visviva model through the C interface and print every state as
  * exact f32 bit patterns, one line per step: "k q1 .. qn p1 .. pn".
  * Usage: rollout BLOB.vvb STEPS Q1 [Q2 ..]  (momenta start at 0; undriven
- * models). A first line "# crc32 0x..." gives the library's CRC-32 of the
- * catalogue's check string "123456789". `cargo xtask c-check` compares the
- * output with `visviva rollout --bits`. */
+ * models). A refused blob: "BLOB: refused: <status name>: <message>" on
+ * stderr and exit 1. A first line "# crc32 0x..." gives the library's
+ * CRC-32 of the catalogue's check string "123456789". `cargo xtask c-check`
+ * compares the output with `visviva rollout --bits`. */
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -38,7 +39,7 @@ int main(int argc, char **argv) {
 
     VvStatus s = vv_model_init(&model, blob, len);
     if (s != VV_STATUS_OK) {
-        fprintf(stderr, "%s: %s\n", argv[1], vv_status_message(s));
+        fprintf(stderr, "%s: refused: %s: %s\n", argv[1], vv_status_name(s), vv_status_message(s));
         return 1;
     }
     unsigned n = vv_dof(&model);
@@ -49,7 +50,7 @@ int main(int argc, char **argv) {
     for (long k = 1; k <= steps; k++) {
         s = vv_step(&model, q, p, VV_MAX_DOF);
         if (s != VV_STATUS_OK) {
-            fprintf(stderr, "step %ld: %s\n", k, vv_status_message(s));
+            fprintf(stderr, "step %ld: %s: %s\n", k, vv_status_name(s), vv_status_message(s));
             return 1;
         }
         print_state(k, q, p, n);

@@ -64,13 +64,17 @@ typedef enum VvStatus {
    */
   VV_STATUS_BLOB_CRC_MISMATCH = 13,
   /**
-   * The model has more degrees of freedom or wider layers than this build.
+   * The model has more degrees of freedom than this build's [`VV_MAX_DOF`].
    */
-  VV_STATUS_BLOB_TOO_LARGE = 14,
+  VV_STATUS_BLOB_TOO_MANY_DOF = 14,
   /**
    * The blob is damaged or describes an invalid model.
    */
   VV_STATUS_BLOB_INVALID = 15,
+  /**
+   * A layer of the model is wider than this build's [`VV_MAX_WIDTH`].
+   */
+  VV_STATUS_BLOB_TOO_WIDE = 16,
   /**
    * The state or the inputs do not match the model.
    */
@@ -194,6 +198,12 @@ enum VvStatus vv_step_driven(const struct VvModel *model,
  * A static, NUL-terminated message for a status.
  */
 const char *vv_status_message(enum VvStatus status);
+
+/**
+ * The name of a status's constant in the header (e.g.
+ * `"VV_STATUS_BLOB_CRC_MISMATCH"`), static and NUL-terminated, for logs.
+ */
+const char *vv_status_name(enum VvStatus status);
 
 /**
  * The CRC-32 a blob's trailer uses (catalogue check value 0xCBF43926 for

@@ -6,7 +6,8 @@
 //! checks a blob in place (magic, version, CRC, bounds; the blob is not
 //! copied and must outlive the model); [`vv_step`] and [`vv_step_driven`]
 //! advance a state held in the caller's arrays. Every call returns a
-//! [`VvStatus`]; [`vv_status_message`] names it. No call panics across the
+//! [`VvStatus`]; [`vv_status_name`] gives its constant's name and
+//! [`vv_status_message`] says what it means. No call panics across the
 //! boundary or writes outside the buffers it is given: null and misaligned
 //! pointers and short buffers are refused with a status.
 //!
@@ -92,10 +93,12 @@ pub enum VvStatus {
     BlobUnsupportedVersion = 12,
     /// The blob's CRC-32 does not match its contents.
     BlobCrcMismatch = 13,
-    /// The model has more degrees of freedom or wider layers than this build.
-    BlobTooLarge = 14,
+    /// The model has more degrees of freedom than this build's [`VV_MAX_DOF`].
+    BlobTooManyDof = 14,
     /// The blob is damaged or describes an invalid model.
     BlobInvalid = 15,
+    /// A layer of the model is wider than this build's [`VV_MAX_WIDTH`].
+    BlobTooWide = 16,
     /// The state or the inputs do not match the model.
     StepMismatch = 20,
     /// The state is not finite.
@@ -123,7 +126,8 @@ fn blob_status(e: BlobError) -> VvStatus {
         BlobError::BadMagic => VvStatus::BlobBadMagic,
         BlobError::UnsupportedVersion { .. } => VvStatus::BlobUnsupportedVersion,
         BlobError::CrcMismatch { .. } => VvStatus::BlobCrcMismatch,
-        BlobError::DofOutOfRange { .. } | BlobError::TooWide { .. } => VvStatus::BlobTooLarge,
+        BlobError::DofOutOfRange { .. } => VvStatus::BlobTooManyDof,
+        BlobError::TooWide { .. } => VvStatus::BlobTooWide,
         _ => VvStatus::BlobInvalid,
     }
 }
@@ -366,13 +370,38 @@ pub extern "C" fn vv_status_message(status: VvStatus) -> *const core::ffi::c_cha
             c"the blob's format version is not readable by this library"
         }
         VvStatus::BlobCrcMismatch => c"the blob's CRC-32 does not match its contents",
-        VvStatus::BlobTooLarge => {
-            c"the model exceeds this build's degrees of freedom or layer width"
+        VvStatus::BlobTooManyDof => {
+            c"the model has more degrees of freedom than this build (VV_MAX_DOF)"
         }
         VvStatus::BlobInvalid => c"the blob is damaged or describes an invalid model",
+        VvStatus::BlobTooWide => c"a layer of the model is wider than this build (VV_MAX_WIDTH)",
         VvStatus::StepMismatch => c"the state or inputs do not match the model",
         VvStatus::StepNonFinite => c"the state is not finite",
         VvStatus::StepFailed => c"the step failed (diverged or not converged); state unchanged",
+    };
+    text.as_ptr()
+}
+
+/// The name of a status's constant in the header (e.g.
+/// `"VV_STATUS_BLOB_CRC_MISMATCH"`), static and NUL-terminated, for logs.
+#[no_mangle]
+pub extern "C" fn vv_status_name(status: VvStatus) -> *const core::ffi::c_char {
+    let text: &'static core::ffi::CStr = match status {
+        VvStatus::Ok => c"VV_STATUS_OK",
+        VvStatus::NullPointer => c"VV_STATUS_NULL_POINTER",
+        VvStatus::Misaligned => c"VV_STATUS_MISALIGNED",
+        VvStatus::BufferTooShort => c"VV_STATUS_BUFFER_TOO_SHORT",
+        VvStatus::NotInitialised => c"VV_STATUS_NOT_INITIALISED",
+        VvStatus::BlobTruncated => c"VV_STATUS_BLOB_TRUNCATED",
+        VvStatus::BlobBadMagic => c"VV_STATUS_BLOB_BAD_MAGIC",
+        VvStatus::BlobUnsupportedVersion => c"VV_STATUS_BLOB_UNSUPPORTED_VERSION",
+        VvStatus::BlobCrcMismatch => c"VV_STATUS_BLOB_CRC_MISMATCH",
+        VvStatus::BlobTooManyDof => c"VV_STATUS_BLOB_TOO_MANY_DOF",
+        VvStatus::BlobInvalid => c"VV_STATUS_BLOB_INVALID",
+        VvStatus::BlobTooWide => c"VV_STATUS_BLOB_TOO_WIDE",
+        VvStatus::StepMismatch => c"VV_STATUS_STEP_MISMATCH",
+        VvStatus::StepNonFinite => c"VV_STATUS_STEP_NON_FINITE",
+        VvStatus::StepFailed => c"VV_STATUS_STEP_FAILED",
     };
     text.as_ptr()
 }

@@ -106,10 +106,13 @@ fn bad_blobs_are_refused_with_their_status() {
     let mut newer = good.clone();
     newer[4..6].copy_from_slice(&99u16.to_le_bytes());
     assert_eq!(init(&mut model, &newer), VvStatus::BlobUnsupportedVersion);
-    assert_eq!(init(&mut model, &random_blob(5, 8)), VvStatus::BlobTooLarge);
     assert_eq!(
-        init(&mut model, &random_blob(1, 128)),
-        VvStatus::BlobTooLarge
+        init(&mut model, &random_blob(VV_MAX_DOF + 1, 8)),
+        VvStatus::BlobTooManyDof
+    );
+    assert_eq!(
+        init(&mut model, &random_blob(1, 2 * VV_MAX_WIDTH)),
+        VvStatus::BlobTooWide
     );
     // A failed init leaves the object unusable, not half-usable.
     let (mut q, mut p) = ([0.1f32], [0.0f32]);
@@ -193,28 +196,62 @@ fn null_misaligned_and_short_arguments_are_refused() {
     }
 }
 
+const ALL_STATUSES: [VvStatus; 15] = [
+    VvStatus::Ok,
+    VvStatus::NullPointer,
+    VvStatus::Misaligned,
+    VvStatus::BufferTooShort,
+    VvStatus::NotInitialised,
+    VvStatus::BlobTruncated,
+    VvStatus::BlobBadMagic,
+    VvStatus::BlobUnsupportedVersion,
+    VvStatus::BlobCrcMismatch,
+    VvStatus::BlobTooManyDof,
+    VvStatus::BlobInvalid,
+    VvStatus::BlobTooWide,
+    VvStatus::StepMismatch,
+    VvStatus::StepNonFinite,
+    VvStatus::StepFailed,
+];
+
 #[test]
 fn every_status_has_a_message() {
     use std::ffi::CStr;
-    for s in [
-        VvStatus::Ok,
-        VvStatus::NullPointer,
-        VvStatus::Misaligned,
-        VvStatus::BufferTooShort,
-        VvStatus::NotInitialised,
-        VvStatus::BlobTruncated,
-        VvStatus::BlobBadMagic,
-        VvStatus::BlobUnsupportedVersion,
-        VvStatus::BlobCrcMismatch,
-        VvStatus::BlobTooLarge,
-        VvStatus::BlobInvalid,
-        VvStatus::StepMismatch,
-        VvStatus::StepNonFinite,
-        VvStatus::StepFailed,
-    ] {
+    for s in ALL_STATUSES {
         // SAFETY: the library returns static NUL-terminated strings.
         let text = unsafe { CStr::from_ptr(vv_status_message(s)) };
         assert!(!text.to_bytes().is_empty(), "{s:?}");
+    }
+}
+
+#[test]
+fn status_names_are_the_header_constants() {
+    use std::ffi::CStr;
+    // The enum constants cbindgen wrote into the committed header
+    // (`VV_STATUS_X = n,`), which C code compares statuses against.
+    let header =
+        std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("include/visviva.h"))
+            .unwrap();
+    let constants: Vec<(String, i64)> = header
+        .lines()
+        .filter_map(|l| {
+            let (name, value) = l.trim().trim_end_matches(',').split_once(" = ")?;
+            name.starts_with("VV_STATUS_")
+                .then(|| (name.to_string(), value.parse().ok()))
+                .and_then(|(n, v)| Some((n, v?)))
+        })
+        .collect();
+    assert_eq!(constants.len(), ALL_STATUSES.len());
+    for s in ALL_STATUSES {
+        // SAFETY: the library returns static NUL-terminated strings.
+        let name = unsafe { CStr::from_ptr(vv_status_name(s)) }
+            .to_str()
+            .unwrap();
+        assert!(
+            constants.contains(&(name.to_string(), s as i64)),
+            "{s:?} is named {name}, not a header constant with value {}",
+            s as i64
+        );
     }
 }
 

@@ -14,6 +14,7 @@
 //! * [`project`]: the project file and the stages `visviva run` chains.
 //! * [`cli`]: the command line (the only place clap types live).
 //! * [`atomic`]: all-or-nothing file writes.
+//! * [`outputs`]: output paths checked against the inputs before any work.
 
 pub mod atomic;
 pub mod cli;
@@ -21,6 +22,7 @@ pub mod data;
 pub mod deploy;
 pub mod evidence;
 pub mod learn;
+pub mod outputs;
 pub mod project;
 pub mod reference;
 

@@ -15,7 +15,8 @@ use crate::deploy::integrator::MethodName;
 use crate::learn::fit::{self, FitSettings, TrainReport};
 use crate::learn::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
 use crate::learn::stage::{
-    fit_stage, interrupt_flag, plan_model, stop_text, FitOutcome, ModelPlan, SettingNames,
+    check_fit_settings, check_masses, check_time_step, fit_stage, interrupt_flag, plan_model,
+    stop_text, FitOutcome, ModelPlan, SettingNames,
 };
 use crate::learn::structure::{arch_choice, ActivationName, Arch, KineticKind};
 
@@ -237,7 +238,7 @@ fn fit_settings(args: &Args) -> FitSettings {
         steps: args.steps,
         batch: args.batch,
         lr: args.lr,
-        threads: args.threads.max(1),
+        threads: args.threads,
         early_stop: !args.no_early_stop,
         patience: args.patience,
         seed: args.seed,
@@ -276,12 +277,6 @@ fn plan(args: &Args, train: &Dataset) -> Result<ModelPlan> {
 /// The training and validation data: `--validation`, or whole trajectories
 /// held out of `--train` (none when the fraction is 0 or there is only one).
 fn split(args: &Args, all: Dataset, opts: &LoadOptions) -> Result<(Dataset, Option<Dataset>)> {
-    if !(0.0..1.0).contains(&args.val_fraction) {
-        bail!(
-            "--val-fraction must be in [0, 1), got {}",
-            args.val_fraction
-        );
-    }
     match &args.val {
         Some(path) => {
             let v = log::load_csv(path, opts)?;
@@ -332,8 +327,38 @@ fn write_outputs(args: &Args, out: &FitOutcome, plan: &ModelPlan) -> Result<()> 
     Ok(())
 }
 
+/// Refuse flags out of their range, and outputs that would overwrite an
+/// input or each other or cannot be written, before any work.
+fn check_flags(args: &Args, settings: &FitSettings) -> Result<()> {
+    check_fit_settings(settings, SettingNames::Flags)?;
+    if !(0.0..1.0).contains(&args.val_fraction) {
+        bail!(
+            "--val-fraction must be in [0, 1), got {}",
+            args.val_fraction
+        );
+    }
+    if let Some(dt) = args.dt {
+        check_time_step(dt, "--dt")?;
+    }
+    if let Some(m) = &args.mass {
+        check_masses(m, "--masses")?;
+    }
+    let baseline = baseline_path(&args.out);
+    let mut inputs = vec![("--train", args.data.as_path())];
+    inputs.extend(args.val.as_deref().map(|v| ("--validation", v)));
+    let mut outputs = vec![("--out", args.out.as_path())];
+    if args.baseline {
+        outputs.push(("--baseline (beside --out)", baseline.as_path()));
+    }
+    outputs.extend(args.history.as_deref().map(|p| ("--history", p)));
+    outputs.extend(args.json.as_deref().map(|p| ("--json", p)));
+    crate::outputs::check_outputs(&inputs, &outputs)
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
+    let settings = fit_settings(&args);
+    check_flags(&args, &settings)?;
     let opts = LoadOptions {
         masses: args.mass.clone(),
         ..LoadOptions::default()
@@ -341,7 +366,6 @@ pub fn run(args: Args) -> Result<()> {
     let all = log::load_csv(&args.data, &opts)?;
     let (train, val) = split(&args, all, &opts)?;
     let plan = plan(&args, &train)?;
-    let settings = fit_settings(&args);
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} parameters{}",
         train.samples(),

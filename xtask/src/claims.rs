@@ -202,6 +202,11 @@ pub const CLAIMS: &[Claim] = &[
         context: "table by more than",
         backing: Backing::Setting("the footprint check's margin (xtask/src/footprint.rs MARGIN_FRACTION)"),
     },
+    Claim {
+        figure: "10^5",
+        context: "cases per surface",
+        backing: Backing::Test("trainer/tests/fuzz_host.rs::CASES"),
+    },
 ];
 
 /// Figures on one prose line: numbers directly before " %" or "%",

@@ -443,7 +443,8 @@ fn project_file_never_panics_and_accepts_only_settings_in_range() {
 
 // ---------------------------------------------------------------- --init
 
-fn init_text() -> impl Strategy<Value = String> {
+/// An `--init` string and the model's degrees of freedom.
+fn init_case() -> impl Strategy<Value = (String, usize)> {
     let piece = prop::sample::select(vec![
         "q1",
         "p1",
@@ -476,9 +477,30 @@ fn init_text() -> impl Strategy<Value = String> {
         "q+1",
         "q18446744073709551617",
     ]);
+    // Every coordinate of `dof` named once, in order or reversed, then
+    // edited.
+    let valid = (
+        1usize..=4,
+        prop::collection::vec(number(), 8),
+        any::<bool>(),
+        edits(),
+    )
+        .prop_map(|(dof, v, rev, e)| {
+            let mut parts: Vec<String> = ["q", "p"]
+                .iter()
+                .flat_map(|k| (1..=dof).map(move |i| format!("{k}{i}")))
+                .zip(&v)
+                .map(|(n, v)| format!("{n}={v}"))
+                .collect();
+            if rev {
+                parts.reverse();
+            }
+            (mutate(parts.join(","), e), dof)
+        });
     prop_oneof![
-        4 => prop::collection::vec(piece, 0..10).prop_map(|p| p.concat()),
-        1 => any::<String>(),
+        3 => valid,
+        3 => (prop::collection::vec(piece, 0..10), 1usize..=4).prop_map(|(p, d)| (p.concat(), d)),
+        1 => (any::<String>(), 1usize..=4),
     ]
 }
 
@@ -490,7 +512,7 @@ fn init_text() -> impl Strategy<Value = String> {
 fn init_strings_never_panic_and_give_finite_states() {
     let tally = Tally::default();
     runner()
-        .run(&(init_text(), 1usize..=4), |(spec, dof)| {
+        .run(&init_case(), |(spec, dof)| {
             let r = parse_init(&spec, dof);
             tally.note(&r);
             match r {

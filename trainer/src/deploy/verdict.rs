@@ -60,3 +60,48 @@ pub fn refuse_untrusted(r: &ExportReport, port: bool) -> Result<()> {
     }
     Ok(())
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::deploy::blob::WeightKind;
+
+    fn report(drift: f64, failed: usize) -> ExportReport {
+        ExportReport {
+            bytes: 100,
+            parameters: 10,
+            bytes_per_parameter: 10.0,
+            weights: WeightKind::F32,
+            integrator: "verlet".into(),
+            dt: 0.01,
+            substeps: 1,
+            macs_per_gradient: 1,
+            macs_per_step: 2,
+            check_steps: 100,
+            max_state_deviation: 0.0,
+            energy_drift_reference: drift,
+            energy_drift_exported: drift,
+            failed_rollouts: failed,
+        }
+    }
+
+    #[test]
+    fn drift_failures_and_non_finite_figures_are_refused() {
+        // The demo exports' measured drifts pass (0.094 conservative, 8.4 damped).
+        refuse_untrusted(&report(0.094, 0), false).unwrap();
+        refuse_untrusted(&report(8.4, 0), true).unwrap();
+        // What --dt 1e9 printed before (1e14) does not, nor 8.4 for a
+        // conservative model, a failed rollout, or a NaN.
+        assert!(refuse_untrusted(&report(1e14, 0), true).is_err());
+        assert!(refuse_untrusted(&report(8.4, 0), false).is_err());
+        assert!(refuse_untrusted(&report(0.0, 1), false).is_err());
+        let msg = format!(
+            "{:#}",
+            refuse_untrusted(&report(f64::NAN, 0), false).unwrap_err()
+        );
+        assert!(
+            msg.contains("non-finite") && msg.contains("dt = 0.01 s"),
+            "{msg}"
+        );
+    }
+}

@@ -16,6 +16,7 @@
 //! * [`atomic`]: all-or-nothing file writes.
 //! * [`interrupt`]: Ctrl-C, polled by long work and every writer.
 //! * [`capacity`]: sizes a user types, checked against this machine.
+//! * [`outputs`]: output paths checked against the inputs before any work.
 
 pub mod atomic;
 pub mod capacity;
@@ -25,6 +26,7 @@ pub mod deploy;
 pub mod evidence;
 pub mod interrupt;
 pub mod learn;
+pub mod outputs;
 pub mod project;
 pub mod reference;
 

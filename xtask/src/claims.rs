@@ -232,6 +232,18 @@ pub const CLAIMS: &[Claim] = &[
         context: "table by more than",
         backing: Backing::Setting("the footprint check's margin (xtask/src/footprint.rs MARGIN_FRACTION)"),
     },
+    Claim {
+        figure: "10^5",
+        context: "cases per surface",
+        backing: Backing::Test("trainer/tests/fuzz_host.rs::CASES"),
+    },
+    Claim {
+        figure: "10^7-step",
+        context: "visviva rollout --bits --out",
+        backing: Backing::Test(
+            "trainer/tests/rollout_memory.rs::long_rollouts_and_export_checks_stay_within_a_few_megabytes",
+        ),
+    },
 ];
 
 /// Figures on one prose line: numbers directly before " %" or "%",

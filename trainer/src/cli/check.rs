@@ -59,8 +59,34 @@ pub struct Args {
     pub plots: Option<PathBuf>,
 }
 
+/// Refuse outputs that would overwrite an input or cannot be written, and
+/// masses out of range, before any work.
+fn check_paths(args: &Args) -> Result<()> {
+    if let Some(m) = &args.mass {
+        crate::learn::stage::check_masses(m, "--masses")?;
+    }
+    let mut inputs = vec![
+        ("--model", args.model.as_path()),
+        ("--validation", args.data.as_path()),
+    ];
+    inputs.extend(args.baseline.as_deref().map(|p| ("--baseline", p)));
+    inputs.extend(args.history.as_deref().map(|p| ("--history", p)));
+    let outputs: Vec<_> = args
+        .report
+        .as_deref()
+        .map(|p| ("--report", p))
+        .into_iter()
+        .collect();
+    crate::outputs::check_outputs(&inputs, &outputs)?;
+    if let Some(dir) = &args.plots {
+        crate::outputs::check_output_dir("--plots", dir)?;
+    }
+    Ok(())
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
+    check_paths(&args)?;
     let bytes = std::fs::read(&args.model)
         .with_context(|| format!("{}: cannot read", args.model.display()))?;
     let model =
@@ -81,6 +107,15 @@ pub fn run(args: Args) -> Result<()> {
         return run_port(&args, &model, &bytes, &opts, baseline.as_ref());
     }
     let data = load_csv(&args.data, &opts)?;
+    if data.inputs > 0 {
+        eprintln!(
+            "warning: {}: input columns u1..u{} are ignored: the model {} takes no inputs, so \
+             its rollouts run unforced and will not follow a driven log",
+            args.data.display(),
+            data.inputs,
+            args.model.display()
+        );
+    }
     let system = args
         .system
         .as_deref()

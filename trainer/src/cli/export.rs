@@ -40,19 +40,28 @@ pub struct Args {
 
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
-    let src = BlobModel::read(&args.model)?;
+    let overrides = args.integrator.checked_overrides()?;
     if args.check_states == 0 {
         bail!("--check-states must be at least 1");
     }
+    if args.check_steps == 0 {
+        bail!("--check-steps must be at least 1 (a check of nothing proves nothing)");
+    }
+    let mut outputs = vec![("--out", args.out.as_path())];
+    outputs.extend(args.json.as_deref().map(|p| ("--json", p)));
+    crate::outputs::check_outputs(&[("--model", args.model.as_path())], &outputs)?;
+    let src = BlobModel::read(&args.model)?;
     let state_bytes = 24 + 8 * src.dof as u128;
     check_memory("--check-states", args.check_states as u128, state_bytes)?;
     let (bytes, r) = export(
         &src,
         args.weights,
-        &args.integrator.overrides(),
+        &overrides,
         args.check_steps,
         args.check_states,
     )?;
+    let port = src.dissipation.is_some() || src.input.is_some();
+    crate::deploy::verdict::refuse_untrusted(&r, port)?;
     write_atomic(&args.out, &bytes)?;
     if let Some(j) = &args.json {
         write_atomic(j, serde_json::to_string_pretty(&r)?.as_bytes())?;
@@ -82,13 +91,6 @@ pub fn run(args: Args) -> Result<()> {
          (in normalization scales); learned-energy drift {:.3e} (f32) vs {:.3e} (exported), in energy scales",
         r.check_steps, args.check_states, r.max_state_deviation, r.energy_drift_reference, r.energy_drift_exported
     );
-    if r.failed_rollouts > 0 {
-        println!(
-            "  warning: {} of {} check rollouts stopped early (step too large or the model left its range)",
-            r.failed_rollouts,
-            2 * args.check_states
-        );
-    }
     println!("{}", crate::CAUTION);
     Ok(())
 }

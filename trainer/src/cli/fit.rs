@@ -17,7 +17,8 @@ use crate::learn::fit::{self, FitSettings, TrainReport};
 use crate::learn::hnn::{EnergyModel, HnnObjective, HnnWork, Objective, PortArch, PortObjective};
 use crate::learn::mode::{plan_mode, FitMode, ModeRequest};
 use crate::learn::stage::{
-    fit_stage_mode, interrupt_flag, plan_model, stop_text, FitOutcome, ModelPlan, SettingNames,
+    check_fit_settings, check_masses, check_time_step, fit_stage_mode, interrupt_flag, plan_model,
+    stop_text, FitOutcome, ModelPlan, SettingNames,
 };
 use crate::learn::structure::{arch_choice, ActivationName, Arch, KineticKind};
 
@@ -258,7 +259,7 @@ fn fit_settings(args: &Args) -> FitSettings {
         steps: args.steps,
         batch: args.batch,
         lr: args.lr,
-        threads: args.threads.max(1),
+        threads: args.threads,
         early_stop: !args.no_early_stop,
         patience: args.patience,
         seed: args.seed,
@@ -302,12 +303,6 @@ fn split(
     map: Option<&ColumnMap>,
     opts: &LoadOptions,
 ) -> Result<(Dataset, Option<Dataset>)> {
-    if !(0.0..1.0).contains(&args.val_fraction) {
-        bail!(
-            "--val-fraction must be in [0, 1), got {}",
-            args.val_fraction
-        );
-    }
     match &args.val {
         Some(path) => {
             let (v, _) = columns::load_any(path, map, opts)?;
@@ -406,8 +401,38 @@ fn fit_mode(
     Ok(tp)
 }
 
+/// Refuse flags out of their range, and outputs that would overwrite an
+/// input or each other or cannot be written, before any work.
+fn check_flags(args: &Args, settings: &FitSettings) -> Result<()> {
+    check_fit_settings(settings, SettingNames::Flags)?;
+    if !(0.0..1.0).contains(&args.val_fraction) {
+        bail!(
+            "--val-fraction must be in [0, 1), got {}",
+            args.val_fraction
+        );
+    }
+    if let Some(dt) = args.dt {
+        check_time_step(dt, "--dt")?;
+    }
+    if let Some(m) = &args.mass {
+        check_masses(m, "--masses")?;
+    }
+    let baseline = baseline_path(&args.out);
+    let mut inputs = vec![("--train", args.data.as_path())];
+    inputs.extend(args.val.as_deref().map(|v| ("--validation", v)));
+    let mut outputs = vec![("--out", args.out.as_path())];
+    if args.baseline {
+        outputs.push(("--baseline (beside --out)", baseline.as_path()));
+    }
+    outputs.extend(args.history.as_deref().map(|p| ("--history", p)));
+    outputs.extend(args.json.as_deref().map(|p| ("--json", p)));
+    crate::outputs::check_outputs(&inputs, &outputs)
+}
+
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
+    let settings = fit_settings(&args);
+    check_flags(&args, &settings)?;
     let opts = LoadOptions {
         masses: args.mass.clone(),
         ..LoadOptions::default()
@@ -416,7 +441,6 @@ pub fn run(args: Args) -> Result<()> {
     let (all, rig) = columns::load_any(&args.data, map.as_ref(), &opts)?;
     let (train, val) = split(&args, all, map.as_ref(), &opts)?;
     let plan = plan(&args, &train)?;
-    let settings = fit_settings(&args);
     let trajectory = fit_mode(&args, rig.as_ref(), &train, &plan)?;
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} parameters{}",

@@ -47,12 +47,22 @@ pub struct Args {
 
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
+    let overrides = args.integrator.checked_overrides()?;
+    let mut inputs = vec![("--model", args.model.as_path())];
+    inputs.extend(args.inputs.as_deref().map(|p| ("--inputs", p)));
+    let outputs: Vec<_> = args
+        .out
+        .as_deref()
+        .map(|p| ("--out", p))
+        .into_iter()
+        .collect();
+    crate::outputs::check_outputs(&inputs, &outputs)?;
     let bytes = std::fs::read(&args.model)
         .map_err(|e| anyhow!("{}: cannot read: {e}", args.model.display()))?;
     let model =
         HostModel::from_bytes(&bytes).map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
     let model = model
-        .with_integrator(args.integrator.overrides().apply(model.integrator()))
+        .with_integrator(overrides.apply(model.integrator()))
         .map_err(|e| anyhow!("{e}"))?;
     let dof = visviva_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;

@@ -30,6 +30,9 @@ pub struct Args {
 /// Run the command.
 pub fn run(args: Args) -> Result<()> {
     let started = Instant::now();
+    // Ctrl-C from here on stops the fit cleanly (an interrupted fit is an
+    // error and records nothing).
+    crate::learn::stage::interrupt_flag();
     let prep = pipeline::prepare(&args.dir)?;
     println!(
         "visviva run: {} ({})",

@@ -31,6 +31,14 @@ pub struct IntegratorArgs {
 }
 
 impl IntegratorArgs {
+    /// The flags as the library's overrides, each refused when out of its
+    /// range (naming the flag).
+    pub fn checked_overrides(&self) -> anyhow::Result<IntegratorOverrides> {
+        let o = self.overrides();
+        o.check(|key| format!("--{}", key.replace('_', "-")))?;
+        Ok(o)
+    }
+
     /// The flags as the library's overrides.
     pub fn overrides(&self) -> IntegratorOverrides {
         IntegratorOverrides {

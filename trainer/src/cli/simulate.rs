@@ -128,6 +128,7 @@ pub fn run(args: Args) -> anyhow::Result<()> {
     let system = build_system(&args.system, &args.params)?;
     let spec = spec_of(&args)?;
     spec.check_output(system.as_ref(), &args.out)?;
+    crate::outputs::check_outputs(&[], &[("--out", args.out.as_path())])?;
     let mut ds = simulate(system.as_ref(), &spec)?;
     let line = write_log(&args, &mut ds, system.name(), system.params())?;
     if system.has_port_terms() {

@@ -94,6 +94,19 @@ pub enum DataProblem {
         /// Samples needed.
         needed: usize,
     },
+    /// A column name appears twice in the header.
+    DuplicateColumn {
+        /// 1-based position of its first appearance.
+        first: usize,
+        /// 1-based position of the repeat.
+        again: usize,
+    },
+    /// The header is one field holding another separator: the file is not
+    /// comma-separated.
+    WrongSeparator(char),
+    /// A value computed from the log (a momentum m v, an estimated
+    /// derivative) is not finite: what overflowed.
+    Overflow(String),
     /// A trajectory id appears again after other trajectories.
     TrajectoryNotContiguous {
         /// Trajectory id.
@@ -157,6 +170,23 @@ impl fmt::Display for DataError {
                 f,
                 "trajectory '{traj}' has {samples} samples; at least {needed} are needed to estimate derivatives"
             ),
+            DataProblem::DuplicateColumn { first, again } => write!(
+                f,
+                "the column appears twice (columns {first} and {again}); rename or remove one"
+            ),
+            DataProblem::WrongSeparator(c) => write!(
+                f,
+                "the header is a single column holding '{}': the file looks separated by {}, \
+                 but logs are comma-separated (replace the separator with ',' and decimal \
+                 commas with '.')",
+                c.escape_default(),
+                match c {
+                    ';' => "semicolons",
+                    '\t' => "tabs",
+                    _ => "another character",
+                }
+            ),
+            DataProblem::Overflow(what) => write!(f, "{what} is not finite (overflow)"),
             DataProblem::TrajectoryNotContiguous { traj, first_line } => write!(
                 f,
                 "trajectory '{traj}' reappears; its rows must be contiguous (first block starts at line {first_line})"
@@ -182,6 +212,31 @@ struct Layout {
     /// u columns (only when inputs are read).
     u: Vec<usize>,
     names: Vec<String>,
+}
+
+/// The header's names before any column is looked up: a name given twice
+/// (the second would be silently ignored), or one field that holds another
+/// separator (a file that is not comma-separated).
+fn check_header(file: &Path, names: &[String]) -> Result<(), DataError> {
+    let err = HeaderErrors { file };
+    if let [only] = names {
+        if let Some(c) = [';', '\t', '|'].into_iter().find(|c| only.contains(*c)) {
+            return Err(DataError {
+                column: None,
+                ..err.at("", DataProblem::WrongSeparator(c))
+            });
+        }
+    }
+    for (k, name) in names.iter().enumerate() {
+        if let Some(first) = names[..k].iter().position(|n| n == name) {
+            let problem = DataProblem::DuplicateColumn {
+                first: first + 1,
+                again: k + 1,
+            };
+            return Err(err.at(name, problem));
+        }
+    }
+    Ok(())
 }
 
 /// Indexed columns `prefix1..prefixN` (contiguous from 1).
@@ -249,6 +304,14 @@ fn parse_layout(
     let masses = if velocity {
         Some(masses_for_velocities(&err, opts, layout.q.len())?)
     } else {
+        if opts.masses.is_some() {
+            eprintln!(
+                "warning: {}: the log has momenta p1..p{}, so the masses given are not used \
+                 (they only turn velocity columns v1..vn into momenta)",
+                file.display(),
+                layout.q.len()
+            );
+        }
         None
     };
     Ok((layout, masses))
@@ -429,6 +492,7 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
         return Err(file_err(1, None, DataProblem::Empty));
     }
     let names: Vec<String> = headers.iter().map(str::to_string).collect();
+    check_header(path, &names)?;
     let (layout, masses) = parse_layout(path, names, opts)?;
     let blocks = read_blocks(path, &mut reader, &layout, masses.as_deref())?;
     let trajectories = blocks
@@ -529,15 +593,25 @@ fn read_blocks(
         for &c in &layout.q {
             block.x.push(field(c)?);
         }
+        // p = m v (and dp = m dv) must stay finite.
+        let momentum = |k: usize, c: usize| -> Result<f64, DataError> {
+            let (m, value) = (mass(k), field(c)?);
+            let v = m * value;
+            let name = Some(layout.names[c].clone());
+            let what = format!("mass {m} x {value}");
+            v.is_finite()
+                .then_some(v)
+                .ok_or_else(|| file_err(line, name, DataProblem::Overflow(what)))
+        };
         for (k, &c) in layout.p.iter().enumerate() {
-            block.x.push(mass(k) * field(c)?);
+            block.x.push(momentum(k, c)?);
         }
         if let Some((dq, dp)) = &layout.derivatives {
             for &c in dq {
                 block.dx.push(field(c)?);
             }
             for (k, &c) in dp.iter().enumerate() {
-                block.dx.push(mass(k) * field(c)?);
+                block.dx.push(momentum(k, c)?);
             }
         }
         for &c in &layout.u {
@@ -591,6 +665,17 @@ fn to_trajectory(
         }
         dx
     };
+    if let Some(((row, c), _)) = dx.indexed_iter().find(|(_, v)| !v.is_finite()) {
+        let prefix = if c < n { "dq" } else { "dp" };
+        return Err(DataError {
+            file: path.to_path_buf(),
+            line: block.lines[row],
+            column: Some(format!("{prefix}{}", c % n + 1)),
+            problem: DataProblem::Overflow(
+                "the derivative estimated from the values and time steps".into(),
+            ),
+        });
+    }
     Ok(Trajectory {
         id: block.id,
         t: block.t,

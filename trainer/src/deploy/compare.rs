@@ -29,7 +29,7 @@ pub enum Verdict {
 /// A value as written: `0x…` bit patterns are f32 bits, anything else a
 /// decimal number rounded to the nearest f32 (the runtime's precision; the
 /// shortest round-trip decimals `visviva rollout` writes parse back exactly).
-fn value(s: &str, path: &Path, line: usize, col: &str) -> Result<f64> {
+fn value(s: &str, path: &Path, line: usize, col: &str) -> Result<f32> {
     let t = s.trim();
     if let Some(hex) = t.strip_prefix("0x") {
         let bits = u32::from_str_radix(hex, 16).with_context(|| {
@@ -38,14 +38,31 @@ fn value(s: &str, path: &Path, line: usize, col: &str) -> Result<f64> {
                 path.display()
             )
         })?;
-        return Ok(f32::from_bits(bits) as f64);
+        return Ok(f32::from_bits(bits));
     }
-    t.parse::<f32>().map(f64::from).with_context(|| {
+    t.parse::<f32>().with_context(|| {
         format!(
             "{}: line {line}, column {col}: '{t}' is not a number",
             path.display()
         )
     })
+}
+
+/// Whether two values match: identical bits, or with `rel`, within the
+/// relative tolerance. A NaN matches only a NaN of identical bits, in both
+/// modes (no tolerance can say how far apart two NaNs are), so whatever is
+/// bit-identical also matches within any tolerance.
+pub fn values_match(x: f32, y: f32, rel: Option<f64>) -> bool {
+    if x.to_bits() == y.to_bits() {
+        return true;
+    }
+    match rel {
+        Some(tol) if !x.is_nan() && !y.is_nan() => {
+            let (x, y) = (f64::from(x), f64::from(y));
+            x == y || (x - y).abs() <= tol * x.abs().max(y.abs())
+        }
+        _ => false,
+    }
 }
 
 fn read(path: &Path) -> Result<(Vec<String>, Vec<csv::StringRecord>)> {
@@ -57,6 +74,12 @@ fn read(path: &Path) -> Result<(Vec<String>, Vec<csv::StringRecord>)> {
         .iter()
         .map(str::to_string)
         .collect();
+    if header.iter().all(|h| h.trim().is_empty()) {
+        bail!(
+            "{}: line 1: no header (an empty file); there is nothing to compare",
+            path.display()
+        );
+    }
     let rows = r
         .records()
         .enumerate()
@@ -64,6 +87,12 @@ fn read(path: &Path) -> Result<(Vec<String>, Vec<csv::StringRecord>)> {
             rec.with_context(|| format!("{}: line {}: malformed row", path.display(), k + 2))
         })
         .collect::<Result<Vec<_>>>()?;
+    if rows.is_empty() {
+        bail!(
+            "{}: line 2: no data rows after the header; there is nothing to compare",
+            path.display()
+        );
+    }
     Ok((header, rows))
 }
 
@@ -85,11 +114,7 @@ pub fn compare(a: &Path, b: &Path, rel: Option<f64>) -> Result<Verdict> {
             let (sx, sy) = (x.get(c).unwrap_or(""), y.get(c).unwrap_or(""));
             let vx = value(sx, a, k + 2, col)?;
             let vy = value(sy, b, k + 2, col)?;
-            let same = match rel {
-                None => vx.to_bits() == vy.to_bits() || (vx.is_nan() && vy.is_nan()),
-                Some(tol) => vx == vy || (vx - vy).abs() <= tol * vx.abs().max(vy.abs()),
-            };
-            if !same {
+            if !values_match(vx, vy, rel) {
                 return Ok(Verdict::Differs {
                     step: k,
                     column: col.clone(),

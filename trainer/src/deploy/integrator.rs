@@ -103,6 +103,31 @@ pub struct IntegratorOverrides {
 }
 
 impl IntegratorOverrides {
+    /// Refuse overrides out of their range before any work, each named by
+    /// `name(key)` (e.g. `--dt`).
+    pub fn check(&self, name: impl Fn(&str) -> String) -> anyhow::Result<()> {
+        use visviva_runtime::integrate::{MAX_ITERATIONS, MAX_SUBSTEPS};
+        if let Some(dt) = self.dt {
+            crate::learn::stage::check_time_step(dt, &name("dt"))?;
+        }
+        if let Some(s) = self.substeps.filter(|s| !(1..=MAX_SUBSTEPS).contains(s)) {
+            anyhow::bail!("{} = {s}: must be in 1..={MAX_SUBSTEPS}", name("substeps"));
+        }
+        if let Some(i) = self
+            .max_iterations
+            .filter(|i| !(1..=MAX_ITERATIONS).contains(i))
+        {
+            anyhow::bail!(
+                "{} = {i}: must be in 1..={MAX_ITERATIONS}",
+                name("max_iterations")
+            );
+        }
+        if let Some(t) = self.tolerance.filter(|t| !(t.is_finite() && *t > 0.0)) {
+            anyhow::bail!("{} = {t}: must be a finite number > 0", name("tolerance"));
+        }
+        Ok(())
+    }
+
     /// `base` with the given overrides applied.
     pub fn apply(&self, base: Integrator) -> Integrator {
         Integrator {

@@ -1,5 +1,6 @@
 //! From a fitted model to a device: blob building and its owned mirror,
-//! export with its measured cost, host rollouts through the runtime.
+//! export with its measured cost and the verdict on whether it can be
+//! trusted, host rollouts through the runtime.
 
 pub mod blob;
 pub mod budget;
@@ -10,3 +11,4 @@ pub mod footprint;
 pub mod inspect;
 pub mod integrator;
 pub mod rollout;
+pub mod verdict;

@@ -273,7 +273,10 @@ pub fn parse_init(spec: &str, dof: usize) -> Result<Vec<f32>> {
             .split_once('=')
             .with_context(|| format!("--init: '{part}' is not NAME=VALUE"))?;
         let name = name.trim();
-        let (kind, idx) = name.split_at(1);
+        // The first character (any, not a byte) names q or p.
+        let mut chars = name.chars();
+        let kind = chars.next().map_or("", |c| &name[..c.len_utf8()]);
+        let idx = chars.as_str();
         let i: usize = idx
             .parse()
             .ok()

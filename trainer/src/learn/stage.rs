@@ -1,9 +1,11 @@
 //! The fit stage that `visviva fit` and `visviva run` share: the model plan
 //! (every refusal before any work), Ctrl-C handling, the fit of the energy
 //! model (conservative, or damped and/or driven) and of the plain baseline,
-//! and the one wording of how a fit ended.
+//! the refusal of settings out of range and of fits that cannot be trusted
+//! (interrupted, or NaN from the start), and the one wording of how a fit
+//! ended.
 
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 
 use anyhow::{bail, Result};
@@ -12,7 +14,9 @@ use visviva_runtime::{Integrator, Method};
 use crate::data::dataset::Dataset;
 use crate::deploy::blob::WeightKind;
 use crate::deploy::integrator::{default_method, method_name, MethodName};
-use crate::learn::fit::{fit_baseline, fit_model, ArchChoice, FitSettings, Fitted, StopReason};
+use crate::learn::fit::{
+    fit_baseline, fit_model, ArchChoice, FitSettings, Fitted, StopReason, TrainReport,
+};
 use crate::learn::hnn::{BaselineModel, EnergyArch, EnergyModel, PortArch};
 
 /// How settings are named in messages: command-line flags or the keys of
@@ -32,6 +36,95 @@ impl SettingNames {
             SettingNames::Flags => format!("--{}", key.replace('_', "-")),
             SettingNames::ProjectKeys => format!("[model] {key}"),
         }
+    }
+
+    /// The user-facing name of setting `key` of project table `table`
+    /// (flags ignore the table).
+    pub fn in_table(self, table: &str, key: &str) -> String {
+        match self {
+            SettingNames::Flags => format!("--{}", key.replace('_', "-")),
+            SettingNames::ProjectKeys => format!("[{table}] {key}"),
+        }
+    }
+}
+
+/// Refuse fit settings out of their range before any work, each named as
+/// `names` says (`--epochs` or `[fit] epochs`).
+pub fn check_fit_settings(s: &FitSettings, names: SettingNames) -> Result<()> {
+    let name = |key: &str| names.in_table("fit", key);
+    if s.steps.is_none() && s.epochs == 0 {
+        bail!(
+            "{} = 0: a fit needs at least one pass over the data",
+            name("epochs")
+        );
+    }
+    if s.steps == Some(0) {
+        bail!(
+            "{} = 0: a fit needs at least one step",
+            name("optimizer_steps")
+        );
+    }
+    for (key, v) in [("batch", s.batch), ("threads", s.threads)] {
+        if v == 0 {
+            bail!("{} = 0: must be at least 1", name(key));
+        }
+    }
+    if !(s.lr.is_finite() && s.lr > 0.0) {
+        bail!(
+            "{} = {}: the learning rate must be a finite number > 0",
+            name("lr"),
+            s.lr
+        );
+    }
+    Ok(())
+}
+
+/// Refuse a time step that no integrator can use: not finite, not
+/// positive, or below the smallest normal f32 (the device's arithmetic).
+pub fn check_time_step(dt: f32, setting: &str) -> Result<()> {
+    if !(dt.is_finite() && dt > 0.0 && dt.is_normal()) {
+        bail!("{setting} = {dt}: the time step must be a finite number of seconds > 0");
+    }
+    Ok(())
+}
+
+/// Refuse masses that are not finite and positive, or that the device's
+/// f32 arithmetic cannot hold as normal numbers (about 1.2e-38 to 3.4e38).
+pub fn check_masses(masses: &[f64], setting: &str) -> Result<()> {
+    for (k, m) in masses.iter().enumerate() {
+        let as_f32 = *m as f32;
+        if !(m.is_finite() && *m > 0.0 && as_f32.is_normal() && as_f32.is_finite()) {
+            bail!(
+                "{setting}: mass {} = {m:e} is not a positive number the device's f32 arithmetic \
+                 can hold (about 1.2e-38 to 3.4e38)",
+                k + 1
+            );
+        }
+    }
+    Ok(())
+}
+
+/// Refuse a fit whose result cannot be trusted: interrupted (Ctrl-C), or
+/// whose loss was NaN or infinite before any epoch finished (the weights
+/// would be the untrained start). `what` names the fitted model.
+pub fn check_trusted(r: &TrainReport, what: &str) -> Result<()> {
+    match r.stop {
+        StopReason::Interrupted => bail!(
+            "{what}: the fit was interrupted (Ctrl-C) after {} optimizer steps; nothing was \
+             written, since an interrupted fit is not a finished model (ask for fewer epochs \
+             for a shorter fit)",
+            r.steps
+        ),
+        StopReason::NonFinite { step } if r.best_epoch.is_none() => bail!(
+            "{what}: the loss became NaN or infinite at optimizer step {step}, before any \
+             epoch finished, so nothing was learned and nothing was written; try a smaller \
+             learning rate and check the log's units and masses"
+        ),
+        _ if !r.best_val.is_finite() => bail!(
+            "{what}: the best validation loss is {}; nothing was written",
+            r.best_val
+        ),
+        _ => Ok(()),
     }
 }
 
@@ -127,8 +220,9 @@ fn stored_integrator(
             None => bail!("cannot infer {setting}: the log has no two consecutive samples"),
         },
     };
+    check_time_step(dt, setting)?;
     let integrator = Integrator::new(method, dt);
-    if !(dt.is_finite() && dt > 0.0 && integrator.is_valid()) {
+    if !integrator.is_valid() {
         bail!("{setting} = {dt} s is not a usable time step");
     }
     Ok(integrator)
@@ -162,12 +256,13 @@ pub struct FitOutcome {
     pub model: Fitted<EnergyModel>,
     /// The model as an f32 blob with the planned integrator.
     pub blob: Vec<u8>,
-    /// The baseline, when asked for and not interrupted.
+    /// The baseline, when asked for.
     pub baseline: Option<Fitted<BaselineModel>>,
 }
 
 /// Fit the planned model to `train` (early stopping on `val`), encode it,
-/// and fit the baseline when `baseline` is set and Ctrl-C was not pressed.
+/// and fit the baseline when `baseline` is set; an interrupted fit or one
+/// that learned nothing is an error (see [`check_trusted`]).
 pub fn fit_stage(
     train: &Dataset,
     val: Option<&Dataset>,
@@ -193,21 +288,14 @@ pub fn fit_stage_mode(
         Some(tp) => crate::learn::mode::fit_by_trajectories(train, val, plan, settings, tp)?,
         None => fit_model(train, val, &plan.arch, &plan.terms, settings)?,
     };
+    check_trusted(&model.report, "energy model")?;
     let blob =
         crate::deploy::fitted_blob::energy_blob(&model.model, plan.integrator, WeightKind::F32)?;
-    let interrupted = settings
-        .interrupt
-        .as_ref()
-        .is_some_and(|f| f.load(Ordering::SeqCst));
-    let baseline = if baseline && !interrupted {
+    let baseline = if baseline {
         let hidden = &plan.choice.hidden;
-        Some(fit_baseline(
-            train,
-            val,
-            hidden,
-            plan.choice.activation,
-            settings,
-        )?)
+        let fitted = fit_baseline(train, val, hidden, plan.choice.activation, settings)?;
+        check_trusted(&fitted.report, "baseline")?;
+        Some(fitted)
     } else {
         None
     };

@@ -298,7 +298,7 @@ impl Project {
         if self.fit.epochs == 0 || self.fit.batch == 0 || self.fit.threads == 0 {
             anyhow::bail!("[fit] epochs, batch and threads must be at least 1");
         }
-        Ok(())
+        crate::project::validate::check_ranges(self)
     }
 
     /// Export targets, with the default when none are given.

@@ -5,3 +5,5 @@ pub mod cache;
 pub mod file;
 pub mod fleet;
 pub mod pipeline;
+pub mod stale;
+pub mod validate;

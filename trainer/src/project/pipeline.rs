@@ -136,7 +136,7 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    Ok(Prepared {
+    let prep = Prepared {
         dir: dir.to_path_buf(),
         out: dir.join("out"),
         name,
@@ -146,7 +146,39 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         data,
         mode,
         trajectory,
-    })
+    };
+    check_out_folder(&prep).with_context(|| file.clone())?;
+    reference_system(&prep).with_context(|| file.clone())?;
+    Ok(prep)
+}
+
+/// `out/` can be written and holds none of the project's logs (`run`
+/// rewrites what it holds).
+fn check_out_folder(prep: &Prepared) -> Result<()> {
+    let train = prep.dir.join(&prep.project.data.train);
+    let val = prep
+        .project
+        .data
+        .validation
+        .as_ref()
+        .map(|v| prep.dir.join(v));
+    let mut inputs = vec![("[data] train", train.as_path())];
+    inputs.extend(val.as_deref().map(|v| ("[data] validation", v)));
+    crate::outputs::check_output_dir("out/", &prep.out)?;
+    crate::outputs::check_inputs_outside(&inputs, "out/", &prep.out)
+}
+
+/// The project's logs, which the clean-up of `out/` must spare.
+fn input_paths(prep: &Prepared) -> Vec<PathBuf> {
+    let mut inputs = vec![prep.dir.join(&prep.project.data.train)];
+    inputs.extend(
+        prep.project
+            .data
+            .validation
+            .as_ref()
+            .map(|v| prep.dir.join(v)),
+    );
+    inputs
 }
 
 /// The fit mode from `[fit]` and the log (see [`crate::learn::mode`]).
@@ -375,6 +407,15 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         project.fit.baseline,
         prep.trajectory.as_ref(),
     )?;
+    // The new model replaces the old one: first the hash and every file
+    // derived from the old model go, so that `out/` never pairs them.
+    if hash_path.exists() {
+        std::fs::remove_file(&hash_path)
+            .with_context(|| format!("{}: cannot remove", hash_path.display()))?;
+    }
+    let inputs = input_paths(prep);
+    let spared: Vec<&Path> = inputs.iter().map(PathBuf::as_path).collect();
+    crate::project::stale::remove_derived(out, &spared)?;
     write_atomic(&model_path, &done.blob)?;
     let m = &done.model.model;
     let params = m.params.len() + m.port.as_ref().map_or(0, |p| p.params.len());
@@ -650,6 +691,8 @@ fn export_target(
         None => {
             let (bytes, r) =
                 export_blob(&checked.src, t.weights, &overrides, check.horizon_steps, 8)?;
+            crate::deploy::verdict::refuse_untrusted(&r, prep.port())
+                .with_context(|| format!("[[export]] '{}'", t.name))?;
             write_atomic(&blob_path, &bytes)?;
             write_json(&meta_path, &r)?;
             write_atomic(&hash_path, hash.as_bytes())?;

@@ -4,3 +4,4 @@
 pub mod dataset;
 pub mod derivative;
 pub mod log;
+pub mod measure_log;

@@ -3,6 +3,7 @@
 
 pub mod charts;
 pub mod check;
+pub mod cv_filter;
 pub mod fleet_report;
 pub mod outliers;
 pub mod report;

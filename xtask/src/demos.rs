@@ -132,7 +132,7 @@ const DEMOS: &[(&str, &[Log])] = &[
                     "--system",
                     "flexure",
                     "--trajectories",
-                    "20",
+                    "40",
                     "--duration",
                     "2",
                     "--rate",

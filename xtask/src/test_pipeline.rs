@@ -65,7 +65,7 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test --release: visviva-tests and the trainer's port checks (outside references)",
+            "cargo test --release: visviva-tests, the trainer's port checks and observer checks (outside references)",
             &|| {
                 Ok(cargo_stage(&["test", "-p", "visviva-tests", "--release"])?
                     && cargo_stage(&[
@@ -77,6 +77,12 @@ pub fn run() -> Result<bool> {
                         "port_checks",
                         "--test",
                         "port_project",
+                        "--test",
+                        "observer_crane",
+                        "--test",
+                        "observer_faults",
+                        "--test",
+                        "observe_cli",
                     ])?)
             },
         ),

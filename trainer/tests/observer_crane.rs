@@ -147,3 +147,27 @@ fn observer_velocity_beats_finite_differences_and_the_cv_filter() {
     );
     assert!(e_obs < e_cv, "observer {e_obs} vs CV filter {e_cv}");
 }
+
+#[test]
+#[cfg_attr(
+    debug_assertions,
+    ignore = "runs the observer over long logs: seconds in release, minutes in debug; run with --release"
+)]
+fn run_report_section_compares_the_observer_on_the_validation_log() {
+    use visviva_trainer::evidence::observer_check::observer_report;
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("model.vvb");
+    std::fs::copy(demo().join("out/model.vvb"), &path).unwrap();
+    let bytes = std::fs::read(&path).unwrap();
+    let model = HostModel::from_bytes(&bytes).unwrap();
+    let opts = LoadOptions::default();
+    let train = load_csv(&demo().join("data/train.csv"), &opts).unwrap();
+    let val = load_csv(&demo().join("data/val.csv"), &opts).unwrap();
+    let r = observer_report(&model, &path, &train, &val, 50, "1%").unwrap();
+    println!("{r:?}");
+    assert!(dir.path().join("model.observer.toml").exists());
+    // Against the log's own (Savitzky-Golay) velocity the observer must
+    // still beat finite differences of the noisier positions.
+    assert!(r.velocity_rmse_observer[0] < r.velocity_rmse_finite_differences[0]);
+    assert!(r.position_rmse_observer[0] < r.position_rmse_measured[0]);
+}

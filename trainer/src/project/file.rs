@@ -33,6 +33,30 @@ pub struct Project {
     pub exports: Vec<ExportTarget>,
     /// The device's resources, to judge the blobs against.
     pub device: DeviceBudget,
+    /// The state observer: when present, `run` tunes it (settings written
+    /// to `out/model.observer.toml`) and adds an observer section to the
+    /// report.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub observer: Option<ObserverSection>,
+}
+
+/// `[observer]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct ObserverSection {
+    /// NIS window in updates: 20, 50 (default), 100 or 200.
+    pub window: usize,
+    /// Two-sided false-alarm rate: "10%", "5%", "1%" (default) or "0.2%".
+    pub false_alarm: String,
+}
+
+impl Default for ObserverSection {
+    fn default() -> Self {
+        Self {
+            window: 50,
+            false_alarm: "1%".into(),
+        }
+    }
 }
 
 /// `[data]`
@@ -279,6 +303,17 @@ impl Project {
         }
         if self.fit.epochs == 0 || self.fit.batch == 0 || self.fit.threads == 0 {
             anyhow::bail!("[fit] epochs, batch and threads must be at least 1");
+        }
+        if let Some(o) = &self.observer {
+            if !crate::deploy::observer_settings::WINDOWS.contains(&o.window) {
+                anyhow::bail!(
+                    "[observer] window {}: expected one of {:?}",
+                    o.window,
+                    crate::deploy::observer_settings::WINDOWS
+                );
+            }
+            crate::deploy::observer_settings::parse_false_alarm(&o.false_alarm)
+                .context("[observer] false_alarm")?;
         }
         Ok(())
     }

@@ -55,9 +55,11 @@ pub struct ObserverReport {
     pub velocity_rmse_finite_differences: Vec<f64>,
     /// Constant-velocity Kalman filter.
     pub velocity_rmse_cv_filter: Vec<f64>,
-    /// Position RMS error per coordinate: observer.
+    /// Position RMS error per coordinate against the log's q: observer
+    /// (a noisy log's own noise is in this reference).
     pub position_rmse_observer: Vec<f64>,
-    /// The noisy positions themselves.
+    /// The same for the fed positions (the added noise; 0 when none was
+    /// added).
     pub position_rmse_measured: Vec<f64>,
     /// Full NIS windows on the validation log.
     pub full_windows: usize,

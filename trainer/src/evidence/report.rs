@@ -319,7 +319,7 @@ fn observer_section(h: &mut Html<'_>, report: &RunReport) {
     };
     h.p("<h2 id=\"observer\">State observer</h2>");
     h.p(&format!(
-        "<p>Settings tuned from the training and validation logs and written to <code>out/{}</code> (window {} updates, false-alarm rate {}, process-noise scale {}). The validation log is fed with its positions only, topped up with Gaussian noise to the tuned noise level; velocities are compared with {}, positions with the log's q; the first 20 samples of each trajectory are left out. Baselines: central finite differences and the constant-velocity Kalman filter (Bar-Shalom, Li and Kirubarajan, 2001; its intensity the best of a grid on the training log).</p>",
+        "<p>Settings tuned from the training and validation logs and written to <code>out/{}</code> (window {} updates, false-alarm rate {}, process-noise scale {}). The validation log is fed with its positions only, topped up with Gaussian noise to the tuned noise level; velocities are compared with {}, positions with the log's q (a noisy log's own noise is in that reference); the first 20 samples of each trajectory are left out. Baselines: central finite differences and the constant-velocity Kalman filter (Bar-Shalom, Li and Kirubarajan, 2001; its intensity the best of a grid on the training log).</p>",
         esc(&o.settings_file),
         h.num("observer/window"),
         esc(&o.false_alarm),

@@ -339,6 +339,19 @@ mod tests {
     use super::*;
 
     #[test]
+    fn observer_section_defaults_and_refusals() {
+        assert!(Project::parse("").unwrap().observer.is_none());
+        let p = Project::parse("[observer]\n").unwrap();
+        assert_eq!(p.observer, Some(ObserverSection::default()));
+        let e = Project::parse("[observer]\nwindow = 30\n").unwrap_err();
+        assert!(format!("{e:#}").contains("[observer] window 30"), "{e:#}");
+        let e = Project::parse("[observer]\nfalse_alarm = \"3%\"\n").unwrap_err();
+        assert!(format!("{e:#}").contains("[observer] false_alarm"), "{e:#}");
+        let e = Project::parse("[observer]\nwindows = 50\n").unwrap_err();
+        assert!(format!("{e:#}").contains("line 2"), "{e:#}");
+    }
+
+    #[test]
     fn defaults_and_a_full_file() {
         let p = Project::parse("").unwrap();
         assert_eq!(p, Project::default());

@@ -4,6 +4,8 @@
 //! zero with the settings' spread), then every later row predicts as many
 //! model steps as its time gap holds (inputs of the previous row held) and
 //! corrects with the row's measurements; a missed sample only predicts.
+//! The first `settle_updates` updates of a trajectory are kept out of the
+//! monitor while the filter settles from its initial spread.
 //! [`observe_csv`] streams a log to the estimate CSV (atomic write).
 
 use std::io::Write;

@@ -188,7 +188,10 @@ fn run_cli(out: &Path, system: &str, noise: f64, keep: bool, seed: u64) -> anyho
         duration: 2.0,
         rate: 50.0,
         noise,
+        position_noise: 0.0,
         keep_derivatives: keep,
+        change: Vec::new(),
+        change_at: None,
         seed,
         out: out.to_path_buf(),
     })

@@ -65,7 +65,7 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test --release: visviva-tests (incl. rig_logs), the trainer's port checks (outside references), host-input fuzzing and the 10^7-step rollout's peak memory",
+            "cargo test --release: visviva-tests (incl. rig_logs), the trainer's port checks and observer checks (outside references), host-input fuzzing and the 10^7-step rollout's peak memory",
             &|| {
                 Ok(cargo_stage(&["test", "-p", "visviva-tests", "--release"])?
                     && cargo_stage(&[
@@ -79,6 +79,12 @@ pub fn run() -> Result<bool> {
                         "port_project",
                         "--test",
                         "fuzz_host",
+                        "--test",
+                        "observer_crane",
+                        "--test",
+                        "observer_faults",
+                        "--test",
+                        "observe_cli",
                     ])?
                     && cargo_stage(&[
                         "test",

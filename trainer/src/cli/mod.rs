@@ -10,10 +10,12 @@ pub mod export;
 pub mod fit;
 pub mod fleet;
 pub mod inspect;
+pub mod observe;
 pub mod rollout;
 pub mod run;
 pub mod shared_args;
 pub mod simulate;
+pub mod tune_observer;
 
 /// Visviva: from logged motion to a verified energy-consistent predictor on a
 /// microcontroller.
@@ -44,6 +46,10 @@ enum Command {
     Rollout(rollout::Args),
     /// Compare two trajectory CSVs bit for bit (exit 1 on a difference).
     Compare(compare::Args),
+    /// Run the state observer and health monitor over a measurement log.
+    Observe(observe::Args),
+    /// Tune a blob's observer settings from its training and validation logs.
+    TuneObserver(tune_observer::Args),
 }
 
 /// Parse the command line, run the command, and map its result to the exit
@@ -60,6 +66,8 @@ pub fn main() -> std::process::ExitCode {
         Command::Export(a) => export::run(a),
         Command::Inspect(a) => inspect::run(a),
         Command::Rollout(a) => rollout::run(a),
+        Command::Observe(a) => observe::run(a),
+        Command::TuneObserver(a) => tune_observer::run(a),
         Command::Compare(a) => match compare::run(a) {
             Ok(true) => Ok(()),
             Ok(false) => return std::process::ExitCode::from(1),

@@ -1,7 +1,10 @@
 //! `visviva simulate`: write reference trajectories of a built-in system to CSV.
 
 use crate::data::log::write_csv;
-use crate::reference::simulate::{add_noise, max_relative_energy_drift, simulate, SimulationSpec};
+use crate::reference::change::simulate_changed;
+use crate::reference::simulate::{
+    add_noise, add_position_noise, max_relative_energy_drift, simulate, SimulationSpec,
+};
 use crate::reference::{build_system, parse_param, CATALOG};
 use std::path::PathBuf;
 
@@ -39,9 +42,30 @@ pub struct Args {
     #[arg(long, value_name = "SIGMA", default_value_t = 0.0)]
     pub noise: f64,
 
+    /// Add Gaussian noise of this standard deviation (in the q columns'
+    /// units) to the positions only, as a position sensor would; the momenta
+    /// stay clean. Derivative columns are then left out as with --noise.
+    #[arg(
+        long,
+        value_name = "STD",
+        default_value_t = 0.0,
+        conflicts_with = "noise"
+    )]
+    pub position_noise: f64,
+
     /// With --noise, still write the (exact, noise-free) derivative columns.
     #[arg(long)]
     pub keep_derivatives: bool,
+
+    /// A changed machine: from --change-at on, these parameters replace the
+    /// system's (e.g. `--change l=8.8`); repeatable. Conservative systems
+    /// only; the state is continuous across the change.
+    #[arg(long = "change", value_name = "KEY=VALUE", value_parser = parse_param, requires = "change_at")]
+    pub change: Vec<(String, f64)>,
+
+    /// Time (s) of the change named by --change.
+    #[arg(long, value_name = "SECONDS", requires = "change")]
+    pub change_at: Option<f64>,
 
     /// Seed for the initial states and the noise.
     #[arg(long, value_name = "N", default_value_t = 0)]
@@ -106,19 +130,26 @@ fn write_log(
     params: &crate::reference::ParamValues,
 ) -> anyhow::Result<String> {
     add_noise(ds, args.noise, args.seed)?;
-    let with_derivatives = args.noise == 0.0 || args.keep_derivatives;
+    add_position_noise(ds, args.position_noise, args.seed)?;
+    let with_derivatives =
+        (args.noise == 0.0 && args.position_noise == 0.0) || args.keep_derivatives;
     write_csv(&args.out, ds, with_derivatives)?;
     let params: Vec<String> = params
         .iter()
         .map(|(k, v, u)| format!("{k}={v} {u}"))
         .collect();
     Ok(format!(
-        "wrote {} trajectories x {} samples of '{name}' ({}; {} Hz, noise {}, derivatives {}",
+        "wrote {} trajectories x {} samples of '{name}' ({}; {} Hz, noise {}{}, derivatives {}",
         ds.trajectories.len(),
         ds.trajectories.first().map_or(0, |t| t.t.len()),
         params.join(", "),
         args.rate,
         args.noise,
+        if args.position_noise > 0.0 {
+            format!(", position noise {}", args.position_noise)
+        } else {
+            String::new()
+        },
         if with_derivatives { "exact" } else { "omitted" },
     ))
 }
@@ -129,12 +160,25 @@ pub fn run(args: Args) -> anyhow::Result<()> {
     let spec = spec_of(&args)?;
     spec.check_output(system.as_ref(), &args.out)?;
     crate::outputs::check_outputs(&[], &[("--out", args.out.as_path())])?;
-    let mut ds = simulate(system.as_ref(), &spec)?;
+    let mut ds = match args.change_at {
+        Some(at) => {
+            let mut changed = args.params.clone();
+            changed.extend(args.change.iter().cloned());
+            let after = build_system(&args.system, &changed)?;
+            simulate_changed(system.as_ref(), after.as_ref(), at, &spec)?
+        }
+        None => simulate(system.as_ref(), &spec)?,
+    };
     let line = write_log(&args, &mut ds, system.name(), system.params())?;
     if system.has_port_terms() {
         println!(
             "{line}, {} input columns) to {}",
             system.inputs(),
+            args.out.display()
+        );
+    } else if let Some(at) = args.change_at {
+        println!(
+            "{line}) to {}; parameters changed at t = {at} s",
             args.out.display()
         );
     } else {

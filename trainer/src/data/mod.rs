@@ -5,3 +5,4 @@ pub mod columns;
 pub mod dataset;
 pub mod derivative;
 pub mod log;
+pub mod measure_log;

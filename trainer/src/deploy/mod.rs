@@ -10,5 +10,8 @@ pub mod fitted_blob;
 pub mod footprint;
 pub mod inspect;
 pub mod integrator;
+pub mod observe;
+pub mod observer_settings;
+pub mod observer_tuning;
 pub mod rollout;
 pub mod verdict;

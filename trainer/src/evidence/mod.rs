@@ -3,7 +3,9 @@
 
 pub mod charts;
 pub mod check;
+pub mod cv_filter;
 pub mod fleet_report;
+pub mod observer_check;
 pub mod outliers;
 pub mod report;
 pub mod svgplot;

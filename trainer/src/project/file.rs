@@ -38,6 +38,30 @@ pub struct Project {
     /// canonical layout `traj,t,q1..`); see [`crate::data::columns`].
     #[serde(skip_serializing_if = "Option::is_none")]
     pub columns: Option<ColumnMap>,
+    /// The state observer: when present, `run` tunes it (settings written
+    /// to `out/model.observer.toml`) and adds an observer section to the
+    /// report.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub observer: Option<ObserverSection>,
+}
+
+/// `[observer]`
+#[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields, default)]
+pub struct ObserverSection {
+    /// NIS window in updates: 20, 50 (default), 100 or 200.
+    pub window: usize,
+    /// Two-sided false-alarm rate: "10%", "5%", "1%" (default) or "0.2%".
+    pub false_alarm: String,
+}
+
+impl Default for ObserverSection {
+    fn default() -> Self {
+        Self {
+            window: 50,
+            false_alarm: "1%".into(),
+        }
+    }
 }
 
 /// `[data]`
@@ -298,6 +322,17 @@ impl Project {
         if self.fit.epochs == 0 || self.fit.batch == 0 || self.fit.threads == 0 {
             anyhow::bail!("[fit] epochs, batch and threads must be at least 1");
         }
+        if let Some(o) = &self.observer {
+            if !crate::deploy::observer_settings::WINDOWS.contains(&o.window) {
+                anyhow::bail!(
+                    "[observer] window {}: expected one of {:?}",
+                    o.window,
+                    crate::deploy::observer_settings::WINDOWS
+                );
+            }
+            crate::deploy::observer_settings::parse_false_alarm(&o.false_alarm)
+                .context("[observer] false_alarm")?;
+        }
         crate::project::validate::check_ranges(self)
     }
 
@@ -320,6 +355,19 @@ impl Project {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn observer_section_defaults_and_refusals() {
+        assert!(Project::parse("").unwrap().observer.is_none());
+        let p = Project::parse("[observer]\n").unwrap();
+        assert_eq!(p.observer, Some(ObserverSection::default()));
+        let e = Project::parse("[observer]\nwindow = 30\n").unwrap_err();
+        assert!(format!("{e:#}").contains("[observer] window 30"), "{e:#}");
+        let e = Project::parse("[observer]\nfalse_alarm = \"3%\"\n").unwrap_err();
+        assert!(format!("{e:#}").contains("[observer] false_alarm"), "{e:#}");
+        let e = Project::parse("[observer]\nwindows = 50\n").unwrap_err();
+        assert!(format!("{e:#}").contains("line 2"), "{e:#}");
+    }
 
     #[test]
     fn defaults_and_a_full_file() {

@@ -804,6 +804,7 @@ pub fn report(
     devices: Vec<DeviceBlob>,
 ) -> Result<RunReport> {
     let budget_pass = devices.iter().all(|d| d.budget.pass);
+    let observer = observer_stage(prep)?;
     let report = RunReport {
         project: prep.name.clone(),
         visviva_version: env!("CARGO_PKG_VERSION").into(),
@@ -815,10 +816,34 @@ pub fn report(
         devices,
         budget: prep.project.device.clone(),
         budget_pass,
+        observer,
         caution: crate::CAUTION.into(),
     };
     write_json(&prep.out.join("report.json"), &report)?;
     let html = crate::evidence::report::render_html(&report, &checked.figures);
     write_atomic(&prep.out.join("report.html"), html.as_bytes())?;
     Ok(report)
+}
+
+/// With an `[observer]` section: tune the observer of `out/model.vvb`,
+/// write its settings beside it and compare it on the validation log.
+fn observer_stage(
+    prep: &Prepared,
+) -> Result<Option<crate::evidence::observer_check::ObserverReport>> {
+    let Some(o) = &prep.project.observer else {
+        return Ok(None);
+    };
+    let path = prep.out.join("model.vvb");
+    let bytes = std::fs::read(&path).with_context(|| format!("reading {}", path.display()))?;
+    let model = HostModel::from_bytes(&bytes).map_err(|e| anyhow!("{}: {e}", path.display()))?;
+    let r = crate::evidence::observer_check::observer_report(
+        &model,
+        &path,
+        &prep.logs.train,
+        &prep.logs.val,
+        o.window,
+        &o.false_alarm,
+    )
+    .context("[observer]")?;
+    Ok(Some(r))
 }

@@ -10,6 +10,7 @@
 use rand_chacha::ChaCha8Rng;
 use std::fmt;
 
+pub mod change;
 pub mod crane;
 pub mod drivetrain;
 pub mod excitation;

@@ -1,0 +1,217 @@
+//! The observer in `visviva run`'s report (projects with an `[observer]`
+//! section): settings tuned from the training and validation logs and
+//! written beside the model (`out/model.observer.toml`), then the
+//! validation log fed with positions only, topped up with seeded Gaussian
+//! noise to the tuned (logged) noise level (added variance: the tuned one
+//! minus the validation log's own noise estimate, none if that is larger): velocity and position RMS error
+//! per coordinate of the observer, of central finite differences and of the
+//! constant-velocity Kalman filter (`cv_filter`, its intensity the best of a
+//! grid against the training log's velocities), against the log's own dq/dt
+//! (given, or estimated by Savitzky-Golay) and q; plus the monitor's flags.
+
+use std::path::Path;
+
+use anyhow::Result;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rand_distr::{Distribution, StandardNormal};
+use serde::Serialize;
+use visviva_runtime::monitor::FalseAlarm;
+
+use crate::data::dataset::{Dataset, DerivativeSource};
+use crate::deploy::blob::HostModel;
+use crate::deploy::observe::ObserverRun;
+use crate::deploy::observer_settings::{companion_path, parse_false_alarm};
+use crate::deploy::observer_tuning::{noise_estimate, position_rows, tune};
+use crate::evidence::cv_filter::{central_differences, cv_velocities};
+
+/// Seed of the noise added to the validation positions.
+const NOISE_SEED: u64 = 0x0b5e;
+
+/// Samples at the start of each trajectory left out of every error (the
+/// filters settle).
+const SKIP: usize = 20;
+
+/// What the report shows about the observer.
+#[derive(Debug, Clone, Serialize)]
+pub struct ObserverReport {
+    /// The settings file written.
+    pub settings_file: String,
+    /// NIS window (updates).
+    pub window: usize,
+    /// Two-sided false-alarm rate.
+    pub false_alarm: String,
+    /// Tuned position noise (standard deviation) per coordinate.
+    pub position_noise: Vec<f64>,
+    /// Noise added to the validation positions (standard deviation).
+    pub added_noise: Vec<f64>,
+    /// Scale on the residual-based process noise.
+    pub process_scale: f64,
+    /// What the velocities are compared against.
+    pub velocity_reference: String,
+    /// Velocity RMS error per coordinate: observer.
+    pub velocity_rmse_observer: Vec<f64>,
+    /// Central finite differences.
+    pub velocity_rmse_finite_differences: Vec<f64>,
+    /// Constant-velocity Kalman filter.
+    pub velocity_rmse_cv_filter: Vec<f64>,
+    /// Position RMS error per coordinate against the log's q: observer
+    /// (a noisy log's own noise is in this reference).
+    pub position_rmse_observer: Vec<f64>,
+    /// The same for the fed positions (the added noise; 0 when none was
+    /// added).
+    pub position_rmse_measured: Vec<f64>,
+    /// Full NIS windows on the validation log.
+    pub full_windows: usize,
+    /// Upper flags there (false alarms on a healthy log).
+    pub upper_flags: usize,
+    /// Lower flags there.
+    pub lower_flags: usize,
+}
+
+fn rms(v: &[f64]) -> f64 {
+    (v.iter().map(|e| e * e).sum::<f64>() / v.len().max(1) as f64).sqrt()
+}
+
+/// `ds` with N(0, sigma_i^2) added to each position column.
+fn noisy(ds: &Dataset, sigma: &[f64]) -> Dataset {
+    let mut out = ds.clone();
+    let mut rng = ChaCha8Rng::seed_from_u64(NOISE_SEED);
+    for t in &mut out.trajectories {
+        for j in 0..t.t.len() {
+            for (i, s) in sigma.iter().enumerate() {
+                let z: f64 = StandardNormal.sample(&mut rng);
+                t.x[[j, i]] += s * z;
+            }
+        }
+    }
+    out
+}
+
+/// Errors of a per-coordinate velocity estimator over `noisy` against the
+/// clean log's dq/dt, coordinate `i`.
+fn velocity_errors(
+    noisy: &Dataset,
+    clean: &Dataset,
+    i: usize,
+    f: &dyn Fn(&[f64]) -> Vec<f64>,
+) -> Vec<f64> {
+    let mut out = Vec::new();
+    for (tn, tc) in noisy.trajectories.iter().zip(&clean.trajectories) {
+        let v = f(&tn.x.column(i).to_vec());
+        out.extend(
+            v.iter()
+                .enumerate()
+                .skip(SKIP)
+                .map(|(j, vj)| vj - tc.dx[[j, i]]),
+        );
+    }
+    out
+}
+
+/// The CV filter's intensity: the best of a grid (10^-6 .. 10^4) on the
+/// training log with the same added noise.
+fn cv_intensity(train: &Dataset, sigma: f64, i: usize, dt: f64) -> f64 {
+    let mut only = vec![0.0; i + 1];
+    only[i] = sigma;
+    let nt = noisy(train, &only);
+    let r = sigma * sigma;
+    (-12..=8)
+        .map(|e| 10f64.powf(e as f64 / 2.0))
+        .map(|s| {
+            (
+                s,
+                rms(&velocity_errors(&nt, train, i, &|z| {
+                    cv_velocities(z, dt, r, s)
+                })),
+            )
+        })
+        .min_by(|a, b| a.1.total_cmp(&b.1))
+        .map_or(1.0, |(s, _)| s)
+}
+
+/// Tune, write the settings beside `model_path`, and compare on `val`.
+pub fn observer_report(
+    model: &HostModel<'_>,
+    model_path: &Path,
+    train: &Dataset,
+    val: &Dataset,
+    window: usize,
+    false_alarm: &str,
+) -> Result<ObserverReport> {
+    let alarm: FalseAlarm = parse_false_alarm(false_alarm)?;
+    let t = tune(model, &[train, val], alarm, window)?;
+    let path = companion_path(model_path);
+    t.settings.write(&path)?;
+    let n = model.dof();
+    let sigma = t.settings.position_noise.clone();
+    let top_up: Vec<f64> = (0..n)
+        .map(|i| {
+            (sigma[i] * sigma[i] - noise_estimate(&[val], i).powi(2))
+                .max(0.0)
+                .sqrt()
+        })
+        .collect();
+    let nv = noisy(val, &top_up);
+    let mut run = ObserverRun::new(model, t.settings.clone())?;
+    let (mut ev, mut ep, mut em) = (
+        vec![Vec::new(); n],
+        vec![Vec::new(); n],
+        vec![Vec::new(); n],
+    );
+    let (mut full, mut upper, mut lower) = (0, 0, 0);
+    for (tn, tc) in nv.trajectories.iter().zip(&val.trajectories) {
+        for (j, row) in position_rows(tn, n).enumerate() {
+            let e = run.push(&row)?;
+            full += usize::from(e.window_full);
+            upper += usize::from(e.health.nis_high);
+            lower += usize::from(e.health.nis_low);
+            if j >= SKIP {
+                for i in 0..n {
+                    ev[i].push(e.v[i] as f64 - tc.dx[[j, i]]);
+                    ep[i].push(e.q[i] as f64 - tc.x[[j, i]]);
+                    em[i].push(row.q[i].unwrap_or(f64::NAN) - tc.x[[j, i]]);
+                }
+            }
+        }
+    }
+    let dt = model.integrator().dt as f64;
+    let fd = (0..n)
+        .map(|i| {
+            rms(&velocity_errors(&nv, val, i, &|z| {
+                central_differences(z, dt)
+            }))
+        })
+        .collect();
+    let cv = (0..n)
+        .map(|i| {
+            let s = cv_intensity(train, sigma[i], i, dt);
+            let r = sigma[i] * sigma[i];
+            rms(&velocity_errors(&nv, val, i, &|z| {
+                cv_velocities(z, dt, r, s)
+            }))
+        })
+        .collect();
+    Ok(ObserverReport {
+        settings_file: path
+            .file_name()
+            .map_or(String::new(), |f| f.to_string_lossy().into_owned()),
+        window,
+        false_alarm: false_alarm.to_string(),
+        position_noise: sigma.clone(),
+        added_noise: top_up,
+        process_scale: t.scale,
+        velocity_reference: match val.derivatives {
+            DerivativeSource::Given => "the log's dq/dt columns".into(),
+            DerivativeSource::Estimated => "dq/dt estimated from the log by Savitzky-Golay".into(),
+        },
+        velocity_rmse_observer: ev.iter().map(|e| rms(e)).collect(),
+        velocity_rmse_finite_differences: fd,
+        velocity_rmse_cv_filter: cv,
+        position_rmse_observer: ep.iter().map(|e| rms(e)).collect(),
+        position_rmse_measured: em.iter().map(|e| rms(e)).collect(),
+        full_windows: full,
+        upper_flags: upper,
+        lower_flags: lower,
+    })
+}

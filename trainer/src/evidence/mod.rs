@@ -1,9 +1,18 @@
 //! The evidence before deploying: the model against the baseline on held-out
-//! logs, modes and damping, charts, and the report page.
+//! logs, modes and damping, charts, and the report: its data (`report`),
+//! units, number formats, verdicts, provenance, the change against the
+//! previous run, the model in words, and the page.
 
+pub mod change;
 pub mod charts;
 pub mod check;
+pub mod describe;
 pub mod fleet_report;
+pub mod numfmt;
 pub mod outliers;
+pub mod page;
+pub mod provenance;
 pub mod report;
 pub mod svgplot;
+pub mod units;
+pub mod verdicts;

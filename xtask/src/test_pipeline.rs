@@ -18,7 +18,7 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 10] = [
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 11] = [
         (
             "cargo fmt --all -- --check (workspace and firmware-example)",
             &|| {
@@ -79,6 +79,10 @@ pub fn run() -> Result<bool> {
                         "port_project",
                     ])?)
             },
+        ),
+        (
+            "cargo xtask browser (the demo report in headless Chromium over WebDriver)",
+            &|| crate::browser_check::run(false),
         ),
         (
             "cargo xtask c-check (the C interface from C, bit-identical to visviva rollout)",

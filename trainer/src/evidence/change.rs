@@ -55,11 +55,15 @@ fn key_figures(r: &Value) -> Vec<(String, String, f64)> {
         "fraction",
         "/check/median_model/true_energy_drift",
     );
-    add(
-        "median learned-energy drift, model".into(),
-        "fraction",
-        "/check/median_model/learned_energy_drift",
-    );
+    if r.pointer("/check/median_model/true_energy_drift")
+        .is_none_or(Value::is_null)
+    {
+        add(
+            "median learned-energy drift, model".into(),
+            "fraction",
+            "/check/median_model/learned_energy_drift",
+        );
+    }
     add(
         "median driven state error, model".into(),
         "fraction",

@@ -4,8 +4,9 @@
 
 use crate::deploy::blob::{BlobModel, Energy, Kinetic, Mlp, PortTerm};
 
-/// Hidden widths and activation of a network: "network 32-32, tanh".
-fn network(m: &Mlp) -> String {
+/// A network of `of` with its hidden widths and activation: "network of
+/// the positions, 32-32, tanh".
+fn network(m: &Mlp, of: &str) -> String {
     let w = m.widths();
     let hidden: Vec<String> = w
         .iter()
@@ -15,9 +16,9 @@ fn network(m: &Mlp) -> String {
         .collect();
     let act = format!("{:?}", m.activation).to_lowercase();
     if hidden.is_empty() {
-        format!("linear network, {act}")
+        format!("linear function of the {of}")
     } else {
-        format!("network {}, {act}", hidden.join("-"))
+        format!("network of the {of}, {}, {act}", hidden.join("-"))
     }
 }
 
@@ -27,22 +28,22 @@ pub fn plain_description(m: &BlobModel) -> String {
     let mut text = match &m.energy {
         Energy::General(net) => format!(
             "energy = one function of positions and momenta together ({})",
-            network(net)
+            network(net, "positions and momenta")
         ),
         Energy::Separable { potential, kinetic } => {
             let kin = match kinetic {
                 Kinetic::Quadratic(_) => "learned constant mass".to_string(),
-                Kinetic::Network(k) => format!("{} of the momenta", network(k)),
+                Kinetic::Network(k) => network(k, "momenta"),
             };
             format!(
-                "energy = kinetic ({kin}) + potential ({} of the positions)",
-                network(potential)
+                "energy = kinetic ({kin}) + potential ({})",
+                network(potential, "positions")
             )
         }
     };
     let term = |t: &PortTerm| match t {
         PortTerm::Constant(_) => "constant".to_string(),
-        PortTerm::Network(n) => format!("{} of the positions", network(n)),
+        PortTerm::Network(n) => network(n, "positions"),
     };
     if let Some(d) = &m.dissipation {
         text.push_str(&format!("; damping removes energy ({})", term(d)));

@@ -18,7 +18,7 @@ tr.sum td{font-weight:bold;background:#fafafa}.caution{border:2px solid #D55E00;
 .pass{color:#006b3c;font-weight:bold}.fail,.worse{color:#b00020;font-weight:bold}.better{color:#006b3c}.nm{color:#555;font-size:.9em}\
 figure{margin:1em 0}figure svg{width:100%;height:auto;display:block}.note{font-size:.9em;color:#333}\
 code,pre{font-size:.85em}pre{white-space:pre-wrap;background:#f7f7f7;padding:.5em;border:1px solid #ddd}td.hash{word-break:break-all;font-family:monospace;font-size:.8em}\
-@media print{body{max-width:none;margin:0}figure,table,pre{break-inside:avoid}h2{break-after:avoid}}";
+@media print{body{max-width:none;margin:0;padding:0;font-size:9pt}td,th{padding:.15em .3em}figure,table,pre{break-inside:avoid}h2{break-after:avoid}}";
 
 /// Render the page. `charts` are (title, svg) pairs.
 pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {

@@ -352,11 +352,15 @@ impl<'a> Html<'a> {
     /// A table: header cells (HTML), then rows of cell HTML. A row whose
     /// first cell starts with `<!--sum-->` is a summary row.
     pub fn table(&mut self, head: &[&str], rows: &[Vec<String>]) {
-        let mut t = String::from("<table><thead><tr>");
-        for c in head {
-            t.push_str(&format!("<th>{c}</th>"));
+        let mut t = String::from("<table>");
+        if head.iter().any(|c| !c.is_empty()) {
+            t.push_str("<thead><tr>");
+            for c in head {
+                t.push_str(&format!("<th>{c}</th>"));
+            }
+            t.push_str("</tr></thead>");
         }
-        t.push_str("</tr></thead><tbody>");
+        t.push_str("<tbody>");
         for r in rows {
             let sum = r.first().is_some_and(|c| c.starts_with("<!--sum-->"));
             t.push_str(if sum { "<tr class=\"sum\">" } else { "<tr>" });

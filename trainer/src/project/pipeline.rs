@@ -780,6 +780,7 @@ fn provenance(prep: &Prepared) -> Result<Provenance> {
             t
         })
         .collect();
+    settings.device.cycles_per_mac = crate::deploy::budget::cycles_per_mac(&settings.device);
     let text = toml::to_string(&settings).context("writing the effective settings")?;
     Ok(Provenance::now(prep.command.clone(), inputs, text))
 }

@@ -36,11 +36,11 @@ fn copy_demo(src: &Path, dst: &Path) -> Result<()> {
     Ok(())
 }
 
-/// Run the demo twice and return its `out/` folder.
-fn make_report(root: &Path, work: &Path) -> Result<PathBuf> {
+/// Run the demo `name` twice and return its `out/` folder.
+fn make_report(root: &Path, work: &Path, name: &str) -> Result<PathBuf> {
     let exe = crate::tools::build_visviva(root)?;
-    let project = work.join("crane-sway");
-    copy_demo(&root.join("models-demo/crane-sway"), &project)?;
+    let project = work.join(name);
+    copy_demo(&root.join("models-demo").join(name), &project)?;
     for _ in 0..2 {
         let st = std::process::Command::new(&exe)
             .args(["run", "--quiet"])
@@ -230,6 +230,10 @@ fn check_print(b: &Browser, out: &Path) -> Result<usize> {
     Ok(pages)
 }
 
+/// The demos whose pages are checked: a conservative and a damped,
+/// driven one (the first gives the README's screenshot).
+const DEMOS: [&str; 2] = ["crane-sway", "servo-drivetrain"];
+
 /// Run the check; `save` also writes the README's screenshot.
 pub fn run(save: bool) -> Result<bool> {
     let root = crate::workspace_root();
@@ -238,8 +242,17 @@ pub fn run(save: bool) -> Result<bool> {
     let target = std::env::var_os("CARGO_TARGET_DIR")
         .map(PathBuf::from)
         .unwrap_or_else(|| root.join("target"));
-    let work = target.join("browser-check");
-    let out = make_report(&root, &work)?;
+    for (k, demo) in DEMOS.iter().enumerate() {
+        let work = target.join("browser-check").join(demo);
+        check_page(&root, &work, demo, save && k == 0)?;
+    }
+    Ok(true)
+}
+
+/// Make and check one demo's page.
+fn check_page(root: &Path, work: &Path, demo: &str, save: bool) -> Result<()> {
+    println!("browser: {demo}");
+    let out = make_report(root, work, demo)?;
     let report: Value = serde_json::from_slice(&std::fs::read(out.join("report.json"))?)?;
     let page = std::fs::canonicalize(out.join("report.html"))?;
     let b = Browser::start(1280, 900)?;
@@ -255,13 +268,13 @@ pub fn run(save: bool) -> Result<bool> {
         std::fs::write(root.join(SCREENSHOT), &png)?;
         println!("browser: wrote {SCREENSHOT}");
     }
-    let pages = check_print(&b, &work)?;
+    let pages = check_print(&b, work)?;
     drop(b);
     println!(
-        "browser check: no overflow at 1280 px, {charts} charts drawn, {tags} tagged values equal report.json, {pages} A4 page(s) with no table wider than the page; {}",
+        "browser check {demo}: no overflow at 1280 px, {charts} charts drawn, {tags} tagged values equal report.json, {pages} A4 page(s) with no table wider than the page; {}",
         work.display()
     );
-    Ok(true)
+    Ok(())
 }
 
 #[cfg(test)]

@@ -173,7 +173,10 @@ fn data_section(h: &mut Html<'_>, report: &RunReport) {
     ];
     if report.data.inputs > 0 {
         let units: Vec<String> = (0..report.data.inputs)
-            .map(|j| format!("u{} {}", j + 1, h.num(&format!("data/units/inputs/{j}"))))
+            .map(|j| {
+                let unit = h.num(&format!("data/units/inputs/{j}"));
+                format!("<span class=\"label\">u{}</span> {unit}", j + 1)
+            })
             .collect();
         rows.push(vec!["input columns".into(), h.num("data/inputs")]);
         rows.push(vec!["input units".into(), units.join(", ")]);

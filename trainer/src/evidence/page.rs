@@ -527,7 +527,7 @@ fn device_section(h: &mut Html<'_>, report: &RunReport) {
     let head: Vec<&str> = head.iter().map(String::as_str).collect();
     h.table(&head, &rows);
     h.p(&format!(
-        "<p class=\"note\">Runtime flash and stack: {} MAC: multiply-accumulates. Emulator instructions are counted by QEMU and are not cycles; measure on the board.</p>",
+        "<p class=\"note\">Runtime flash and stack: {}. MAC: multiply-accumulates. Emulator instructions are counted by QEMU and are not cycles; measure on the board.</p>",
         esc(crate::deploy::footprint::SOURCE)
     ));
     quantization_table(h, n);

@@ -102,6 +102,7 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     assert!(html.matches("<svg").count() >= 4);
     assert!(html.contains("exceeds the flash budget"));
     assert_eq!(json["fit"]["reused"], false);
+    provenance_units_and_verdicts(p, &json, &html);
 
     // Edit only the export section: the fit is reused, the blob redone.
     let edited = PROJECT.replace(
@@ -116,8 +117,69 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
         serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
     assert_eq!(json["fit"]["reused"], true);
     assert_eq!(json["devices"][0]["export"]["weights"], "int8");
+    // The second run compares itself with the first: the same fit, so the
+    // state error is unchanged; the page shows the block, tagged.
+    let change = &json["change"];
+    let state = change["figures"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|f| f["figure"] == "median state error, model")
+        .unwrap();
+    assert_eq!(state["verdict"], "unchanged");
+    assert_eq!(state["previous"], state["current"]);
+    assert!(change["previous_created_utc"].is_string());
+    let html = std::fs::read_to_string(p.join("out/report.html")).unwrap();
+    assert!(html.contains("Change against the previous run"));
+    assert_eq!(page_numbers::disagreements(&html, &json), vec![]);
     assert!(p.join("out/tiny-int8.vvb").exists());
     assert!(p.join("out/golden/tiny-int8-0.csv").exists());
+}
+
+/// Provenance (hashes against sha2's SHA-256 of the files), the units of
+/// the built-in flexure (m, kg m/s, J), and the flash verdict as used /
+/// limit / margin.
+fn provenance_units_and_verdicts(p: &Path, json: &serde_json::Value, html: &str) {
+    use sha2::Digest as _;
+    let prov = &json["provenance"];
+    let train = std::fs::read(p.join("data/train.csv")).unwrap();
+    let hex: String = sha2::Sha256::digest(&train)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect();
+    assert_eq!(prov["inputs"][0]["sha256"], hex.as_str());
+    assert_eq!(prov["inputs"][0]["bytes"], train.len());
+    assert!(prov["command"]
+        .as_str()
+        .unwrap()
+        .starts_with("visviva run "));
+    let settings = prov["settings"].as_str().unwrap();
+    // Defaults filled in: the fit's batch, the model's integrator and dt.
+    for key in [
+        "batch = 256",
+        "integrator = \"verlet\"",
+        "dt = 0.01",
+        "cycles_per_mac = 4.0",
+    ] {
+        assert!(settings.contains(key), "{key} missing in\n{settings}");
+    }
+    assert!(prov["created_utc"].as_str().unwrap().ends_with('Z'));
+    let units = &json["data"]["units"];
+    assert_eq!(
+        (units["q"][0].as_str(), units["p"][0].as_str()),
+        (Some("m"), Some("kg m/s"))
+    );
+    let flash = &json["verdicts"][0];
+    assert_eq!(flash["limit"], 100.0);
+    let used = flash["used"].as_f64().unwrap();
+    assert_eq!(flash["margin"].as_f64().unwrap(), 100.0 - used);
+    assert_eq!(flash["verdict"], "fail");
+    // The step time is not judged (no clock): the page says what sets it.
+    assert!(html.contains("not estimated: set [device] clock_hz"));
+    assert!(json["model_description"]
+        .as_str()
+        .unwrap()
+        .starts_with("energy = kinetic"));
 }
 
 #[test]

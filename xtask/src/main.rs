@@ -12,6 +12,9 @@
 //!   part alone, as the test command runs it).
 //! * `cargo xtask fleet`: the demo fleet locally (`--jobs 2`) and as a job
 //!   array on a throwaway single-node Slurm cluster (a stage of `test`).
+//! * `cargo xtask browser [--save-screenshot]`: the crane demo's report in
+//!   headless Chromium over WebDriver (overflow at 1280 px, drawn charts,
+//!   every number against report.json, A4 print); a stage of `test`.
 //! * `cargo xtask claims`: every percentage or tolerance figure in README.md
 //!   with the test that asserts it (or "one run"); fails on an unlisted one.
 //! * `cargo xtask bench [--rounds N] [--steps N]`: training throughput of
@@ -24,6 +27,7 @@
 //!   stack of the minimal firmware per configuration).
 
 mod bench;
+mod browser_check;
 mod c_check;
 mod c_cores;
 mod c_firmware;
@@ -45,6 +49,7 @@ mod slurm_cluster;
 mod target_report;
 mod test_pipeline;
 mod tools;
+mod webdriver;
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -53,6 +58,9 @@ const USAGE: &str = "usage: cargo xtask <task>
   test                      format, clippy, tests, Cortex-M4F build, device check
   fleet                     demo fleet locally and on a throwaway single-node Slurm
   claims                    README figures and the tests that assert them
+  browser [--save-screenshot]
+                            the demo report in headless Chromium (WebDriver):
+                            overflow, charts, numbers, A4 print
   c-check [--host]          the C interface from C: static library, C example,
                             C firmware on five cores, states bit-identical to
                             visviva rollout (--host: the host C example alone)
@@ -72,6 +80,10 @@ fn main() -> ExitCode {
         Some("c-check") if args.len() == 1 => c_check::run(),
         Some("c-check") if args.len() == 2 && args[1] == "--host" => c_check::run_host(),
         Some("fleet") if args.len() == 1 => fleet_check::run(),
+        Some("browser") if args.len() == 1 => browser_check::run(false),
+        Some("browser") if args.len() == 2 && args[1] == "--save-screenshot" => {
+            browser_check::run(true)
+        }
         Some("bench") => bench::run(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");

@@ -18,7 +18,7 @@ fn cargo_stage(args: &[&str]) -> Result<bool> {
 
 /// Run all stages; Ok(false) at the first failing one.
 pub fn run() -> Result<bool> {
-    let stages: [(&str, &dyn Fn() -> Result<bool>); 10] = [
+    let stages: [(&str, &dyn Fn() -> Result<bool>); 11] = [
         (
             "cargo fmt --all -- --check (workspace and firmware-example)",
             &|| {
@@ -97,6 +97,10 @@ pub fn run() -> Result<bool> {
                         "--nocapture",
                     ])?)
             },
+        ),
+        (
+            "cargo xtask browser (the demo report in headless Chromium over WebDriver)",
+            &|| crate::browser_check::run(false),
         ),
         (
             "cargo xtask c-check --host (the C interface from C on the host; the cores run in the device check)",

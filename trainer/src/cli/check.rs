@@ -13,7 +13,7 @@ use crate::atomic::write_atomic;
 use crate::cli::tables::{print_table, sci};
 use crate::data::log::{load_csv, LoadOptions};
 use crate::deploy::blob::HostModel;
-use crate::evidence::charts::{charts, units, HistoryFile};
+use crate::evidence::charts::{charts, HistoryFile};
 use crate::evidence::check::{check, CheckSettings};
 use crate::reference::{build_system, parse_param};
 
@@ -21,22 +21,25 @@ use crate::reference::{build_system, parse_param};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The model blob.
-    #[arg(long)]
+    #[arg(long, value_name = "MODEL.vvb")]
     pub model: PathBuf,
     /// Held-out trajectories (CSV, same columns as for `visviva fit`).
     #[arg(long = "validation", visible_alias = "data", value_name = "FILE.csv")]
     pub data: PathBuf,
     /// The baseline written by `visviva fit --baseline` (default: next to the
     /// model as MODEL.baseline.json, when present).
-    #[arg(long)]
+    #[arg(long, value_name = "FILE.json")]
     pub baseline: Option<PathBuf>,
-    /// The built-in system the data came from, to measure true-energy drift.
-    #[arg(long)]
+    /// The built-in system the data came from, to measure true-energy drift
+    /// (names: see `visviva simulate --help`).
+    #[arg(long, value_name = "NAME")]
     pub system: Option<String>,
-    /// Parameters of that system, as for `visviva simulate`.
-    #[arg(long = "param", value_parser = parse_param)]
+    /// Override a parameter of that system, e.g. `--param l=9.2`; repeatable
+    /// (keys as for `visviva simulate`).
+    #[arg(long = "param", value_name = "KEY=VALUE", value_parser = parse_param)]
     pub params: Vec<(String, f64)>,
-    /// Masses m1,..,mn for logs with velocity columns.
+    /// Masses m1,..,mn for logs with velocity columns (kg, or the unit of
+    /// the log's p = m v).
     #[arg(
         long = "masses",
         visible_alias = "mass",
@@ -49,13 +52,13 @@ pub struct Args {
     #[arg(long = "horizon-steps", visible_alias = "horizon", value_name = "N")]
     pub horizon: Option<usize>,
     /// Fit history (JSON from `visviva fit --history`) for the loss plot.
-    #[arg(long)]
+    #[arg(long, value_name = "FILE.json")]
     pub history: Option<PathBuf>,
     /// Write the numbers as JSON here.
-    #[arg(long)]
+    #[arg(long, value_name = "FILE.json")]
     pub report: Option<PathBuf>,
     /// Write SVG plots into this folder.
-    #[arg(long)]
+    #[arg(long, value_name = "DIR")]
     pub plots: Option<PathBuf>,
 }
 
@@ -153,7 +156,14 @@ pub fn run(args: Args) -> Result<()> {
     if let Some(dir) = &args.plots {
         std::fs::create_dir_all(dir)
             .with_context(|| format!("{}: cannot create", dir.display()))?;
-        for (name, chart) in charts(&r, history.as_ref(), units(system.as_deref())) {
+        let units = crate::evidence::units::Units::resolve(
+            None,
+            system.as_deref().map(|s| s.name()),
+            data.dof,
+            data.inputs,
+        )?;
+        let label = format!("energy model ({})", args.model.display());
+        for (name, chart) in charts(&r, history.as_ref(), &units, &label) {
             let p = dir.join(format!("{name}.svg"));
             write_atomic(&p, chart.to_svg().as_bytes())?;
         }

@@ -12,14 +12,16 @@ use crate::deploy::compare::{compare, Verdict};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// First CSV (e.g. the host rollout).
+    #[arg(value_name = "A.csv")]
     pub a: PathBuf,
     /// Second CSV (e.g. the device's).
+    #[arg(value_name = "B.csv")]
     pub b: PathBuf,
     /// Require identical bits (the default).
     #[arg(long, conflicts_with = "rel")]
     pub bits: bool,
     /// Accept |a - b| <= REL * max(|a|, |b|) instead of identical bits.
-    #[arg(long)]
+    #[arg(long, value_name = "REL")]
     pub rel: Option<f64>,
 }
 

@@ -16,7 +16,7 @@ use crate::deploy::export::export;
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The fitted model (a blob written by `visviva fit`).
-    #[arg(long)]
+    #[arg(long, value_name = "MODEL.vvb")]
     pub model: PathBuf,
     /// Weight storage on the device.
     #[arg(long, value_enum, default_value = "f32")]
@@ -25,16 +25,16 @@ pub struct Args {
     pub integrator: IntegratorArgs,
     /// Steps of the rollouts that measure the accuracy price (any number:
     /// they stream).
-    #[arg(long, default_value_t = 10_000)]
+    #[arg(long, default_value_t = 10_000, value_name = "N")]
     pub check_steps: usize,
     /// Number of initial states for those rollouts.
-    #[arg(long, default_value_t = 8)]
+    #[arg(long, default_value_t = 8, value_name = "N")]
     pub check_states: usize,
     /// Write the measurements as JSON to this file.
-    #[arg(long)]
+    #[arg(long, value_name = "FILE.json")]
     pub json: Option<PathBuf>,
     /// Where to write the device blob.
-    #[arg(long)]
+    #[arg(long, value_name = "FILE.vvb")]
     pub out: PathBuf,
 }
 

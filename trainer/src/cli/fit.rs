@@ -34,7 +34,7 @@ pub struct Args {
     pub val: Option<PathBuf>,
     /// Fraction of trajectories held out for validation when --val is absent
     /// (0 disables validation; early stopping then watches the training loss).
-    #[arg(long, default_value_t = 0.2, value_name = "F")]
+    #[arg(long, default_value_t = 0.2, value_name = "FRACTION")]
     pub val_fraction: f64,
     /// Energy structure.
     #[arg(long, value_enum, default_value_t = Arch::Separable)]
@@ -47,7 +47,7 @@ pub struct Args {
         long,
         value_delimiter = ',',
         default_value = "64,64",
-        value_name = "W,W"
+        value_name = "W1,.."
     )]
     pub hidden: Vec<usize>,
     /// Hidden-layer activation.
@@ -60,7 +60,7 @@ pub struct Args {
     #[arg(long, default_value_t = 256, value_name = "N")]
     pub batch: usize,
     /// Peak learning rate (Adam, warm-up then cosine decay).
-    #[arg(long, default_value_t = 3e-3, value_name = "X")]
+    #[arg(long, default_value_t = 3e-3, value_name = "RATE")]
     pub lr: f32,
     /// Total optimizer steps, instead of --epochs.
     #[arg(long = "optimizer-steps", value_name = "N")]
@@ -114,7 +114,7 @@ pub struct Args {
     pub integrator: Option<MethodName>,
     /// Time step stored in the model, in seconds (default: the log's median
     /// sample interval).
-    #[arg(long, value_name = "S")]
+    #[arg(long, value_name = "SECONDS")]
     pub dt: Option<f32>,
     /// Write the loss history (JSON) here.
     #[arg(long, value_name = "FILE.json")]

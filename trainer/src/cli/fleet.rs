@@ -26,9 +26,10 @@ enum FleetCommand {
     /// Run every unit on this machine, N at a time, then write the fleet report.
     Run {
         /// Fleet folder holding fleet.toml.
+        #[arg(value_name = "DIR")]
         dir: PathBuf,
         /// Units run in parallel (each fit uses its [fit] threads).
-        #[arg(long, short, default_value_t = 1)]
+        #[arg(long, short, default_value_t = 1, value_name = "N")]
         jobs: usize,
         /// Rerun units even when their inputs did not change.
         #[arg(long)]
@@ -40,6 +41,7 @@ enum FleetCommand {
     /// Write a Slurm job array (one task per unit) and submit it with sbatch.
     Submit {
         /// Fleet folder holding fleet.toml.
+        #[arg(value_name = "DIR")]
         dir: PathBuf,
         /// Write the batch script only; do not call sbatch.
         #[arg(long)]
@@ -48,20 +50,23 @@ enum FleetCommand {
     /// Where every unit stands, from the files the units wrote.
     Status {
         /// Fleet folder holding fleet.toml.
+        #[arg(value_name = "DIR")]
         dir: PathBuf,
     },
     /// Write out/fleet.json and out/fleet.html from the files the units wrote.
     Report {
         /// Fleet folder holding fleet.toml.
+        #[arg(value_name = "DIR")]
         dir: PathBuf,
     },
     /// Run one unit: what a Slurm array task runs.
     #[command(hide = true)]
     Task {
         /// Fleet folder holding fleet.toml.
+        #[arg(value_name = "DIR")]
         dir: PathBuf,
         /// Array task index (the line in out/fleet-units.txt).
-        #[arg(long)]
+        #[arg(long, value_name = "N")]
         index: usize,
     },
 }

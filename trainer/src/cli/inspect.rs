@@ -12,6 +12,7 @@ use crate::deploy::inspect::inspect;
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The blob to inspect.
+    #[arg(value_name = "MODEL.vvb")]
     pub file: PathBuf,
     /// Print JSON instead of a table.
     #[arg(long)]

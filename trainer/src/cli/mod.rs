@@ -17,10 +17,22 @@ pub mod shared_args;
 pub mod simulate;
 pub mod tune_observer;
 
-/// Visviva: from logged motion to a verified energy-consistent predictor on a
-/// microcontroller.
+/// Visviva turns logged motion of a mechanical system (q, p or velocity
+/// columns in CSV) into an energy-consistent predictor for a
+/// microcontroller: it fits a Hamiltonian neural network, checks it against
+/// a plain baseline on held-out logs, exports a compact blob and reports
+/// size, cost and accuracy. Start with `visviva run DIR` on a project folder
+/// holding visviva.toml; the other commands are the same path step by step.
+///
+/// A learned model is not a safety function: validate it on the machine and
+/// follow the applicable functional-safety standards.
 #[derive(Debug, Parser)]
-#[command(name = "visviva", version, about)]
+#[command(
+    name = "visviva",
+    version,
+    about = "Fit an energy-consistent motion predictor from logs, check it, and deploy it to a microcontroller",
+    long_about
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,

@@ -21,14 +21,14 @@ use crate::interrupt::Watch;
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// The blob to step.
-    #[arg(long)]
+    #[arg(long, value_name = "MODEL.vvb")]
     pub model: PathBuf,
     /// Initial state, every coordinate named once: "q1=0.5,p1=0".
-    #[arg(long)]
+    #[arg(long, value_name = "q1=X,..,p1=Y,..")]
     pub init: String,
     /// Number of steps (any number: the rollout streams; with --out the
     /// disk must have room for the file).
-    #[arg(long)]
+    #[arg(long, value_name = "N")]
     pub steps: usize,
     /// Input sequence for a driven model: CSV `t,u1..um`, row k held over
     /// step k (at least STEPS rows).
@@ -40,8 +40,9 @@ pub struct Args {
     /// shortest round-trip decimals (both are exact).
     #[arg(long)]
     pub bits: bool,
-    /// Output CSV (default: standard output).
-    #[arg(long)]
+    /// Output CSV (default: standard output); times t = k dt are written
+    /// with the step's precision.
+    #[arg(long, value_name = "FILE.csv")]
     pub out: Option<PathBuf>,
 }
 

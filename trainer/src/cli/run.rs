@@ -18,6 +18,7 @@ use crate::project::pipeline::{self, Checked, Prepared};
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Project folder holding visviva.toml.
+    #[arg(value_name = "DIR")]
     pub dir: PathBuf,
     /// Refit and re-export even when nothing changed.
     #[arg(long)]

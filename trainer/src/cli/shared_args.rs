@@ -17,16 +17,16 @@ pub struct IntegratorArgs {
     #[arg(long, value_enum)]
     pub integrator: Option<MethodName>,
     /// Time step of one step in seconds (default: the blob's).
-    #[arg(long)]
+    #[arg(long, value_name = "SECONDS")]
     pub dt: Option<f32>,
     /// Substeps per step (default: the blob's).
-    #[arg(long)]
+    #[arg(long, value_name = "N")]
     pub substeps: Option<u16>,
     /// Iteration limit for the implicit methods (default: the blob's).
-    #[arg(long)]
+    #[arg(long, value_name = "N")]
     pub max_iterations: Option<u16>,
     /// Relative tolerance for the implicit methods (default: the blob's).
-    #[arg(long)]
+    #[arg(long, value_name = "REL")]
     pub tolerance: Option<f32>,
 }
 

@@ -82,13 +82,19 @@ fn after_help() -> String {
         "Systems (parameters in SI units, key=default unit, meaning); the damped or driven\n\
          ones follow dx/dt = (J - R) dH/dx + G u:\n",
     );
+    // Column widths from the catalog, so long names keep the table aligned.
+    let name_w = CATALOG.iter().map(|e| e.name.len()).max().unwrap_or(0);
+    let pad = " ".repeat(name_w + 4);
+    let param = |p: &crate::reference::ParamSpec| format!("{}={} {}", p.name, p.default, p.unit);
+    let param_w = CATALOG
+        .iter()
+        .flat_map(|e| e.params.iter().map(|p| param(p).len()))
+        .max()
+        .unwrap_or(0);
     for entry in CATALOG {
-        text.push_str(&format!("  {:<16} {}\n", entry.name, entry.summary));
+        text.push_str(&format!("  {:<name_w$}  {}\n", entry.name, entry.summary));
         for p in entry.params {
-            text.push_str(&format!(
-                "                   {}={} {}  {}\n",
-                p.name, p.default, p.unit, p.meaning
-            ));
+            text.push_str(&format!("{pad}{:<param_w$}  {}\n", param(p), p.meaning));
         }
     }
     text.push_str(

@@ -6,6 +6,20 @@ use crate::deploy::footprint::RuntimeFootprint;
 use crate::evidence::report::BudgetVerdict;
 use crate::project::file::DeviceBudget;
 
+/// Cycles per multiply-accumulate assumed when `[device] cycles_per_mac`
+/// is not set: a Cortex-M4F-class figure from the device check's
+/// instruction counts (measure your board).
+pub const DEFAULT_CYCLES_PER_MAC: f64 = 4.0;
+
+/// The cycles per multiply-accumulate the step-time estimate uses.
+pub fn cycles_per_mac(b: &DeviceBudget) -> f64 {
+    if b.cycles_per_mac > 0.0 {
+        b.cycles_per_mac
+    } else {
+        DEFAULT_CYCLES_PER_MAC
+    }
+}
+
 /// Judge a blob of `bytes` bytes with RAM estimate `ram` and
 /// `macs_per_step`; `runtime` is the runtime's own measured footprint for
 /// the blob's configuration (flash added to the blob; its stack plus static
@@ -24,11 +38,7 @@ pub fn budget_verdict(
     });
     let flash_ok = (b.flash_bytes > 0).then_some(flash_needed <= b.flash_bytes);
     let ram_ok = (b.ram_bytes > 0).then_some(ram_needed <= b.ram_bytes);
-    let cpm = if b.cycles_per_mac > 0.0 {
-        b.cycles_per_mac
-    } else {
-        4.0
-    };
+    let cpm = cycles_per_mac(b);
     let step_time_s = (b.clock_hz > 0).then(|| macs_per_step as f64 * cpm / b.clock_hz as f64);
     let time_ok = match (step_time_s, b.control_period_s > 0.0) {
         (Some(t), true) => Some(t <= b.control_period_s),

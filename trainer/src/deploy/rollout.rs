@@ -125,7 +125,7 @@ pub fn write_csv_header(w: &mut dyn Write, dof: usize) -> std::io::Result<()> {
     w.write_all(s.as_bytes())
 }
 
-/// One CSV row: time `k dt`, then the values, as exact bit patterns
+/// One CSV row: time `k dt` (with the step's precision, [`time_text`]), then the values, as exact bit patterns
 /// (`bits`) or shortest round-trip decimals.
 pub fn write_csv_row(
     w: &mut dyn Write,
@@ -134,7 +134,7 @@ pub fn write_csv_row(
     x: &[f32],
     bits: bool,
 ) -> std::io::Result<()> {
-    write!(w, "{}", k as f64 * dt as f64)?;
+    w.write_all(time_text(k, dt).as_bytes())?;
     for v in x {
         if bits {
             write!(w, ",{:#010x}", v.to_bits())?;
@@ -336,6 +336,16 @@ pub fn sample_states(
         .collect()
 }
 
+/// The time of step `k` written with the step's own precision: as many
+/// decimals as the shortest decimal of `dt` has (dt = 0.05 gives 0.05,
+/// 0.10, ..., never 0.05000000074505806).
+pub fn time_text(k: usize, dt: f32) -> String {
+    let shortest = format!("{dt}");
+    let decimals = shortest.split_once('.').map_or(0, |(_, d)| d.len());
+    let step: f64 = shortest.parse().unwrap_or(dt as f64);
+    format!("{:.decimals$}", k as f64 * step)
+}
+
 /// Render a rollout as CSV `t,q1..qn,p1..pn`.
 pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
     let mut out = Vec::new();
@@ -344,4 +354,20 @@ pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
         write_csv_row(&mut out, k, dt, x, bits).expect("writing to memory");
     }
     String::from_utf8(out).expect("ASCII")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::time_text;
+
+    #[test]
+    fn times_carry_the_step_precision() {
+        // 0.05 as f32 is 0.0500000007450580596923828125 (IEEE 754 binary32);
+        // the written times keep the step's two decimals.
+        assert_eq!(time_text(1, 0.05), "0.05");
+        assert_eq!(time_text(3, 0.05), "0.15");
+        assert_eq!(time_text(1000, 0.05), "50.00");
+        assert_eq!(time_text(7, 1e-3), "0.007");
+        assert_eq!(time_text(2, 2.0), "4");
+    }
 }

@@ -1,9 +1,11 @@
-//! The report's and `visviva check`'s charts: phase portraits, energy over
-//! time, driven responses and loss curves, built from check results.
+//! The report's and `visviva check`'s charts: relative energy drift on a log
+//! scale, phase portraits, energy over time, driven responses and loss
+//! curves, built from check results, each titled with the model it shows
+//! and labelled with the data's units.
 
 use crate::evidence::check::CheckReport;
 use crate::evidence::svgplot::{Chart, Series, PALETTE};
-use crate::reference::ReferenceSystem;
+use crate::evidence::units::Units;
 
 /// Loss history as written by `visviva fit --history`.
 #[derive(Debug, Clone, Default, serde::Deserialize)]
@@ -24,84 +26,158 @@ fn series(label: &str, points: Vec<(f64, f64)>, k: usize, dashed: bool, dots: bo
     }
 }
 
-/// The report's charts: phase portrait and energy of the first trajectory,
-/// and the loss curves when a history is given.
+/// A model's name for chart titles: "energy model (separable V 1-32-32-1
+/// tanh, T quadratic)".
+pub fn model_label(m: &crate::deploy::blob::BlobModel) -> String {
+    format!("energy model ({})", m.architecture())
+}
+
+/// |H(t) - H(0)| / |H(0)| of an energy series (t, H); `relative = false`
+/// keeps |H(t) - H(0)|.
+fn drift(series: &[(f64, f64)], relative: bool) -> Vec<(f64, f64)> {
+    let Some(&(_, h0)) = series.first() else {
+        return Vec::new();
+    };
+    let scale = if relative { h0.abs() } else { 1.0 };
+    series
+        .iter()
+        .map(|&(t, h)| (t, (h - h0).abs() / scale))
+        .collect()
+}
+
+/// The report's charts for the first trajectory: relative energy drift
+/// (log scale, model and baseline), phase portrait, energy over time, state
+/// error over time, and the loss curves when a history is given. `model`
+/// names the model in every title.
 pub fn charts(
     r: &CheckReport,
     history: Option<&HistoryFile>,
-    units: (&str, &str, &str),
+    units: &Units,
+    model: &str,
 ) -> Vec<(String, Chart)> {
     let mut out = Vec::new();
-    if let Some(t) = r.trajectories.first() {
-        let mut s = vec![
-            series("log", t.phase[0].clone(), 0, false, true),
-            series("energy model", t.phase[1].clone(), 1, false, false),
-        ];
-        if !t.phase[2].is_empty() {
-            s.push(series("baseline", t.phase[2].clone(), 2, true, false));
-        }
-        out.push((
-            "phase".into(),
-            Chart {
-                title: format!("Phase portrait, trajectory {}", t.id),
-                x_label: format!("q1 ({})", units.0),
-                y_label: format!("p1 ({})", units.1),
-                log_y: false,
-                series: s,
-            },
-        ));
-        let which = if r.system.is_some() {
-            "true energy"
-        } else {
-            "learned energy"
-        };
-        let mut s = vec![series("energy model", t.energy[0].clone(), 1, false, false)];
-        if r.system.is_some() && !t.energy[1].is_empty() {
-            s.push(series("baseline", t.energy[1].clone(), 2, true, false));
-        }
-        out.push((
-            "energy".into(),
-            Chart {
-                title: format!(
-                    "{which} over {} steps, trajectory {}",
-                    t.horizon_steps, t.id
-                ),
-                x_label: "time (s)".into(),
-                y_label: format!("{which} ({})", units.2),
-                log_y: false,
-                series: s,
-            },
-        ));
-        let err = |m: &crate::evidence::check::Metrics| -> Vec<(f64, f64)> {
-            m.state_error
-                .iter()
-                .enumerate()
-                .map(|(k, e)| (k as f64 * t.dt, *e))
-                .collect()
-        };
-        let mut s = vec![series("energy model", err(&t.model), 1, false, false)];
-        if let Some(b) = &t.baseline {
-            s.push(series("baseline", err(b), 2, true, false));
-        }
-        out.push((
-            "state-error".into(),
-            Chart {
-                title: format!("State error versus time, trajectory {}", t.id),
-                x_label: "time (s)".into(),
-                y_label: "state error / state RMS (-)".into(),
-                log_y: true,
-                series: s,
-            },
+    let Some(t) = r.trajectories.first() else {
+        return history
+            .map(|h| vec![("loss".into(), loss_chart(h, model))])
+            .unwrap_or_default();
+    };
+    let truth = r.system.is_some();
+    let which = if truth {
+        "true energy"
+    } else {
+        "learned energy"
+    };
+    let mut s = vec![series(
+        "energy model",
+        drift(&t.energy[0], truth),
+        1,
+        false,
+        false,
+    )];
+    if truth && !t.energy[1].is_empty() {
+        s.push(series(
+            "baseline",
+            drift(&t.energy[1], true),
+            2,
+            true,
+            false,
         ));
     }
+    out.push((
+        "drift".into(),
+        Chart {
+            title: format!(
+                "Energy drift of the {model}{} over {} steps, trajectory {}",
+                if truth { " and the baseline" } else { "" },
+                t.horizon_steps,
+                t.id
+            ),
+            x_label: "time (s)".into(),
+            y_label: if truth {
+                format!("|H(t) - H(0)| / |H(0)|, {which} (-)")
+            } else {
+                format!("|H(t) - H(0)|, {which} ({})", units.energy)
+            },
+            log_y: true,
+            series: s,
+        },
+    ));
+    let mut s = vec![
+        series("log", t.phase[0].clone(), 0, false, true),
+        series("energy model", t.phase[1].clone(), 1, false, false),
+    ];
+    if !t.phase[2].is_empty() {
+        s.push(series("baseline", t.phase[2].clone(), 2, true, false));
+    }
+    out.push((
+        "phase".into(),
+        Chart {
+            title: format!(
+                "Phase portrait of trajectory {}: log, {model}, baseline",
+                t.id
+            ),
+            x_label: format!("q1 ({})", units.state(0)),
+            y_label: format!("p1 ({})", units.state(units.q.len())),
+            log_y: false,
+            series: s,
+        },
+    ));
+    let mut s = vec![series("energy model", t.energy[0].clone(), 1, false, false)];
+    if truth && !t.energy[1].is_empty() {
+        s.push(series("baseline", t.energy[1].clone(), 2, true, false));
+    }
+    out.push((
+        "energy".into(),
+        Chart {
+            title: format!(
+                "{} over {} steps, trajectory {}: {model}{}",
+                if truth {
+                    "True energy"
+                } else {
+                    "Learned energy"
+                },
+                t.horizon_steps,
+                t.id,
+                if truth { ", baseline" } else { "" }
+            ),
+            x_label: "time (s)".into(),
+            y_label: format!("{which} ({})", units.energy),
+            log_y: false,
+            series: s,
+        },
+    ));
+    let err = |m: &crate::evidence::check::Metrics| -> Vec<(f64, f64)> {
+        m.state_error
+            .iter()
+            .enumerate()
+            .map(|(k, e)| (k as f64 * t.dt, *e))
+            .collect()
+    };
+    let mut s = vec![series("energy model", err(&t.model), 1, false, false)];
+    if let Some(b) = &t.baseline {
+        s.push(series("baseline", err(b), 2, true, false));
+    }
+    out.push((
+        "state-error".into(),
+        Chart {
+            title: format!(
+                "State error versus time, trajectory {}: {model}, baseline",
+                t.id
+            ),
+            x_label: "time (s)".into(),
+            y_label: "state error / state RMS (-)".into(),
+            log_y: true,
+            series: s,
+        },
+    ));
     if let Some(h) = history {
-        out.push(("loss".into(), loss_chart(h)));
+        out.push(("loss".into(), loss_chart(h, model)));
     }
     out
 }
 
-/// The loss curves of a fit.
-pub fn loss_chart(h: &HistoryFile) -> Chart {
+/// The loss curves of a fit of `model`.
+pub fn loss_chart(h: &HistoryFile, model: &str) -> Chart {
     let pts = |v: &[f64]| {
         v.iter()
             .enumerate()
@@ -109,13 +185,13 @@ pub fn loss_chart(h: &HistoryFile) -> Chart {
             .collect()
     };
     Chart {
-        title: "Fit history".into(),
+        title: format!("Fit history of the {model}"),
         x_label: "epoch (-)".into(),
         y_label: "loss, normalized units (-)".into(),
         log_y: true,
         series: vec![
             series("training", pts(&h.train), 1, false, false),
-            series("validation", pts(&h.val), 2, false, false),
+            series("validation", pts(&h.val), 2, true, false),
         ],
     }
 }
@@ -128,6 +204,7 @@ pub fn driven_charts(
     model: &[Vec<f32>],
     baseline: Option<&[Vec<f32>]>,
     keep: usize,
+    units: &Units,
 ) -> Vec<(String, Chart)> {
     let thin = |v: Vec<(f64, f64)>| -> Vec<(f64, f64)> {
         let stride = v.len().div_ceil(keep.max(1)).max(1);
@@ -152,7 +229,17 @@ pub fn driven_charts(
             Chart {
                 title: format!("Held-out input sequence, trajectory {}", traj.id),
                 x_label: "time (s)".into(),
-                y_label: "input (log units)".into(),
+                y_label: format!(
+                    "input ({})",
+                    (0..u.ncols())
+                        .map(|k| format!(
+                            "u{}: {}",
+                            k + 1,
+                            units.inputs.get(k).map_or("?", String::as_str)
+                        ))
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                ),
                 log_y: false,
                 series: s,
             },
@@ -180,25 +267,16 @@ pub fn driven_charts(
             format!("response-p{}", i + 1),
             Chart {
                 title: format!(
-                    "Response to the held-out inputs: p{} over time, trajectory {}",
+                    "Response to the held-out inputs: p{} over time, trajectory {}: log, energy model, baseline",
                     i + 1,
                     traj.id
                 ),
                 x_label: "time (s)".into(),
-                y_label: format!("p{} (SI)", i + 1),
+                y_label: format!("p{} ({})", i + 1, units.state(n + i)),
                 log_y: false,
                 series: s,
             },
         ));
     }
     out
-}
-
-/// Units of q, p and energy for a built-in system, else generic ones.
-pub fn units(system: Option<&dyn ReferenceSystem>) -> (&'static str, &'static str, &'static str) {
-    match system.map(|s| s.name()) {
-        Some("crane") => ("rad", "kg m^2/s", "J"),
-        Some(_) => ("m", "kg m/s", "J"),
-        None => ("SI", "SI", "model units"),
-    }
 }

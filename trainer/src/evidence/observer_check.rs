@@ -24,6 +24,7 @@ use crate::deploy::observe::ObserverRun;
 use crate::deploy::observer_settings::{companion_path, parse_false_alarm};
 use crate::deploy::observer_tuning::{noise_estimate, position_rows, tune};
 use crate::evidence::cv_filter::{central_differences, cv_velocities};
+use crate::evidence::report::{esc, Html, RunReport};
 
 /// Seed of the noise added to the validation positions.
 const NOISE_SEED: u64 = 0x0b5e;
@@ -214,4 +215,42 @@ pub fn observer_report(
         upper_flags: upper,
         lower_flags: lower,
     })
+}
+
+/// The state observer on the validation log fed with noisy positions only
+/// (nothing without an `[observer]` section).
+pub fn observer_section(h: &mut Html<'_>, report: &RunReport) {
+    let Some(o) = &report.observer else {
+        return;
+    };
+    h.p("<h2 id=\"observer\">State observer</h2>");
+    h.p(&format!(
+        "<p>Settings tuned from the training and validation logs and written to <code>out/{}</code> (window {} updates, false-alarm rate {}, process-noise scale {}). The validation log is fed with its positions only, topped up with Gaussian noise to the tuned noise level; velocities are compared with {}, positions with the log's q (a noisy log's own noise is in that reference); the first 20 samples of each trajectory are left out. Baselines: central finite differences and the constant-velocity Kalman filter (Bar-Shalom, Li and Kirubarajan, 2001; its intensity the best of a grid on the training log).</p>",
+        esc(&o.settings_file),
+        h.num("observer/window"),
+        esc(&o.false_alarm),
+        h.num("observer/process_scale"),
+        esc(&o.velocity_reference)
+    ));
+    h.p("<table><tr><th>coordinate</th><th>tuned noise (std)</th><th>added noise (std)</th><th>velocity error, observer</th><th>finite differences</th><th>constant-velocity filter</th><th>position error, observer</th><th>measured positions</th></tr>");
+    for i in 0..o.velocity_rmse_observer.len() {
+        let c = |k: &str| h.num(&format!("observer/{k}/{i}"));
+        h.p(&format!(
+            "<tr><td>q{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            i + 1,
+            c("position_noise"),
+            c("added_noise"),
+            c("velocity_rmse_observer"),
+            c("velocity_rmse_finite_differences"),
+            c("velocity_rmse_cv_filter"),
+            c("position_rmse_observer"),
+            c("position_rmse_measured")
+        ));
+    }
+    h.p(&format!(
+        "</table><p>Health monitor on this healthy log: {} upper flags (false alarms) and {} lower flags in {} full windows. The flags are plain values; nothing stops stepping, and they are no safety function.</p>",
+        h.num("observer/upper_flags"),
+        h.num("observer/lower_flags"),
+        h.num("observer/full_windows")
+    ));
 }

@@ -42,12 +42,18 @@ pub const PALETTE: [&str; 6] = [
     "#000000", "#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00",
 ];
 
-const W: f64 = 640.0;
-const H: f64 = 400.0;
-const L: f64 = 78.0;
-const R: f64 = 20.0;
-const T: f64 = 36.0;
+// A report column is about 950 px wide: the chart is drawn at that size and
+// scales with the column (width 100 %, the viewBox keeps its proportions).
+// The legend sits in its own strip between the title and the plot area.
+const W: f64 = 940.0;
+const H: f64 = 440.0;
+const L: f64 = 84.0;
+const R: f64 = 24.0;
+const T: f64 = 62.0;
 const B: f64 = 56.0;
+/// Approximate advance of one 12 px sans-serif character (for laying out
+/// legend entries without measuring fonts).
+const CHAR_W: f64 = 7.0;
 
 fn nice_step(range: f64, target: usize) -> f64 {
     let raw = range / target.max(1) as f64;
@@ -126,13 +132,14 @@ impl Chart {
         let mut s = String::new();
         let _ = write!(
             s,
-            r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {W} {H}" width="{W}" height="{H}" font-family="sans-serif" font-size="12">"#
+            r#"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 0 {W} {H}" width="100%" preserveAspectRatio="xMidYMid meet" font-family="sans-serif" font-size="12">"#
         );
         let _ = write!(s, r##"<rect width="{W}" height="{H}" fill="#ffffff"/>"##);
         let _ = write!(
             s,
-            r#"<text x="{}" y="20" text-anchor="middle" font-size="14" font-weight="bold">{}</text>"#,
+            r#"<text x="{}" y="22" text-anchor="middle" font-size="{:.1}" font-weight="bold">{}</text>"#,
             W / 2.0,
+            title_size(&self.title),
             esc(&self.title)
         );
         self.write_axes(&mut s, &f);
@@ -169,11 +176,10 @@ impl Chart {
             f.y0 -= pad;
             f.y1 += pad;
         }
+        // Pad on both axes kinds so no line runs along the frame.
         let pad = 0.05 * (f.y1 - f.y0);
-        if !self.log_y {
-            f.y0 -= pad;
-            f.y1 += pad;
-        }
+        f.y0 -= pad;
+        f.y1 += pad;
         f
     }
 
@@ -282,18 +288,30 @@ impl Chart {
         }
     }
 
-    /// One legend row per series.
+    /// The legend in one row above the plot area, outside the data: a
+    /// line sample (dashed as the series) or, for a dotted series, dots.
     fn write_legend(&self, s: &mut String) {
-        for (k, ser) in self.series.iter().enumerate() {
-            let y = T + 14.0 + 16.0 * k as f64;
-            let x = L + 10.0;
-            let _ = write!(
-                s,
-                r#"<line x1="{x}" y1="{y}" x2="{}" y2="{y}" stroke="{}" stroke-width="2"{}/>"#,
-                x + 22.0,
-                ser.color,
-                dash_of(ser)
-            );
+        let y = 42.0;
+        let mut x = L;
+        for ser in &self.series {
+            if ser.dots {
+                for k in 0..4 {
+                    let _ = write!(
+                        s,
+                        r#"<circle cx="{}" cy="{y}" r="1.8" fill="{}"/>"#,
+                        x + 2.0 + 6.0 * k as f64,
+                        ser.color
+                    );
+                }
+            } else {
+                let _ = write!(
+                    s,
+                    r#"<line x1="{x}" y1="{y}" x2="{}" y2="{y}" stroke="{}" stroke-width="2"{}/>"#,
+                    x + 22.0,
+                    ser.color,
+                    dash_of(ser)
+                );
+            }
             let _ = write!(
                 s,
                 r#"<text x="{}" y="{}">{}</text>"#,
@@ -301,8 +319,16 @@ impl Chart {
                 y + 4.0,
                 esc(&ser.label)
             );
+            x += 28.0 + CHAR_W * ser.label.chars().count() as f64 + 24.0;
         }
     }
+}
+
+/// A title's font size: 14 px, smaller for a long title so it fits the
+/// width (a bold sans-serif character advances about 0.6 em).
+fn title_size(title: &str) -> f64 {
+    let chars = title.chars().count().max(1) as f64;
+    (14.0f64).min((W - 24.0) / (0.6 * chars)).max(9.0)
 }
 
 /// The stroke pattern of a dashed series.
@@ -340,6 +366,15 @@ mod tests {
         assert!(svg.contains("time (s)") && svg.contains("H (J)") && svg.contains(">model<"));
         assert!(svg.contains("energy &lt;check&gt;"));
         assert_eq!(svg.matches("<path").count(), 1);
+        // The legend sits above the plot area (y < T), outside the data.
+        let legend_y: f64 = svg
+            .split("<text x=\"")
+            .find(|t| t.contains(">model<"))
+            .and_then(|t| t.split("y=\"").nth(1))
+            .and_then(|t| t.split('"').next())
+            .and_then(|t| t.parse().ok())
+            .unwrap();
+        assert!(legend_y < T, "legend at y = {legend_y}");
     }
 
     #[test]

@@ -80,6 +80,11 @@ pub struct DataSection {
     /// Allowed deviation of a sampling interval from the median, as a
     /// fraction (default 0.01).
     pub step_tolerance: f64,
+    /// Units of the log's columns for the report: `"unitless"`, or a
+    /// `[data.units]` table with `q`, `p` (one per coordinate), `energy`
+    /// and `inputs` (default: the reference system's, else not declared).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub units: Option<crate::evidence::units::DeclaredUnits>,
 }
 
 impl Default for DataSection {
@@ -90,6 +95,7 @@ impl Default for DataSection {
             val_fraction: 0.2,
             masses: None,
             step_tolerance: 0.01,
+            units: None,
         }
     }
 }

@@ -23,12 +23,14 @@ use crate::deploy::export::{export as export_blob, ExportReport};
 use crate::deploy::inspect::inspect;
 use crate::deploy::integrator::IntegratorOverrides;
 use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
-use crate::evidence::charts::{charts, driven_charts, loss_chart, units, HistoryFile};
+use crate::evidence::charts::{charts, driven_charts, loss_chart, model_label, HistoryFile};
 use crate::evidence::check::{check_port, driven_baseline, reference_modes, CheckSettings};
+use crate::evidence::provenance::{InputFile, Provenance};
 use crate::evidence::report::{
     CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison, Evidence, FitSummary, PortReport,
     RunReport,
 };
+use crate::evidence::units::Units;
 use crate::interrupt::Watch;
 use crate::learn::fit::{FitSettings, TrainReport};
 use crate::learn::hnn::BaselineModel;
@@ -76,6 +78,8 @@ pub struct Prepared {
     pub mode: String,
     /// Trajectory matching's plan, in fit mode trajectory.
     pub trajectory: Option<crate::learn::mode::TrajectoryPlan>,
+    /// The command that reproduces the run (the report's provenance).
+    pub command: String,
 }
 
 impl Prepared {
@@ -130,7 +134,14 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
     }
     let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
     check_sizes(&project, dir, logs.train.dof).with_context(|| file.clone())?;
-    let data = data_summary(&project.data.train.display().to_string(), &logs);
+    let units = Units::resolve(
+        project.data.units.as_ref(),
+        project.check.reference_system.as_deref(),
+        logs.train.dof,
+        logs.train.inputs,
+    )
+    .with_context(|| file.clone())?;
+    let data = data_summary(&project.data.train.display().to_string(), &logs, units);
     let name = project.name.clone().unwrap_or_else(|| {
         dir.file_name()
             .map(|s| s.to_string_lossy().into_owned())
@@ -146,6 +157,7 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         data,
         mode,
         trajectory,
+        command: format!("visviva run {} --force", dir.display()),
     };
     check_out_folder(&prep).with_context(|| file.clone())?;
     reference_system(&prep).with_context(|| file.clone())?;
@@ -279,7 +291,7 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
 /// x[k+1] - 2x[k] + x[k-1] has variance 6 s^2: common practice for
 /// well-sampled smooth signals; the motion's own curvature adds a little, so
 /// this is an upper bound).
-fn data_summary(train_file: &str, logs: &Logs) -> DataSummary {
+fn data_summary(train_file: &str, logs: &Logs, units: Units) -> DataSummary {
     let (train, val) = (&logs.train, &logs.val);
     let names = crate::data::log::column_names(train.dof, false);
     let coordinates = (0..2 * train.dof)
@@ -298,6 +310,7 @@ fn data_summary(train_file: &str, logs: &Logs) -> DataSummary {
             DerivativeSource::Estimated => "estimated (Savitzky-Golay)".into(),
         },
         coordinates,
+        units,
         inputs: train.inputs,
     }
 }
@@ -489,7 +502,8 @@ pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
                 ..CheckSettings::default()
             },
         )?;
-        let figs = charts(&r, Some(&history), units(reference.as_deref()))
+        let label = model_label(&src);
+        let figs = charts(&r, Some(&history), &prep.data.units, &label)
             .into_iter()
             .map(|(_, c)| (c.title.clone(), c.to_svg()))
             .collect();
@@ -606,9 +620,9 @@ fn port_check(
     let mut figs = Vec::new();
     if let (Some(t), Some(m)) = (val.trajectories.first(), r.rollouts.first()) {
         let b = base.as_ref().map(|b| b[0].states.as_slice());
-        figs = driven_charts(t, &m.states, b, 1500);
+        figs = driven_charts(t, &m.states, b, 1500, &prep.data.units);
     }
-    figs.push(("loss".into(), loss_chart(history)));
+    figs.push(("loss".into(), loss_chart(history, &model_label(blob))));
     let report = PortReport {
         inputs: val.inputs,
         dissipation: prep.project.model.damped(),
@@ -776,8 +790,8 @@ fn write_golden(
     Ok((golden, inputs_file))
 }
 
-/// The input sequence as CSV `t,u1..um` (t = k dt, row k held over step
-/// k), shortest round-trip decimals: `visviva rollout --inputs` reads it back
+/// The input sequence as CSV `t,u1..um` (t = k dt with the step's
+/// precision, row k held over step k), inputs in shortest round-trip decimals: `visviva rollout --inputs` reads it back
 /// bit for bit.
 fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
     let m = rows.first().map_or(0, Vec::len);
@@ -787,7 +801,7 @@ fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
     }
     text.push('\n');
     for (k, row) in rows.iter().enumerate() {
-        text.push_str(&format!("{}", k as f64 * dt as f64));
+        text.push_str(&crate::deploy::rollout::time_text(k, dt));
         for v in row {
             text.push_str(&format!(",{v}"));
         }
@@ -796,7 +810,8 @@ fn inputs_csv(rows: &[Vec<f32>], dt: f32) -> String {
     text
 }
 
-/// Write `out/report.json` and `out/report.html`; returns the report.
+/// Write `out/report.json` and `out/report.html`; returns the report. An
+/// earlier `out/report.json` is compared with first (the change block).
 pub fn report(
     prep: &Prepared,
     fit: FitResult,
@@ -805,21 +820,32 @@ pub fn report(
 ) -> Result<RunReport> {
     let budget_pass = devices.iter().all(|d| d.budget.pass);
     let observer = observer_stage(prep)?;
-    let report = RunReport {
+    let report_path = prep.out.join("report.json");
+    let previous: Option<serde_json::Value> = read_json(&report_path);
+    let mut report = RunReport {
         project: prep.name.clone(),
         visviva_version: env!("CARGO_PKG_VERSION").into(),
         architecture: checked.src.architecture(),
+        model_description: crate::evidence::describe::plain_description(&checked.src),
         data: prep.data.clone(),
         fit: fit.fit,
         baseline_fit: fit.baseline_fit,
         evidence: checked.evidence,
+        verdicts: crate::evidence::verdicts::verdicts(&devices, &prep.project.device),
         devices,
         budget: prep.project.device.clone(),
+        cycles_per_mac_used: crate::deploy::budget::cycles_per_mac(&prep.project.device),
         budget_pass,
         observer,
+        provenance: provenance(prep)?,
+        change: None,
         caution: crate::CAUTION.into(),
     };
-    write_json(&prep.out.join("report.json"), &report)?;
+    if let Some(previous) = previous {
+        let current = serde_json::to_value(&report)?;
+        report.change = Some(crate::evidence::change::compare(&previous, &current));
+    }
+    write_json(&report_path, &report)?;
     let html = crate::evidence::report::render_html(&report, &checked.figures);
     write_atomic(&prep.out.join("report.html"), html.as_bytes())?;
     Ok(report)
@@ -846,4 +872,47 @@ fn observer_stage(
     )
     .context("[observer]")?;
     Ok(Some(r))
+}
+
+/// The run's provenance: input files with their hashes, the effective
+/// settings (defaults, the model's integrator and time step and every
+/// export target's filled in) and the command that reproduces it.
+fn provenance(prep: &Prepared) -> Result<Provenance> {
+    let data = &prep.project.data;
+    let mut inputs = vec![InputFile::new(
+        "training log",
+        &data.train.display().to_string(),
+        &prep.logs.train_bytes,
+    )];
+    if let Some(v) = &data.validation {
+        let file = v.display().to_string();
+        inputs.push(InputFile::new(
+            "validation log",
+            &file,
+            &prep.logs.val_bytes,
+        ));
+    }
+    if let Ok(bytes) = std::fs::read(prep.dir.join("visviva.toml")) {
+        inputs.push(InputFile::new("project file", "visviva.toml", &bytes));
+    }
+    let mut settings = prep.project.clone();
+    let integrator = prep.plan.integrator;
+    let method = crate::deploy::integrator::MethodName::ALL
+        .into_iter()
+        .find(|m| Method::from(*m) == integrator.method);
+    settings.model.integrator = method;
+    settings.model.dt = Some(integrator.dt);
+    settings.exports = settings
+        .export_targets()
+        .into_iter()
+        .map(|mut t| {
+            t.integrator = t.integrator.or(method);
+            t.dt = t.dt.or(Some(integrator.dt));
+            t.substeps = t.substeps.or(Some(integrator.substeps));
+            t
+        })
+        .collect();
+    settings.device.cycles_per_mac = crate::deploy::budget::cycles_per_mac(&settings.device);
+    let text = toml::to_string(&settings).context("writing the effective settings")?;
+    Ok(Provenance::now(prep.command.clone(), inputs, text))
 }

@@ -95,6 +95,36 @@ pub struct SystemEntry {
     pub params: &'static [ParamSpec],
     /// Build the system from validated parameter values.
     pub build: fn(ParamValues) -> Result<Box<dyn ReferenceSystem>, SystemError>,
+    /// Units of its coordinates, momenta and inputs (energy in joules).
+    pub units: StateUnits,
+}
+
+/// The SI units of a built-in system's state and inputs.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StateUnits {
+    /// Every coordinate q_i.
+    pub q: &'static str,
+    /// Every momentum p_i.
+    pub p: &'static str,
+    /// Each input u_j.
+    pub inputs: &'static [&'static str],
+}
+
+const LINEAR: StateUnits = StateUnits {
+    q: "m",
+    p: "kg m/s",
+    inputs: &[],
+};
+
+const ANGULAR: StateUnits = StateUnits {
+    q: "rad",
+    p: "kg m^2/s",
+    inputs: &[],
+};
+
+/// The units of the catalog's system `name`.
+pub fn units_of(name: &str) -> Option<StateUnits> {
+    CATALOG.iter().find(|e| e.name == name).map(|e| e.units)
 }
 
 /// Every built-in system.
@@ -104,42 +134,55 @@ pub const CATALOG: &[SystemEntry] = &[
         summary: "sensor mass on a flexure (mass-spring), 1 dof",
         params: flexure::FLEXURE_PARAMS,
         build: flexure::Flexure::build,
+        units: LINEAR,
     },
     SystemEntry {
         name: "crane",
         summary: "gantry-crane payload sway (pendulum, q = angle), 1 dof",
         params: crane::CRANE_PARAMS,
         build: crane::Crane::build,
+        units: ANGULAR,
     },
     SystemEntry {
         name: "mount",
         summary: "two-stage vibration-isolation mount (two masses, two springs), 2 dof",
         params: mount::MOUNT_PARAMS,
         build: mount::Mount::build,
+        units: LINEAR,
     },
     SystemEntry {
         name: "flexure-damped",
         summary: "sensor mass on a flexure with viscous damping, no input, 1 dof",
         params: flexure::FLEXURE_DAMPED_PARAMS,
         build: flexure::FlexureDamped::build,
+        units: LINEAR,
     },
     SystemEntry {
         name: "drivetrain",
         summary: "two-inertia servo drivetrain (motor, elastic damped shaft, load with friction), motor torque input u1, 2 dof",
         params: drivetrain::DRIVETRAIN_PARAMS,
         build: drivetrain::Drivetrain::build,
+        units: StateUnits {
+            inputs: &["N m"],
+            ..ANGULAR
+        },
     },
     SystemEntry {
         name: "flexure-squeeze",
         summary: "sensor mass on a flexure beside a fixed plate: squeeze-film damping that grows as the gap closes, no input, 1 dof",
         params: flexure::FLEXURE_SQUEEZE_PARAMS,
         build: flexure::FlexureDamped::build_squeeze,
+        units: LINEAR,
     },
     SystemEntry {
         name: "crane-trolley",
         summary: "payload swinging under a moving trolley, rope damping, trolley acceleration input u1 (acts through cos q), 1 dof",
         params: crane::CRANE_TROLLEY_PARAMS,
         build: crane::CraneTrolley::build,
+        units: StateUnits {
+            inputs: &["m/s^2"],
+            ..ANGULAR
+        },
     },
 ];
 

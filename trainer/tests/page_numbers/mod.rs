@@ -1,25 +1,37 @@
 //! The report page's numbers read back from its text, without the page's
-//! own formatter: each `<span data-k="KEY">TEXT</span>` is parsed to a
-//! number and must equal report.json's value at KEY to within half a unit
-//! of the last digit the page shows (so the page rounds the file's number
-//! correctly, whatever formatting it chose).
+//! own formatter: each `<span data-k="KEY" data-x="F">TEXT</span>` is parsed
+//! to a number (thousands separators dropped), divided by the factor F the
+//! page applied (100 for percent, 1e-6 for mega, 1 when absent), and must
+//! equal report.json's value at KEY to within half a unit of the last digit
+//! the page shows (so the page rounds the file's number correctly, whatever
+//! formatting and unit prefix it chose).
 
 use serde_json::Value;
 
 /// (key, page text) for every tagged number, read from the HTML here.
 pub fn spans(html: &str) -> Vec<(String, String)> {
+    tagged(html).into_iter().map(|(k, t, _)| (k, t)).collect()
+}
+
+/// (key, page text, factor) for every tagged number.
+pub fn tagged(html: &str) -> Vec<(String, String, f64)> {
     let open = "<span data-k=\"";
     html.split(open)
         .skip(1)
         .filter_map(|rest| {
             let (key, after) = rest.split_once('"')?;
-            let (_, body) = after.split_once('>')?;
+            let (attrs, body) = after.split_once('>')?;
+            let factor = attrs
+                .split_once("data-x=\"")
+                .and_then(|(_, x)| x.split_once('"'))
+                .and_then(|(x, _)| x.parse::<f64>().ok())
+                .unwrap_or(1.0);
             let (text, _) = body.split_once("</span>")?;
             let text = text
                 .replace("&lt;", "<")
                 .replace("&gt;", ">")
                 .replace("&amp;", "&");
-            Some((key.to_string(), text))
+            Some((key.to_string(), text, factor))
         })
         .collect()
 }
@@ -34,18 +46,21 @@ fn half_unit(text: &str) -> f64 {
     0.5 * 10f64.powi(exp - decimals)
 }
 
-/// Whether the page text shows `value`.
-fn shows(text: &str, value: &Value) -> bool {
+/// Whether the page text, shown with `factor` applied, shows `value`.
+pub fn shows(text: &str, factor: f64, value: &Value) -> bool {
     match value {
         Value::Number(n) => {
-            let Ok(shown) = text.trim().parse::<f64>() else {
+            let digits = text.trim().replace(',', "");
+            let Ok(shown) = digits.parse::<f64>() else {
                 return false;
             };
-            if n.is_i64() || n.is_u64() {
-                return shown == n.as_f64().unwrap();
-            }
-            let v = n.as_f64().unwrap();
-            (shown - v).abs() <= half_unit(text.trim()) * (1.0 + 1e-9)
+            let v = n.as_f64().unwrap() * factor;
+            let half = if digits.contains(['.', 'e']) {
+                half_unit(&digits)
+            } else {
+                0.5
+            };
+            (shown - v).abs() <= half * (1.0 + 1e-9) + 1e-12 * v.abs()
         }
         Value::Null => text == "-",
         Value::Bool(b) => text == if *b { "yes" } else { "no" },
@@ -57,11 +72,11 @@ fn shows(text: &str, value: &Value) -> bool {
 /// Tagged numbers whose page text does not show report.json's value:
 /// (key, page text, report value).
 pub fn disagreements(html: &str, report: &Value) -> Vec<(String, String, String)> {
-    spans(html)
+    tagged(html)
         .into_iter()
-        .filter_map(|(key, text)| {
+        .filter_map(|(key, text, factor)| {
             let value = report.pointer(&format!("/{key}")).unwrap_or(&Value::Null);
-            (!shows(&text, value)).then(|| (key, text, value.to_string()))
+            (!shows(&text, factor, value)).then(|| (key, text, value.to_string()))
         })
         .collect()
 }
@@ -75,4 +90,12 @@ fn reading_back_catches_a_wrong_digit() {
     let wrong = page.replace("0.1235", "0.1236");
     assert_eq!(disagreements(&wrong, &json).len(), 1);
     assert_eq!(spans(page).len(), 4);
+    // Percent and prefixes: 0.123456 as 12.35 % (factor 100), 12345 as
+    // 12.35 k (factor 1e-3), counts with separators.
+    let scaled = "<span data-k=\"a\" data-x=\"1e2\">12.35</span>\
+                  <span data-k=\"b\" data-x=\"1e-3\">12.35</span>\
+                  <span data-k=\"b\" data-x=\"1e0\">12,345</span>";
+    assert!(disagreements(scaled, &json).is_empty());
+    let wrong = scaled.replace("12.35<", "12.36<");
+    assert_eq!(disagreements(&wrong, &json).len(), 2);
 }

@@ -123,7 +123,9 @@ fn attempt(unit: &Unit, force: bool, status: &mut UnitStatus) -> Result<()> {
         "{} (fleet template)",
         unit.dir.join("visviva.toml").display()
     );
-    let prep = pipeline::prepare_project(&unit.dir, unit.project.clone(), &label)?;
+    let mut prep = pipeline::prepare_project(&unit.dir, unit.project.clone(), &label)?;
+    // A unit has no visviva.toml of its own: the fleet reruns it.
+    prep.command = format!("visviva fleet run FLEET_DIR --force (unit {})", unit.name);
     let settings = serde_json::to_vec(&prep.project)?;
     let hash = sha(&[
         &prep.logs.train_bytes,

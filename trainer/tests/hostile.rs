@@ -501,3 +501,53 @@ fn class8_messages_name_the_real_problem() {
     }
     assert_unchanged(&before, d, "class 8");
 }
+
+/// Class 8: a rollout from a state far outside the training data runs, but
+/// says so (the threshold, 5 standard deviations of the training states, is
+/// common practice for outliers); a state inside the data gets no warning.
+#[test]
+fn class8_a_state_far_outside_the_training_data_is_warned_about() {
+    let dir = workspace();
+    let d = dir.path();
+    let log = std::fs::read_to_string(d.join("train.csv")).unwrap();
+    let mut lines = log.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let row: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let init = |factor: f64| {
+        header
+            .iter()
+            .zip(&row)
+            .filter(|(h, _)| h.starts_with('q') || h.starts_with('p'))
+            .map(|(h, v)| format!("{h}={}", v.parse::<f64>().unwrap() * factor))
+            .collect::<Vec<_>>()
+            .join(",")
+    };
+    let rollout = |spec: &str| {
+        visviva_in(
+            d,
+            &[
+                "rollout", "--model", "m.vvb", "--init", spec, "--steps", "20",
+            ],
+        )
+    };
+    let inside = rollout(&init(1.0));
+    assert_ok(&inside);
+    let (_, err) = text(&inside);
+    assert!(!err.contains("far outside"), "{err}");
+    let far = rollout(&init(1.0e4));
+    assert_ok(&far);
+    let (out, err) = text(&far);
+    assert!(
+        err.contains("warning: the initial state lies far outside the training data"),
+        "{err}"
+    );
+    assert!(
+        err.contains("standard deviations from the training mean"),
+        "{err}"
+    );
+    assert_eq!(
+        out.lines().count(),
+        22,
+        "header and 21 states still written"
+    );
+}

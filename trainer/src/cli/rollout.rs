@@ -13,7 +13,8 @@ use std::io::Write as _;
 use crate::atomic::write_atomic_with;
 use crate::capacity::check_disk;
 use crate::cli::shared_args::IntegratorArgs;
-use crate::deploy::blob::HostModel;
+use crate::deploy::blob::{BlobModel, HostModel};
+use crate::deploy::envelope::{Envelope, FarState};
 use crate::deploy::rollout::{csv_row_bytes, parse_init, stream_csv, InputRows};
 use crate::interrupt::Watch;
 
@@ -67,6 +68,12 @@ pub fn run(args: Args) -> Result<()> {
         .map_err(|e| anyhow!("{e}"))?;
     let dof = visviva_runtime::Hamiltonian::dof(&model);
     let x0 = parse_init(&args.init, dof)?;
+    let envelope = BlobModel::from_bytes(&bytes)
+        .map(|b| Envelope::of(&b))
+        .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
+    if let Some(far) = envelope.far(0, &x0) {
+        eprintln!("{}", far.warning(dof));
+    }
     let mut inputs = open_inputs(&args, visviva_runtime::Hamiltonian::inputs(&model))?;
     let fill = |_: usize, u: &mut [f32]| match inputs.as_mut() {
         Some(rows) => rows.next_into(u).map(|_| ()),
@@ -81,20 +88,50 @@ pub fn run(args: Args) -> Result<()> {
                 p,
                 rows.saturating_mul(csv_row_bytes(dof, args.bits)),
             )?;
+            let mut far = None;
             write_atomic_with(p, |w| {
-                stream_csv(&model, &x0, args.steps, fill, args.bits, watch, w)
+                far = stream_csv(
+                    &model,
+                    &x0,
+                    args.steps,
+                    fill,
+                    args.bits,
+                    watch,
+                    Some(&envelope),
+                    w,
+                )?;
+                Ok(())
             })?;
             eprintln!("wrote {} ({} states)", p.display(), rows);
+            warn_later(far, dof);
         }
         None => {
             let mut w = std::io::BufWriter::new(std::io::stdout().lock());
-            stream_csv(&model, &x0, args.steps, fill, args.bits, watch, &mut w)
-                .map_err(|e| anyhow!("{e:#}; standard output stops before that step"))?;
+            let far = stream_csv(
+                &model,
+                &x0,
+                args.steps,
+                fill,
+                args.bits,
+                watch,
+                Some(&envelope),
+                &mut w,
+            )
+            .map_err(|e| anyhow!("{e:#}; standard output stops before that step"))?;
             w.flush()?;
+            warn_later(far, dof);
         }
     }
     eprintln!("{}", crate::CAUTION);
     Ok(())
+}
+
+/// Warn when the rollout left the training data after its first state
+/// (the initial state was judged before the first step).
+fn warn_later(far: Option<FarState>, dof: usize) {
+    if let Some(f) = far.filter(|f| f.step > 0) {
+        eprintln!("{}", f.warning(dof));
+    }
 }
 
 /// The input rows of a driven model, checked whole (values and count)

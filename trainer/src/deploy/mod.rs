@@ -5,6 +5,7 @@
 pub mod blob;
 pub mod budget;
 pub mod compare;
+pub mod envelope;
 pub mod export;
 pub mod fitted_blob;
 pub mod footprint;

@@ -10,6 +10,7 @@ use rand::{Rng, SeedableRng};
 use visviva_runtime::{Hamiltonian, State, StepError};
 
 use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
+use crate::deploy::envelope::{Envelope, FarState};
 
 /// A trajectory computed on the host.
 #[derive(Debug, Clone)]
@@ -154,7 +155,9 @@ pub fn csv_row_bytes(dof: usize, bits: bool) -> u128 {
 
 /// Stream a rollout into `w` as CSV (`t,q1..qn,p1..pn`), each row written
 /// as its state is computed. A step that fails is an error naming it; a
-/// Ctrl-C (seen through `watch`) stops the rollout with an error.
+/// Ctrl-C (seen through `watch`) stops the rollout with an error. With an
+/// `envelope`, the first state far outside the training data is returned
+/// (the rollout goes on: the caller warns).
 #[allow(clippy::too_many_arguments)]
 pub fn stream_csv(
     model: &HostModel<'_>,
@@ -163,24 +166,29 @@ pub fn stream_csv(
     fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
     bits: bool,
     watch: crate::interrupt::Watch,
+    envelope: Option<&Envelope>,
     w: &mut dyn Write,
-) -> Result<()> {
+) -> Result<Option<FarState>> {
     let dof = model.dof();
     let dt = model.integrator().dt;
     write_csv_header(w, dof)?;
     let mut x = vec![0.0f32; 2 * dof];
+    let mut far = None;
     let failure = roll_each(model, x0, steps, fill, |k, s| {
         if k % 4096 == 0 {
             watch.check()?;
         }
         x[..dof].copy_from_slice(s.q());
         x[dof..].copy_from_slice(s.p());
+        if far.is_none() {
+            far = envelope.and_then(|e| e.far(k, &x));
+        }
         Ok(write_csv_row(w, k, dt, &x, bits)?)
     })?;
     if let Some((k, e)) = failure {
         bail!("step {} of {steps}: {e}", k + 1);
     }
-    Ok(())
+    Ok(far)
 }
 
 /// An input sequence read row by row: CSV with header `t,u1..um`, one row

@@ -140,3 +140,49 @@ fn a_project_with_columns_reads_the_rig_log_and_chooses_trajectory_matching() {
     // The model integrator is the log's step, Verlet (separable default).
     assert!((prep.plan.integrator.dt - 0.01).abs() < 1e-6);
 }
+
+/// The whole `visviva run` on the rig project: fit by trajectory matching,
+/// check, export and the report, whose `report.json` says the fit mode,
+/// counts the gap and carries the column units and the noise model.
+#[test]
+fn a_rig_project_runs_end_to_end_and_its_report_counts_the_gap() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::create_dir_all(dir.path().join("data")).unwrap();
+    write_rig_log(&dir.path().join("data/train.csv"));
+    let project = format!(
+        "[model]\nhidden = [8, 8]\n\n[fit]\nepochs = 3\ntrajectory_epochs = 3\n\n[check]\ngolden_states = 2\ngolden_steps = 50\n\n{README_COLUMNS}"
+    );
+    std::fs::write(dir.path().join("visviva.toml"), project).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_visviva"))
+        .arg("run")
+        .arg(dir.path())
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    // A 3-epoch fit may well miss the budget or the baseline; the run must
+    // still write its report (exit 0 or a budget failure), never crash.
+    let report = dir.path().join("out/report.json");
+    assert!(report.exists(), "no report: {stdout}\n{err}");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report).unwrap()).unwrap();
+    assert!(
+        json["fit_mode"]
+            .as_str()
+            .unwrap()
+            .starts_with("fit mode trajectory"),
+        "{}",
+        json["fit_mode"]
+    );
+    assert_eq!(json["data"]["rig"]["gaps"], 1);
+    assert_eq!(json["data"]["rig"]["positions_only"], true);
+    assert_eq!(json["data"]["units"]["q"][0], "rad");
+    let noise = json["data"]["rig"]["noise"][0].as_f64().unwrap();
+    // Quantization noise floor of a 4096-count encoder: step / sqrt(12)
+    // (uniform quantization error, textbook signal processing).
+    let floor = std::f64::consts::TAU / 4096.0 / 12f64.sqrt();
+    assert!(noise >= floor * 0.999, "noise model {noise} below {floor}");
+    let html = std::fs::read_to_string(dir.path().join("out/report.html")).unwrap();
+    assert!(html.contains("gaps that split trajectories"));
+    assert!(html.contains(r#"data-k="fit_mode""#));
+}

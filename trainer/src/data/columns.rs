@@ -411,7 +411,7 @@ impl Default for MappedOptions {
 }
 
 /// What reading a mapped log found, besides the trajectories.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct RigSummary {
     /// Whether the log held positions (and inputs) only.
     pub positions_only: bool,

@@ -182,6 +182,10 @@ fn data_section(h: &mut Html<'_>, report: &RunReport) {
         rows.push(vec!["input columns".into(), h.num("data/inputs")]);
         rows.push(vec!["input units".into(), units.join(", ")]);
     }
+    rows.push(vec!["fit mode".into(), h.num("fit_mode")]);
+    if let Some(rig) = &report.data.rig {
+        rows.extend(rig_rows(h, rig.noise.len()));
+    }
     h.table(&["", ""], &rows);
     let n = report.data.coordinates.len();
     let dof = report.data.dof;
@@ -222,6 +226,40 @@ fn data_section(h: &mut Html<'_>, report: &RunReport) {
         " Units are not declared: add <code>[data] units = \"unitless\"</code> or a <code>[data.units]</code> table (<code>q</code>, <code>p</code>, <code>energy</code>, <code>inputs</code>) to visviva.toml."
     };
     h.p(&format!("<p class=\"note\">Each row in its unit; noise is estimated from second differences of each coordinate (for white noise of standard deviation s, the second difference has variance 6 s<sup>2</sup>; smooth motion adds little when sampled finely).{undeclared}</p>"));
+}
+
+/// What reading the log through `[columns]` found: positions only or not,
+/// gaps that split trajectories, dropped pieces, and per coordinate the
+/// quantization step and the noise model the fit weighs errors by.
+fn rig_rows(h: &Html<'_>, dof: usize) -> Vec<Vec<String>> {
+    let mut rows = vec![
+        vec![
+            "positions only (velocities estimated)".into(),
+            h.num("data/rig/positions_only"),
+        ],
+        vec![
+            "gaps that split trajectories".into(),
+            h.one("data/rig/gaps", Quantity::Count),
+        ],
+        vec![
+            "pieces too short to use (dropped)".into(),
+            h.one("data/rig/dropped_pieces", Quantity::Count),
+        ],
+    ];
+    for i in 0..dof {
+        rows.push(vec![
+            format!(
+                "<span class=\"label\">q{}</span> quantization step, noise model (std)",
+                i + 1
+            ),
+            format!(
+                "{}, {}",
+                h.num(&format!("data/rig/quantization/{i}")),
+                h.num(&format!("data/rig/noise/{i}"))
+            ),
+        ]);
+    }
+    rows
 }
 
 /// The energy model's and the baseline's fits side by side; one format per

@@ -58,6 +58,10 @@ pub struct DataSummary {
     /// Input columns u1..um of the logs (0 for an undriven system).
     #[serde(skip_serializing_if = "is_zero")]
     pub inputs: usize,
+    /// What reading a log through `[columns]` found (gaps, quantization,
+    /// noise model, masses); absent for the canonical layout.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub rig: Option<crate::data::columns::RigSummary>,
 }
 
 fn is_zero(v: &usize) -> bool {
@@ -204,6 +208,8 @@ pub struct RunReport {
     pub model_description: String,
     /// Data.
     pub data: DataSummary,
+    /// How the model was fitted (derivative or trajectory matching) and why.
+    pub fit_mode: String,
     /// The energy model's fit.
     pub fit: FitSummary,
     /// The baseline's fit.

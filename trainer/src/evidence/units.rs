@@ -88,6 +88,34 @@ pub const UNITLESS: &str = "-";
 pub const UNDECLARED: &str = "?";
 
 impl Units {
+    /// Undeclared units filled from the `[columns]` mapping's `unit` keys
+    /// (positions q1..qn, then inputs); units declared under `[data]` or
+    /// known from a built-in system win. Momenta and energy stay undeclared:
+    /// a column mapping does not say them.
+    pub fn with_columns(
+        mut self,
+        rig: Option<&crate::data::columns::RigSummary>,
+        dof: usize,
+    ) -> Self {
+        let Some(rig) = rig.filter(|_| !self.declared) else {
+            return self;
+        };
+        let mut filled = false;
+        let slots = self.q.iter_mut().chain(self.inputs.iter_mut());
+        for (slot, unit) in slots.zip(&rig.units) {
+            if !unit.is_empty() {
+                *slot = unit.clone();
+                filled = true;
+            }
+        }
+        if filled {
+            self.source = format!(
+                "[columns] unit keys ({dof} position columns and the inputs); add [data] units for momenta and energy"
+            );
+        }
+        self
+    }
+
     /// Settle the units of data with `dof` degrees of freedom and `inputs`
     /// input columns: `[data] units` first, else the built-in `system`'s,
     /// else undeclared. A declared table must give one unit per column.

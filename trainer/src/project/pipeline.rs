@@ -310,8 +310,9 @@ fn data_summary(train_file: &str, logs: &Logs, units: Units) -> DataSummary {
             DerivativeSource::Estimated => "estimated (Savitzky-Golay)".into(),
         },
         coordinates,
-        units,
+        units: units.with_columns(logs.rig.as_ref(), train.dof),
         inputs: train.inputs,
+        rig: logs.rig.clone(),
     }
 }
 
@@ -828,6 +829,7 @@ pub fn report(
         architecture: checked.src.architecture(),
         model_description: crate::evidence::describe::plain_description(&checked.src),
         data: prep.data.clone(),
+        fit_mode: prep.mode.clone(),
         fit: fit.fit,
         baseline_fit: fit.baseline_fit,
         evidence: checked.evidence,

@@ -84,14 +84,29 @@ fn class3_untrusted_results_exit_non_zero_with_the_reason() {
         assert!(!text(&o).0.contains("fitting"), "{flags:?} started a fit");
         assert_unchanged(&before, d, needle);
     }
-    // An export whose time step makes the check rollouts meaningless.
+    // A time step no blob can hold is refused before any work, naming the
+    // flag and the range.
     let o = visviva_in(
         d,
         &[
             "export", "--model", "m.vvb", "--dt", "1e9", "--out", "e.vvb",
         ],
     );
-    assert_refused(&o, 1, &["dt = 1000000000 s", "nothing was written"]);
+    assert_refused(
+        &o,
+        1,
+        &["--dt = 1000000000 s", "must lie in [1e-12, 1e6] s"],
+    );
+    assert_unchanged(&before, d, "--dt 1e9");
+    // An export whose time step a blob can hold but whose check rollouts
+    // show it cannot be meant.
+    let o = visviva_in(
+        d,
+        &[
+            "export", "--model", "m.vvb", "--dt", "1e5", "--out", "e.vvb",
+        ],
+    );
+    assert_refused(&o, 1, &["dt = 100000 s", "nothing was written"]);
     for (flag, value, needle) in [
         ("--substeps", "0", "--substeps = 0"),
         ("--tolerance", "0", "--tolerance = 0"),
@@ -136,11 +151,11 @@ fn class3_a_project_with_an_absurd_export_is_not_a_pass() {
         assert_refused(&o, 1, &[needle]);
         assert_unchanged(&before, d, needle);
     }
-    // dt = 1e9 is a positive number, so it passes the file's checks; the
-    // export's own rollouts then show it cannot be meant.
+    // dt = 1e5 s lies in the range a blob can hold, so it passes the
+    // file's checks; the export's own rollouts then show it cannot be meant.
     project(
         d,
-        "[[export]]\nname = \"huge-step\"\ndt = 1e9\n[device]\nflash_bytes = 1000000\n",
+        "[[export]]\nname = \"huge-step\"\ndt = 1e5\n[device]\nflash_bytes = 1000000\n",
     );
     let o = visviva_in(d, &["run", "--quiet", "."]);
     let err = assert_refused(&o, 1, &["[[export]] 'huge-step'", "nothing was written"]);
@@ -402,7 +417,7 @@ fn class7_out_never_holds_blobs_of_another_model() {
     }
     // A new seed refits the model; the new export is refused at its stage.
     let t = std::fs::read_to_string(d.join("visviva.toml")).unwrap();
-    let t = t.replace("epochs = 5", "epochs = 5\nseed = 7") + "dt = 1e9\n";
+    let t = t.replace("epochs = 5", "epochs = 5\nseed = 7") + "dt = 1e5\n";
     std::fs::write(d.join("visviva.toml"), t).unwrap();
     let o = visviva_in(d, &["run", "--quiet", "."]);
     assert_refused(&o, 1, &["[[export]] 'old'"]);

@@ -104,8 +104,8 @@ mod tests {
     #[test]
     fn distance_is_counted_in_standard_deviations_per_coordinate() {
         let e = envelope();
-        assert_eq!(e.farthest(&[1.0, 0.0]), Some((0, 0.0)));
-        assert_eq!(e.farthest(&[5.0, 1.0]), Some((0, 2.0)));
+        assert_eq!(e.farthest(&[1.0, 0.25]), Some((1, 0.5)));
+        assert_eq!(e.farthest(&[5.0, 0.5]), Some((0, 2.0)));
         assert_eq!(e.farthest(&[1.0, -1.5]), Some((1, 3.0)));
     }
 

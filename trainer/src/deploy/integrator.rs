@@ -106,7 +106,7 @@ impl IntegratorOverrides {
     /// Refuse overrides out of their range before any work, each named by
     /// `name(key)` (e.g. `--dt`).
     pub fn check(&self, name: impl Fn(&str) -> String) -> anyhow::Result<()> {
-        use visviva_runtime::integrate::{MAX_ITERATIONS, MAX_SUBSTEPS};
+        use visviva_runtime::integrate::{MAX_ITERATIONS, MAX_SUBSTEPS, MIN_TOLERANCE};
         if let Some(dt) = self.dt {
             crate::learn::stage::check_time_step(dt, &name("dt"))?;
         }
@@ -124,6 +124,15 @@ impl IntegratorOverrides {
         }
         if let Some(t) = self.tolerance.filter(|t| !(t.is_finite() && *t > 0.0)) {
             anyhow::bail!("{} = {t}: must be a finite number > 0", name("tolerance"));
+        }
+        if let Some(t) = self
+            .tolerance
+            .filter(|t| !(MIN_TOLERANCE..=1.0).contains(t))
+        {
+            anyhow::bail!(
+                "{} = {t}: must lie in [{MIN_TOLERANCE:e}, 1], the range a blob can hold",
+                name("tolerance")
+            );
         }
         Ok(())
     }

@@ -82,8 +82,15 @@ pub fn check_fit_settings(s: &FitSettings, names: SettingNames) -> Result<()> {
 /// Refuse a time step that no integrator can use: not finite, not
 /// positive, or below the smallest normal f32 (the device's arithmetic).
 pub fn check_time_step(dt: f32, setting: &str) -> Result<()> {
+    use visviva_runtime::integrate::{MAX_DT, MIN_DT};
     if !(dt.is_finite() && dt > 0.0 && dt.is_normal()) {
         bail!("{setting} = {dt}: the time step must be a finite number of seconds > 0");
+    }
+    if !(MIN_DT..=MAX_DT).contains(&dt) {
+        bail!(
+            "{setting} = {dt} s: the time step must lie in [{MIN_DT:e}, {MAX_DT:e}] s, the range \
+             a blob can hold (see the format's value ranges)"
+        );
     }
     Ok(())
 }

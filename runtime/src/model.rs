@@ -320,6 +320,12 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         self.dof
     }
 
+    /// The energy scale the blob states: the training data's typical
+    /// energy, the unit in which the learned energy's drift is judged.
+    pub fn energy_scale(&self) -> f32 {
+        self.energy_scale
+    }
+
     /// Number of inputs m that `step_driven` takes (0 for an autonomous model).
     pub fn inputs(&self) -> usize {
         self.input.map_or(0, |(m, _)| m)

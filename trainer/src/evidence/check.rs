@@ -49,8 +49,9 @@ pub struct Metrics {
     /// max |H(t) - H(0)| / |H(0)| of the true energy over the horizon
     /// (built-in systems only).
     pub true_energy_drift: Option<f64>,
-    /// max |H(t) - H(0)| of the learned energy over the horizon, over the
-    /// spread (max - min) of the learned energy on the trajectory's data.
+    /// max |H(t) - H(0)| of the learned energy over the horizon, in energy
+    /// scales (the blob's: the training data's typical energy, a scale
+    /// that does not shrink as the model gets more accurate).
     pub learned_energy_drift: Option<f64>,
     /// Steps completed on the long horizon (less than asked when it failed).
     pub horizon_steps_done: usize,
@@ -266,20 +267,7 @@ fn run_one(
     // Long horizon.
     let mut x = x0;
     let (t0, l0) = energy_of(&x);
-    let spread = learned.map(|mdl| {
-        let es: Vec<f64> = truth
-            .iter()
-            .filter_map(|r| {
-                let v: Vec<f32> = r.iter().map(|v| *v as f32).collect();
-                state_of(&v)
-                    .ok()
-                    .and_then(|s| mdl.energy(&s).ok())
-                    .map(|e| e as f64)
-            })
-            .collect();
-        es.iter().cloned().fold(f64::NEG_INFINITY, f64::max)
-            - es.iter().cloned().fold(f64::INFINITY, f64::min)
-    });
+    let scale = learned.map(|mdl| mdl.energy_scale() as f64);
     let (mut td, mut ld) = (0.0f64, 0.0f64);
     // The energy series is decimated as it is produced (every `stride`-th
     // step, as `decimate` would keep them), so memory does not grow with
@@ -313,14 +301,13 @@ fn run_one(
             td / e0.abs().max(f64::MIN_POSITIVE)
         }
     });
-    m.learned_energy_drift = match (learned, spread) {
-        (Some(_), Some(sp)) => Some(if broke {
+    m.learned_energy_drift = scale.map(|es| {
+        if broke {
             f64::INFINITY
         } else {
-            ld / sp.max(f64::MIN_POSITIVE)
-        }),
-        _ => None,
-    };
+            ld / es.max(f64::MIN_POSITIVE)
+        }
+    });
     Run {
         metrics: m,
         phase: decimate(phase, keep),

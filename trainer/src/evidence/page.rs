@@ -320,9 +320,9 @@ fn conservative_section(h: &mut Html<'_>, check: &CheckReport) {
         ("learned-energy drift", "learned_energy_drift")
     };
     h.p("<h2>Energy model versus plain baseline</h2>");
-    h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value) and shown in percent. Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon{}.</p>",
+    h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value) and shown in percent. {}</p>",
         h.num("check/integrator"),
-        if truth { " of the true energy of the reference system" } else { " of the learned energy, over its spread on the data" }));
+        if truth { "Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon, H the true energy of the reference system." } else { "Energy drift is max |H(t) - H(0)| / E<sub>s</sub> over the long horizon, H the learned energy and E<sub>s</sub> the blob's energy scale (the training data's typical energy: unlike the learned energy's spread along one trajectory, it does not shrink as the model gets more accurate, so the figure ranks models like their true drift)." }));
     let n = check.trajectories.len();
     let fmt = |h: &Html<'_>, f: &str| {
         let mut p = paths("check/trajectories", n, &format!("model/{f}"));

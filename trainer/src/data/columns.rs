@@ -344,11 +344,7 @@ pub struct ColumnError {
 
 impl fmt::Display for ColumnError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}: line {}", self.file.display(), self.line)?;
-        if let Some(c) = &self.column {
-            write!(f, ", column '{c}'")?;
-        }
-        write!(f, ": ")?;
+        crate::data::log::write_location(f, &self.file, self.line, self.column.as_deref())?;
         match &self.problem {
             ColumnProblem::Unreadable(e) => write!(f, "cannot read the log: {e}"),
             ColumnProblem::Empty => write!(f, "the log has no data rows"),

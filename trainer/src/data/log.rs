@@ -129,13 +129,23 @@ pub struct DataError {
     pub problem: DataProblem,
 }
 
+/// The location every log error starts with: `FILE: line L, column 'C': `.
+pub(crate) fn write_location(
+    f: &mut fmt::Formatter<'_>,
+    file: &std::path::Path,
+    line: u64,
+    column: Option<&str>,
+) -> fmt::Result {
+    write!(f, "{}: line {line}", file.display())?;
+    if let Some(c) = column {
+        write!(f, ", column '{c}'")?;
+    }
+    write!(f, ": ")
+}
+
 impl fmt::Display for DataError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}: line {}", self.file.display(), self.line)?;
-        if let Some(c) = &self.column {
-            write!(f, ", column '{c}'")?;
-        }
-        write!(f, ": ")?;
+        write_location(f, &self.file, self.line, self.column.as_deref())?;
         match &self.problem {
             DataProblem::Io(e) => write!(f, "cannot read file: {e}"),
             DataProblem::Malformed(e) => write!(f, "malformed CSV: {e}"),

@@ -11,8 +11,8 @@ use ndarray::{s, Array2};
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
-use crate::data::dataset::{Dataset, DerivativeSource, Trajectory};
-use crate::reference::simulate::{integrate, SimulationSpec};
+use crate::data::dataset::Dataset;
+use crate::reference::simulate::{autonomous_dataset, exact_trajectory, integrate, SimulationSpec};
 use crate::reference::ReferenceSystem;
 
 /// Trajectories of `before` that continue as `after` from time `at` (s).
@@ -49,25 +49,8 @@ pub fn simulate_changed(
         x.slice_mut(s![..split, ..])
             .assign(&a.slice(s![..split, ..]));
         x.slice_mut(s![split.., ..]).assign(&b.slice(s![1.., ..]));
-        let mut dx = Array2::zeros(x.raw_dim());
-        let mut buf = vec![0.0; 2 * n];
-        for (k, (row, mut d)) in x.rows().into_iter().zip(dx.rows_mut()).enumerate() {
-            let system = if k < split { before } else { after };
-            system.vector_field(&row.to_vec(), &mut buf);
-            d.assign(&ndarray::ArrayView1::from(&buf));
-        }
-        trajectories.push(Trajectory {
-            id: index.to_string(),
-            t: times.clone(),
-            x,
-            dx,
-            u: Array2::zeros((times.len(), 0)),
-        });
+        let system_at = |k: usize| if k < split { before } else { after };
+        trajectories.push(exact_trajectory(index, &times, x, system_at));
     }
-    Ok(Dataset {
-        dof: n,
-        inputs: 0,
-        trajectories,
-        derivatives: DerivativeSource::Given,
-    })
+    Ok(autonomous_dataset(n, trajectories))
 }

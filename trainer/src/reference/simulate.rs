@@ -289,26 +289,43 @@ fn simulate_conservative(
     for index in 0..spec.trajectories {
         let x0 = system.sample_initial_state(&mut rng);
         let x = integrate(system, &x0, &times)?;
-        let mut dx = Array2::zeros(x.raw_dim());
-        let mut buf = vec![0.0; 2 * n];
-        for (row, mut d) in x.rows().into_iter().zip(dx.rows_mut()) {
-            system.vector_field(row.as_slice().expect("standard layout"), &mut buf);
-            d.assign(&ndarray::ArrayView1::from(&buf));
-        }
-        trajectories.push(Trajectory {
-            id: index.to_string(),
-            t: times.clone(),
-            x,
-            dx,
-            u: Array2::zeros((times.len(), 0)),
-        });
+        trajectories.push(exact_trajectory(index, &times, x, |_| system));
     }
-    Ok(Dataset {
-        dof: n,
+    Ok(autonomous_dataset(n, trajectories))
+}
+
+/// An undriven trajectory of states `x` at `times` with exact derivatives:
+/// row k's from the vector field of `system_at(k)` (one system, or the one
+/// in force at that sample for a machine that changes mid-log).
+pub(crate) fn exact_trajectory<'s>(
+    index: usize,
+    times: &[f64],
+    x: Array2<f64>,
+    system_at: impl Fn(usize) -> &'s dyn ReferenceSystem,
+) -> Trajectory {
+    let mut dx = Array2::zeros(x.raw_dim());
+    let mut buf = vec![0.0; x.ncols()];
+    for (k, (row, mut d)) in x.rows().into_iter().zip(dx.rows_mut()).enumerate() {
+        system_at(k).vector_field(&row.to_vec(), &mut buf);
+        d.assign(&ndarray::ArrayView1::from(&buf));
+    }
+    Trajectory {
+        id: index.to_string(),
+        t: times.to_vec(),
+        x,
+        dx,
+        u: Array2::zeros((times.len(), 0)),
+    }
+}
+
+/// Undriven trajectories of `dof` degrees of freedom with exact derivatives.
+pub(crate) fn autonomous_dataset(dof: usize, trajectories: Vec<Trajectory>) -> Dataset {
+    Dataset {
+        dof,
         inputs: 0,
         trajectories,
         derivatives: DerivativeSource::Given,
-    })
+    }
 }
 
 /// Generate `spec.trajectories` clean trajectories of a damped or driven

@@ -11,7 +11,7 @@ use std::time::Instant;
 
 use anyhow::{bail, Result};
 use indicatif::{ProgressBar, ProgressStyle};
-use ndarray::{s, Array2, ArrayView2};
+use ndarray::{s, Array2};
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -22,6 +22,7 @@ use crate::learn::hnn::{
     Normalization, Objective, PortArch, PortModel, PortObjective,
 };
 use crate::learn::net::{Activation, MlpShape};
+use crate::learn::pool::{with_pool, Pool, PoolSize, Rows};
 
 /// Settings of one training run.
 #[derive(Debug, Clone)]
@@ -432,117 +433,39 @@ pub fn fit_baseline(
 /// thread; beyond the cores they only cost memory).
 pub const MAX_THREADS: usize = 256;
 
-/// Per-thread buffers.
-struct Lanes<W> {
-    works: Vec<W>,
-    grads: Vec<Vec<f32>>,
-}
-
-impl<W: Default + Send> Lanes<W> {
-    fn new(threads: usize, params: usize) -> Self {
-        Self {
-            works: (0..threads).map(|_| W::default()).collect(),
-            grads: (0..threads).map(|_| vec![0.0; params]).collect(),
-        }
-    }
-}
-
-/// Sum of per-sample losses over the rows and, with `grad`, the summed
-/// gradient. Rows are split into `threads` contiguous parts at fixed
-/// boundaries and the parts' results are added in part order.
-fn loss_sum_parallel<O: Objective>(
-    obj: &O,
-    p: &[f32],
-    z: ArrayView2<'_, f32>,
-    t: ArrayView2<'_, f32>,
-    lanes: &mut Lanes<O::Work>,
-    grad: Option<&mut [f32]>,
-) -> f64 {
-    let parts = lanes.works.len().min(z.nrows()).max(1);
-    let rows = z.nrows();
-    let want_grad = grad.is_some();
-    let bounds: Vec<(usize, usize)> = (0..parts)
-        .map(|k| (k * rows / parts, (k + 1) * rows / parts))
-        .collect();
-    let mut losses = vec![0.0f64; parts];
-    let run_part = |k: usize, work: &mut O::Work, g: &mut Vec<f32>| -> f64 {
-        let (a, b) = bounds[k];
-        if want_grad {
-            g.iter_mut().for_each(|v| *v = 0.0);
-        }
-        obj.loss_sum(
-            p,
-            z.slice(s![a..b, ..]),
-            t.slice(s![a..b, ..]),
-            work,
-            want_grad.then_some(g.as_mut_slice()),
-        )
-    };
-    if parts == 1 {
-        losses[0] = run_part(0, &mut lanes.works[0], &mut lanes.grads[0]);
-    } else {
-        std::thread::scope(|scope| {
-            let mut handles = Vec::with_capacity(parts - 1);
-            let mut it = lanes
-                .works
-                .iter_mut()
-                .zip(lanes.grads.iter_mut())
-                .take(parts)
-                .enumerate();
-            let (_, (w0, g0)) = it.next().expect("one part");
-            for (k, (w, g)) in it {
-                let f = &run_part;
-                handles.push(scope.spawn(move || f(k, w, g)));
-            }
-            losses[0] = run_part(0, w0, g0);
-            for (k, h) in handles.into_iter().enumerate() {
-                losses[k + 1] = h.join().expect("worker thread panicked");
-            }
-        });
-    }
-    if let Some(grad) = grad {
-        grad.copy_from_slice(&lanes.grads[0]);
-        for g in lanes.grads.iter().take(parts).skip(1) {
-            grad.iter_mut().zip(g).for_each(|(a, b)| *a += b);
-        }
-    }
-    losses.iter().sum()
-}
-
-/// Mean loss over all rows, evaluated in chunks of `chunk` rows.
+/// Mean loss over the validation rows (`rows` of them), evaluated in
+/// chunks of `chunk` rows.
 fn mean_loss<O: Objective>(
-    obj: &O,
+    pool: &mut Pool<'_, '_, O>,
     p: &[f32],
-    z: &Array2<f32>,
-    t: &Array2<f32>,
+    rows: usize,
     chunk: usize,
-    lanes: &mut Lanes<O::Work>,
 ) -> f64 {
     let mut total = 0.0;
     let mut start = 0;
-    while start < z.nrows() {
-        let end = (start + chunk).min(z.nrows());
-        total += loss_sum_parallel(
-            obj,
-            p,
-            z.slice(s![start..end, ..]),
-            t.slice(s![start..end, ..]),
-            lanes,
-            None,
-        );
+    while start < rows {
+        let end = (start + chunk).min(rows);
+        total += pool.loss_sum(p, Rows::Validation(start, end), None);
         start = end;
     }
-    total / z.nrows().max(1) as f64
+    total / rows.max(1) as f64
 }
 
-fn progress_bar(total: usize, quiet: bool) -> ProgressBar {
+/// The bar counts samples (steps x batch), so it shows samples/s and the
+/// time left.
+fn progress_bar(steps: usize, batch: usize, quiet: bool) -> ProgressBar {
     if quiet || !std::io::stderr().is_terminal() {
         return ProgressBar::hidden();
     }
-    let bar = ProgressBar::new(total as u64);
-    if let Ok(style) = ProgressStyle::with_template("{bar:30} {pos}/{len} steps  {msg}  ETA {eta}")
-    {
-        bar.set_style(style);
+    let bar = ProgressBar::new((steps * batch) as u64);
+    let template = "{bar:30} {human_pos}/{human_len} samples  {rate} samples/s  ETA {eta}  {msg}";
+    if let Ok(style) = ProgressStyle::with_template(template) {
+        bar.set_style(style.with_key(
+            "rate",
+            |st: &indicatif::ProgressState, w: &mut dyn std::fmt::Write| {
+                let _ = write!(w, "{:.0}", st.per_sec());
+            },
+        ));
     }
     bar
 }
@@ -593,53 +516,38 @@ fn check_settings(s: &FitSettings) -> Result<()> {
     Ok(())
 }
 
-/// Buffers reused by every optimizer step.
-struct BatchBuffers<W> {
-    lanes: Lanes<W>,
-    grad: Vec<f32>,
-    zb: Array2<f32>,
-    tb: Array2<f32>,
-}
-
-/// The mean loss and the clipped mean gradient (left in `buf.grad`) of
-/// the rows `idx` of `data` = (inputs, targets); returns (loss, gradient
-/// norm before clipping).
+/// The mean loss and the clipped mean gradient (left in `grad`) of the
+/// training rows `idx`; returns (loss, gradient norm before clipping).
 fn minibatch_gradient<O: Objective>(
-    obj: &O,
+    pool: &mut Pool<'_, '_, O>,
     params: &[f32],
     idx: &[usize],
-    data: (&Array2<f32>, &Array2<f32>),
-    buf: &mut BatchBuffers<O::Work>,
+    grad: &mut [f32],
     clip: f32,
 ) -> (f64, f32) {
-    let (z, t) = data;
     let b = idx.len();
-    if buf.zb.nrows() != b {
-        buf.zb = Array2::zeros((b, z.ncols()));
-        buf.tb = Array2::zeros((b, t.ncols()));
-    }
-    for (r, &i) in idx.iter().enumerate() {
-        buf.zb.row_mut(r).assign(&z.row(i));
-        buf.tb.row_mut(r).assign(&t.row(i));
-    }
-    let sum = loss_sum_parallel(
-        obj,
-        params,
-        buf.zb.view(),
-        buf.tb.view(),
-        &mut buf.lanes,
-        Some(&mut buf.grad),
-    );
+    let sum = pool.loss_sum(params, Rows::Train(idx), Some(grad));
     let inv = 1.0 / b as f32;
-    buf.grad.iter_mut().for_each(|g| *g *= inv);
-    let norm = crate::learn::optim::clip_global_norm(&mut buf.grad, clip);
+    grad.iter_mut().for_each(|g| *g *= inv);
+    let norm = crate::learn::optim::clip_global_norm(grad, clip);
     (sum / b as f64, norm)
+}
+
+/// The shape of one run: rows, minibatch, steps and epochs, the
+/// learning-rate schedule.
+struct RunPlan {
+    rows: usize,
+    batch: usize,
+    total: usize,
+    epochs: usize,
+    val_rows: Option<usize>,
+    schedule: crate::learn::optim::Schedule,
 }
 
 /// [`run`] on normalized arrays (rows of inputs `z` and targets `t`).
 fn run_arrays<O: Objective>(
     obj: &O,
-    mut params: Vec<f32>,
+    params: Vec<f32>,
     z: Array2<f32>,
     t: Array2<f32>,
     validation: Option<(Array2<f32>, Array2<f32>)>,
@@ -650,25 +558,46 @@ fn run_arrays<O: Objective>(
     let batch = s.batch.min(rows);
     let per_epoch = rows.div_ceil(batch);
     let total = s.steps.unwrap_or(s.epochs.saturating_mul(per_epoch)).max(1);
-    let epochs = total.div_ceil(per_epoch);
-    let schedule = crate::learn::optim::Schedule {
-        peak: s.lr,
-        warmup: ((total as f32 * s.warmup_fraction) as usize).max(1),
+    let plan = RunPlan {
+        rows,
+        batch,
         total,
-        floor: s.lr_floor,
+        epochs: total.div_ceil(per_epoch),
+        val_rows: validation.as_ref().map(|(zv, _)| zv.nrows()),
+        schedule: crate::learn::optim::Schedule {
+            peak: s.lr,
+            warmup: ((total as f32 * s.warmup_fraction) as usize).max(1),
+            total,
+            floor: s.lr_floor,
+        },
     };
     let np = obj.param_count();
     // Each thread keeps a gradient and its workspace (about as large).
     let lane = 8 * np as u128;
     crate::capacity::check_memory("--threads ([fit] threads)", s.threads as u128, lane)?;
-    let mut adam = crate::learn::optim::Adam::new(np);
-    let mut buf = BatchBuffers::<O::Work> {
-        lanes: Lanes::new(s.threads.max(1), np),
-        grad: vec![0.0f32; np],
-        zb: Array2::zeros((batch, z.ncols())),
-        tb: Array2::zeros((batch, t.ncols())),
+    let size = PoolSize {
+        threads: s.threads.max(1),
+        params: np,
+        max_rows: batch,
     };
-    let mut order: Vec<usize> = (0..rows).collect();
+    let val = validation.as_ref().map(|(zv, tv)| (zv.view(), tv.view()));
+    Ok(with_pool(obj, (z.view(), t.view()), val, size, |pool| {
+        train_loop(pool, params, &plan, s)
+    }))
+}
+
+/// The epochs: shuffled minibatches, Adam steps, validation after each
+/// epoch, early stopping, Ctrl-C and non-finite losses.
+fn train_loop<O: Objective>(
+    pool: &mut Pool<'_, '_, O>,
+    mut params: Vec<f32>,
+    plan: &RunPlan,
+    s: &FitSettings,
+) -> (Vec<f32>, TrainReport) {
+    let (batch, total) = (plan.batch, plan.total);
+    let mut adam = crate::learn::optim::Adam::new(params.len());
+    let mut grad = vec![0.0f32; params.len()];
+    let mut order: Vec<usize> = (0..plan.rows).collect();
     // A stream apart from the initialization's (which uses `seed` itself).
     let mut rng = ChaCha8Rng::seed_from_u64(s.seed ^ 0x9e37_79b9_7f4a_7c15);
     let mut history = History::default();
@@ -678,9 +607,9 @@ fn run_arrays<O: Objective>(
     let mut last_good = params.clone();
     let mut step = 0usize;
     let mut stop = StopReason::Completed;
-    let bar = progress_bar(total, s.quiet);
+    let bar = progress_bar(total, batch, s.quiet);
     let start = Instant::now();
-    'epochs: for epoch in 0..epochs {
+    'epochs: for epoch in 0..plan.epochs {
         order.shuffle(&mut rng);
         let mut epoch_loss = 0.0f64;
         let mut epoch_batches = 0usize;
@@ -695,25 +624,25 @@ fn run_arrays<O: Objective>(
                 stop = StopReason::Interrupted;
                 break 'epochs;
             }
-            let (loss, norm) = minibatch_gradient(obj, &params, idx, (&z, &t), &mut buf, s.clip);
+            let (loss, norm) = minibatch_gradient(pool, &params, idx, &mut grad, s.clip);
             if !loss.is_finite() || !norm.is_finite() {
                 stop = StopReason::NonFinite { step };
                 params.clone_from(&last_good);
                 break 'epochs;
             }
             last_good.clone_from(&params);
-            adam.step(&mut params, &buf.grad, schedule.rate(step));
+            adam.step(&mut params, &grad, plan.schedule.rate(step));
             epoch_loss += loss;
             epoch_batches += 1;
             step += 1;
-            bar.inc(1);
+            bar.inc(idx.len() as u64);
         }
         if epoch_batches == 0 {
             break;
         }
         let train_loss = epoch_loss / epoch_batches as f64;
-        let val_loss = match &validation {
-            Some((zv, tv)) => mean_loss(obj, &params, zv, tv, batch.max(256), &mut buf.lanes),
+        let val_loss = match plan.val_rows {
+            Some(rows) => mean_loss(pool, &params, rows, batch.max(256)),
             None => train_loss,
         };
         history.train.push(train_loss);
@@ -735,16 +664,14 @@ fn run_arrays<O: Objective>(
     bar.finish_and_clear();
     let seconds = start.elapsed().as_secs_f64();
     let kept = if best_epoch.is_some() { best } else { params };
-    Ok((
-        kept,
-        TrainReport {
-            history,
-            stop,
-            steps: step,
-            batch,
-            seconds,
-            best_epoch,
-            best_val,
-        },
-    ))
+    let report = TrainReport {
+        history,
+        stop,
+        steps: step,
+        batch,
+        seconds,
+        best_epoch,
+        best_val,
+    };
+    (kept, report)
 }

@@ -6,6 +6,7 @@ pub mod hnn;
 pub mod mode;
 pub mod net;
 pub mod optim;
+pub mod pool;
 pub mod port;
 pub mod rollout_loss;
 pub mod stage;

@@ -1,0 +1,284 @@
+//! Worker threads kept for a whole fit: the loss and gradient of one
+//! optimizer step (or one chunk of validation rows) split by rows at fixed
+//! boundaries, part k on worker k (part 0 on the calling thread), and the
+//! parts' losses and gradients added in part order, so a seed gives a
+//! bit-identical fit for a given thread count. The workers start once per
+//! fit and wait on a condition variable between steps; a step copies the
+//! parameters and the row indices into buffers sized once, so it allocates
+//! nothing (the objective's own buffers are sized once per row count).
+
+use std::sync::{Condvar, Mutex, MutexGuard, PoisonError, RwLock};
+
+use ndarray::{s, Array2, ArrayView2};
+
+use crate::learn::hnn::Objective;
+
+/// Rows of one evaluation: indices into the training rows (a minibatch), or
+/// a contiguous range of the validation rows.
+#[derive(Debug, Clone, Copy)]
+pub(crate) enum Rows<'r> {
+    /// These training rows, in this order.
+    Train(&'r [usize]),
+    /// Validation rows `start..end`.
+    Validation(usize, usize),
+}
+
+/// What every part of one evaluation reads.
+struct Job {
+    params: Vec<f32>,
+    /// Minibatch indices (training rows); empty for a validation range.
+    rows: Vec<usize>,
+    /// Validation range (used when `rows` is empty).
+    range: (usize, usize),
+    want_grad: bool,
+}
+
+impl Job {
+    fn len(&self) -> usize {
+        if self.rows.is_empty() {
+            self.range.1 - self.range.0
+        } else {
+            self.rows.len()
+        }
+    }
+}
+
+/// One part's buffers and result.
+struct Lane<W> {
+    work: W,
+    grad: Vec<f32>,
+    /// Gathered minibatch rows of this part (inputs, targets).
+    zb: Array2<f32>,
+    tb: Array2<f32>,
+    loss: f64,
+}
+
+/// Who runs next: the evaluation counter the workers wait on, how many of
+/// them are still busy, and the stop flag.
+#[derive(Default)]
+struct Control {
+    generation: u64,
+    pending: usize,
+    stop: bool,
+}
+
+/// State shared by the calling thread and the workers.
+struct Shared<'d, O: Objective> {
+    obj: &'d O,
+    train: (ArrayView2<'d, f32>, ArrayView2<'d, f32>),
+    validation: Option<(ArrayView2<'d, f32>, ArrayView2<'d, f32>)>,
+    job: RwLock<Job>,
+    lanes: Vec<Mutex<Lane<O::Work>>>,
+    control: Mutex<Control>,
+    start: Condvar,
+    done: Condvar,
+}
+
+fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+    // A worker that panicked is reported by the scope's join; the data
+    // behind the lock is plain buffers, still usable.
+    m.lock().unwrap_or_else(PoisonError::into_inner)
+}
+
+/// The calling thread's handle on the pool (see [`with_pool`]).
+pub(crate) struct Pool<'s, 'd, O: Objective> {
+    shared: &'s Shared<'d, O>,
+}
+
+/// Sizes of the pool's buffers.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct PoolSize {
+    /// Parts (threads, including the calling one); at least 1.
+    pub threads: usize,
+    /// Parameters of the objective.
+    pub params: usize,
+    /// Most rows in one evaluation (the minibatch size).
+    pub max_rows: usize,
+}
+
+/// Run `body` with a pool of `size.threads - 1` workers (none for one
+/// thread) over the training rows `train` = (inputs, targets) and the
+/// optional validation rows; the workers stop when `body` returns.
+pub(crate) fn with_pool<'d, O: Objective, R>(
+    obj: &'d O,
+    train: (ArrayView2<'d, f32>, ArrayView2<'d, f32>),
+    validation: Option<(ArrayView2<'d, f32>, ArrayView2<'d, f32>)>,
+    size: PoolSize,
+    body: impl FnOnce(&mut Pool<'_, 'd, O>) -> R,
+) -> R {
+    let threads = size.threads.max(1);
+    let part_rows = size.max_rows.div_ceil(threads).max(1);
+    let lane = |_| {
+        Mutex::new(Lane {
+            work: O::Work::default(),
+            grad: vec![0.0; size.params],
+            zb: Array2::zeros((part_rows, train.0.ncols())),
+            tb: Array2::zeros((part_rows, train.1.ncols())),
+            loss: 0.0,
+        })
+    };
+    let shared = Shared {
+        obj,
+        train,
+        validation,
+        job: RwLock::new(Job {
+            params: vec![0.0; size.params],
+            rows: Vec::with_capacity(size.max_rows),
+            range: (0, 0),
+            want_grad: false,
+        }),
+        lanes: (0..threads).map(lane).collect(),
+        control: Mutex::new(Control::default()),
+        start: Condvar::new(),
+        done: Condvar::new(),
+    };
+    std::thread::scope(|scope| {
+        for k in 1..threads {
+            let shared = &shared;
+            scope.spawn(move || worker(shared, k));
+        }
+        // Stop the workers however `body` ends (a panic included), so the
+        // scope can join them.
+        struct StopOnDrop<'a, 'd, O: Objective>(&'a Shared<'d, O>);
+        impl<O: Objective> Drop for StopOnDrop<'_, '_, O> {
+            fn drop(&mut self) {
+                lock(&self.0.control).stop = true;
+                self.0.start.notify_all();
+            }
+        }
+        let _stop = StopOnDrop(&shared);
+        body(&mut Pool { shared: &shared })
+    })
+}
+
+/// A worker: wait for the next evaluation, run its part, report, repeat.
+fn worker<O: Objective>(shared: &Shared<'_, O>, k: usize) {
+    let mut seen = 0u64;
+    loop {
+        {
+            let mut c = lock(&shared.control);
+            while c.generation == seen && !c.stop {
+                c = shared.start.wait(c).unwrap_or_else(PoisonError::into_inner);
+            }
+            if c.stop {
+                return;
+            }
+            seen = c.generation;
+        }
+        run_part(shared, k);
+        let mut c = lock(&shared.control);
+        c.pending -= 1;
+        if c.pending == 0 {
+            shared.done.notify_one();
+        }
+    }
+}
+
+/// Part `k` of the current job: rows `k * n / parts .. (k + 1) * n / parts`.
+fn run_part<O: Objective>(shared: &Shared<'_, O>, k: usize) {
+    let job = shared.job.read().unwrap_or_else(PoisonError::into_inner);
+    let mut lane = lock(&shared.lanes[k]);
+    let lane = &mut *lane;
+    let n = job.len();
+    let parts = shared.lanes.len().min(n).max(1);
+    if k >= parts {
+        lane.loss = 0.0;
+        return;
+    }
+    let (a, b) = (k * n / parts, (k + 1) * n / parts);
+    if job.want_grad {
+        lane.grad.iter_mut().for_each(|v| *v = 0.0);
+    }
+    let grad = job.want_grad.then_some(lane.grad.as_mut_slice());
+    lane.loss = if job.rows.is_empty() {
+        let (z, t) = shared.validation.expect("validation rows were asked for");
+        let (s0, _) = job.range;
+        shared.obj.loss_sum(
+            &job.params,
+            z.slice(s![s0 + a..s0 + b, ..]),
+            t.slice(s![s0 + a..s0 + b, ..]),
+            &mut lane.work,
+            grad,
+        )
+    } else {
+        let (z, t) = shared.train;
+        for (r, &i) in job.rows[a..b].iter().enumerate() {
+            lane.zb.row_mut(r).assign(&z.row(i));
+            lane.tb.row_mut(r).assign(&t.row(i));
+        }
+        shared.obj.loss_sum(
+            &job.params,
+            lane.zb.slice(s![..b - a, ..]),
+            lane.tb.slice(s![..b - a, ..]),
+            &mut lane.work,
+            grad,
+        )
+    };
+}
+
+impl<O: Objective> Pool<'_, '_, O> {
+    /// Sum of per-sample losses over `rows` with parameters `params` and,
+    /// with `grad`, the summed gradient: parts on the workers and on this
+    /// thread, results added in part order.
+    pub(crate) fn loss_sum(
+        &mut self,
+        params: &[f32],
+        rows: Rows<'_>,
+        grad: Option<&mut [f32]>,
+    ) -> f64 {
+        let shared = self.shared;
+        self.set_job(params, rows, grad.is_some());
+        let workers = shared.lanes.len() - 1;
+        if workers > 0 {
+            let mut c = lock(&shared.control);
+            c.generation += 1;
+            c.pending = workers;
+            shared.start.notify_all();
+        }
+        run_part(shared, 0);
+        if workers > 0 {
+            let mut c = lock(&shared.control);
+            while c.pending > 0 {
+                c = shared.done.wait(c).unwrap_or_else(PoisonError::into_inner);
+            }
+        }
+        self.reduce(grad)
+    }
+
+    /// Copy the step's parameters and rows into the job (no allocation:
+    /// the buffers were sized for the largest evaluation).
+    fn set_job(&mut self, params: &[f32], rows: Rows<'_>, want_grad: bool) {
+        let mut job = self
+            .shared
+            .job
+            .write()
+            .unwrap_or_else(PoisonError::into_inner);
+        job.params.copy_from_slice(params);
+        job.rows.clear();
+        job.want_grad = want_grad;
+        match rows {
+            Rows::Train(idx) => job.rows.extend_from_slice(idx),
+            Rows::Validation(a, b) => job.range = (a, b),
+        }
+    }
+
+    /// The parts' losses summed in part order; the gradients likewise.
+    fn reduce(&self, grad: Option<&mut [f32]>) -> f64 {
+        let n = self
+            .shared
+            .job
+            .read()
+            .unwrap_or_else(PoisonError::into_inner)
+            .len();
+        let parts = self.shared.lanes.len().min(n).max(1);
+        let lanes = &self.shared.lanes[..parts];
+        if let Some(grad) = grad {
+            grad.copy_from_slice(&lock(&lanes[0]).grad);
+            for lane in &lanes[1..] {
+                let lane = lock(lane);
+                grad.iter_mut().zip(&lane.grad).for_each(|(a, b)| *a += b);
+            }
+        }
+        lanes.iter().map(|l| lock(l).loss).sum()
+    }
+}

@@ -1,0 +1,84 @@
+//! The fit's worker pool keeps fits reproducible: the same seed and thread
+//! count give the same blob byte for byte, and the blobs equal those the
+//! trainer wrote before the pool existed (workers spawned per optimizer
+//! step, same row partition and reduction order). The reference blobs in
+//! `fixtures/threads/` were written by that earlier build from the log
+//! beside them (the textbook mass-spring solution q = r cos(t + phi),
+//! p = -r sin(t + phi), dq/dt = p, dp/dt = -q, 10 trajectories x 30 samples)
+//! with the command line of `fit_args`.
+
+use clap::Parser;
+use std::path::{Path, PathBuf};
+use visviva_trainer::cli::fit;
+
+#[derive(Parser)]
+struct Cli {
+    #[command(flatten)]
+    args: fit::Args,
+}
+
+fn fixtures() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests")
+        .join("fixtures")
+        .join("threads")
+}
+
+/// `visviva fit` of the fixture log on `threads` threads into `out`: batch
+/// 64 (240 training rows, so each epoch ends with a short batch), 60 steps,
+/// validation split 0.2 (the default), seed 5.
+fn fit_blob(threads: usize, out: &Path) -> Vec<u8> {
+    let data = fixtures().join("threads_mass_spring.csv");
+    let threads = threads.to_string();
+    let args = [
+        "visviva-fit",
+        "--data",
+        data.to_str().unwrap(),
+        "--arch",
+        "general",
+        "--hidden",
+        "8,8",
+        "--batch",
+        "64",
+        "--optimizer-steps",
+        "60",
+        "--threads",
+        &threads,
+        "--seed",
+        "5",
+        "--quiet",
+        "--out",
+        out.to_str().unwrap(),
+    ];
+    fit::run(Cli::try_parse_from(args).unwrap().args).unwrap();
+    std::fs::read(out).unwrap()
+}
+
+#[test]
+fn blobs_equal_the_earlier_build_for_one_two_and_three_threads() {
+    let dir = tempfile::tempdir().unwrap();
+    for threads in [1, 2, 3] {
+        let got = fit_blob(threads, &dir.path().join(format!("t{threads}.vvb")));
+        let want =
+            std::fs::read(fixtures().join(format!("threads_before_t{threads}.vvb"))).unwrap();
+        assert!(
+            got == want,
+            "{threads} thread(s): the blob differs from the earlier build's"
+        );
+    }
+}
+
+#[test]
+fn same_seed_and_thread_count_give_identical_blobs() {
+    let dir = tempfile::tempdir().unwrap();
+    for threads in [2, 4] {
+        let a = fit_blob(threads, &dir.path().join(format!("a{threads}.vvb")));
+        let b = fit_blob(threads, &dir.path().join(format!("b{threads}.vvb")));
+        assert!(a == b, "{threads} threads: two runs differ");
+    }
+    // The partition changes the summation order, so thread counts differ
+    // in the last bits (the reason reproducibility is per thread count).
+    let one = fit_blob(1, &dir.path().join("one.vvb"));
+    let two = fit_blob(2, &dir.path().join("two.vvb"));
+    assert!(one != two, "1 and 2 threads gave the same blob");
+}

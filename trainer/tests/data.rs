@@ -7,7 +7,7 @@ use proptest::prelude::*;
 use std::path::PathBuf;
 use visviva_trainer::data::dataset::{Dataset, DerivativeSource, Trajectory};
 use visviva_trainer::data::log::{
-    load_csv, split_by_trajectory, write_csv, DataProblem, LoadOptions,
+    load_csv, split_by_trajectory, split_owned, write_csv, DataProblem, LoadOptions,
 };
 
 fn fixture(name: &str) -> PathBuf {
@@ -282,7 +282,9 @@ proptest! {
         }
         prop_assert_eq!(train.dof, ds.dof);
         prop_assert_eq!(val.derivatives, ds.derivatives);
-        // Same seed, same split.
+        // Same seed, same split; the owning split moves the same
+        // trajectories to the same sides.
+        prop_assert_eq!(split_owned(ds.clone(), fraction, seed), (train.clone(), val.clone()));
         prop_assert_eq!(split_by_trajectory(&ds, fraction, seed), (train, val));
     }
 }

@@ -5,8 +5,9 @@
 //! The problem: the ideal mass-spring H = p^2/2 + q^2/2, 64 trajectories x 64
 //! samples over one period (radius uniform in [0.2, 1], seeded phase), exact
 //! derivatives, written once as a CSV that all three read; a general 2-64-64-1
-//! tanh energy network, f32, Adam, 2000 steps, batch 256 and full batch, on 1
-//! and 2 threads. Runs alternate between the implementations within every
+//! tanh energy network, f32, Adam, 2000 steps, batch 256, 1024 and full
+//! batch, on 1 and 2 threads (the scaling line: 2-thread / 1-thread
+//! throughput). Then the large-log line ([`crate::bench_large`]). Runs alternate between the implementations within every
 //! round (the starting one rotates), and each number printed is a median over
 //! the rounds; ratios are medians of the per-round ratios. The Python side
 //! lives in a virtual environment under `target/bench-venv`, created on first
@@ -19,7 +20,8 @@ use std::process::Command;
 use anyhow::{bail, Context, Result};
 use visviva_blob_support::{Generator, SplitMix64};
 
-const USAGE: &str = "usage: cargo xtask bench [--rounds N] [--steps N] [--only visviva,torch,jax]";
+const USAGE: &str =
+    "usage: cargo xtask bench [--rounds N] [--steps N] [--only visviva,torch,jax] [--large-samples N]";
 
 /// Trajectories in the generated log.
 const TRAJECTORIES: usize = 64;
@@ -27,8 +29,8 @@ const TRAJECTORIES: usize = 64;
 const SAMPLES: usize = 64;
 /// Hidden widths of the energy network.
 const HIDDEN: [usize; 2] = [64, 64];
-/// Minibatch sizes: a typical minibatch and the full data set.
-const BATCHES: [usize; 2] = [256, TRAJECTORIES * SAMPLES];
+/// Minibatch sizes: a typical minibatch, a large one and the full data set.
+const BATCHES: [usize; 3] = [256, 1024, TRAJECTORIES * SAMPLES];
 const LR: &str = "1e-3";
 
 /// Command-line options.
@@ -36,6 +38,8 @@ struct Options {
     rounds: usize,
     steps: usize,
     impls: Vec<Impl>,
+    /// Samples per trajectory of the large log (0: skip it).
+    large_samples: usize,
 }
 
 #[derive(Clone, Copy, PartialEq, Eq, Debug)]
@@ -62,6 +66,7 @@ fn parse_options(args: &[String]) -> Result<Options> {
         rounds: 3,
         steps: 2000,
         impls: Impl::ALL.to_vec(),
+        large_samples: crate::bench_large::SAMPLES,
     };
     let mut it = args.iter();
     while let Some(a) = it.next() {
@@ -73,6 +78,11 @@ fn parse_options(args: &[String]) -> Result<Options> {
         match a.as_str() {
             "--rounds" => o.rounds = value("--rounds")?.parse().context("--rounds")?,
             "--steps" => o.steps = value("--steps")?.parse().context("--steps")?,
+            "--large-samples" => {
+                o.large_samples = value("--large-samples")?
+                    .parse()
+                    .context("--large-samples")?
+            }
             "--only" => {
                 let list = value("--only")?;
                 o.impls = Vec::new();
@@ -711,6 +721,9 @@ pub fn run(args: &[String]) -> Result<bool> {
                 100.0 * gflops / cores_peak
             );
         }
+    }
+    if o.impls.contains(&Impl::Visviva) && o.large_samples > 0 {
+        crate::bench_large::run(&tools.visviva, &work, o.large_samples, cpus)?;
     }
     if !agree {
         println!("final losses disagree by more than a factor of 2: the comparison is not valid");

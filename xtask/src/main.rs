@@ -27,6 +27,7 @@
 //!   stack of the minimal firmware per configuration).
 
 mod bench;
+mod bench_large;
 mod browser_check;
 mod c_check;
 mod c_cores;
@@ -69,8 +70,11 @@ const USAGE: &str = "usage: cargo xtask <task>
                             (default: the generated fixture and demo blobs on
                             the Rust firmware, the C firmware on five cores)
   footprint                 the runtime's own flash, static RAM and stack
-  bench [--rounds N] [--steps N] [--only visviva,torch,jax]
-                            training throughput against PyTorch and JAX (CPU)";
+  bench [--rounds N] [--steps N] [--only visviva,torch,jax] [--large-samples N]
+                            training throughput against PyTorch and JAX (CPU),
+                            thread scaling, a 10^7-sample log (N per trajectory,
+                            0 = skip)
+  peak-rss PROGRAM [ARGS..] run a program, print its peak resident size";
 
 fn main() -> ExitCode {
     let args: Vec<String> = std::env::args().skip(1).collect();
@@ -85,6 +89,7 @@ fn main() -> ExitCode {
             browser_check::run(true)
         }
         Some("bench") => bench::run(&args[1..]),
+        Some("peak-rss") => bench_large::peak_rss(&args[1..]),
         Some("demos") => {
             let verify = args.iter().any(|a| a == "--verify");
             let data = args.iter().any(|a| a == "--data");

@@ -320,7 +320,7 @@ fn split(
             Ok((all, Some(v)))
         }
         None if args.val_fraction > 0.0 && all.trajectories.len() >= 2 => {
-            let (t, v) = log::split_by_trajectory(&all, args.val_fraction, args.seed);
+            let (t, v) = log::split_owned(all, args.val_fraction, args.seed);
             Ok((t, Some(v).filter(|v| !v.trajectories.is_empty())))
         }
         None => Ok((all, None)),
@@ -438,7 +438,15 @@ pub fn run(args: Args) -> Result<()> {
         ..LoadOptions::default()
     };
     let map = column_map(&args)?;
+    let started = std::time::Instant::now();
     let (all, rig) = columns::load_any(&args.data, map.as_ref(), &opts)?;
+    let seconds = started.elapsed().as_secs_f64();
+    println!(
+        "read {} samples from {} in {seconds:.2} s ({:.0} rows/s)",
+        all.samples(),
+        args.data.display(),
+        all.samples() as f64 / seconds.max(1e-9)
+    );
     let (train, val) = split(&args, all, map.as_ref(), &opts)?;
     let plan = plan(&args, &train)?;
     let trajectory = fit_mode(&args, rig.as_ref(), &train, &plan)?;

@@ -479,6 +479,20 @@ struct Block {
     u: Vec<f64>,
 }
 
+impl Block {
+    fn new(id: String, first_line: u64) -> Self {
+        Self {
+            id,
+            first_line,
+            lines: Vec::new(),
+            t: Vec::new(),
+            x: Vec::new(),
+            dx: Vec::new(),
+            u: Vec::new(),
+        }
+    }
+}
+
 /// Load and validate a CSV log: states, derivatives when given (estimated
 /// otherwise) and inputs `u1..um` when present (validated like every other
 /// column).
@@ -504,11 +518,13 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
     let names: Vec<String> = headers.iter().map(str::to_string).collect();
     check_header(path, &names)?;
     let (layout, masses) = parse_layout(path, names, opts)?;
-    let blocks = read_blocks(path, &mut reader, &layout, masses.as_deref())?;
-    let trajectories = blocks
-        .into_iter()
-        .map(|b| to_trajectory(path, b, &layout, opts))
-        .collect::<Result<Vec<_>, _>>()?;
+    let reading = Reading {
+        path,
+        layout: &layout,
+        masses: masses.as_deref(),
+        opts,
+    };
+    let trajectories = reading.trajectories(&mut reader)?;
     Ok(Dataset {
         dof: layout.q.len(),
         inputs: layout.u.len(),
@@ -521,73 +537,132 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
     })
 }
 
-/// Read every record into contiguous per-trajectory blocks, checking each
-/// field and that time increases within a trajectory.
-fn read_blocks(
-    path: &Path,
-    reader: &mut csv::Reader<std::fs::File>,
-    layout: &Layout,
-    masses: Option<&[f64]>,
-) -> Result<Vec<Block>, DataError> {
-    let file_err = |line: u64, column: Option<String>, problem| DataError {
-        file: path.to_path_buf(),
-        line,
-        column,
-        problem,
-    };
-    let mut blocks: Vec<Block> = Vec::new();
-    let mut seen: HashMap<String, u64> = HashMap::new();
-    let mut record = csv::StringRecord::new();
-    loop {
-        let more = reader.read_record(&mut record).map_err(|e| {
-            let line = e.position().map_or(0, |p| p.line());
-            file_err(line, None, DataProblem::Malformed(e.to_string()))
-        })?;
-        if !more {
-            break;
+/// What reading the records of one file needs.
+struct Reading<'a> {
+    path: &'a Path,
+    layout: &'a Layout,
+    masses: Option<&'a [f64]>,
+    opts: &'a LoadOptions,
+}
+
+impl Reading<'_> {
+    fn err(&self, line: u64, column: Option<String>, problem: DataProblem) -> DataError {
+        DataError {
+            file: self.path.to_path_buf(),
+            line,
+            column,
+            problem,
         }
-        let line = record.position().map_or(0, |p| p.line());
-        let field = |col: usize| -> Result<f64, DataError> {
-            let text = record.get(col).unwrap_or("");
-            let name = Some(layout.names[col].clone());
-            let v: f64 = text
-                .parse()
-                .map_err(|_| file_err(line, name.clone(), DataProblem::NotNumeric(text.into())))?;
-            if !v.is_finite() {
-                return Err(file_err(line, name, DataProblem::NonFinite(text.into())));
+    }
+
+    /// Stream the records (one reused record buffer): rows gather into the
+    /// current trajectory's block, and a block becomes a [`Trajectory`] as
+    /// soon as the next trajectory starts, so only one block's line numbers
+    /// are held at a time.
+    fn trajectories(
+        &self,
+        reader: &mut csv::Reader<std::fs::File>,
+    ) -> Result<Vec<Trajectory>, DataError> {
+        let mut done: Vec<Trajectory> = Vec::new();
+        let mut block: Option<Block> = None;
+        let mut seen: HashMap<String, u64> = HashMap::new();
+        let mut record = csv::ByteRecord::new();
+        loop {
+            let more = reader.read_byte_record(&mut record).map_err(|e| {
+                let line = e.position().map_or(0, |p| p.line());
+                self.err(line, None, DataProblem::Malformed(e.to_string()))
+            })?;
+            if !more {
+                break;
             }
-            Ok(v)
-        };
-        let id = record.get(layout.traj).unwrap_or("").to_string();
-        if blocks.last().is_none_or(|b| b.id != id) {
-            if let Some(first_line) = seen.get(&id) {
-                return Err(file_err(
-                    line,
-                    Some("traj".into()),
-                    DataProblem::TrajectoryNotContiguous {
-                        traj: id,
-                        first_line: *first_line,
-                    },
-                ));
+            let line = record.position().map_or(0, |p| p.line());
+            self.check_utf8(&record, line)?;
+            let id = field_text(&record, self.layout.traj);
+            if block.as_ref().is_none_or(|b| b.id != id) {
+                if let Some(first_line) = seen.get(id) {
+                    return Err(self.err(
+                        line,
+                        Some("traj".into()),
+                        DataProblem::TrajectoryNotContiguous {
+                            traj: id.to_string(),
+                            first_line: *first_line,
+                        },
+                    ));
+                }
+                seen.insert(id.to_string(), line);
+                let next = Block::new(id.to_string(), line);
+                if let Some(b) = block.replace(next) {
+                    done.push(to_trajectory(self.path, b, self.layout, self.opts)?);
+                }
             }
-            seen.insert(id.clone(), line);
-            blocks.push(Block {
-                id: id.clone(),
-                first_line: line,
-                lines: Vec::new(),
-                t: Vec::new(),
-                x: Vec::new(),
-                dx: Vec::new(),
-                u: Vec::new(),
-            });
+            if let Some(b) = block.as_mut() {
+                self.push_row(b, &record, line)?;
+            }
         }
-        let Some(block) = blocks.last_mut() else {
-            break;
-        };
-        let t = field(layout.t)?;
-        if let Some(&previous) = block.t.last() {
+        match block {
+            Some(b) => done.push(to_trajectory(self.path, b, self.layout, self.opts)?),
+            None => return Err(self.err(2, None, DataProblem::Empty)),
+        }
+        Ok(done)
+    }
+
+    /// A record that is not UTF-8 is malformed (the log is text).
+    fn check_utf8(&self, record: &csv::ByteRecord, line: u64) -> Result<(), DataError> {
+        match record.iter().position(|f| std::str::from_utf8(f).is_err()) {
+            None => Ok(()),
+            Some(k) => Err(self.err(
+                line,
+                None,
+                DataProblem::Malformed(format!("invalid UTF-8 in field {}", k + 1)),
+            )),
+        }
+    }
+
+    /// One field as a finite number.
+    fn number(&self, record: &csv::ByteRecord, col: usize, line: u64) -> Result<f64, DataError> {
+        let text = field_text(record, col);
+        let name = || Some(self.layout.names[col].clone());
+        let v: f64 = text
+            .parse()
+            .map_err(|_| self.err(line, name(), DataProblem::NotNumeric(text.into())))?;
+        if !v.is_finite() {
+            return Err(self.err(line, name(), DataProblem::NonFinite(text.into())));
+        }
+        Ok(v)
+    }
+
+    /// m * value (p = m v, dp = m dv), which must stay finite.
+    fn momentum(
+        &self,
+        record: &csv::ByteRecord,
+        k: usize,
+        col: usize,
+        line: u64,
+    ) -> Result<f64, DataError> {
+        let m = self.masses.map_or(1.0, |m| m[k]);
+        let value = self.number(record, col, line)?;
+        let v = m * value;
+        if v.is_finite() {
+            return Ok(v);
+        }
+        let what = format!("mass {m} x {value}");
+        let name = Some(self.layout.names[col].clone());
+        Err(self.err(line, name, DataProblem::Overflow(what)))
+    }
+
+    /// Append one record to its trajectory's block, checking each field and
+    /// that time increases.
+    fn push_row(
+        &self,
+        b: &mut Block,
+        record: &csv::ByteRecord,
+        line: u64,
+    ) -> Result<(), DataError> {
+        let layout = self.layout;
+        let t = self.number(record, layout.t, line)?;
+        if let Some(&previous) = b.t.last() {
             if t <= previous {
-                return Err(file_err(
+                return Err(self.err(
                     line,
                     Some("t".into()),
                     DataProblem::TimeNotIncreasing {
@@ -597,41 +672,36 @@ fn read_blocks(
                 ));
             }
         }
-        block.t.push(t);
-        block.lines.push(line);
-        let mass = |k: usize| masses.map_or(1.0, |m| m[k]);
+        b.t.push(t);
+        b.lines.push(line);
         for &c in &layout.q {
-            block.x.push(field(c)?);
+            b.x.push(self.number(record, c, line)?);
         }
-        // p = m v (and dp = m dv) must stay finite.
-        let momentum = |k: usize, c: usize| -> Result<f64, DataError> {
-            let (m, value) = (mass(k), field(c)?);
-            let v = m * value;
-            let name = Some(layout.names[c].clone());
-            let what = format!("mass {m} x {value}");
-            v.is_finite()
-                .then_some(v)
-                .ok_or_else(|| file_err(line, name, DataProblem::Overflow(what)))
-        };
         for (k, &c) in layout.p.iter().enumerate() {
-            block.x.push(momentum(k, c)?);
+            b.x.push(self.momentum(record, k, c, line)?);
         }
         if let Some((dq, dp)) = &layout.derivatives {
             for &c in dq {
-                block.dx.push(field(c)?);
+                b.dx.push(self.number(record, c, line)?);
             }
             for (k, &c) in dp.iter().enumerate() {
-                block.dx.push(momentum(k, c)?);
+                b.dx.push(self.momentum(record, k, c, line)?);
             }
         }
         for &c in &layout.u {
-            block.u.push(field(c)?);
+            b.u.push(self.number(record, c, line)?);
         }
+        Ok(())
     }
-    if blocks.is_empty() {
-        return Err(file_err(2, None, DataProblem::Empty));
-    }
-    Ok(blocks)
+}
+
+/// Field `col` as text ("" when the record is shorter; checked as UTF-8
+/// by [`Reading::check_utf8`] before).
+fn field_text(record: &csv::ByteRecord, col: usize) -> &str {
+    record
+        .get(col)
+        .and_then(|f| std::str::from_utf8(f).ok())
+        .unwrap_or("")
 }
 
 /// One block as a trajectory: even sampling checked, derivatives taken
@@ -790,6 +860,23 @@ pub fn split_by_trajectory(ds: &Dataset, val_fraction: f64, seed: u64) -> (Datas
         derivatives: ds.derivatives,
     };
     (pick(false), pick(true))
+}
+
+/// [`split_by_trajectory`] of a dataset given up: the trajectories move to
+/// their side without a copy (the same split for the same seed).
+pub fn split_owned(ds: Dataset, val_fraction: f64, seed: u64) -> (Dataset, Dataset) {
+    let is_val = validation_mask(ds.trajectories.len(), val_fraction, seed);
+    let empty = || Dataset {
+        trajectories: Vec::new(),
+        dof: ds.dof,
+        inputs: ds.inputs,
+        derivatives: ds.derivatives,
+    };
+    let (mut train, mut val) = (empty(), empty());
+    for (t, v) in ds.trajectories.into_iter().zip(is_val) {
+        if v { &mut val } else { &mut train }.trajectories.push(t);
+    }
+    (train, val)
 }
 
 /// Which of `count` trajectories go to validation (see

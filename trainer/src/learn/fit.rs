@@ -23,6 +23,7 @@ use crate::learn::hnn::{
 };
 use crate::learn::net::{Activation, MlpShape};
 use crate::learn::pool::{with_pool, Pool, PoolSize, Rows};
+use crate::learn::rows::{ArraySource, LogRows, RowSource};
 
 /// Settings of one training run.
 #[derive(Debug, Clone)]
@@ -494,9 +495,15 @@ fn run<O: Objective>(
             );
         }
     }
-    let (z, t) = norm.normalize(train);
-    let validation = val.map(|v| norm.normalize(v));
-    run_arrays(obj, params, z, t, validation, s)
+    let rows = LogRows::new(norm, train);
+    let val_rows = val.map(|v| LogRows::new(norm, v));
+    run_sources(
+        obj,
+        params,
+        &rows,
+        val_rows.as_ref().map(|v| v as &dyn RowSource),
+        s,
+    )
 }
 
 /// The settings a fit cannot start without.
@@ -533,6 +540,10 @@ fn minibatch_gradient<O: Objective>(
     (sum / b as f64, norm)
 }
 
+/// Fewest rows per validation evaluation (more when the minibatch is
+/// larger).
+const VALIDATION_CHUNK: usize = 256;
+
 /// The shape of one run: rows, minibatch, steps and epochs, the
 /// learning-rate schedule.
 struct RunPlan {
@@ -553,8 +564,33 @@ fn run_arrays<O: Objective>(
     validation: Option<(Array2<f32>, Array2<f32>)>,
     s: &FitSettings,
 ) -> Result<(Vec<f32>, TrainReport)> {
+    let rows = ArraySource {
+        z: z.view(),
+        t: t.view(),
+    };
+    let val = validation.as_ref().map(|(z, t)| ArraySource {
+        z: z.view(),
+        t: t.view(),
+    });
+    run_sources(
+        obj,
+        params,
+        &rows,
+        val.as_ref().map(|v| v as &dyn RowSource),
+        s,
+    )
+}
+
+/// The fit of `obj` on the rows of `train`, validated on `validation`.
+fn run_sources<O: Objective>(
+    obj: &O,
+    params: Vec<f32>,
+    train: &dyn RowSource,
+    validation: Option<&dyn RowSource>,
+    s: &FitSettings,
+) -> Result<(Vec<f32>, TrainReport)> {
     check_settings(s)?;
-    let rows = z.nrows();
+    let rows = train.rows();
     let batch = s.batch.min(rows);
     let per_epoch = rows.div_ceil(batch);
     let total = s.steps.unwrap_or(s.epochs.saturating_mul(per_epoch)).max(1);
@@ -563,7 +599,7 @@ fn run_arrays<O: Objective>(
         batch,
         total,
         epochs: total.div_ceil(per_epoch),
-        val_rows: validation.as_ref().map(|(zv, _)| zv.nrows()),
+        val_rows: validation.map(|v| v.rows()),
         schedule: crate::learn::optim::Schedule {
             peak: s.lr,
             warmup: ((total as f32 * s.warmup_fraction) as usize).max(1),
@@ -578,10 +614,9 @@ fn run_arrays<O: Objective>(
     let size = PoolSize {
         threads: s.threads.max(1),
         params: np,
-        max_rows: batch,
+        max_rows: batch.max(VALIDATION_CHUNK),
     };
-    let val = validation.as_ref().map(|(zv, tv)| (zv.view(), tv.view()));
-    Ok(with_pool(obj, (z.view(), t.view()), val, size, |pool| {
+    Ok(with_pool(obj, train, validation, size, |pool| {
         train_loop(pool, params, &plan, s)
     }))
 }
@@ -642,7 +677,7 @@ fn train_loop<O: Objective>(
         }
         let train_loss = epoch_loss / epoch_batches as f64;
         let val_loss = match plan.val_rows {
-            Some(rows) => mean_loss(pool, &params, rows, batch.max(256)),
+            Some(rows) => mean_loss(pool, &params, rows, batch.max(VALIDATION_CHUNK)),
             None => train_loss,
         };
         history.train.push(train_loss);

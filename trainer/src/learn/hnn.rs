@@ -20,7 +20,7 @@
 //! the port-Hamiltonian field (J - R) dH/dx + G u instead.
 
 use anyhow::{bail, Result};
-use ndarray::{s, Array1, Array2, ArrayView2, Axis};
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
@@ -189,17 +189,32 @@ impl Normalization {
         let count = data.samples();
         let mut z = Array2::zeros((count, d));
         let mut t = Array2::zeros((count, d));
-        let mut r = 0;
-        for tr in &data.trajectories {
-            for (row, drow) in tr.x.rows().into_iter().zip(tr.dx.rows()) {
-                for i in 0..d {
-                    z[[r, i]] = ((row[i] - self.offset[i] as f64) / self.scale[i] as f64) as f32;
-                    t[[r, i]] = (drow[i] / self.rate_scale[i] as f64) as f32;
-                }
-                r += 1;
-            }
+        let rows = data
+            .trajectories
+            .iter()
+            .flat_map(|tr| tr.x.rows().into_iter().zip(tr.dx.rows()));
+        for ((row, drow), (mut zr, mut tr)) in rows.zip(z.rows_mut().into_iter().zip(t.rows_mut()))
+        {
+            let zr = zr.as_slice_mut().expect("standard layout");
+            let tr = tr.as_slice_mut().expect("standard layout");
+            self.normalize_row(row, drow, zr, tr);
         }
         (z, t)
+    }
+
+    /// One sample: z = (x - offset) / scale and t = dx / rate_scale, each
+    /// computed in f64 and rounded to f32 once.
+    pub fn normalize_row(
+        &self,
+        x: ArrayView1<'_, f64>,
+        dx: ArrayView1<'_, f64>,
+        z: &mut [f32],
+        t: &mut [f32],
+    ) {
+        for i in 0..z.len() {
+            z[i] = ((x[i] - self.offset[i] as f64) / self.scale[i] as f64) as f32;
+            t[i] = (dx[i] / self.rate_scale[i] as f64) as f32;
+        }
     }
 
     /// Factors from dE/dz to normalized J dH/dx: component i < n (dq_i/dt)

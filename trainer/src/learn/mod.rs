@@ -9,6 +9,7 @@ pub mod optim;
 pub mod pool;
 pub mod port;
 pub mod rollout_loss;
+pub(crate) mod rows;
 pub mod stage;
 pub mod structure;
 pub mod trajectory;

@@ -6,12 +6,14 @@
 //! fit and wait on a condition variable between steps; a step copies the
 //! parameters and the row indices into buffers sized once, so it allocates
 //! nothing (the objective's own buffers are sized once per row count).
+//! Rows come from a [`RowSource`] (see [`crate::learn::rows`]).
 
 use std::sync::{Condvar, Mutex, MutexGuard, PoisonError, RwLock};
 
-use ndarray::{s, Array2, ArrayView2};
+use ndarray::{s, Array2};
 
 use crate::learn::hnn::Objective;
+use crate::learn::rows::RowSource;
 
 /// Rows of one evaluation: indices into the training rows (a minibatch), or
 /// a contiguous range of the validation rows.
@@ -47,7 +49,7 @@ impl Job {
 struct Lane<W> {
     work: W,
     grad: Vec<f32>,
-    /// Gathered minibatch rows of this part (inputs, targets).
+    /// Gathered rows of this part (inputs, targets).
     zb: Array2<f32>,
     tb: Array2<f32>,
     loss: f64,
@@ -65,8 +67,8 @@ struct Control {
 /// State shared by the calling thread and the workers.
 struct Shared<'d, O: Objective> {
     obj: &'d O,
-    train: (ArrayView2<'d, f32>, ArrayView2<'d, f32>),
-    validation: Option<(ArrayView2<'d, f32>, ArrayView2<'d, f32>)>,
+    train: &'d dyn RowSource,
+    validation: Option<&'d dyn RowSource>,
     job: RwLock<Job>,
     lanes: Vec<Mutex<Lane<O::Work>>>,
     control: Mutex<Control>,
@@ -92,28 +94,29 @@ pub(crate) struct PoolSize {
     pub threads: usize,
     /// Parameters of the objective.
     pub params: usize,
-    /// Most rows in one evaluation (the minibatch size).
+    /// Most rows in one evaluation (a minibatch or a validation chunk).
     pub max_rows: usize,
 }
 
 /// Run `body` with a pool of `size.threads - 1` workers (none for one
-/// thread) over the training rows `train` = (inputs, targets) and the
-/// optional validation rows; the workers stop when `body` returns.
+/// thread) over the training rows `train` and the optional validation
+/// rows; the workers stop when `body` returns.
 pub(crate) fn with_pool<'d, O: Objective, R>(
     obj: &'d O,
-    train: (ArrayView2<'d, f32>, ArrayView2<'d, f32>),
-    validation: Option<(ArrayView2<'d, f32>, ArrayView2<'d, f32>)>,
+    train: &'d dyn RowSource,
+    validation: Option<&'d dyn RowSource>,
     size: PoolSize,
     body: impl FnOnce(&mut Pool<'_, 'd, O>) -> R,
 ) -> R {
     let threads = size.threads.max(1);
     let part_rows = size.max_rows.div_ceil(threads).max(1);
+    let (zw, tw) = train.widths();
     let lane = |_| {
         Mutex::new(Lane {
             work: O::Work::default(),
             grad: vec![0.0; size.params],
-            zb: Array2::zeros((part_rows, train.0.ncols())),
-            tb: Array2::zeros((part_rows, train.1.ncols())),
+            zb: Array2::zeros((part_rows, zw)),
+            tb: Array2::zeros((part_rows, tw)),
             loss: 0.0,
         })
     };
@@ -186,34 +189,36 @@ fn run_part<O: Objective>(shared: &Shared<'_, O>, k: usize) {
         return;
     }
     let (a, b) = (k * n / parts, (k + 1) * n / parts);
+    if job.rows.is_empty() {
+        let v = shared.validation.expect("validation rows were asked for");
+        let s0 = job.range.0;
+        gather(v, s0 + a..s0 + b, lane);
+    } else {
+        gather(shared.train, job.rows[a..b].iter().copied(), lane);
+    }
     if job.want_grad {
         lane.grad.iter_mut().for_each(|v| *v = 0.0);
     }
     let grad = job.want_grad.then_some(lane.grad.as_mut_slice());
-    lane.loss = if job.rows.is_empty() {
-        let (z, t) = shared.validation.expect("validation rows were asked for");
-        let (s0, _) = job.range;
-        shared.obj.loss_sum(
-            &job.params,
-            z.slice(s![s0 + a..s0 + b, ..]),
-            t.slice(s![s0 + a..s0 + b, ..]),
-            &mut lane.work,
-            grad,
-        )
-    } else {
-        let (z, t) = shared.train;
-        for (r, &i) in job.rows[a..b].iter().enumerate() {
-            lane.zb.row_mut(r).assign(&z.row(i));
-            lane.tb.row_mut(r).assign(&t.row(i));
-        }
-        shared.obj.loss_sum(
-            &job.params,
-            lane.zb.slice(s![..b - a, ..]),
-            lane.tb.slice(s![..b - a, ..]),
-            &mut lane.work,
-            grad,
-        )
-    };
+    lane.loss = shared.obj.loss_sum(
+        &job.params,
+        lane.zb.slice(s![..b - a, ..]),
+        lane.tb.slice(s![..b - a, ..]),
+        &mut lane.work,
+        grad,
+    );
+}
+
+/// Copy the source rows `rows` into the first rows of the lane's buffers.
+fn gather<W>(source: &dyn RowSource, rows: impl Iterator<Item = usize>, lane: &mut Lane<W>) {
+    for (r, i) in rows.enumerate() {
+        let (mut z, mut t) = (lane.zb.row_mut(r), lane.tb.row_mut(r));
+        let (z, t) = (
+            z.as_slice_mut().expect("standard layout"),
+            t.as_slice_mut().expect("standard layout"),
+        );
+        source.copy_row(i, z, t);
+    }
 }
 
 impl<O: Objective> Pool<'_, '_, O> {

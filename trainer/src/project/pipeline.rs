@@ -16,7 +16,7 @@ use visviva_runtime::Method;
 use crate::atomic::{write_atomic, write_atomic_with};
 use crate::capacity::{check_disk, check_memory};
 use crate::data::dataset::{Dataset, DerivativeSource};
-use crate::data::log::{split_by_trajectory, LoadOptions};
+use crate::data::log::{split_owned, LoadOptions};
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::budget::budget_verdict;
 use crate::deploy::export::{export as export_blob, ExportReport};
@@ -245,7 +245,7 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
     let (all, rig) = crate::data::columns::load_any(&train_path, map, &opts)?;
     let Some(v) = &project.data.validation else {
         let (frac, seed) = (project.data.val_fraction, project.fit.seed);
-        let (train, val) = split_by_trajectory(&all, frac, seed);
+        let (train, val) = split_owned(all, frac, seed);
         if val.trajectories.is_empty() {
             bail!("no validation trajectories: add [data] validation or more trajectories (val_fraction {frac})");
         }

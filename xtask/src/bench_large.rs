@@ -170,8 +170,8 @@ pub fn run(visviva: &Path, work: &Path, samples: usize, threads: usize) -> Resul
     println!(
         "large log: {rows:.0} samples, load {load:.2} s ({:.0} rows/s), fit {fit:.2} s for \
          {steps:.0} steps (batch {BATCH}, {threads} threads, one validation pass over 10 % \
-         of the trajectories included), peak RSS {peak_mb:.0} MB (= {:.2} x the data's f32 \
-         size, {data_mb:.0} MB: {VALUES_PER_SAMPLE} f32 per sample)",
+         of the trajectories included), peak RSS {peak_mb:.0} MiB (= {:.2} x the data's f32 \
+         size, {data_mb:.0} MiB: {VALUES_PER_SAMPLE} f32 per sample)",
         rows / load.max(1e-9),
         peak_mb / data_mb
     );

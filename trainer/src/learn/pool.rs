@@ -28,16 +28,17 @@ pub(crate) enum Rows<'r> {
 /// What every part of one evaluation reads.
 struct Job {
     params: Vec<f32>,
-    /// Minibatch indices (training rows); empty for a validation range.
+    /// Minibatch indices (training rows).
     rows: Vec<usize>,
-    /// Validation range (used when `rows` is empty).
+    /// Validation rows `range.0..range.1` instead of `rows`.
+    validation: bool,
     range: (usize, usize),
     want_grad: bool,
 }
 
 impl Job {
     fn len(&self) -> usize {
-        if self.rows.is_empty() {
+        if self.validation {
             self.range.1 - self.range.0
         } else {
             self.rows.len()
@@ -56,12 +57,13 @@ struct Lane<W> {
 }
 
 /// Who runs next: the evaluation counter the workers wait on, how many of
-/// them are still busy, and the stop flag.
+/// them are still busy, the stop flag, and whether a worker panicked.
 #[derive(Default)]
 struct Control {
     generation: u64,
     pending: usize,
     stop: bool,
+    failed: bool,
 }
 
 /// State shared by the calling thread and the workers.
@@ -127,6 +129,7 @@ pub(crate) fn with_pool<'d, O: Objective, R>(
         job: RwLock::new(Job {
             params: vec![0.0; size.params],
             rows: Vec::with_capacity(size.max_rows),
+            validation: false,
             range: (0, 0),
             want_grad: false,
         }),
@@ -168,11 +171,22 @@ fn worker<O: Objective>(shared: &Shared<'_, O>, k: usize) {
             }
             seen = c.generation;
         }
+        let _report = Finished(shared);
         run_part(shared, k);
-        let mut c = lock(&shared.control);
+    }
+}
+
+/// Reports a worker's part as finished when dropped, also when the part
+/// panicked (so the calling thread never waits forever).
+struct Finished<'a, 'd, O: Objective>(&'a Shared<'d, O>);
+
+impl<O: Objective> Drop for Finished<'_, '_, O> {
+    fn drop(&mut self) {
+        let mut c = lock(&self.0.control);
+        c.failed |= std::thread::panicking();
         c.pending -= 1;
         if c.pending == 0 {
-            shared.done.notify_one();
+            self.0.done.notify_one();
         }
     }
 }
@@ -189,7 +203,7 @@ fn run_part<O: Objective>(shared: &Shared<'_, O>, k: usize) {
         return;
     }
     let (a, b) = (k * n / parts, (k + 1) * n / parts);
-    if job.rows.is_empty() {
+    if job.validation {
         let v = shared.validation.expect("validation rows were asked for");
         let s0 = job.range.0;
         gather(v, s0 + a..s0 + b, lane);
@@ -246,6 +260,7 @@ impl<O: Objective> Pool<'_, '_, O> {
             while c.pending > 0 {
                 c = shared.done.wait(c).unwrap_or_else(PoisonError::into_inner);
             }
+            assert!(!c.failed, "a fit worker thread panicked");
         }
         self.reduce(grad)
     }
@@ -261,6 +276,7 @@ impl<O: Objective> Pool<'_, '_, O> {
         job.params.copy_from_slice(params);
         job.rows.clear();
         job.want_grad = want_grad;
+        job.validation = matches!(rows, Rows::Validation(..));
         match rows {
             Rows::Train(idx) => job.rows.extend_from_slice(idx),
             Rows::Validation(a, b) => job.range = (a, b),

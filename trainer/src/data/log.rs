@@ -505,7 +505,7 @@ pub fn load_csv(path: &Path, opts: &LoadOptions) -> Result<Dataset, DataError> {
     };
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
-        .trim(csv::Trim::All)
+        .trim(csv::Trim::Headers)
         .from_path(path)
         .map_err(|e| file_err(1, None, DataProblem::Io(e.to_string())))?;
     let headers = reader
@@ -577,7 +577,7 @@ impl Reading<'_> {
             }
             let line = record.position().map_or(0, |p| p.line());
             self.check_utf8(&record, line)?;
-            let id = field_text(&record, self.layout.traj);
+            let id = self.text(&record, self.layout.traj, line)?;
             if block.as_ref().is_none_or(|b| b.id != id) {
                 if let Some(first_line) = seen.get(id) {
                     return Err(self.err(
@@ -606,9 +606,16 @@ impl Reading<'_> {
         Ok(done)
     }
 
-    /// A record that is not UTF-8 is malformed (the log is text).
+    /// A record that is not UTF-8 is malformed (the log is text): one
+    /// check of the whole record, then of a field only if that passed but
+    /// the field does not.
     fn check_utf8(&self, record: &csv::ByteRecord, line: u64) -> Result<(), DataError> {
-        match record.iter().position(|f| std::str::from_utf8(f).is_err()) {
+        let bad = if std::str::from_utf8(record.as_slice()).is_ok() {
+            None
+        } else {
+            record.iter().position(|f| std::str::from_utf8(f).is_err())
+        };
+        match bad {
             None => Ok(()),
             Some(k) => Err(self.err(
                 line,
@@ -618,9 +625,23 @@ impl Reading<'_> {
         }
     }
 
+    /// Field `col` as text, trimmed ("" when the record is shorter).
+    fn text<'r>(
+        &self,
+        record: &'r csv::ByteRecord,
+        col: usize,
+        line: u64,
+    ) -> Result<&'r str, DataError> {
+        let bytes = record.get(col).unwrap_or(b"");
+        std::str::from_utf8(bytes).map(str::trim).map_err(|_| {
+            let problem = DataProblem::Malformed(format!("invalid UTF-8 in field {}", col + 1));
+            self.err(line, None, problem)
+        })
+    }
+
     /// One field as a finite number.
     fn number(&self, record: &csv::ByteRecord, col: usize, line: u64) -> Result<f64, DataError> {
-        let text = field_text(record, col);
+        let text = self.text(record, col, line)?;
         let name = || Some(self.layout.names[col].clone());
         let v: f64 = text
             .parse()
@@ -693,15 +714,6 @@ impl Reading<'_> {
         }
         Ok(())
     }
-}
-
-/// Field `col` as text ("" when the record is shorter; checked as UTF-8
-/// by [`Reading::check_utf8`] before).
-fn field_text(record: &csv::ByteRecord, col: usize) -> &str {
-    record
-        .get(col)
-        .and_then(|f| std::str::from_utf8(f).ok())
-        .unwrap_or("")
 }
 
 /// One block as a trajectory: even sampling checked, derivatives taken

@@ -263,6 +263,13 @@ pub const CLAIMS: &[Claim] = &[
         backing: Backing::Setting("the benchmark's learning rate"),
     },
     Claim {
+        figure: "10^7",
+        context: "log of 10^7 samples",
+        backing: Backing::Setting(
+            "the benchmark's large log, xtask/src/bench_large.rs TRAJECTORIES x SAMPLES",
+        ),
+    },
+    Claim {
         figure: "5 %",
         context: "table by more than",
         backing: Backing::Setting("the footprint check's margin (xtask/src/footprint.rs MARGIN_FRACTION)"),

@@ -687,6 +687,7 @@ fn export_target(
         integrator: t.integrator,
         dt: t.dt,
         substeps: t.substeps,
+        max_iterations: t.max_iterations,
         ..IntegratorOverrides::default()
     };
     let blob_path = out.join(format!("{}.vvb", t.name));
@@ -911,6 +912,7 @@ fn provenance(prep: &Prepared) -> Result<Provenance> {
             t.integrator = t.integrator.or(method);
             t.dt = t.dt.or(Some(integrator.dt));
             t.substeps = t.substeps.or(Some(integrator.substeps));
+            t.max_iterations = t.max_iterations.or(Some(integrator.max_iterations));
             t
         })
         .collect();

@@ -6,7 +6,7 @@
 //! anything is written.
 
 use anyhow::{bail, Result};
-use visviva_runtime::integrate::MAX_SUBSTEPS;
+use visviva_runtime::integrate::{MAX_ITERATIONS, MAX_SUBSTEPS};
 
 use crate::learn::stage::{check_masses, check_time_step};
 use crate::project::file::{ExportTarget, Project};
@@ -83,6 +83,11 @@ fn check_export(k: usize, e: &ExportTarget) -> Result<()> {
             bail!("{table}: substeps = {s}: must be in 1..={MAX_SUBSTEPS}");
         }
     }
+    if let Some(i) = e.max_iterations {
+        if !(1..=MAX_ITERATIONS).contains(&i) {
+            bail!("{table}: max_iterations = {i}: must be in 1..={MAX_ITERATIONS}");
+        }
+    }
     Ok(())
 }
 
@@ -123,6 +128,14 @@ mod tests {
                 "[[export]]\nname = \"a\"\n[[export]]\nname = \"b\"\nsubsteps = 0\n",
                 "'b' (table 2): substeps",
             ),
+            (
+                "[[export]]\nname = \"a\"\nmax_iterations = 0\n",
+                "'a' (table 1): max_iterations = 0: must be in 1..=1000",
+            ),
+            (
+                "[[export]]\nname = \"a\"\nmax_iterations = 1001\n",
+                "'a' (table 1): max_iterations = 1001",
+            ),
             ("[[export]]\nname = \"model\"\n", "name = \"model\""),
             (
                 "[device]\ncontrol_period_s = -0.001\n",
@@ -142,6 +155,10 @@ mod tests {
             assert!(msg.contains(names), "{text}: {msg}");
         }
         // In range: accepted.
-        Project::parse("[[export]]\nname = \"a\"\ndt = 0.001\nsubsteps = 4\n").unwrap();
+        let p = Project::parse(
+            "[[export]]\nname = \"a\"\ndt = 0.001\nsubsteps = 4\nmax_iterations = 3\n",
+        )
+        .unwrap();
+        assert_eq!(p.exports[0].max_iterations, Some(3));
     }
 }

@@ -2,15 +2,19 @@
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
 //! f32 bit patterns for bit-for-bit comparison with a board. The rollout
 //! streams: each row is written as its state is computed, so memory does not
-//! grow with `--steps`; a file output appears only when complete.
+//! grow with `--steps`; a file output appears only when complete. A rollout
+//! that stops part-way (a step the integrator cannot take) keeps what it
+//! computed: `--out run.csv` then writes `run.partial.csv` (and leaves
+//! `run.csv` as it was), and the command exits non-zero naming the step and
+//! the reason.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
-use anyhow::{anyhow, bail, Result};
+use anyhow::{anyhow, bail, Context, Result};
 
 use std::io::Write as _;
 
-use crate::atomic::write_atomic_with;
+use crate::atomic::write_atomic_routed;
 use crate::capacity::check_disk;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, HostModel};
@@ -52,12 +56,14 @@ pub fn run(args: Args) -> Result<()> {
     let overrides = args.integrator.checked_overrides()?;
     let mut inputs = vec![("--model", args.model.as_path())];
     inputs.extend(args.inputs.as_deref().map(|p| ("--inputs", p)));
-    let outputs: Vec<_> = args
+    let partial = args.out.as_deref().map(partial_path);
+    let mut outputs: Vec<_> = args
         .out
         .as_deref()
         .map(|p| ("--out", p))
         .into_iter()
         .collect();
+    outputs.extend(partial.as_deref().map(|p| ("--out (its partial file)", p)));
     crate::outputs::check_outputs(&inputs, &outputs)?;
     let bytes = std::fs::read(&args.model)
         .map_err(|e| anyhow!("{}: cannot read: {e}", args.model.display()))?;
@@ -80,7 +86,7 @@ pub fn run(args: Args) -> Result<()> {
         None => Ok(()),
     };
     let watch = Watch::new();
-    match &args.out {
+    let streamed = match &args.out {
         Some(p) => {
             let rows = (args.steps as u128).saturating_add(1);
             check_disk(
@@ -88,9 +94,10 @@ pub fn run(args: Args) -> Result<()> {
                 p,
                 rows.saturating_mul(csv_row_bytes(dof, args.bits)),
             )?;
-            let mut far = None;
-            write_atomic_with(p, |w| {
-                far = stream_csv(
+            let partial = partial_path(p);
+            let mut streamed = None;
+            let written = write_atomic_routed(p, |w| {
+                let s = stream_csv(
                     &model,
                     &x0,
                     args.steps,
@@ -100,14 +107,16 @@ pub fn run(args: Args) -> Result<()> {
                     Some(&envelope),
                     w,
                 )?;
-                Ok(())
+                streamed = Some(s);
+                Ok(s.failure.map(|_| partial.clone()))
             })?;
-            eprintln!("wrote {} ({} states)", p.display(), rows);
-            warn_later(far, dof);
+            let s = streamed.context("the rollout wrote nothing")?;
+            eprintln!("wrote {} ({} states)", written.display(), s.rows());
+            s
         }
         None => {
             let mut w = std::io::BufWriter::new(std::io::stdout().lock());
-            let far = stream_csv(
+            let s = stream_csv(
                 &model,
                 &x0,
                 args.steps,
@@ -116,14 +125,40 @@ pub fn run(args: Args) -> Result<()> {
                 watch,
                 Some(&envelope),
                 &mut w,
-            )
-            .map_err(|e| anyhow!("{e:#}; standard output stops before that step"))?;
+            )?;
             w.flush()?;
-            warn_later(far, dof);
+            s
         }
-    }
+    };
+    warn_later(streamed.far, dof);
     eprintln!("{}", crate::CAUTION);
+    if let Some(why) = streamed.failure_text() {
+        let kept = match &args.out {
+            Some(p) => format!(
+                "{} holds them, marked partial by its name ({} was not written)",
+                partial_path(p).display(),
+                p.display()
+            ),
+            None => "standard output holds them and stops there".to_string(),
+        };
+        bail!(
+            "the rollout stopped part-way at {why}; the {} states computed before it \
+             are kept: {kept}",
+            streamed.rows()
+        );
+    }
     Ok(())
+}
+
+/// Where a rollout that stopped part-way writes what it computed: `--out`
+/// with `.partial` before its extension (`run.csv` -> `run.partial.csv`).
+pub fn partial_path(out: &Path) -> PathBuf {
+    let stem = out.file_stem().unwrap_or_default().to_string_lossy();
+    let name = match out.extension() {
+        Some(ext) => format!("{stem}.partial.{}", ext.to_string_lossy()),
+        None => format!("{stem}.partial"),
+    };
+    out.with_file_name(name)
 }
 
 /// Warn when the rollout left the training data after its first state

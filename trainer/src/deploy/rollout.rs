@@ -153,9 +153,44 @@ pub fn csv_row_bytes(dof: usize, bits: bool) -> u128 {
     8 + 2 * dof as u128 * value
 }
 
+/// What a streamed rollout found besides its rows.
+#[derive(Debug, Clone, Copy)]
+pub struct Streamed {
+    /// The first state far outside the training data (with an envelope).
+    pub far: Option<FarState>,
+    /// The step index and error where stepping stopped, if it did: the rows
+    /// written are the states computed before it.
+    pub failure: Option<(usize, StepError)>,
+    /// Steps asked for.
+    pub steps: usize,
+}
+
+impl Streamed {
+    /// Rows written (the initial state and every completed step).
+    pub fn rows(&self) -> usize {
+        self.failure.map_or(self.steps, |(k, _)| k) + 1
+    }
+
+    /// An error naming the failed step, for a caller that needs the whole
+    /// rollout.
+    pub fn complete(&self) -> Result<()> {
+        match self.failure {
+            Some(_) => bail!("{}", self.failure_text().unwrap_or_default()),
+            None => Ok(()),
+        }
+    }
+
+    /// `step K of N: why`, when a step failed (steps counted from 1).
+    pub fn failure_text(&self) -> Option<String> {
+        self.failure
+            .map(|(k, e)| format!("step {} of {}: {e}", k + 1, self.steps))
+    }
+}
+
 /// Stream a rollout into `w` as CSV (`t,q1..qn,p1..pn`), each row written
-/// as its state is computed. A step that fails is an error naming it; a
-/// Ctrl-C (seen through `watch`) stops the rollout with an error. With an
+/// as its state is computed. A step that fails ends the rows there and is
+/// returned (the caller decides what a part-way rollout means); a Ctrl-C
+/// (seen through `watch`) stops the rollout with an error. With an
 /// `envelope`, the first state far outside the training data is returned
 /// (the rollout goes on: the caller warns).
 #[allow(clippy::too_many_arguments)]
@@ -168,7 +203,7 @@ pub fn stream_csv(
     watch: crate::interrupt::Watch,
     envelope: Option<&Envelope>,
     w: &mut dyn Write,
-) -> Result<Option<FarState>> {
+) -> Result<Streamed> {
     let dof = model.dof();
     let dt = model.integrator().dt;
     write_csv_header(w, dof)?;
@@ -185,10 +220,11 @@ pub fn stream_csv(
         }
         Ok(write_csv_row(w, k, dt, &x, bits)?)
     })?;
-    if let Some((k, e)) = failure {
-        bail!("step {} of {steps}: {e}", k + 1);
-    }
-    Ok(far)
+    Ok(Streamed {
+        far,
+        failure,
+        steps,
+    })
 }
 
 /// An input sequence read row by row: CSV with header `t,u1..um`, one row

@@ -775,7 +775,7 @@ fn write_golden(
             Ok(())
         };
         write_atomic_with(&out.join(&file), |w| {
-            stream_csv(&dev, x0, steps, fill, true, watch, None, w).map(|_| ())
+            stream_csv(&dev, x0, steps, fill, true, watch, None, w)?.complete()
         })
         .with_context(|| format!("golden rollout {k} of {name}"))?;
         golden.push(file);

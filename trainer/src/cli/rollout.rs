@@ -141,10 +141,11 @@ pub fn run(args: Args) -> Result<()> {
             ),
             None => "standard output holds them and stops there".to_string(),
         };
+        let rows = streamed.rows();
+        let states = if rows == 1 { "state" } else { "states" };
         bail!(
-            "the rollout stopped part-way at {why}; the {} states computed before it \
-             are kept: {kept}",
-            streamed.rows()
+            "the rollout stopped part-way at {why}; the {rows} {states} computed before it \
+             are kept: {kept}"
         );
     }
     Ok(())

@@ -267,6 +267,10 @@ pub struct ExportTarget {
     /// export cache of a file without it keeps its hash.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub max_iterations: Option<u16>,
+    /// Relative tolerance of the implicit methods (default: the model's);
+    /// left out of the serialized target when not set, as above.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tolerance: Option<f32>,
 }
 
 fn default_weights() -> WeightKind {
@@ -358,6 +362,7 @@ impl Project {
                 dt: None,
                 substeps: None,
                 max_iterations: None,
+                tolerance: None,
             }]
         } else {
             self.exports.clone()

@@ -19,7 +19,7 @@ use crate::capacity::check_disk;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::envelope::{Envelope, FarState};
-use crate::deploy::rollout::{csv_row_bytes, parse_init, stream_csv, InputRows};
+use crate::deploy::rollout::{csv_row_bytes, parse_init, stream_csv, InputRows, Streamed};
 use crate::interrupt::Watch;
 
 /// Arguments of `visviva rollout`.
@@ -86,74 +86,71 @@ pub fn run(args: Args) -> Result<()> {
         None => Ok(()),
     };
     let watch = Watch::new();
-    let streamed = match &args.out {
-        Some(p) => {
-            let rows = (args.steps as u128).saturating_add(1);
-            check_disk(
-                "--steps",
-                p,
-                rows.saturating_mul(csv_row_bytes(dof, args.bits)),
-            )?;
-            let partial = partial_path(p);
-            let mut streamed = None;
-            let written = write_atomic_routed(p, |w| {
-                let s = stream_csv(
-                    &model,
-                    &x0,
-                    args.steps,
-                    fill,
-                    args.bits,
-                    watch,
-                    Some(&envelope),
-                    w,
-                )?;
-                streamed = Some(s);
-                Ok(s.failure.map(|_| partial.clone()))
-            })?;
-            let s = streamed.context("the rollout wrote nothing")?;
-            eprintln!("wrote {} ({} states)", written.display(), s.rows());
-            s
-        }
-        None => {
-            let mut w = std::io::BufWriter::new(std::io::stdout().lock());
-            let s = stream_csv(
-                &model,
-                &x0,
-                args.steps,
-                fill,
-                args.bits,
-                watch,
-                Some(&envelope),
-                &mut w,
-            )?;
-            w.flush()?;
-            s
-        }
+    let stream = |w: &mut dyn std::io::Write| {
+        let envelope = Some(&envelope);
+        stream_csv(&model, &x0, args.steps, fill, args.bits, watch, envelope, w)
     };
+    let streamed = write_rollout(&args, dof, stream)?;
     warn_later(streamed.far, dof);
     eprintln!("{}", crate::CAUTION);
-    if let Some(why) = streamed.failure_text() {
-        let kept = match &args.out {
-            Some(p) => format!(
-                "{} holds them, marked partial by its name ({} was not written)",
-                partial_path(p).display(),
-                p.display()
-            ),
-            None => "standard output holds them and stops there".to_string(),
-        };
-        let rows = streamed.rows();
-        let states = if rows == 1 { "state" } else { "states" };
-        bail!(
-            "the rollout stopped part-way at {why}; the {rows} {states} computed before it \
-             are kept: {kept}"
-        );
-    }
-    Ok(())
+    stopped_part_way(&streamed, args.out.as_deref())
+}
+
+/// Stream the rollout into `--out` (the partial file when a step fails)
+/// or standard output.
+fn write_rollout(
+    args: &Args,
+    dof: usize,
+    stream: impl FnOnce(&mut dyn std::io::Write) -> Result<Streamed>,
+) -> Result<Streamed> {
+    let Some(p) = &args.out else {
+        let mut w = std::io::BufWriter::new(std::io::stdout().lock());
+        let s = stream(&mut w)?;
+        w.flush()?;
+        return Ok(s);
+    };
+    let rows = (args.steps as u128).saturating_add(1);
+    check_disk(
+        "--steps",
+        p,
+        rows.saturating_mul(csv_row_bytes(dof, args.bits)),
+    )?;
+    let mut streamed = None;
+    let written = write_atomic_routed(p, |w| {
+        let s = stream(w)?;
+        streamed = Some(s);
+        Ok(s.failure.map(|_| partial_path(p)))
+    })?;
+    let s = streamed.context("the rollout wrote nothing")?;
+    eprintln!("wrote {} ({} states)", written.display(), s.rows());
+    Ok(s)
+}
+
+/// The error of a rollout that stopped part-way: the step, why, and where
+/// the states computed before it are.
+fn stopped_part_way(streamed: &Streamed, out: Option<&Path>) -> Result<()> {
+    let Some(why) = streamed.failure_text() else {
+        return Ok(());
+    };
+    let kept = match out {
+        Some(p) => format!(
+            "{} holds them, marked partial by its name ({} was not written)",
+            partial_path(p).display(),
+            p.display()
+        ),
+        None => "standard output holds them and stops there".to_string(),
+    };
+    let rows = streamed.rows();
+    let states = if rows == 1 { "state" } else { "states" };
+    bail!(
+        "the rollout stopped part-way at {why}; the {rows} {states} computed before it \
+         are kept: {kept}"
+    )
 }
 
 /// Where a rollout that stopped part-way writes what it computed: `--out`
 /// with `.partial` before its extension (`run.csv` -> `run.partial.csv`).
-pub fn partial_path(out: &Path) -> PathBuf {
+fn partial_path(out: &Path) -> PathBuf {
     let stem = out.file_stem().unwrap_or_default().to_string_lossy();
     let name = match out.extension() {
         Some(ext) => format!("{stem}.partial.{}", ext.to_string_lossy()),

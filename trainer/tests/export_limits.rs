@@ -407,3 +407,115 @@ fn a_rollout_to_standard_output_that_stops_part_way_exits_non_zero() {
     assert_eq!(out.lines().count(), step + 1, "{out}");
     assert!(out.starts_with("t,q1,p1\n"), "{out}");
 }
+
+/// Adapter so the `ode_solvers` crate integrates the baseline's vector
+/// field (evaluated in f32, as the rollout does).
+struct BaselineField(visviva_trainer::learn::hnn::BaselineModel);
+
+impl ode_solvers::System<f64, ode_solvers::DVector<f64>> for BaselineField {
+    fn system(&self, _t: f64, y: &ode_solvers::DVector<f64>, dy: &mut ode_solvers::DVector<f64>) {
+        let x: Vec<f32> = y.iter().map(|v| *v as f32).collect();
+        for (d, f) in dy.iter_mut().zip(self.0.vector_field(&x)) {
+            *d = f as f64;
+        }
+    }
+}
+
+/// `visviva rollout` of a baseline file (issue 18, item 5): from any state,
+/// by RK4 at --dt, against the `ode_solvers` crate's own classical RK4 on
+/// the same vector field with the same step, in f64: the two differ only by
+/// the rollout's f32 rounding, about one epsilon (6e-8) per step over 160
+/// steps, so 1e-4 of the state's scale bounds it with a margin. Flags that
+/// mean nothing for a baseline are refused, and --dt is required.
+#[test]
+fn a_baseline_file_rolls_out_from_any_state_by_rk4() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    simulate_flexure(d, "train.csv", "1", "4");
+    assert_ok(&visviva_in(
+        d,
+        &[
+            "fit",
+            "--train",
+            "train.csv",
+            "--out",
+            "m.vvb",
+            "--hidden",
+            "16",
+            "--epochs",
+            "60",
+            "--baseline",
+            "--quiet",
+        ],
+    ));
+    let init = "q1=0.004,p1=0";
+    let o = visviva_in(
+        d,
+        &[
+            "rollout",
+            "--model",
+            "m.baseline.json",
+            "--init",
+            init,
+            "--steps",
+            "160",
+            "--dt",
+            "0.005",
+            "--out",
+            "b.csv",
+        ],
+    );
+    assert_ok(&o);
+    let rows: Vec<Vec<f64>> = std::fs::read_to_string(d.join("b.csv"))
+        .unwrap()
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').map(|v| v.parse().unwrap()).collect())
+        .collect();
+    assert_eq!(rows.len(), 161);
+    let base =
+        visviva_trainer::deploy::fitted_blob::read_baseline(&d.join("m.baseline.json")).unwrap();
+    let mut solver = ode_solvers::Rk4::new(
+        BaselineField(base),
+        0.0,
+        ode_solvers::DVector::from_vec(vec![0.004, 0.0]),
+        0.8,
+        0.005,
+    );
+    solver.integrate().unwrap();
+    let (ts, ys) = solver.results().get();
+    let scale: Vec<f64> = (0..2)
+        .map(|c| rows.iter().map(|r| r[1 + c].abs()).fold(0.0, f64::max))
+        .collect();
+    let mut worst = 0.0f64;
+    for (t, y) in ts.iter().zip(ys) {
+        let k = (t / 0.005).round() as usize;
+        for c in 0..2 {
+            worst = worst.max((rows[k][1 + c] - y[c]).abs() / scale[c]);
+        }
+    }
+    println!(
+        "baseline rollout vs ode_solvers' RK4: largest difference {worst:.2e} of the state's scale over {} steps",
+        ts.len() - 1
+    );
+    assert!(worst <= 1e-4, "{worst:.3e}");
+    // A baseline has no time step or integrator of its own.
+    let refused = |extra: &[&str], needle: &str| {
+        let mut args = vec![
+            "rollout",
+            "--model",
+            "m.baseline.json",
+            "--init",
+            init,
+            "--steps",
+            "3",
+        ];
+        args.extend(extra);
+        assert_refused(&visviva_in(d, &args), 1, &[needle]);
+    };
+    refused(&[], "pass --dt");
+    refused(
+        &["--dt", "0.01", "--integrator", "verlet"],
+        "apply to blobs",
+    );
+}

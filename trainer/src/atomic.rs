@@ -6,7 +6,7 @@
 
 use anyhow::Context;
 use std::io::{BufWriter, Write};
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use tempfile::NamedTempFile;
 
 use crate::interrupt::{Interrupted, Watch};
@@ -54,6 +54,18 @@ pub fn write_atomic_with<F>(path: &Path, write: F) -> anyhow::Result<()>
 where
     F: FnOnce(&mut dyn Write) -> anyhow::Result<()>,
 {
+    write_atomic_routed(path, |w| write(w).map(|()| None)).map(|_| ())
+}
+
+/// As [`write_atomic_with`], but `write` may send the finished content to
+/// another file in the same folder instead of `path` (it returns that
+/// file's name; `None` keeps `path`): how a rollout that stopped part-way
+/// writes what it computed under a name that says so, leaving `path` as it
+/// was. Returns the file written.
+pub fn write_atomic_routed<F>(path: &Path, write: F) -> anyhow::Result<PathBuf>
+where
+    F: FnOnce(&mut dyn Write) -> anyhow::Result<Option<PathBuf>>,
+{
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
         _ => Path::new("."),
@@ -66,21 +78,25 @@ where
         )
     })?;
     let watch = Watch::new();
-    {
+    let target = {
         let mut buffered = BufWriter::new(Polled {
             inner: tmp.as_file_mut(),
             watch,
         });
-        let written = write(&mut buffered).and_then(|()| Ok(buffered.flush()?));
-        let written = written.and_then(|()| Ok(watch.check()?));
-        if let Err(e) = written {
-            // Dropping `tmp` on return removes the temporary file.
-            if was_interrupted(&e) {
-                anyhow::bail!("{}: interrupted by Ctrl-C; nothing written", path.display());
+        let written = write(&mut buffered).and_then(|to| Ok(buffered.flush().map(|()| to)?));
+        let written = written.and_then(|to| Ok(watch.check().map(|()| to)?));
+        match written {
+            Ok(to) => to.unwrap_or_else(|| path.to_path_buf()),
+            Err(e) => {
+                // Dropping `tmp` on return removes the temporary file.
+                if was_interrupted(&e) {
+                    anyhow::bail!("{}: interrupted by Ctrl-C; nothing written", path.display());
+                }
+                return Err(e.context(format!("{}: nothing written", path.display())));
             }
-            return Err(e.context(format!("{}: nothing written", path.display())));
         }
-    }
+    };
+    let path = target.as_path();
     tmp.as_file()
         .sync_all()
         .with_context(|| format!("{}: cannot flush to disk", path.display()))?;
@@ -98,7 +114,7 @@ where
             path.display()
         )
     })?;
-    Ok(())
+    Ok(target)
 }
 
 #[cfg(test)]

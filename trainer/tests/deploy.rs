@@ -67,6 +67,28 @@ fn fixture(general: bool) -> BlobModel {
     }
 }
 
+/// `deploy::export::export` with `steps` x `states` check rollouts and the
+/// convergence proof over the blob's normalization range.
+fn export_checked(
+    src: &BlobModel,
+    kind: WeightKind,
+    ia: &IntegratorOverrides,
+    steps: usize,
+    states: usize,
+) -> anyhow::Result<(Vec<u8>, visviva_trainer::deploy::export::ExportReport)> {
+    let range = visviva_trainer::deploy::convergence::TrainingRange::of_normalization(
+        &src.offset,
+        &src.scale,
+    );
+    let check = visviva_trainer::deploy::export::ExportCheck {
+        steps,
+        states,
+        range: &range,
+        key: &|k: &str| format!("--{k}"),
+    };
+    visviva_trainer::deploy::export::export(src, kind, ia, &check)
+}
+
 #[test]
 fn blob_model_round_trips() {
     for g in [false, true] {
@@ -100,7 +122,7 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     );
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
-    let (net_i8, r) = visviva_trainer::deploy::export::export(
+    let (net_i8, r) = export_checked(
         &net,
         WeightKind::Int8,
         &IntegratorOverrides::default(),
@@ -114,7 +136,7 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     };
     assert_eq!(g.weight_kind(), WeightKind::Int8);
     assert_eq!(r.failed_rollouts, 0);
-    let (i8_bytes, r) = visviva_trainer::deploy::export::export(
+    let (i8_bytes, r) = export_checked(
         &m,
         WeightKind::Int8,
         &IntegratorOverrides::default(),
@@ -133,13 +155,13 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
         integrator: Some(visviva_trainer::deploy::integrator::MethodName::Verlet),
         ..Default::default()
     };
-    assert!(visviva_trainer::deploy::export::export(&m, WeightKind::F32, &ia, 10, 1).is_err());
+    assert!(export_checked(&m, WeightKind::F32, &ia, 10, 1).is_err());
 }
 
 #[test]
 fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
     let src = fixture(false);
-    let (f32_bytes, r32) = visviva_trainer::deploy::export::export(
+    let (f32_bytes, r32) = export_checked(
         &src,
         WeightKind::F32,
         &IntegratorOverrides::default(),
@@ -147,7 +169,7 @@ fn int8_export_obeys_the_rounding_bound_and_shrinks_the_blob() {
         4,
     )
     .unwrap();
-    let (i8_bytes, r8) = visviva_trainer::deploy::export::export(
+    let (i8_bytes, r8) = export_checked(
         &src,
         WeightKind::Int8,
         &IntegratorOverrides::default(),
@@ -197,8 +219,7 @@ fn export_refuses_an_explicit_method_for_a_general_model() {
         integrator: Some(visviva_trainer::deploy::integrator::MethodName::Verlet),
         ..Default::default()
     };
-    let err =
-        visviva_trainer::deploy::export::export(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
+    let err = export_checked(&src, WeightKind::F32, &ia, 10, 1).unwrap_err();
     assert!(format!("{err:#}").contains("separable"), "{err:#}");
 }
 

@@ -241,27 +241,57 @@ fn ctrl_c_and_failures_in_the_middle_of_a_write_leave_no_temporary_file() {
 
     // A rollout that leaves the range of f32 after several kilobytes of
     // output: V = 1e33 q drives |q| past 3.4e38 after about 800 steps of
-    // dt = 1 (q_k = -1e33 k^2 / 2), so the temporary file already holds
-    // rows when the step fails.
+    // dt = 1 (q_k = -1e33 k^2 / 2). What it computed is kept, marked
+    // partial by its name (o.partial.csv); o.csv keeps its old content and
+    // no temporary file is left.
     let wild = d.join("wild.vvb");
     std::fs::write(&wild, linear_blob(1e33, 1.0).blob().unwrap()).unwrap();
     let before = snapshot(d);
-    let mut c = visviva();
-    c.args(["rollout", "--model"]).arg(&wild);
-    c.args(["--init", "q1=0,p1=0", "--steps", "5000", "--out"])
-        .arg(&out);
-    refused(
-        c,
-        d,
-        &[
-            "o.csv",
-            "nothing written",
-            "step ",
-            "of 5000",
-            "NaN or infinity",
-        ],
-    );
-    assert_eq!(snapshot(d), before);
+    let o = visviva()
+        .args(["rollout", "--model"])
+        .arg(&wild)
+        .args(["--init", "q1=0,p1=0", "--steps", "5000", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    for w in [
+        "stopped part-way at step ",
+        "of 5000",
+        "NaN or infinity",
+        "o.partial.csv",
+        "o.csv was not written",
+    ] {
+        assert!(err.contains(w), "message lacks '{w}': {err}");
+    }
+    let mut after = snapshot(d);
+    let partial = after
+        .remove(Path::new("o.partial.csv"))
+        .expect("o.partial.csv written");
+    assert_eq!(after, before, "{err}");
+    // The rows are the states before the failed step: header, then t = 0..k-1
+    // for a failure at step k (counted from 1), every value finite.
+    let step: usize = err
+        .split("at step ")
+        .nth(1)
+        .unwrap()
+        .split(' ')
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
+    let text = String::from_utf8(partial).unwrap();
+    let rows: Vec<&str> = text.lines().collect();
+    assert_eq!(rows[0], "t,q1,p1");
+    assert_eq!(rows.len(), step + 1, "{err}");
+    assert!((600..1000).contains(&step), "failed at step {step}");
+    for r in &rows[1..] {
+        assert!(
+            r.split(',').all(|v| v.parse::<f32>().unwrap().is_finite()),
+            "{r}"
+        );
+    }
 }
 
 #[test]

@@ -10,7 +10,8 @@ use crate::atomic::write_atomic;
 use crate::capacity::check_memory;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, WeightKind};
-use crate::deploy::export::export;
+use crate::deploy::convergence::TrainingRange;
+use crate::deploy::export::{export, ExportCheck};
 
 /// Arguments of `visviva export`.
 #[derive(Debug, clap::Args)]
@@ -53,13 +54,14 @@ pub fn run(args: Args) -> Result<()> {
     let src = BlobModel::read(&args.model)?;
     let state_bytes = 24 + 8 * src.dof as u128;
     check_memory("--check-states", args.check_states as u128, state_bytes)?;
-    let (bytes, r) = export(
-        &src,
-        args.weights,
-        &overrides,
-        args.check_steps,
-        args.check_states,
-    )?;
+    let range = TrainingRange::of_normalization(&src.offset, &src.scale);
+    let check = ExportCheck {
+        steps: args.check_steps,
+        states: args.check_states,
+        range: &range,
+        key: &|k: &str| format!("--{}", k.replace('_', "-")),
+    };
+    let (bytes, r) = export(&src, args.weights, &overrides, &check)?;
     let port = src.dissipation.is_some() || src.input.is_some();
     crate::deploy::verdict::refuse_untrusted(&r, port)?;
     write_atomic(&args.out, &bytes)?;
@@ -80,12 +82,18 @@ pub fn run(args: Args) -> Result<()> {
         r.substeps,
         r.macs_per_gradient,
         r.macs_per_step,
-        if r.integrator == "midpoint" {
+        if r.convergence.is_some() {
             " (at the iteration limit)"
         } else {
             ""
         }
     );
+    if let Some(c) = &r.convergence {
+        println!(
+            "  convergence: {} states spanning {} x {} steps each needed at most {} iterations (limit {})",
+            c.states, c.range, c.steps_each, c.iterations_needed, c.max_iterations
+        );
+    }
     println!(
         "  accuracy price over {} steps from {} states: max state deviation from the f32 model {:.3e} \
          (in normalization scales); learned-energy drift {:.3e} (f32) vs {:.3e} (exported), in energy scales",

@@ -2,26 +2,35 @@
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
 //! f32 bit patterns for bit-for-bit comparison with a board. The rollout
 //! streams: each row is written as its state is computed, so memory does not
-//! grow with `--steps`; a file output appears only when complete.
+//! grow with `--steps`; a file output appears only when complete. A rollout
+//! that stops part-way (a step the integrator cannot take) keeps what it
+//! computed: `--out run.csv` then writes `run.partial.csv` (and leaves
+//! `run.csv` as it was), and the command exits non-zero naming the step and
+//! the reason. A baseline file (`fit --baseline`) rolls out the same way,
+//! by RK4 at `--dt`, from any state.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
-use anyhow::{anyhow, bail, Result};
+use anyhow::{anyhow, bail, Context, Result};
 
 use std::io::Write as _;
 
-use crate::atomic::write_atomic_with;
+use crate::atomic::write_atomic_routed;
 use crate::capacity::check_disk;
 use crate::cli::shared_args::IntegratorArgs;
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::envelope::{Envelope, FarState};
-use crate::deploy::rollout::{csv_row_bytes, parse_init, stream_csv, InputRows};
+use crate::deploy::fitted_blob::read_baseline;
+use crate::deploy::rollout::{
+    csv_row_bytes, parse_init, stream_csv, stream_rows, InputRows, RowSettings, Streamed,
+};
 use crate::interrupt::Watch;
 
 /// Arguments of `visviva rollout`.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// The blob to step.
+    /// The blob to step, or a baseline file (`M.baseline.json`, written by
+    /// `fit --baseline`), stepped by RK4 at --dt.
     #[arg(long, value_name = "MODEL.vvb")]
     pub model: PathBuf,
     /// Initial state, every coordinate named once: "q1=0.5,p1=0".
@@ -52,13 +61,18 @@ pub fn run(args: Args) -> Result<()> {
     let overrides = args.integrator.checked_overrides()?;
     let mut inputs = vec![("--model", args.model.as_path())];
     inputs.extend(args.inputs.as_deref().map(|p| ("--inputs", p)));
-    let outputs: Vec<_> = args
+    let partial = args.out.as_deref().map(partial_path);
+    let mut outputs: Vec<_> = args
         .out
         .as_deref()
         .map(|p| ("--out", p))
         .into_iter()
         .collect();
+    outputs.extend(partial.as_deref().map(|p| ("--out (its partial file)", p)));
     crate::outputs::check_outputs(&inputs, &outputs)?;
+    if is_baseline(&args.model) {
+        return run_baseline(&args);
+    }
     let bytes = std::fs::read(&args.model)
         .map_err(|e| anyhow!("{}: cannot read: {e}", args.model.display()))?;
     let model =
@@ -80,50 +94,141 @@ pub fn run(args: Args) -> Result<()> {
         None => Ok(()),
     };
     let watch = Watch::new();
-    match &args.out {
-        Some(p) => {
-            let rows = (args.steps as u128).saturating_add(1);
-            check_disk(
-                "--steps",
-                p,
-                rows.saturating_mul(csv_row_bytes(dof, args.bits)),
-            )?;
-            let mut far = None;
-            write_atomic_with(p, |w| {
-                far = stream_csv(
-                    &model,
-                    &x0,
-                    args.steps,
-                    fill,
-                    args.bits,
-                    watch,
-                    Some(&envelope),
-                    w,
-                )?;
-                Ok(())
-            })?;
-            eprintln!("wrote {} ({} states)", p.display(), rows);
-            warn_later(far, dof);
-        }
-        None => {
-            let mut w = std::io::BufWriter::new(std::io::stdout().lock());
-            let far = stream_csv(
-                &model,
-                &x0,
-                args.steps,
-                fill,
-                args.bits,
-                watch,
-                Some(&envelope),
-                &mut w,
-            )
-            .map_err(|e| anyhow!("{e:#}; standard output stops before that step"))?;
-            w.flush()?;
-            warn_later(far, dof);
-        }
-    }
+    let stream = |w: &mut dyn std::io::Write| {
+        let envelope = Some(&envelope);
+        stream_csv(&model, &x0, args.steps, fill, args.bits, watch, envelope, w)
+    };
+    let streamed = write_rollout(&args, dof, stream)?;
+    warn_later(streamed.far, dof);
     eprintln!("{}", crate::CAUTION);
-    Ok(())
+    stopped_part_way(&streamed, args.out.as_deref())
+}
+
+/// Whether `--model` names a baseline file (`*.baseline.json`).
+fn is_baseline(p: &Path) -> bool {
+    p.to_string_lossy().ends_with(".baseline.json")
+}
+
+/// Roll out the plain vector-field baseline by RK4 at `--dt` (as `check`
+/// steps it), inputs held over each step; a step that gives NaN or
+/// infinity stops the rollout part-way.
+fn run_baseline(args: &Args) -> Result<()> {
+    let o = args.integrator.overrides();
+    if o.integrator.is_some()
+        || o.substeps.is_some()
+        || o.max_iterations.is_some()
+        || o.tolerance.is_some()
+    {
+        bail!(
+            "{}: a baseline is stepped by RK4 at --dt; --integrator, --substeps, \
+             --max-iterations and --tolerance apply to blobs",
+            args.model.display()
+        );
+    }
+    let dt = o.dt.with_context(|| {
+        format!(
+            "{}: a baseline has no time step of its own: pass --dt (check steps it at the \
+             log's sampling interval)",
+            args.model.display()
+        )
+    })?;
+    let base = read_baseline(&args.model)?;
+    let dof = base.dof;
+    let x0 = parse_init(&args.init, dof)?;
+    let envelope = Envelope::new(base.norm.offset.clone(), base.norm.scale.clone());
+    if let Some(far) = envelope.far(0, &x0) {
+        eprintln!("{}", far.warning(dof));
+    }
+    let mut inputs = open_inputs(args, base.input_scale.len())?;
+    let mut u = vec![0.0f32; base.input_scale.len()];
+    let step = |_: usize, x: &mut [f32]| {
+        u.iter_mut().for_each(|v| *v = 0.0);
+        if let Some(rows) = inputs.as_mut() {
+            rows.next_into(&mut u)?;
+        }
+        base.step_rk4_driven(x, &u, dt);
+        let finite = x.iter().all(|v| v.is_finite());
+        Ok((!finite).then(|| "the baseline's RK4 step produced NaN or infinity".to_string()))
+    };
+    let watch = Watch::new();
+    let stream = |w: &mut dyn std::io::Write| {
+        let rows = RowSettings {
+            dof,
+            dt,
+            bits: args.bits,
+            watch,
+            envelope: Some(&envelope),
+        };
+        stream_rows(&rows, &x0, args.steps, step, w)
+    };
+    let streamed = write_rollout(args, dof, stream)?;
+    warn_later(streamed.far, dof);
+    eprintln!("{}", crate::CAUTION);
+    stopped_part_way(&streamed, args.out.as_deref())
+}
+
+/// Stream the rollout into `--out` (the partial file when a step fails)
+/// or standard output.
+fn write_rollout(
+    args: &Args,
+    dof: usize,
+    stream: impl FnOnce(&mut dyn std::io::Write) -> Result<Streamed>,
+) -> Result<Streamed> {
+    let Some(p) = &args.out else {
+        let mut w = std::io::BufWriter::new(std::io::stdout().lock());
+        let s = stream(&mut w)?;
+        w.flush()?;
+        return Ok(s);
+    };
+    let rows = (args.steps as u128).saturating_add(1);
+    check_disk(
+        "--steps",
+        p,
+        rows.saturating_mul(csv_row_bytes(dof, args.bits)),
+    )?;
+    let mut streamed = None;
+    let written = write_atomic_routed(p, |w| {
+        let s = stream(w)?;
+        let to = s.failure.as_ref().map(|_| partial_path(p));
+        streamed = Some(s);
+        Ok(to)
+    })?;
+    let s = streamed.context("the rollout wrote nothing")?;
+    eprintln!("wrote {} ({} states)", written.display(), s.rows());
+    Ok(s)
+}
+
+/// The error of a rollout that stopped part-way: the step, why, and where
+/// the states computed before it are.
+fn stopped_part_way(streamed: &Streamed, out: Option<&Path>) -> Result<()> {
+    let Some(why) = streamed.failure_text() else {
+        return Ok(());
+    };
+    let kept = match out {
+        Some(p) => format!(
+            "{} holds them, marked partial by its name ({} was not written)",
+            partial_path(p).display(),
+            p.display()
+        ),
+        None => "standard output holds them and stops there".to_string(),
+    };
+    let rows = streamed.rows();
+    let states = if rows == 1 { "state" } else { "states" };
+    bail!(
+        "the rollout stopped part-way at {why}; the {rows} {states} computed before it \
+         are kept: {kept}"
+    )
+}
+
+/// Where a rollout that stopped part-way writes what it computed: `--out`
+/// with `.partial` before its extension (`run.csv` -> `run.partial.csv`).
+fn partial_path(out: &Path) -> PathBuf {
+    let stem = out.file_stem().unwrap_or_default().to_string_lossy();
+    let name = match out.extension() {
+        Some(ext) => format!("{stem}.partial.{}", ext.to_string_lossy()),
+        None => format!("{stem}.partial"),
+    };
+    out.with_file_name(name)
 }
 
 /// Warn when the rollout left the training data after its first state

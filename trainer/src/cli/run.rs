@@ -146,8 +146,14 @@ fn export_step(
         if e.reused {
             println!("      {}: inputs unchanged, reusing", d.name);
         }
+        let iterations = d.export.convergence.as_ref().map_or(String::new(), |c| {
+            format!(
+                " (at most {} of {} iterations needed over the training range)",
+                c.iterations_needed, c.max_iterations
+            )
+        });
         println!(
-            "      {}: {} bytes ({}), {} MAC/step, max deviation from f32 {:.2e}, budget {}",
+            "      {}: {} bytes ({}), {} MAC/step{iterations}, max deviation from f32 {:.2e}, budget {}",
             d.name,
             d.export.bytes,
             format!("{:?}", d.export.weights).to_lowercase(),
@@ -155,6 +161,9 @@ fn export_step(
             d.export.max_state_deviation,
             if d.budget.pass { "pass" } else { "FAIL" }
         );
+        for a in &d.budget.advice {
+            println!("        {a}");
+        }
     }
     Ok(exported.into_iter().map(|e| e.device).collect())
 }

@@ -31,6 +31,12 @@ pub struct FarState {
 }
 
 impl Envelope {
+    /// The envelope of a normalization's per-coordinate mean `offset` and
+    /// standard deviation `scale`.
+    pub fn new(offset: Vec<f32>, scale: Vec<f32>) -> Self {
+        Self { offset, scale }
+    }
+
     /// The envelope a blob's normalization describes.
     pub fn of(blob: &BlobModel) -> Self {
         Self {

@@ -3,11 +3,12 @@
 //! anything is flashed. The two rollouts of each check run side by side and
 //! keep only running maxima, so memory does not grow with the check steps.
 
-use anyhow::Result;
+use anyhow::{bail, Result};
 use serde::{Deserialize, Serialize};
 
 use crate::deploy::blob::HOST_MAX_DOF;
 use crate::deploy::blob::{BlobModel, HostModel, WeightKind};
+use crate::deploy::convergence::{prove, ConvergenceProof, TrainingRange};
 use crate::deploy::integrator::{method_name, IntegratorOverrides};
 use crate::deploy::rollout::{sample_states, state_of};
 use crate::interrupt::Watch;
@@ -47,16 +48,38 @@ pub struct ExportReport {
     pub energy_drift_exported: f64,
     /// Rollouts that stopped with an error (step too large, divergence).
     pub failed_rollouts: usize,
+    /// For an implicit method: the convergence proof over the training
+    /// range (the largest iteration count its steps needed).
+    #[serde(default)]
+    pub convergence: Option<ConvergenceProof>,
+}
+
+/// What the check rollouts of an export are: `steps` steps from `states`
+/// seeded states, and the convergence proof of an implicit step over
+/// `range`, whose refusal names the settings to change through `key`
+/// (`max_iterations` -> `--max-iterations` or `max_iterations`).
+pub struct ExportCheck<'a> {
+    /// Steps of each check rollout.
+    pub steps: usize,
+    /// Seeded starting states of the check rollouts.
+    pub states: usize,
+    /// The range the convergence proof spans.
+    pub range: &'a TrainingRange,
+    /// A setting's name as the user sets it, for the refusal.
+    pub key: &'a dyn Fn(&str) -> String,
 }
 
 /// Export `model` as `kind` with `args` overrides, measuring the cost.
+/// An implicit step that does not converge under the blob's iteration
+/// limit from a state of the training range is an error naming the state
+/// (nothing is measured further).
 pub fn export(
     src: &BlobModel,
     kind: WeightKind,
     ia: &IntegratorOverrides,
-    steps: usize,
-    states: usize,
+    check: &ExportCheck<'_>,
 ) -> Result<(Vec<u8>, ExportReport)> {
+    let (steps, states) = (check.steps, check.states);
     let mut out = src.converted(kind);
     out.integrator = ia.apply(src.integrator);
     let bytes = out.to_bytes()?;
@@ -67,10 +90,11 @@ pub fn export(
     .to_bytes()?;
     let exported = HostModel::from_bytes(&bytes).map_err(|e| anyhow::anyhow!("{e}"))?;
     let reference = HostModel::from_bytes(&reference_bytes).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let watch = Watch::new();
+    let convergence = prove_convergence(&exported, check, watch)?;
     let mut dev = 0.0f64;
     let (mut drift_ref, mut drift_exp) = (0.0f64, 0.0f64);
     let mut failed = 0;
-    let watch = Watch::new();
     for x0 in sample_states(&src.offset, &src.scale, 1.0, states, 0x7676_6578) {
         let p = paired(&reference, &exported, &x0, steps, &src.scale, watch)?;
         failed += p.failed;
@@ -95,8 +119,36 @@ pub fn export(
         energy_drift_reference: drift_ref,
         energy_drift_exported: drift_exp,
         failed_rollouts: failed,
+        convergence,
     };
     Ok((bytes, report))
+}
+
+/// The convergence proof of `model`'s implicit step over the check's range
+/// (None for an explicit method); an error naming the state when it fails.
+fn prove_convergence(
+    model: &HostModel<'_>,
+    check: &ExportCheck<'_>,
+    watch: Watch,
+) -> Result<Option<ConvergenceProof>> {
+    let it = model.integrator();
+    match prove(model, check.range, watch)? {
+        None => Ok(None),
+        Some(Ok(proof)) => Ok(Some(proof)),
+        Some(Err(failure)) => {
+            let settings = format!(
+                "{} with dt = {} s x {} substeps, tolerance {:e}",
+                method_name(it.method),
+                it.dt,
+                it.substeps,
+                it.tolerance
+            );
+            bail!(
+                "{}",
+                failure.message(&settings, it.max_iterations, check.key)
+            )
+        }
+    }
 }
 
 /// What one pair of rollouts (reference and exported blob, same start)

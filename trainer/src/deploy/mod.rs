@@ -1,10 +1,12 @@
 //! From a fitted model to a device: blob building and its owned mirror,
-//! export with its measured cost and the verdict on whether it can be
-//! trusted, host rollouts through the runtime.
+//! export with its measured cost, the convergence proof of implicit steps
+//! and the verdict on whether it can be trusted, host rollouts through the
+//! runtime.
 
 pub mod blob;
 pub mod budget;
 pub mod compare;
+pub mod convergence;
 pub mod envelope;
 pub mod export;
 pub mod fitted_blob;

@@ -153,42 +153,133 @@ pub fn csv_row_bytes(dof: usize, bits: bool) -> u128 {
     8 + 2 * dof as u128 * value
 }
 
-/// Stream a rollout into `w` as CSV (`t,q1..qn,p1..pn`), each row written
-/// as its state is computed. A step that fails is an error naming it; a
-/// Ctrl-C (seen through `watch`) stops the rollout with an error. With an
-/// `envelope`, the first state far outside the training data is returned
-/// (the rollout goes on: the caller warns).
+/// What a streamed rollout found besides its rows.
+#[derive(Debug, Clone)]
+pub struct Streamed {
+    /// The first state far outside the training data (with an envelope).
+    pub far: Option<FarState>,
+    /// The step index and why stepping stopped there, if it did: the rows
+    /// written are the states computed before it.
+    pub failure: Option<(usize, String)>,
+    /// Steps asked for.
+    pub steps: usize,
+}
+
+impl Streamed {
+    /// Rows written (the initial state and every completed step).
+    pub fn rows(&self) -> usize {
+        self.failure.as_ref().map_or(self.steps, |(k, _)| *k) + 1
+    }
+
+    /// An error naming the failed step, for a caller that needs the whole
+    /// rollout.
+    pub fn complete(&self) -> Result<()> {
+        match self.failure_text() {
+            Some(why) => bail!("{why}"),
+            None => Ok(()),
+        }
+    }
+
+    /// `step K of N: why`, when a step failed (steps counted from 1).
+    pub fn failure_text(&self) -> Option<String> {
+        self.failure
+            .as_ref()
+            .map(|(k, e)| format!("step {} of {}: {e}", k + 1, self.steps))
+    }
+}
+
+/// Stream a rollout of `model` into `w` as CSV (`t,q1..qn,p1..pn`), each
+/// row written as its state is computed; `fill(k, u)` writes the inputs
+/// held over step k (zeros unless it writes). See [`stream_rows`].
 #[allow(clippy::too_many_arguments)]
 pub fn stream_csv(
     model: &HostModel<'_>,
     x0: &[f32],
     steps: usize,
-    fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
+    mut fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
     bits: bool,
     watch: crate::interrupt::Watch,
     envelope: Option<&Envelope>,
     w: &mut dyn Write,
-) -> Result<Option<FarState>> {
+) -> Result<Streamed> {
+    let mut u = vec![0.0f32; model.inputs()];
     let dof = model.dof();
-    let dt = model.integrator().dt;
-    write_csv_header(w, dof)?;
-    let mut x = vec![0.0f32; 2 * dof];
+    let step = |k: usize, x: &mut [f32]| {
+        u.iter_mut().for_each(|v| *v = 0.0);
+        fill(k, &mut u)?;
+        let mut s = state_of(x)?;
+        Ok(match model.step_driven(&mut s, &u) {
+            Ok(()) => {
+                x[..dof].copy_from_slice(s.q());
+                x[dof..].copy_from_slice(s.p());
+                None
+            }
+            Err(e) => Some(e.to_string()),
+        })
+    };
+    let rows = RowSettings {
+        dof,
+        dt: model.integrator().dt,
+        bits,
+        watch,
+        envelope,
+    };
+    stream_rows(&rows, x0, steps, step, w)
+}
+
+/// How [`stream_rows`] writes: degrees of freedom, the time step of a row,
+/// bit patterns or decimals, Ctrl-C, and the envelope to warn about.
+pub struct RowSettings<'a> {
+    /// Degrees of freedom n.
+    pub dof: usize,
+    /// Time step of one row (s).
+    pub dt: f32,
+    /// Exact bit patterns instead of shortest decimals.
+    pub bits: bool,
+    /// Ctrl-C.
+    pub watch: crate::interrupt::Watch,
+    /// The training data's envelope, when known.
+    pub envelope: Option<&'a Envelope>,
+}
+
+/// Stream a rollout into `w` as CSV, each row written as its state is
+/// computed: `step(k, x)` advances the flat state `x` by step k and returns
+/// why it could not (`Some`), which ends the rows there and is returned
+/// (the caller decides what a part-way rollout means); an `Err` (unreadable
+/// inputs) or a Ctrl-C (seen through the settings' watch) stops with an
+/// error. With an envelope, the first state far outside the training data
+/// is returned (the rollout goes on: the caller warns).
+pub fn stream_rows(
+    rows: &RowSettings<'_>,
+    x0: &[f32],
+    steps: usize,
+    mut step: impl FnMut(usize, &mut [f32]) -> Result<Option<String>>,
+    w: &mut dyn Write,
+) -> Result<Streamed> {
+    write_csv_header(w, rows.dof)?;
+    let mut x = x0.to_vec();
     let mut far = None;
-    let failure = roll_each(model, x0, steps, fill, |k, s| {
+    let mut failure = None;
+    for k in 0..=steps {
         if k % 4096 == 0 {
-            watch.check()?;
+            rows.watch.check()?;
         }
-        x[..dof].copy_from_slice(s.q());
-        x[dof..].copy_from_slice(s.p());
+        if k > 0 {
+            if let Some(why) = step(k - 1, &mut x)? {
+                failure = Some((k - 1, why));
+                break;
+            }
+        }
         if far.is_none() {
-            far = envelope.and_then(|e| e.far(k, &x));
+            far = rows.envelope.and_then(|e| e.far(k, &x));
         }
-        Ok(write_csv_row(w, k, dt, &x, bits)?)
-    })?;
-    if let Some((k, e)) = failure {
-        bail!("step {} of {steps}: {e}", k + 1);
+        write_csv_row(w, k, rows.dt, &x, rows.bits)?;
     }
-    Ok(far)
+    Ok(Streamed {
+        far,
+        failure,
+        steps,
+    })
 }
 
 /// An input sequence read row by row: CSV with header `t,u1..um`, one row

@@ -82,6 +82,7 @@ mod tests {
             energy_drift_reference: drift,
             energy_drift_exported: drift,
             failed_rollouts: failed,
+            convergence: None,
         }
     }
 

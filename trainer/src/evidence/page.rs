@@ -322,7 +322,7 @@ fn conservative_section(h: &mut Html<'_>, check: &CheckReport) {
     h.p("<h2>Energy model versus plain baseline</h2>");
     h.p(&format!("<p>Each validation trajectory is rolled out from its first state: the energy model with its integrator ({}), the baseline (a plain network of the same size predicting dx/dt directly) with RK4. Errors are relative (RMS error over RMS value) and shown in percent. {}</p>",
         h.num("check/integrator"),
-        if truth { "Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon, H the true energy of the reference system." } else { "Energy drift is max |H(t) - H(0)| / E<sub>s</sub> over the long horizon, H the learned energy and E<sub>s</sub> the blob's energy scale (the training data's typical energy: unlike the learned energy's spread along one trajectory, it does not shrink as the model gets more accurate, so the figure ranks models like their true drift)." }));
+        if truth { "Energy drift is max |H(t) - H(0)| / |H(0)| over the long horizon, H the true energy of the reference system." } else { "Energy drift is max |H(t) - H(0)| / E<sub>s</sub> over the long horizon, H the learned energy and E<sub>s</sub> the blob's energy scale (the training data's typical energy, the geometric mean over coordinates of RMS(dq/dt) RMS(p) and RMS(dp/dt) RMS(q): for a mass-spring its mean energy; unlike the learned energy's spread along one trajectory, it does not shrink as the model gets more accurate). It measures how far the model's own energy moves under its integrator: the integrator's error and a rough learned energy raise it, but a smooth energy that is wrong does not, so judge accuracy by the state errors." }));
     let n = check.trajectories.len();
     let fmt = |h: &Html<'_>, f: &str| {
         let mut p = paths("check/trajectories", n, &format!("model/{f}"));
@@ -581,15 +581,27 @@ fn quantization_table(h: &mut Html<'_>, n: usize) {
     drift_paths.extend(d("export/energy_drift_exported"));
     let drift = h.col(&drift_paths, Quantity::Fraction);
     let failed = h.col(&d("export/failed_rollouts"), Quantity::Count);
+    let mut iteration_paths = d("export/convergence/iterations_needed");
+    iteration_paths.extend(d("export/convergence/max_iterations"));
+    let iterations = h.col(&iteration_paths, Quantity::Count);
     let rows: Vec<Vec<String>> = (0..n)
         .map(|i| {
             let p = |f: &str| format!("devices/{i}/{f}");
+            let iteration = |f: &str| {
+                if h.has(&p("export/convergence")) {
+                    h.val(&p(f), &iterations)
+                } else {
+                    missing(h, &p("export/convergence"), "explicit method")
+                }
+            };
             vec![
                 h.num(&p("name")),
                 h.val(&p("export/max_state_deviation"), &dev),
                 h.val(&p("export/energy_drift_reference"), &drift),
                 h.val(&p("export/energy_drift_exported"), &drift),
                 h.val(&p("export/failed_rollouts"), &failed),
+                iteration("export/convergence/iterations_needed"),
+                iteration("export/convergence/max_iterations"),
             ]
         })
         .collect();
@@ -599,9 +611,12 @@ fn quantization_table(h: &mut Html<'_>, n: usize) {
         format!("learned-energy drift, f32 model ({})", drift.unit()),
         format!("this blob ({})", drift.unit()),
         "failed check rollouts".into(),
+        "iterations needed (training range)".into(),
+        "iteration limit".into(),
     ];
     let head: Vec<&str> = head.iter().map(String::as_str).collect();
     h.table(&head, &rows);
+    h.p("<p class=\"note\">Implicit methods (implicit midpoint, the discrete-gradient method): before a blob is written, its step is taken from the centre, the face centres, the corners of the training log's range per coordinate and seeded states inside it, a few steps each, and the largest iteration count those steps needed is shown beside the blob's limit; a limit below it is refused, naming the state. The step costs MAC at the limit, so a limit near the count needed is cheaper (<code>[[export]] max_iterations</code>).</p>");
 }
 
 /// Every verdict as used / limit / margin, and the budget's assumptions.

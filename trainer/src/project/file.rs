@@ -261,6 +261,16 @@ pub struct ExportTarget {
     /// Substeps (default: the model's).
     #[serde(default)]
     pub substeps: Option<u16>,
+    /// Iteration limit of the implicit methods (default: the model's; the
+    /// export's convergence proof says which limit the training range
+    /// needs). Left out of the serialized target when not set, so the
+    /// export cache of a file without it keeps its hash.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub max_iterations: Option<u16>,
+    /// Relative tolerance of the implicit methods (default: the model's);
+    /// left out of the serialized target when not set, as above.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tolerance: Option<f32>,
 }
 
 fn default_weights() -> WeightKind {
@@ -351,6 +361,8 @@ impl Project {
                 integrator: None,
                 dt: None,
                 substeps: None,
+                max_iterations: None,
+                tolerance: None,
             }]
         } else {
             self.exports.clone()

@@ -18,10 +18,10 @@ use crate::capacity::{check_disk, check_memory};
 use crate::data::dataset::{Dataset, DerivativeSource};
 use crate::data::log::{split_owned, LoadOptions};
 use crate::deploy::blob::{BlobModel, HostModel};
-use crate::deploy::budget::budget_verdict;
-use crate::deploy::export::{export as export_blob, ExportReport};
+use crate::deploy::budget::{budget_verdict, Choices};
+use crate::deploy::convergence::TrainingRange;
+use crate::deploy::export::{export as export_blob, ExportCheck, ExportReport};
 use crate::deploy::inspect::inspect;
-use crate::deploy::integrator::IntegratorOverrides;
 use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
 use crate::evidence::charts::{charts, driven_charts, loss_chart, model_label, HistoryFile};
 use crate::evidence::check::{check_port, driven_baseline, reference_modes, CheckSettings};
@@ -683,12 +683,7 @@ fn export_target(
     force: bool,
 ) -> Result<Exported> {
     let (out, check) = (&prep.out, &prep.project.check);
-    let overrides = IntegratorOverrides {
-        integrator: t.integrator,
-        dt: t.dt,
-        substeps: t.substeps,
-        ..IntegratorOverrides::default()
-    };
+    let overrides = crate::project::validate::export_overrides(t);
     let blob_path = out.join(format!("{}.vvb", t.name));
     let meta_path = out.join(format!("{}.export.json", t.name));
     let target_json = serde_json::to_vec(&(t, &check.golden_steps, &check.golden_states))?;
@@ -704,8 +699,15 @@ fn export_target(
     let report = match cached {
         Some(r) => r,
         None => {
-            let (bytes, r) =
-                export_blob(&checked.src, t.weights, &overrides, check.horizon_steps, 8)?;
+            let range = TrainingRange::of_dataset(&prep.logs.train);
+            let export_check = ExportCheck {
+                steps: check.horizon_steps,
+                states: 8,
+                range: &range,
+                key: &|k: &str| k.to_string(),
+            };
+            let (bytes, r) = export_blob(&checked.src, t.weights, &overrides, &export_check)
+                .with_context(|| format!("[[export]] '{}'", t.name))?;
             crate::deploy::verdict::refuse_untrusted(&r, prep.port())
                 .with_context(|| format!("[[export]] '{}'", t.name))?;
             write_atomic(&blob_path, &bytes)?;
@@ -719,12 +721,14 @@ fn export_target(
     let (golden, golden_inputs) = write_golden(prep, checked, &t.name, &bytes)?;
     let measured: Option<serde_json::Value> =
         read_json(&out.join(format!("device/{}.json", t.name)));
+    let choices = Choices::of(&bytes, report.convergence.as_ref())?;
     let budget = budget_verdict(
         &prep.project.device,
         report.bytes,
         ins.runtime_ram_bytes,
         report.macs_per_step,
         ins.runtime.as_ref(),
+        &choices,
     );
     let device = DeviceBlob {
         name: t.name.clone(),
@@ -774,7 +778,7 @@ fn write_golden(
             Ok(())
         };
         write_atomic_with(&out.join(&file), |w| {
-            stream_csv(&dev, x0, steps, fill, true, watch, None, w).map(|_| ())
+            stream_csv(&dev, x0, steps, fill, true, watch, None, w)?.complete()
         })
         .with_context(|| format!("golden rollout {k} of {name}"))?;
         golden.push(file);
@@ -911,6 +915,8 @@ fn provenance(prep: &Prepared) -> Result<Provenance> {
             t.integrator = t.integrator.or(method);
             t.dt = t.dt.or(Some(integrator.dt));
             t.substeps = t.substeps.or(Some(integrator.substeps));
+            t.max_iterations = t.max_iterations.or(Some(integrator.max_iterations));
+            t.tolerance = t.tolerance.or(Some(integrator.tolerance));
             t
         })
         .collect();

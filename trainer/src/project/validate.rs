@@ -6,8 +6,8 @@
 //! anything is written.
 
 use anyhow::{bail, Result};
-use visviva_runtime::integrate::MAX_SUBSTEPS;
 
+use crate::deploy::integrator::IntegratorOverrides;
 use crate::learn::stage::{check_masses, check_time_step};
 use crate::project::file::{ExportTarget, Project};
 
@@ -75,15 +75,18 @@ fn check_export(k: usize, e: &ExportTarget) -> Result<()> {
             e.name
         );
     }
-    if let Some(dt) = e.dt {
-        check_time_step(dt, &format!("{table}: dt"))?;
+    export_overrides(e).check(|key| format!("{table}: {key}"))
+}
+
+/// The integrator settings an `[[export]]` table overrides.
+pub fn export_overrides(e: &ExportTarget) -> IntegratorOverrides {
+    IntegratorOverrides {
+        integrator: e.integrator,
+        dt: e.dt,
+        substeps: e.substeps,
+        max_iterations: e.max_iterations,
+        tolerance: e.tolerance,
     }
-    if let Some(s) = e.substeps {
-        if !(1..=MAX_SUBSTEPS).contains(&s) {
-            bail!("{table}: substeps = {s}: must be in 1..={MAX_SUBSTEPS}");
-        }
-    }
-    Ok(())
 }
 
 fn check_device(p: &Project) -> Result<()> {
@@ -123,6 +126,18 @@ mod tests {
                 "[[export]]\nname = \"a\"\n[[export]]\nname = \"b\"\nsubsteps = 0\n",
                 "'b' (table 2): substeps",
             ),
+            (
+                "[[export]]\nname = \"a\"\nmax_iterations = 0\n",
+                "'a' (table 1): max_iterations = 0: must be in 1..=1000",
+            ),
+            (
+                "[[export]]\nname = \"a\"\nmax_iterations = 1001\n",
+                "'a' (table 1): max_iterations = 1001",
+            ),
+            (
+                "[[export]]\nname = \"a\"\ntolerance = 0.0\n",
+                "'a' (table 1): tolerance = 0",
+            ),
             ("[[export]]\nname = \"model\"\n", "name = \"model\""),
             (
                 "[device]\ncontrol_period_s = -0.001\n",
@@ -142,6 +157,10 @@ mod tests {
             assert!(msg.contains(names), "{text}: {msg}");
         }
         // In range: accepted.
-        Project::parse("[[export]]\nname = \"a\"\ndt = 0.001\nsubsteps = 4\n").unwrap();
+        let p = Project::parse(
+            "[[export]]\nname = \"a\"\ndt = 0.001\nsubsteps = 4\nmax_iterations = 3\ntolerance = 1e-5\n",
+        )
+        .unwrap();
+        assert_eq!(p.exports[0].max_iterations, Some(3));
     }
 }

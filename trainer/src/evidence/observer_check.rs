@@ -350,7 +350,7 @@ pub fn observer_section(h: &mut Html<'_>, report: &RunReport) {
     for i in 0..o.velocity_rmse_observer.len() {
         let c = |k: &str| h.num(&format!("observer/{k}/{i}"));
         h.p(&format!(
-            "<tr><td>q{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td><span class=\"label\">q{}</span></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             i + 1,
             c("position_noise"),
             c("added_noise"),

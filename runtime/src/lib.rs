@@ -25,7 +25,8 @@
 //!   propagation through every method (no finite differences).
 //! * [`observer`]: the extended Kalman filter [`Observer`] (prediction = the
 //!   model's own step, Joseph-form covariance, position and velocity
-//!   measurements, missed samples) and `Model::momentum_from_velocity`
+//!   measurements, missed samples, process noise constant or growing with
+//!   the energy) and `Model::momentum_from_velocity`
 //!   (p = M v for separable models with a quadratic kinetic term).
 //! * [`monitor`]: health flags (windowed NIS against chi-square bounds,
 //!   out-of-envelope with caller-given bounds, energy-balance residual).

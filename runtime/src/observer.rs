@@ -5,8 +5,11 @@
 //! variance; a tick without a sample only predicts. The covariance update
 //! is Joseph's form, processed one scalar measurement at a time (equal to
 //! the batch update for independent noise) and symmetrized after every
-//! step, so it stays symmetric positive definite in f32. `S` bounds the
-//! state dimension 2n; no heap, no panic.
+//! step, so it stays symmetric positive definite in f32. The process noise
+//! may grow with the energy of the estimate (a model's error usually grows
+//! with the amplitude of the motion): Q_i(x) = Q0_i + Q1_i max(H(x) - H_ref,
+//! 0), H at the state the step starts from. `S` bounds the state dimension
+//! 2n; no heap, no panic.
 
 use core::fmt;
 
@@ -39,6 +42,9 @@ pub enum ObserverError {
     NotPositiveDefinite,
     /// The implicit step's Jacobian equation is singular.
     SingularJacobian,
+    /// The energy reference of the energy-scaled process noise is not
+    /// finite, or the energy at the estimate is not finite.
+    BadEnergy,
 }
 
 impl From<StepError> for ObserverError {
@@ -69,6 +75,9 @@ impl fmt::Display for ObserverError {
                 f.write_str("covariance lost positive definiteness or finiteness")
             }
             Self::SingularJacobian => f.write_str("the implicit step's Jacobian equation is singular"),
+            Self::BadEnergy => f.write_str(
+                "the energy reference or the energy at the estimate is not finite",
+            ),
         }
     }
 }
@@ -114,6 +123,9 @@ pub struct Observer<'m, H: ?Sized, const D: usize, const S: usize> {
     x: State<D>,
     cov: Mat<S>,
     process: [f32; S],
+    process_per_energy: [f32; S],
+    energy_reference: f32,
+    energy_scaled: bool,
     jac: Mat<S>,
 }
 
@@ -182,8 +194,50 @@ impl<'m, H: Tangent<D> + ?Sized, const D: usize, const S: usize> Observer<'m, H,
             x: x0,
             cov,
             process: q,
+            process_per_energy: [0.0; S],
+            energy_reference: 0.0,
+            energy_scaled: false,
             jac: linalg::identity(2 * n),
         })
+    }
+
+    /// Let the process noise grow with the energy: from now on each step
+    /// adds Q_i = process_i + per_energy_i max(H(x) - reference, 0) with
+    /// H(x) the model's energy at the state the step starts from
+    /// (`per_energy`: 2n variances per unit of energy, q then p, each finite
+    /// and >= 0; `reference`: finite, in the model's energy units). All
+    /// zeros switch it off. On an error nothing changes.
+    pub fn set_energy_scaled_process(
+        &mut self,
+        per_energy: &[f32],
+        reference: f32,
+    ) -> Result<(), ObserverError> {
+        let k = 2 * self.x.dof();
+        check_noise(per_energy, k, true)?;
+        if !reference.is_finite() {
+            return Err(ObserverError::BadEnergy);
+        }
+        let mut slope = [0.0f32; S];
+        for (i, s) in slope.iter_mut().enumerate().take(k) {
+            *s = per_energy[i];
+        }
+        self.energy_scaled = slope.iter().any(|v| *v > 0.0);
+        self.process_per_energy = slope;
+        self.energy_reference = reference;
+        Ok(())
+    }
+
+    /// max(H(x) - reference, 0) at the estimate (0 when the process noise
+    /// is not energy-scaled, without evaluating H).
+    fn energy_excess(&self) -> Result<f32, ObserverError> {
+        if !self.energy_scaled {
+            return Ok(0.0);
+        }
+        let e = self.model.energy(&self.x)? - self.energy_reference;
+        if !e.is_finite() {
+            return Err(ObserverError::BadEnergy);
+        }
+        Ok(if e > 0.0 { e } else { 0.0 })
     }
 
     /// The current estimate.
@@ -202,15 +256,17 @@ impl<'m, H: Tangent<D> + ?Sized, const D: usize, const S: usize> Observer<'m, H,
     }
 
     /// Predict one step with input `u` (`inputs()` values): x <- step(x),
-    /// P <- F P F^T + Q with F the step's exact Jacobian.
+    /// P <- F P F^T + Q with F the step's exact Jacobian and Q at the
+    /// state the step starts from.
     pub fn predict(&mut self, u: &[f32]) -> Result<(), ObserverError> {
         let k = 2 * self.x.dof();
+        let excess = self.energy_excess()?;
         let mut x = self.x;
         let f: Mat<S> = jacobian::step_with_jacobian(self.model, &self.integrator, &mut x, u)?;
         let fp = linalg::mul(&f, &self.cov, k);
         let mut cov = linalg::mul_transposed(&fp, &f, k);
         for (i, row) in cov.iter_mut().enumerate().take(k) {
-            row[i] += self.process[i];
+            row[i] += self.process[i] + self.process_per_energy[i] * excess;
         }
         linalg::symmetrize(&mut cov, k);
         if !cov

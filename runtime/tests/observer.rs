@@ -185,6 +185,51 @@ fn steady_state_covariance_solves_the_riccati_equation() {
     );
 }
 
+/// Energy-scaled process noise: one prediction from a known covariance
+/// must give F P F^T + Q(x) with F the written-out Verlet matrix and
+/// Q_i = Q0_i + Q1_i max(H(x) - H_ref, 0), H the oscillator's closed-form
+/// energy p^2 / (2 m) + k q^2 / 2 at the state the step starts from; below
+/// the reference the constant part alone. Bad settings are refused and
+/// change nothing.
+#[test]
+fn energy_scaled_process_noise_follows_the_closed_form_energy() {
+    let (m, k, h) = (0.8f32, 2.5f32, 0.05f32);
+    let osc = Oscillator { m, k };
+    let it = Integrator::new(Method::StormerVerlet, h);
+    let (q0, q1, reference) = ([1e-6f32, 4e-6], [2e-4f32, 5e-4], 0.01f32);
+    let f = verlet_matrix(m as f64, k as f64, h as f64);
+    for (q, p) in [(0.3f32, 0.2f32), (0.01, 0.0)] {
+        let x0 = State::<1>::new(&[q], &[p]).unwrap();
+        let mut obs: Observer<'_, Oscillator, 1, 2> =
+            Observer::new(&osc, it, x0, &[1e-2, 3e-2], &q0).unwrap();
+        assert_eq!(
+            obs.set_energy_scaled_process(&[1e-4, -1.0], reference),
+            Err(visviva_runtime::ObserverError::BadNoise { index: 1 })
+        );
+        assert_eq!(
+            obs.set_energy_scaled_process(&q1, f32::NAN),
+            Err(visviva_runtime::ObserverError::BadEnergy)
+        );
+        obs.set_energy_scaled_process(&q1, reference).unwrap();
+        obs.predict(&[]).unwrap();
+        let (qd, pd) = (q as f64, p as f64);
+        let energy = pd * pd / (2.0 * m as f64) + k as f64 * qd * qd / 2.0;
+        let excess = (energy - reference as f64).max(0.0);
+        let p0: M2 = [[1e-2, 0.0], [0.0, 3e-2]];
+        let mut want = mul(&mul(&f, &p0), &transpose(&f));
+        for i in 0..2 {
+            want[i][i] += q0[i] as f64 + q1[i] as f64 * excess;
+        }
+        let got = obs.covariance();
+        for i in 0..2 {
+            for j in 0..2 {
+                let rel = (got[i][j] as f64 - want[i][j]).abs() / want[i][i].max(want[j][j]);
+                assert!(rel < 1e-6, "P[{i}][{j}] = {} vs {}", got[i][j], want[i][j]);
+            }
+        }
+    }
+}
+
 /// A standard normal draw (Box-Muller, common practice).
 fn normal(rng: &mut XorShift64Star) -> f64 {
     let u1 = rng.uniform(1e-300, 1.0);

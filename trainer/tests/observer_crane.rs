@@ -164,11 +164,47 @@ fn run_report_section_compares_the_observer_on_the_validation_log() {
     let train = load_csv(&demo().join("data/train.csv"), &opts).unwrap();
     let val = load_csv(&demo().join("data/val.csv"), &opts).unwrap();
     let r = observer_report(&model, &path, &train, &val, 50, "1%").unwrap();
-    println!("{r:?}");
+    println!(
+        "{:?}",
+        visviva_trainer::evidence::observer_check::ObserverReport {
+            traces: None,
+            ..r.clone()
+        }
+    );
     assert!(dir.path().join("model.observer.toml").exists());
     // The demo log already carries the tuned noise: nothing is added.
     assert_eq!(r.added_noise, vec![0.0]);
     // Against the log's own (Savitzky-Golay) velocity the observer must
     // still beat central finite differences of the same positions.
     assert!(r.velocity_rmse_observer[0] < r.velocity_rmse_finite_differences[0]);
+    // The charts' series: the first validation trajectory after the
+    // settling samples, the three estimators' errors sample by sample, and
+    // the NIS window sums with bounds at 50 measurements per window, the
+    // chi-square quantiles 27.99 and 79.49 (0.5 % and 99.5 %, 50 degrees
+    // of freedom; tabulated values, from memory) within 0.5 %.
+    let t = r.traces.as_ref().unwrap();
+    assert_eq!(t.trajectory, val.trajectories[0].id);
+    let samples = val.trajectories[0].t.len() - 20;
+    assert_eq!(t.t.len(), samples);
+    assert!(t.velocity_error.iter().all(|e| e.len() == samples));
+    assert_eq!(t.nis.len(), val.trajectories[0].t.len() - 20 - 50 + 1);
+    for &(_, sum, low, high) in &t.nis {
+        assert!(sum.is_finite() && sum >= 0.0);
+        assert!((low - 27.99).abs() < 0.005 * 27.99, "lower bound {low}");
+        assert!((high - 79.49).abs() < 0.005 * 79.49, "upper bound {high}");
+    }
+    let units =
+        visviva_trainer::evidence::units::Units::resolve(None, Some("crane"), 1, 0).unwrap();
+    let charts = visviva_trainer::evidence::observer_check::observer_charts(
+        &r,
+        t,
+        "energy model (test)",
+        &units,
+    );
+    assert_eq!(charts.len(), 2);
+    for c in &charts {
+        assert!(c.title.contains("energy model (test)"), "{}", c.title);
+        assert!(c.to_svg().contains("<path"), "{}: no line drawn", c.title);
+    }
+    assert!(charts[0].y_label.contains("rad/s"), "{}", charts[0].y_label);
 }

@@ -13,9 +13,9 @@
 //! flagged by the upper bound, the alarm that says the machine or model
 //! changed, against the upper tail's share of the chosen two-sided rate, as
 //! the chi-square window test promises, Bar-Shalom, Li and Kirubarajan
-//! 2001; lower flags, "settings too pessimistic", are printed, not
-//! asserted) and on the changed logs (detection delay: first upper flag
-//! after the change, per trajectory).
+//! 2001; lower flags, "settings too pessimistic", against a bound of ours,
+//! see `LOWER_FLAG_BOUND`) and on the changed logs (detection delay: first
+//! upper flag after the change, per trajectory).
 
 use std::path::PathBuf;
 
@@ -26,6 +26,17 @@ use visviva_trainer::deploy::blob::HostModel;
 use visviva_trainer::deploy::observe::ObserverRun;
 use visviva_trainer::deploy::observer_settings::ObserverSettings;
 use visviva_trainer::deploy::observer_tuning::{monitor_counts, position_rows, tune};
+
+/// Lower flags allowed on a healthy held-out log, as a share of the full
+/// windows: 10 %, a requirement of ours. The chi-square test's nominal
+/// share is 0.5 % (the lower tail's half of 1 %), which holds for white
+/// innovations; a learned model's error is correlated over time, so the
+/// window sums spread wider than the chi-square and neither demo reaches
+/// the nominal share (measured: crane 3.3 %, flexure 6.0 %; with one
+/// constant process-noise level the flexure had 65 %). The bound keeps the
+/// lower flag meaningful, "settings too pessimistic" on at most one window
+/// in ten, and guards the energy-scaled process noise.
+const LOWER_FLAG_BOUND: f64 = 0.10;
 
 fn demo(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
@@ -82,13 +93,16 @@ fn scenario(
     let h = monitor_counts(&model, &t.settings, &[&load(name, healthy)]).unwrap();
     let alarms = h.nis_high;
     println!(
-        "{name}: tuned (scale {}, position noise {:?}); healthy held-out {healthy}: {} upper flags (false alarms) and {} lower flags in {} full windows ({:.2} % false alarms), {} rows out of the envelope",
+        "{name}: tuned (energy line a {:.3e}, b {:.3e}, scale {}, position noise {:?}); healthy held-out {healthy}: {} upper flags (false alarms) and {} lower flags in {} full windows ({:.2} % and {:.2} %), {} rows out of the envelope",
+        t.level_line.0,
+        t.level_line.1,
         t.scale,
         t.settings.position_noise,
         h.nis_high,
         h.nis_low,
         h.full_windows,
         100.0 * alarms as f64 / h.full_windows as f64,
+        100.0 * h.nis_low as f64 / h.full_windows as f64,
         h.out_of_envelope
     );
     let d = delays(&model, &t.settings, &load(name, changed), at);
@@ -110,6 +124,12 @@ fn scenario(
     assert!(
         (alarms as f64) <= 0.005 * h.full_windows as f64,
         "{name}: {alarms} false alarms in {} windows",
+        h.full_windows
+    );
+    assert!(
+        (h.nis_low as f64) <= LOWER_FLAG_BOUND * h.full_windows as f64,
+        "{name}: {} lower flags in {} windows",
+        h.nis_low,
         h.full_windows
     );
     assert!(
@@ -144,11 +164,11 @@ fn crane_rope_paid_out_is_detected_without_false_alarms() {
     ignore = "runs the observer over long logs: seconds in release, minutes in debug; run with --release"
 )]
 fn cracked_flexure_is_detected_without_false_alarms() {
-    // Limit: half a second (about 1.6 periods), a requirement of ours. One
-    // process-noise level for all amplitudes cannot follow a model error
-    // that grows with amplitude: tuned to stay quiet on the largest swings,
-    // the filter absorbs the crack on the smallest (0.7 mm, trajectory 3),
-    // which is missed; five of six must be flagged.
+    // Limit: half a second (about 1.6 periods), a requirement of ours.
+    // Every trajectory must be flagged, the smallest swing (0.7 mm,
+    // trajectory 3) too: the process noise grows with the energy, so the
+    // filter no longer absorbs the crack there (with one constant level,
+    // tuned for the largest swings, it did).
     scenario(
         "flexure-sensor",
         &["observe-commission.csv"],
@@ -156,6 +176,6 @@ fn cracked_flexure_is_detected_without_false_alarms() {
         "observe-crack.csv",
         1.0,
         0.5,
-        5,
+        6,
     );
 }

@@ -228,6 +228,31 @@ pub const CLAIMS: &[Claim] = &[
         backing: Backing::Test("trainer/tests/observer_faults.rs::crane_rope_paid_out_is_detected_without_false_alarms"),
     },
     Claim {
+        figure: "10 %",
+        context: "within 10 % of the full windows",
+        backing: Backing::Test("trainer/tests/observer_faults.rs::LOWER_FLAG_BOUND"),
+    },
+    Claim {
+        figure: "65 %",
+        context: "were 1303",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "0.5 %",
+        context: "their nominal 0.5 % share",
+        backing: Backing::Setting("the lower tail's half of the 1 % two-sided rate"),
+    },
+    Claim {
+        figure: "3.3 %",
+        context: "crane 3.3 %",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "6.0 %",
+        context: "flexure 6.0 %",
+        backing: Backing::OneRun,
+    },
+    Claim {
         figure: "2 %",
         context: "ropes are within",
         backing: Backing::Setting("the demo fleet's rope lengths, xtask/src/fleet_check.rs UNITS"),

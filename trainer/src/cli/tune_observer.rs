@@ -1,7 +1,8 @@
 //! `visviva tune-observer`: observer settings for a blob from its training
 //! and validation logs (measurement noise from the logs' noise estimate,
-//! process noise from the model's one-step prediction residuals, scaled so
-//! the NIS window test keeps its false-alarm rate on those logs).
+//! process noise shaped by the model's one-step prediction residuals,
+//! growing with the energy, scaled so the NIS window test keeps its
+//! false-alarm rate on those logs).
 
 use std::path::PathBuf;
 
@@ -64,9 +65,11 @@ pub fn run(args: Args) -> Result<()> {
     let t = tune(&model, &refs, alarm, args.window)?;
     t.settings.write(&out)?;
     eprintln!(
-        "wrote {}: position noise {:?}, process-noise scale {} on the residuals; on the tuning logs {} of {} full windows above the bound, {} below",
+        "wrote {}: position noise {:?}, process noise on the residuals' shape at level ({:.3e} + {:.3e} per unit of energy above the lowest) x {}; on the tuning logs {} of {} full windows above the bound, {} below",
         out.display(),
         t.settings.position_noise,
+        t.level_line.0,
+        t.level_line.1,
         t.scale,
         t.tuning_summary.nis_high,
         t.tuning_summary.full_windows,

@@ -5,7 +5,8 @@
 //! model steps as its time gap holds (inputs of the previous row held) and
 //! corrects with the row's measurements; a missed sample only predicts.
 //! The first `settle_updates` updates of a trajectory are kept out of the
-//! monitor while the filter settles from its initial spread.
+//! monitor while the filter settles from its initial spread. The process
+//! noise grows with the estimate's energy when the settings say so.
 //! [`observe_csv`] streams a log to the estimate CSV (atomic write).
 
 use std::io::Write;
@@ -165,7 +166,7 @@ impl<'m, 'b> ObserverRun<'m, 'b> {
             let _ = self.model.momentum_from_velocity(&v, &mut p);
         }
         let x0 = State::new(&q, &p).map_err(|e| anyhow!("initial state: {e}"))?;
-        let observer = Observer::new(
+        let mut observer = Observer::new(
             self.model,
             self.model.integrator(),
             x0,
@@ -173,6 +174,12 @@ impl<'m, 'b> ObserverRun<'m, 'b> {
             &f32s(&s.process_variance),
         )
         .map_err(|e| anyhow!("observer: {e}"))?;
+        if let (Some(slope), Some(reference)) = (&s.process_variance_per_energy, s.energy_reference)
+        {
+            observer
+                .set_energy_scaled_process(&f32s(slope), reference as f32)
+                .map_err(|e| anyhow!("observer: {e}"))?;
+        }
         Ok(Track {
             id: row.traj.clone(),
             t: row.t,

@@ -1,5 +1,5 @@
 //! Observer settings tuned from the training and validation logs (q and p
-//! columns), in three named steps:
+//! columns), in four named steps:
 //! 1. measurement noise per coordinate from the logs' noise estimate, by
 //!    fourth differences: for white noise of standard deviation s,
 //!    x[k+2] - 4x[k+1] + 6x[k] - 4x[k-1] + x[k-2] has variance 70 s^2
@@ -9,11 +9,21 @@
 //!    r = x[k+1] - step(x[k]) of the model itself: their variance minus the
 //!    part the logged noise explains (R + F R F^T, F the step's exact
 //!    Jacobian), floored at a small fraction of the residual variance;
-//! 3. one scale on that shape so the NIS window test, run on the same logs
-//!    fed with positions only, flags its upper bound on no more windows than
-//!    the upper tail's share (half) of the chosen false-alarm rate. The
-//!    scale accounts for model error that is correlated over time (which a
-//!    white-noise model underrates); held-out logs are the check.
+//! 3. how the process noise grows with the energy (a model's error grows
+//!    with the amplitude of the motion, so one constant level is too
+//!    generous on small swings, where the NIS test then flags low and a
+//!    fault is absorbed): each tuning trajectory's own level on that shape
+//!    (the least at which its mean NIS per measurement is at most 1), then
+//!    the line level(e) = a + b e over the energy e above the lowest learned
+//!    energy on the logs that covers every trajectory's level with the
+//!    least excess (`fit_level_line`); Q(x) = shape (a + b e(x)), in the
+//!    settings as `process_variance` (constant part) and
+//!    `process_variance_per_energy` with `energy_reference`;
+//! 4. one scale on that (2^(k/4)) so the NIS window test, run on the same
+//!    logs fed with positions only, flags its upper bound on no more
+//!    windows than the upper tail's share (half) of the chosen false-alarm
+//!    rate. The scale accounts for model error that is correlated over time
+//!    (which a white-noise model underrates); held-out logs are the check.
 
 use anyhow::{anyhow, bail, Result};
 use visviva_runtime::jacobian::step_with_jacobian;
@@ -42,7 +52,9 @@ pub struct Tuning {
     pub noise: Vec<f64>,
     /// Standard deviation of the one-step residuals per state coordinate.
     pub residual_std: Vec<f64>,
-    /// The scale applied to the residual-based process noise.
+    /// The energy line (a, b) of step 3: level a + b e on the shape.
+    pub level_line: (f64, f64),
+    /// The scale applied on top of it (step 4).
     pub scale: f64,
     /// The monitor on the tuning logs at that scale.
     pub tuning_summary: ObserveSummary,
@@ -201,6 +213,8 @@ fn base_settings(
         position_noise: noise[..n].iter().map(|v| floor(*v)).collect(),
         velocity_noise: vec![1.0; n],
         process_variance: process,
+        process_variance_per_energy: None,
+        energy_reference: None,
         initial_momentum_std: sq
             .iter()
             .map(|s| floor((s / count.max(1) as f64).sqrt()))
@@ -212,6 +226,135 @@ fn base_settings(
         envelope_high: high,
         energy_threshold: None,
     }
+}
+
+/// The lowest learned energy over the logged states of `logs` (where the
+/// energy-scaled process noise starts).
+fn lowest_energy(model: &HostModel<'_>, logs: &[&Dataset]) -> Result<f64> {
+    let mut low = f64::INFINITY;
+    for t in logs.iter().flat_map(|d| &d.trajectories) {
+        for j in 0..t.t.len() {
+            low = low.min(energy_at(model, t, j)?);
+        }
+    }
+    if !low.is_finite() {
+        bail!("the tuning logs have no states with a finite learned energy");
+    }
+    Ok(low)
+}
+
+/// The learned energy at sample `j` of `t`.
+fn energy_at(model: &HostModel<'_>, t: &Trajectory, j: usize) -> Result<f64> {
+    let row: Vec<f32> = t.x.row(j).iter().map(|v| *v as f32).collect();
+    let x = state_of(&row)?;
+    let e = visviva_runtime::Hamiltonian::energy(model, &x)
+        .map_err(|e| anyhow!("trajectory '{}', sample {j}: energy: {e}", t.id))?;
+    Ok(e as f64)
+}
+
+/// The mean NIS per measurement of `t` fed with positions only, over the
+/// updates after the settling ones.
+fn mean_nis(model: &HostModel<'_>, settings: &ObserverSettings, t: &Trajectory) -> Result<f64> {
+    let mut run = ObserverRun::new(model, settings.clone())?;
+    let (mut sum, mut count) = (0.0f64, 0u64);
+    for (j, row) in position_rows(t, model.dof()).enumerate() {
+        let e = run.push(&row)?;
+        if j >= settings.settle_updates {
+            sum += e.nis as f64;
+            count += u64::from(e.count);
+        }
+    }
+    Ok(if count == 0 { 1.0 } else { sum / count as f64 })
+}
+
+/// Half-power-of-two exponents searched for a trajectory's own level.
+const LEVEL_RANGE: (i32, i32) = (-40, 80);
+
+/// A trajectory's own process-noise level: the smallest scale 2^(k/2) on
+/// `shape` (constant noise) at which its mean NIS per measurement is at
+/// most 1, the value of a consistent filter (Bar-Shalom, Li and
+/// Kirubarajan 2001). `None` when no scale in the range reaches it or the
+/// smallest already does (the level is not measurable there).
+fn trajectory_level(
+    model: &HostModel<'_>,
+    base: &ObserverSettings,
+    shape: &[f64],
+    t: &Trajectory,
+) -> Result<Option<f64>> {
+    let at = |k: i32| -> Result<bool> {
+        let mut s = base.clone();
+        let scale = 2f64.powf(k as f64 / 2.0);
+        s.process_variance = shape.iter().map(|v| v * scale).collect();
+        Ok(mean_nis(model, &s, t)? <= 1.0)
+    };
+    let (mut lo, mut hi) = LEVEL_RANGE;
+    if !at(hi)? || at(lo)? {
+        return Ok(None);
+    }
+    while hi - lo > 1 {
+        let mid = (lo + hi) / 2;
+        if at(mid)? {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    Ok(Some(2f64.powf(hi as f64 / 2.0)))
+}
+
+/// The line level(e) = a + b e (a, b >= 0) at or above every trajectory's
+/// own (energy above the reference, level) pair with the least summed
+/// relative excess sum_j (a + b e_j) / s_j: each trajectory gets at least
+/// the process noise it needs, none more than the line must give. A linear
+/// program in (a, b), so its optimum lies on a line through two of the
+/// points or through one point with a or b zero; all of them are tried.
+pub fn fit_level_line(points: &[(f64, f64)]) -> (f64, f64) {
+    let cost = |a: f64, b: f64| -> Option<f64> {
+        let covers =
+            a >= 0.0 && b >= 0.0 && points.iter().all(|&(e, s)| a + b * e >= s * (1.0 - 1e-12));
+        covers.then(|| points.iter().map(|&(e, s)| (a + b * e) / s).sum())
+    };
+    let mut candidates = Vec::new();
+    for (j, &(ej, sj)) in points.iter().enumerate() {
+        candidates.push((sj, 0.0));
+        if ej > 0.0 {
+            candidates.push((0.0, sj / ej));
+        }
+        for &(ek, sk) in &points[j + 1..] {
+            if ek != ej {
+                let b = (sk - sj) / (ek - ej);
+                candidates.push((sj - b * ej, b));
+            }
+        }
+    }
+    candidates
+        .into_iter()
+        .filter_map(|(a, b)| cost(a, b).map(|c| (c, a, b)))
+        .min_by(|x, y| x.0.total_cmp(&y.0))
+        .map_or((1.0, 0.0), |(_, a, b)| (a, b))
+}
+
+/// Each tuning trajectory's mean energy above `reference` and its own
+/// level (trajectories whose level is not measurable are left out).
+fn trajectory_levels(
+    model: &HostModel<'_>,
+    base: &ObserverSettings,
+    shape: &[f64],
+    logs: &[&Dataset],
+    reference: f64,
+) -> Result<Vec<(f64, f64)>> {
+    let mut out = Vec::new();
+    for t in logs.iter().flat_map(|d| &d.trajectories) {
+        let Some(level) = trajectory_level(model, base, shape, t)? else {
+            continue;
+        };
+        let mut e = 0.0;
+        for j in 0..t.t.len() {
+            e += (energy_at(model, t, j)? - reference).max(0.0);
+        }
+        out.push((e / t.t.len().max(1) as f64, level));
+    }
+    Ok(out)
 }
 
 /// Tune the observer of `model` from `logs` (training and validation, with
@@ -236,22 +379,29 @@ pub fn tune(
         .map(|(v, e)| (v - e).max(1e-3 * v).max(1e-30) / k as f64)
         .collect();
     let base = base_settings(logs, n, &noise, shape.clone(), window, alarm);
+    let reference = lowest_energy(model, logs)?;
+    let levels = trajectory_levels(model, &base, &shape, logs, reference)?;
+    let (a, b) = fit_level_line(&levels);
     let target = 0.5 * false_alarm_fraction(alarm);
     let scaled = |s: f64| {
         let mut settings = base.clone();
-        settings.process_variance = shape.iter().map(|v| v * s).collect();
+        settings.process_variance = shape.iter().map(|v| v * a * s).collect();
+        if b > 0.0 {
+            settings.process_variance_per_energy = Some(shape.iter().map(|v| v * b * s).collect());
+            settings.energy_reference = Some(reference);
+        }
         settings
     };
-    // Smallest power-of-two scale in 2^-10 .. 2^40 meeting the target, by
+    // Smallest scale 2^(e/4) in 2^-10 .. 2^40 meeting the target, by
     // bisection on the exponent (more process noise, fewer upper flags).
     let meets = |e: i32| -> Result<(f64, ObserverSettings, ObserveSummary, bool)> {
-        let s = 2f64.powi(e);
+        let s = 2f64.powf(e as f64 / 4.0);
         let settings = scaled(s);
         let counts = monitor_counts(model, &settings, logs)?;
         let ok = (counts.nis_high as f64) <= target * counts.full_windows as f64;
         Ok((s, settings, counts, ok))
     };
-    let (mut lo, mut hi) = (-10i32, 40i32);
+    let (mut lo, mut hi) = (-40i32, 160i32);
     let mut best = meets(hi)?;
     let chosen = if !best.3 {
         None
@@ -280,7 +430,36 @@ pub fn tune(
         settings,
         residual_std: var.iter().map(|v| v.sqrt()).collect(),
         noise,
+        level_line: (a, b),
         scale,
         tuning_summary,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::fit_level_line;
+
+    #[test]
+    fn level_line_covers_every_point_with_the_least_relative_excess() {
+        // Points on one line: that line (a, b) = (1, 2), no excess at all.
+        let (a, b) = fit_level_line(&[(0.0, 1.0), (1.0, 3.0), (2.0, 5.0)]);
+        assert!(
+            (a - 1.0).abs() < 1e-12 && (b - 2.0).abs() < 1e-12,
+            "{a} {b}"
+        );
+        // Worked by hand: of the lines at or above (0, 1), (1, 1), (2, 4),
+        // the one through (0, 1) and (2, 4) (a = 1, b = 1.5) costs
+        // 1/1 + 2.5/1 + 4/4 = 4.5; the flat line a = 4 costs 4 + 4 + 1 = 9,
+        // the others miss a point.
+        let (a, b) = fit_level_line(&[(0.0, 1.0), (1.0, 1.0), (2.0, 4.0)]);
+        assert!(
+            (a - 1.0).abs() < 1e-12 && (b - 1.5).abs() < 1e-12,
+            "{a} {b}"
+        );
+        // Levels falling with energy: the flat line at the largest level.
+        assert_eq!(fit_level_line(&[(0.0, 3.0), (1.0, 1.0)]), (3.0, 0.0));
+        // Nothing measured: the plain constant level.
+        assert_eq!(fit_level_line(&[]), (1.0, 0.0));
+    }
 }

@@ -16,7 +16,8 @@ pub struct HistoryFile {
     pub val: Vec<f64>,
 }
 
-fn series(label: &str, points: Vec<(f64, f64)>, k: usize, dashed: bool, dots: bool) -> Series {
+/// A series in palette colour `k`.
+pub fn series(label: &str, points: Vec<(f64, f64)>, k: usize, dashed: bool, dots: bool) -> Series {
     Series {
         label: label.into(),
         points,

@@ -7,7 +7,10 @@
 //! per coordinate of the observer, of central finite differences and of the
 //! constant-velocity Kalman filter (`cv_filter`, its intensity the best of a
 //! grid against the training log's velocities), against the log's own dq/dt
-//! (given, or estimated by Savitzky-Golay) and q; plus the monitor's flags.
+//! (given, or estimated by Savitzky-Golay) and q; plus the monitor's flags,
+//! and two charts of the first validation trajectory: the velocity error
+//! of the three estimators over time, and the windowed NIS sum between its
+//! chi-square bounds.
 
 use std::path::Path;
 
@@ -16,15 +19,18 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 use serde::Serialize;
-use visviva_runtime::monitor::FalseAlarm;
+use visviva_runtime::monitor::{chi_square_quantile, FalseAlarm};
 
 use crate::data::dataset::{Dataset, DerivativeSource};
 use crate::deploy::blob::HostModel;
 use crate::deploy::observe::ObserverRun;
 use crate::deploy::observer_settings::{companion_path, parse_false_alarm};
 use crate::deploy::observer_tuning::{noise_estimate, position_rows, tune};
+use crate::evidence::charts::series;
 use crate::evidence::cv_filter::{central_differences, cv_velocities};
 use crate::evidence::report::{esc, Html, RunReport};
+use crate::evidence::svgplot::Chart;
+use crate::evidence::units::Units;
 
 /// Seed of the noise added to the validation positions.
 const NOISE_SEED: u64 = 0x0b5e;
@@ -46,7 +52,11 @@ pub struct ObserverReport {
     pub position_noise: Vec<f64>,
     /// Noise added to the validation positions (standard deviation).
     pub added_noise: Vec<f64>,
-    /// Scale on the residual-based process noise.
+    /// The process noise's level on the residual shape: constant part a.
+    pub process_level: f64,
+    /// Its growth per unit of energy above the reference, b.
+    pub process_level_per_energy: f64,
+    /// Scale on the level a + b (H - H_ref).
     pub process_scale: f64,
     /// What the velocities are compared against.
     pub velocity_reference: String,
@@ -68,6 +78,23 @@ pub struct ObserverReport {
     pub upper_flags: usize,
     /// Lower flags there.
     pub lower_flags: usize,
+    /// What the charts show (not in `report.json`: the page draws it).
+    #[serde(skip)]
+    pub traces: Option<ObserverTraces>,
+}
+
+/// Per-sample series of the first validation trajectory for the charts.
+#[derive(Debug, Clone, Default)]
+pub struct ObserverTraces {
+    /// The trajectory's id.
+    pub trajectory: String,
+    /// Sample times (s), from the first sample after the settling ones.
+    pub t: Vec<f64>,
+    /// Velocity error of v1 (estimate minus reference): observer, central
+    /// finite differences, constant-velocity filter.
+    pub velocity_error: [Vec<f64>; 3],
+    /// (t, NIS window sum, lower bound, upper bound) at every full window.
+    pub nis: Vec<(f64, f64, f64, f64)>,
 }
 
 fn rms(v: &[f64]) -> f64 {
@@ -161,12 +188,27 @@ pub fn observer_report(
         vec![Vec::new(); n],
     );
     let (mut full, mut upper, mut lower) = (0, 0, 0);
-    for (tn, tc) in nv.trajectories.iter().zip(&val.trajectories) {
+    let mut traces = ObserverTraces::default();
+    let z = alarm.normal_quantile();
+    for (k, (tn, tc)) in nv.trajectories.iter().zip(&val.trajectories).enumerate() {
         for (j, row) in position_rows(tn, n).enumerate() {
             let e = run.push(&row)?;
             full += usize::from(e.window_full);
             upper += usize::from(e.health.nis_high);
             lower += usize::from(e.health.nis_low);
+            if k == 0 && e.window_full {
+                let h = &e.health;
+                traces.nis.push((
+                    row.t,
+                    h.nis_sum as f64,
+                    chi_square_quantile(h.dof, -z) as f64,
+                    chi_square_quantile(h.dof, z) as f64,
+                ));
+            }
+            if k == 0 && j >= SKIP {
+                traces.t.push(row.t);
+                traces.velocity_error[0].push(e.v[0] as f64 - tc.dx[[j, 0]]);
+            }
             if j >= SKIP {
                 for i in 0..n {
                     ev[i].push(e.v[i] as f64 - tc.dx[[j, i]]);
@@ -177,6 +219,18 @@ pub fn observer_report(
         }
     }
     let dt = model.integrator().dt as f64;
+    if let (Some(tn), Some(tc)) = (nv.trajectories.first(), val.trajectories.first()) {
+        traces.trajectory = tn.id.clone();
+        let z = tn.x.column(0).to_vec();
+        let s = cv_intensity(train, sigma[0], 0, dt);
+        let estimates = [
+            central_differences(&z, dt),
+            cv_velocities(&z, dt, sigma[0] * sigma[0], s),
+        ];
+        for (slot, v) in traces.velocity_error[1..].iter_mut().zip(estimates) {
+            *slot = (SKIP..v.len()).map(|j| v[j] - tc.dx[[j, 0]]).collect();
+        }
+    }
     let fd = (0..n)
         .map(|i| {
             rms(&velocity_errors(&nv, val, i, &|z| {
@@ -201,6 +255,8 @@ pub fn observer_report(
         false_alarm: false_alarm.to_string(),
         position_noise: sigma.clone(),
         added_noise: top_up,
+        process_level: t.level_line.0,
+        process_level_per_energy: t.level_line.1,
         process_scale: t.scale,
         velocity_reference: match val.derivatives {
             DerivativeSource::Given => "the log's dq/dt columns".into(),
@@ -214,7 +270,63 @@ pub fn observer_report(
         full_windows: full,
         upper_flags: upper,
         lower_flags: lower,
+        traces: Some(traces),
     })
+}
+
+/// The observer's charts for the model named `label` (`units`: the data's):
+/// |v1 error| of the three estimators over time (log scale) and the NIS
+/// window sum between its bounds.
+pub fn observer_charts(
+    o: &ObserverReport,
+    t: &ObserverTraces,
+    label: &str,
+    units: &Units,
+) -> Vec<Chart> {
+    let names = [
+        "observer",
+        "central finite differences",
+        "constant-velocity filter",
+    ];
+    let error = t
+        .velocity_error
+        .iter()
+        .zip(names)
+        .enumerate()
+        .map(|(k, (e, name))| {
+            let pts = t.t.iter().zip(e).map(|(t, e)| (*t, e.abs())).collect();
+            series(name, pts, k + 1, k > 0, false)
+        })
+        .collect();
+    let column =
+        |k: usize| -> Vec<(f64, f64)> { t.nis.iter().map(|r| (r.0, [r.1, r.2, r.3][k])).collect() };
+    let nis = vec![
+        series("NIS summed over the window", column(0), 1, false, false),
+        series("upper bound", column(2), 2, true, false),
+        series("lower bound", column(1), 3, true, false),
+    ];
+    vec![
+        Chart {
+            title: format!(
+                "Velocity error from q1 alone, validation trajectory {}: observer on the {label}, finite differences, CV filter",
+                t.trajectory
+            ),
+            x_label: format!("time ({})", units.time),
+            y_label: format!("|v1 estimate - reference| ({}/{})", units.state(0), units.time),
+            log_y: true,
+            series: error,
+        },
+        Chart {
+            title: format!(
+                "NIS over {} updates and its {} bounds, validation trajectory {}: observer on the {label}",
+                o.window, o.false_alarm, t.trajectory
+            ),
+            x_label: format!("time ({})", units.time),
+            y_label: "NIS window sum (-)".into(),
+            log_y: false,
+            series: nis,
+        },
+    ]
 }
 
 /// The state observer on the validation log fed with noisy positions only
@@ -225,10 +337,12 @@ pub fn observer_section(h: &mut Html<'_>, report: &RunReport) {
     };
     h.p("<h2 id=\"observer\">State observer</h2>");
     h.p(&format!(
-        "<p>Settings tuned from the training and validation logs and written to <code>out/{}</code> (window {} updates, false-alarm rate {}, process-noise scale {}). The validation log is fed with its positions only, topped up with Gaussian noise to the tuned noise level; velocities are compared with {}, positions with the log's q (a noisy log's own noise is in that reference); the first 20 samples of each trajectory are left out. Baselines: central finite differences and the constant-velocity Kalman filter (Bar-Shalom, Li and Kirubarajan, 2001; its intensity the best of a grid on the training log).</p>",
+        "<p>Settings tuned from the training and validation logs and written to <code>out/{}</code> (window {} updates, false-alarm rate {}; process noise on the one-step residuals' shape: level a + b (H - H_ref) with a = {} and b = {} per unit of learned energy above its lowest value on the logs, times the scale {}). The validation log is fed with its positions only, topped up with Gaussian noise to the tuned noise level; velocities are compared with {}, positions with the log's q (a noisy log's own noise is in that reference); the first 20 samples of each trajectory are left out. Baselines: central finite differences and the constant-velocity Kalman filter (Bar-Shalom, Li and Kirubarajan, 2001; its intensity the best of a grid on the training log).</p>",
         esc(&o.settings_file),
         h.num("observer/window"),
         esc(&o.false_alarm),
+        h.num("observer/process_level"),
+        h.num("observer/process_level_per_energy"),
         h.num("observer/process_scale"),
         esc(&o.velocity_reference)
     ));
@@ -236,7 +350,7 @@ pub fn observer_section(h: &mut Html<'_>, report: &RunReport) {
     for i in 0..o.velocity_rmse_observer.len() {
         let c = |k: &str| h.num(&format!("observer/{k}/{i}"));
         h.p(&format!(
-            "<tr><td>q{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td><span class=\"label\">q{}</span></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             i + 1,
             c("position_noise"),
             c("added_noise"),
@@ -253,4 +367,14 @@ pub fn observer_section(h: &mut Html<'_>, report: &RunReport) {
         h.num("observer/lower_flags"),
         h.num("observer/full_windows")
     ));
+    if let Some(t) = &o.traces {
+        let label = format!("energy model ({})", report.architecture);
+        for c in observer_charts(o, t, &label, &report.data.units) {
+            h.p(&format!(
+                "<figure aria-label=\"{}\">{}</figure>",
+                esc(&c.title),
+                c.to_svg()
+            ));
+        }
+    }
 }

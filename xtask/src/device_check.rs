@@ -576,6 +576,22 @@ fn print_failures(checks: &[(bool, &str)]) {
     }
 }
 
+/// The observer cases alone (`cargo xtask device --observer`): Ok(true)
+/// when every estimate matched.
+pub fn run_observer_only() -> Result<bool> {
+    tools::ensure_all()?;
+    let root = crate::workspace_root();
+    let work = root.join("firmware-example/target/visviva-device");
+    std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
+    let host = VisvivaCommand::build(&root, &work)?;
+    let (observed, ran) = crate::observer_device::run(&root, &work, host.exe());
+    crate::observer_device::print_report(&observed);
+    for r in &observed {
+        println!("{}", crate::observer_device::line(r));
+    }
+    Ok(ran && observed.iter().all(|r| r.same == r.total && r.total > 0))
+}
+
 /// Run the whole device check. Ok(true) when every state matched and every
 /// refusal and fault drill behaved.
 pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {

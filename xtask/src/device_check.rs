@@ -586,9 +586,6 @@ pub fn run_observer_only() -> Result<bool> {
     let host = VisvivaCommand::build(&root, &work)?;
     let (observed, ran) = crate::observer_device::run(&root, &work, host.exe());
     crate::observer_device::print_report(&observed);
-    for r in &observed {
-        println!("{}", crate::observer_device::line(r));
-    }
     Ok(ran && observed.iter().all(|r| r.same == r.total && r.total > 0))
 }
 

@@ -10,6 +10,10 @@ use crate::{faults, run_plan, FirmwareModel, MAX_DOF};
 
 /// Run the embedded plan on `model`; logs the plan, every state and the
 /// timing line, and exits non-zero on a refused plan or a failed step.
+/// Inlined into `main`, where the loop lived before: the measured stack and
+/// instructions per step stay as they were (as a call they moved by about
+/// 180 B and 50 instructions per step).
+#[inline(always)]
 pub fn run(model: &FirmwareModel<'_>, clock: &InstrClock) {
     let dof = model.dof();
     let plan = match run_plan::RunPlan::parse(run_plan::EMBEDDED_PLAN) {

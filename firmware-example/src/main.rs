@@ -1,7 +1,10 @@
 //! Example Cortex-M4F firmware for Visviva: parses the one model blob placed in
 //! the `.vv_model` flash region, steps it from fixed initial states, and
 //! logs every state's exact `f32` bit patterns over defmt (semihosting), plus
-//! instruction counts, FPU status and the stack high-water mark.
+//! instruction counts, FPU status and the stack high-water mark. Built with
+//! the `observe` feature it runs the runtime's observer and health monitor
+//! over an embedded measurement sequence instead (`observe.rs`), logging
+//! every estimate's bits.
 //!
 //! Built and checked against the host by `cargo xtask device`; see README.md
 //! for running it on a real board.
@@ -11,12 +14,19 @@
 mod faults;
 mod instr_clock;
 mod model_region;
+#[cfg(feature = "observe")]
+mod observe;
+#[cfg(feature = "observe")]
+mod observe_plan;
+#[cfg(not(feature = "observe"))]
+mod rollouts;
+#[cfg(not(feature = "observe"))]
 mod run_plan;
 mod stack_watermark;
 
 use cortex_m_rt::entry;
 use defmt_semihosting as _;
-use visviva_runtime::{BlobError, Model, State};
+use visviva_runtime::{BlobError, Model};
 
 /// Most degrees of freedom this firmware accepts; a blob with more is refused.
 pub const MAX_DOF: usize = 4;
@@ -70,68 +80,10 @@ fn main() -> ! {
         blob.len() as u32
     );
 
-    let plan = match run_plan::RunPlan::parse(run_plan::EMBEDDED_PLAN) {
-        Ok(p) => p,
-        Err(e) => {
-            defmt::error!("visviva-fw error: run plan refused: {}", e);
-            faults::exit_failure()
-        }
-    };
-    if plan.dof() != dof {
-        defmt::error!(
-            "visviva-fw error: run plan has {=u32} dof, model {=u32}",
-            plan.dof() as u32,
-            dof as u32
-        );
-        faults::exit_failure();
-    }
-    defmt::println!(
-        "visviva-fw plan states={=u32} steps={=u32}",
-        plan.states() as u32,
-        plan.steps()
-    );
-
-    let mut step_ticks: u64 = 0;
-    let mut bytes = [0u8; 8 * MAX_DOF];
-    for s in 0..plan.states() {
-        let mut q = [0.0f32; MAX_DOF];
-        let mut p = [0.0f32; MAX_DOF];
-        plan.initial_state(s, &mut q[..dof], &mut p[..dof]);
-        let mut x = match State::<MAX_DOF>::new(&q[..dof], &p[..dof]) {
-            Ok(x) => x,
-            Err(e) => {
-                defmt::error!("visviva-fw error: initial state {=u32}: {}", s as u32, e);
-                faults::exit_failure()
-            }
-        };
-        log_state(s as u32, 0, &x, &mut bytes);
-        let mut u = [0.0f32; run_plan::MAX_INPUTS];
-        let m = plan.inputs();
-        for k in 1..=plan.steps() {
-            plan.input(k, &mut u);
-            let t0 = clock.now();
-            let r = model.step_driven(&mut x, &u[..m]);
-            let t1 = clock.now();
-            step_ticks += u64::from(clock.elapsed(t0, t1));
-            if let Err(e) = r {
-                defmt::error!(
-                    "visviva-fw error: step {=u32} of state {=u32} failed: {} ({})",
-                    k,
-                    s as u32,
-                    e,
-                    defmt::Display2Format(&e)
-                );
-                faults::exit_failure();
-            }
-            log_state(s as u32, k, &x, &mut bytes);
-        }
-    }
-    let total_steps = plan.steps() * plan.states() as u32;
-    defmt::println!(
-        "visviva-fw timing steps={=u32} ticks={=u64}",
-        total_steps,
-        step_ticks
-    );
+    #[cfg(not(feature = "observe"))]
+    rollouts::run(&model, &clock);
+    #[cfg(feature = "observe")]
+    observe::run(&model, &clock);
 
     let stack = stack_watermark::measure();
     defmt::println!(
@@ -151,15 +103,4 @@ fn refuse_blob(e: BlobError) -> ! {
         defmt::Display2Format(&e)
     );
     faults::exit_failure()
-}
-
-/// Log one state as `x <state> <step> [bytes]`: the exact bit patterns of
-/// q1..qn then p1..pn, each `f32` as 4 little-endian bytes.
-fn log_state(s: u32, k: u32, x: &State<MAX_DOF>, bytes: &mut [u8; 8 * MAX_DOF]) {
-    let n = x.dof();
-    for i in 0..n {
-        bytes[4 * i..4 * i + 4].copy_from_slice(&x.q[i].to_le_bytes());
-        bytes[4 * (n + i)..4 * (n + i) + 4].copy_from_slice(&x.p[i].to_le_bytes());
-    }
-    defmt::println!("x {=u32} {=u32} {=[u8]}", s, k, &bytes[..8 * n]);
 }

@@ -7,10 +7,17 @@
 //! runtime's own footprint (one `footprint <config>: ...` line per
 //! configuration, see `footprint.rs`). By default it also runs the core
 //! blobs (`c_cores::CASES`) on the Rust firmware and the C firmware on five
-//! cores (`c_cores`), then prints the resource table per target, one
+//! cores (`c_cores`) and the observer cases (`observer_device`: the
+//! runtime's observer and health monitor over a recorded measurement
+//! sequence, every estimate compared bit for bit with `visviva observe`),
+//! then prints the resource table per target, one
+//! `device observer <name>: ...` line per observer case, one
 //! `target <name>: M of N states bit-identical` line per target and ends
 //! with exactly one line
-//! `device check: <M> of <N> states bit-identical on <K> targets`.
+//! `device check: <M> of <N> states bit-identical on <K> targets`, where
+//! the states are every rollout state logged by any target plus every
+//! observer estimate (one per update: q, p, v, NIS, window sum and count,
+//! energy residual and flags), counted on the Rust firmware's target.
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
@@ -183,7 +190,8 @@ fn compare(name: &str, host: &Trajectories, device: &DeviceLog) -> usize {
     same
 }
 
-fn instructions_from_ticks(ticks: f64) -> f64 {
+/// Emulated instructions for SysTick `ticks` under `-icount`.
+pub fn instructions_from_ticks(ticks: f64) -> f64 {
     ticks * SYSTICK_NS / f64::from(1u32 << ICOUNT_SHIFT)
 }
 
@@ -568,6 +576,19 @@ fn print_failures(checks: &[(bool, &str)]) {
     }
 }
 
+/// The observer cases alone (`cargo xtask device --observer`): Ok(true)
+/// when every estimate matched.
+pub fn run_observer_only() -> Result<bool> {
+    tools::ensure_all()?;
+    let root = crate::workspace_root();
+    let work = root.join("firmware-example/target/visviva-device");
+    std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
+    let host = VisvivaCommand::build(&root, &work)?;
+    let (observed, ran) = crate::observer_device::run(&root, &work, host.exe());
+    crate::observer_device::print_report(&observed);
+    Ok(ran && observed.iter().all(|r| r.same == r.total && r.total > 0))
+}
+
 /// Run the whole device check. Ok(true) when every state matched and every
 /// refusal and fault drill behaved.
 pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
@@ -579,7 +600,8 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     let host = VisvivaCommand::build(&root, &work)?;
     println!("device check: host reference = {}", host.describe());
 
-    let (mut cases, core_cases) = if blobs.is_empty() {
+    let default_run = blobs.is_empty();
+    let (mut cases, core_cases) = if default_run {
         let exported = exported_demo_blobs(&root);
         for b in &exported {
             println!("device check: found exported demo blob {}", b.display());
@@ -625,7 +647,18 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         None => false,
     };
 
+    let (observed, observer_ran) = if default_run {
+        crate::observer_device::run(&root, &work, host.exe())
+    } else {
+        (Vec::new(), true)
+    };
+    let observer_same: usize = observed.iter().map(|r| r.same).sum();
+    let observer_total: usize = observed.iter().map(|r| r.total).sum();
+
     print_report(&rows);
+    if !observed.is_empty() {
+        crate::observer_device::print_report(&observed);
+    }
     print_instructions_per_mac(&rows);
     for (case, row) in cases.iter().zip(&rows) {
         record_measurement(case, row);
@@ -637,7 +670,14 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         false
     });
     let (c_results, c_ok) = c_targets(&root, &work, &core_cases);
-    let mut targets = vec![rust_target(matched, total, &rows, &core_cases)];
+    // The Rust firmware's count holds every rollout state and every
+    // observer estimate.
+    let mut targets = vec![rust_target(
+        matched + observer_same,
+        total + observer_total,
+        &rows,
+        &core_cases,
+    )];
     targets.extend(c_results);
     let names: Vec<String> = core_cases.iter().map(|c| c.name.clone()).collect();
     if !core_cases.is_empty() {
@@ -655,7 +695,11 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         (minimal_ok, "the minimal example did not build, run and exit cleanly"),
         (footprint_ok, "a footprint configuration failed or differs from the committed table"),
         (c_ok, "a C firmware check (CRC, instruction clock, stack or refusal drill) failed (see above)"),
+        (observer_ran, "an observer case did not build or run (see above)"),
     ]);
+    for r in &observed {
+        println!("{}", crate::observer_device::line(r));
+    }
     let (same, expected) = target_report::print_lines(&targets);
     println!(
         "device check: {same} of {expected} states bit-identical on {} target{}",
@@ -669,5 +713,35 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
         && swap_ok
         && golden_ok
         && footprint_ok
-        && c_ok)
+        && c_ok
+        && observer_ran)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_single_flipped_bit_in_a_logged_state_is_a_mismatch() {
+        // Two rollouts of three states (q1, p1 bit patterns).
+        let host: Trajectories = (0..2u32)
+            .map(|s| {
+                (0..3u32)
+                    .map(|k| vec![0x3F80_0000 + s * 8 + k, k])
+                    .collect()
+            })
+            .collect();
+        let mut device = DeviceLog::default();
+        for (s, traj) in host.iter().enumerate() {
+            for (k, x) in traj.iter().enumerate() {
+                device.states.insert((s as u32, k as u32), x.clone());
+            }
+        }
+        assert_eq!(compare("t", &host, &device), 6);
+        // The lowest mantissa bit of one momentum.
+        device.states.get_mut(&(1, 2)).unwrap()[1] ^= 1;
+        assert_eq!(compare("t", &host, &device), 5);
+        device.states.remove(&(0, 0));
+        assert_eq!(compare("t", &host, &device), 4);
+    }
 }

@@ -1,6 +1,7 @@
 //! Parsing the firmware's decoded defmt log (`defmt-print --log-format {s}`)
 //! into its facts: bounds, FPU status, calibration, model cost, every logged
-//! state's bit patterns, timing, stack use and errors.
+//! state's bit patterns, every observer estimate's (the harness built with
+//! `observe`), timing, stack use and errors.
 
 use std::collections::HashMap;
 
@@ -27,6 +28,22 @@ pub struct DeviceLog {
     pub errors: Vec<String>,
     /// (initial state, step) -> bit patterns of q1..qn, p1..pn.
     pub states: HashMap<(u32, u32), Vec<u32>>,
+    /// Observer row -> the update's words (firmware-example/src/observe.rs:
+    /// q, p, v, NIS, count, window sum, window count, energy residual,
+    /// flags).
+    pub estimates: HashMap<u32, Vec<u32>>,
+    /// The observer's timing: (updates, predictions, SysTick ticks in the
+    /// predictions, ticks in the updates with the monitor).
+    pub observer_timing: Option<ObserverTiming>,
+}
+
+/// What the observer harness timed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ObserverTiming {
+    pub updates: u32,
+    pub predicts: u32,
+    pub predict_ticks: u64,
+    pub update_ticks: u64,
 }
 
 fn field<T: std::str::FromStr>(line: &str, key: &str) -> Option<T> {
@@ -35,12 +52,14 @@ fn field<T: std::str::FromStr>(line: &str, key: &str) -> Option<T> {
         .and_then(|v| v.parse().ok())
 }
 
-fn parse_state(line: &str) -> Result<((u32, u32), Vec<u32>)> {
-    let rest = line.strip_prefix("x ").context("not a state line")?;
+/// `<indices> [b0, b1, ...]`: the indices and the bytes as little-endian
+/// 32-bit words.
+fn indexed_words(rest: &str) -> Result<(Vec<u32>, Vec<u32>)> {
     let (head, list) = rest.split_once('[').context("no byte list")?;
-    let mut nums = head.split_whitespace().map(str::parse::<u32>);
-    let s = nums.next().context("no state index")??;
-    let k = nums.next().context("no step index")??;
+    let indices = head
+        .split_whitespace()
+        .map(str::parse::<u32>)
+        .collect::<Result<Vec<u32>, _>>()?;
     let bytes = list
         .trim_end()
         .strip_suffix(']')
@@ -55,7 +74,34 @@ fn parse_state(line: &str) -> Result<((u32, u32), Vec<u32>)> {
         .chunks_exact(4)
         .map(|c| u32::from_le_bytes([c[0], c[1], c[2], c[3]]))
         .collect();
-    Ok(((s, k), words))
+    Ok((indices, words))
+}
+
+fn parse_state(line: &str) -> Result<((u32, u32), Vec<u32>)> {
+    let rest = line.strip_prefix("x ").context("not a state line")?;
+    let (indices, words) = indexed_words(rest)?;
+    match indices[..] {
+        [s, k] => Ok(((s, k), words)),
+        _ => Err(anyhow!("expected a state and a step index")),
+    }
+}
+
+fn parse_estimate(line: &str) -> Result<(u32, Vec<u32>)> {
+    let rest = line.strip_prefix("o ").context("not an estimate line")?;
+    let (indices, words) = indexed_words(rest)?;
+    match indices[..] {
+        [r] => Ok((r, words)),
+        _ => Err(anyhow!("expected one row index")),
+    }
+}
+
+fn observer_timing(line: &str) -> Option<ObserverTiming> {
+    Some(ObserverTiming {
+        updates: field(line, "updates")?,
+        predicts: field(line, "predicts")?,
+        predict_ticks: field(line, "predict_ticks")?,
+        update_ticks: field(line, "update_ticks")?,
+    })
 }
 
 /// Parse a decoded log.
@@ -67,6 +113,12 @@ pub fn parse(text: &str) -> Result<DeviceLog> {
             let (key, words) = parse_state(line)
                 .with_context(|| format!("device log line {}: `{line}`", i + 1))?;
             log.states.insert(key, words);
+        } else if line.starts_with("o ") {
+            let (row, words) = parse_estimate(line)
+                .with_context(|| format!("device log line {}: `{line}`", i + 1))?;
+            log.estimates.insert(row, words);
+        } else if line.starts_with("visviva-fw observer timing") {
+            log.observer_timing = observer_timing(line);
         } else if line.starts_with("visviva-fw error") {
             log.errors.push(line.to_string());
         } else if line.starts_with("visviva-fw bounds") {
@@ -121,6 +173,21 @@ mod tests {
         assert_eq!(log.timing, Some((20_000, 1_650_116_524)));
         assert_eq!(log.errors.len(), 1);
         assert!(!log.done);
+    }
+
+    #[test]
+    fn estimate_lines_and_observer_timing_are_read() {
+        // IEEE 754 binary32: 0.5 = 0x3F00_0000; the count 2 as a u32 word.
+        let text = "o 12 [0, 0, 0, 63, 2, 0, 0, 0]\n\
+                    visviva-fw observer timing updates=300 predicts=1495 predict_ticks=9 update_ticks=7\n";
+        let log = parse(text).unwrap();
+        assert_eq!(log.estimates[&12], vec![0x3F00_0000, 2]);
+        let t = log.observer_timing.unwrap();
+        assert_eq!(
+            (t.updates, t.predicts, t.predict_ticks, t.update_ticks),
+            (300, 1495, 9, 7)
+        );
+        assert!(parse("o 1 2 [0, 0, 0, 0]\n").is_err());
     }
 
     #[test]

@@ -38,6 +38,11 @@ impl VisvivaCommand {
             work: work.to_path_buf(),
         })
     }
+
+    /// The `visviva` executable.
+    pub fn exe(&self) -> &Path {
+        &self.exe
+    }
 }
 
 /// `q1=..,qn=..,p1=..` with shortest round-trip decimals (exact in f32).

@@ -22,7 +22,8 @@
 //! * `cargo xtask device [--blob FILE.vvb]...`: installs missing tools, runs
 //!   the example firmware in QEMU for every device blob and compares every
 //!   state bit for bit with the host rollout, measures the runtime's own
-//!   footprint, and (without `--blob`) runs the C firmware on five cores.
+//!   footprint, and (without `--blob`) runs the observer cases and the C
+//!   firmware on five cores (`--observer`: the observer cases alone).
 //! * `cargo xtask footprint`: that footprint alone (flash, static RAM and
 //!   stack of the minimal firmware per configuration).
 
@@ -44,6 +45,9 @@ mod footprint;
 mod golden_csv;
 mod host_rollout;
 mod model_swap;
+mod observer_device;
+mod observer_plan;
+mod observer_sequence;
 mod qemu_run;
 mod run_plan;
 mod slurm_cluster;
@@ -68,7 +72,11 @@ const USAGE: &str = "usage: cargo xtask <task>
   demos [--verify] [--data] rerun the demo projects (reproducibility check)
   device [--blob FILE]...   firmware-in-QEMU check against the host rollout
                             (default: the generated fixture and demo blobs on
-                            the Rust firmware, the C firmware on five cores)
+                            the Rust firmware, the observer cases, the C
+                            firmware on five cores)
+  device --observer         the observer cases alone (observer and monitor
+                            over a recorded sequence, bit-identical to
+                            visviva observe)
   footprint                 the runtime's own flash, static RAM and stack
   bench [--rounds N] [--steps N] [--only visviva,torch,jax] [--large-samples N]
                             training throughput against PyTorch and JAX (CPU),
@@ -98,6 +106,9 @@ fn main() -> ExitCode {
                 return ExitCode::from(2);
             }
             demos::run(verify, data)
+        }
+        Some("device") if args.len() == 2 && args[1] == "--observer" => {
+            device_check::run_observer_only()
         }
         Some("device") => parse_blob_args(&args[1..]).and_then(device_check::run),
         Some("footprint") if args.len() == 1 => footprint::run_alone(),

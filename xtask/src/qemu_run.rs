@@ -45,7 +45,8 @@ pub fn build_firmware(
     let plan = std::path::absolute(plan)?;
     let target_dir = root.join("firmware-example").join("target");
     let mut cmd = firmware_cargo(root, blob, &[])?;
-    cmd.env("VISVIVA_RUN_PLAN", &plan);
+    cmd.env("VISVIVA_RUN_PLAN", &plan)
+        .env_remove("VISVIVA_OBSERVER_PLAN");
     match drill {
         Some(d) => cmd.env("VISVIVA_DRILL", d),
         None => cmd.env_remove("VISVIVA_DRILL"),
@@ -55,6 +56,35 @@ pub fn build_firmware(
         bail!("firmware build for {name} failed ({status})");
     }
     let built = target_dir
+        .join(TARGET)
+        .join("release")
+        .join("visviva-firmware-example");
+    let elf = work.join(format!("{name}.elf"));
+    std::fs::copy(&built, &elf)
+        .with_context(|| format!("copying {} to {}", built.display(), elf.display()))?;
+    Ok(elf)
+}
+
+/// Build the harness with the `observe` feature: `blob` and the observer
+/// plan `plan` (no run plan, no drill); copy the ELF to `work/<name>.elf`.
+pub fn build_observer_firmware(
+    root: &Path,
+    work: &Path,
+    name: &str,
+    blob: &Path,
+    plan: &Path,
+) -> Result<PathBuf> {
+    let plan = std::path::absolute(plan)?;
+    let mut cmd = firmware_cargo(root, blob, &["--features", "observe"])?;
+    cmd.env("VISVIVA_OBSERVER_PLAN", &plan)
+        .env_remove("VISVIVA_RUN_PLAN")
+        .env_remove("VISVIVA_DRILL");
+    let status = cmd.status().context("starting cargo for the firmware")?;
+    if !status.success() {
+        bail!("observer firmware build for {name} failed ({status})");
+    }
+    let built = root
+        .join("firmware-example/target")
         .join(TARGET)
         .join("release")
         .join("visviva-firmware-example");
@@ -99,6 +129,7 @@ fn build_example(
     args.extend_from_slice(extra);
     let mut cmd = firmware_cargo(root, blob, &args)?;
     cmd.env_remove("VISVIVA_RUN_PLAN")
+        .env_remove("VISVIVA_OBSERVER_PLAN")
         .env_remove("VISVIVA_DRILL");
     let status = cmd
         .status()

@@ -43,7 +43,7 @@ fn with_version(mut b: Vec<u8>, version: u16) -> Vec<u8> {
 }
 
 /// Recompute the header's payload length and the CRC after editing.
-fn reseal(b: &mut Vec<u8>) {
+fn reseal(b: &mut [u8]) {
     let end = b.len() - 4;
     let len = (end - format::HEADER_LEN) as u32;
     b[6..10].copy_from_slice(&len.to_le_bytes());

@@ -290,8 +290,9 @@ impl TrainingEnvelope<'_> {
         self.lower.len()
     }
 
-    /// Whether every one of the first `n2` coordinates of `x` (q then p)
-    /// lies within its bounds (false for NaN).
+    /// Whether each value of `x`, a state laid out as q1..qn, p1..pn, lies
+    /// within its coordinate's bounds, ends included (false for NaN and
+    /// for values beyond the stored coordinates).
     pub fn contains(&self, x: &[f32]) -> bool {
         x.iter()
             .enumerate()

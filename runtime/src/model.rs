@@ -294,16 +294,20 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
                 expected: 2 * n as u32,
             });
         }
-        if !lo.iter().chain(hi.iter()).all(f32::is_finite) {
-            return Err(BlobError::NonFinite { section });
-        }
-        if !lo.iter().chain(hi.iter()).all(format::offset_in_range) {
-            return Err(BlobError::OutOfRange { section });
-        }
-        if let Some(k) = lo.iter().zip(hi.iter()).position(|(l, h)| l > h) {
-            return Err(BlobError::EnvelopeInverted {
-                coordinate: k as u8,
-            });
+        // One pass over the coordinates (the first defect found is named).
+        for k in 0..2 * n {
+            let (l, h) = (lo.get(k), hi.get(k));
+            if !(l.is_finite() && h.is_finite()) {
+                return Err(BlobError::NonFinite { section });
+            }
+            if !(format::offset_in_range(l) && format::offset_in_range(h)) {
+                return Err(BlobError::OutOfRange { section });
+            }
+            if l > h {
+                return Err(BlobError::EnvelopeInverted {
+                    coordinate: k as u8,
+                });
+            }
         }
         Ok(Some(env))
     }

@@ -60,6 +60,7 @@ fn main() {
             integrator: Integrator::new(Method::ImplicitMidpoint, 0.01),
             dissipation: DissipationDesc::None,
             input: InputDesc::None,
+            envelope: None,
         };
         let mut buf = vec![0u8; 64 * 1024];
         let len = format::encode(&desc, &mut buf).expect("fits");

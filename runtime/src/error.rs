@@ -26,6 +26,8 @@ pub enum Section {
     Dissipation,
     /// Input coupling G (constant matrix or network of q).
     InputCoupling,
+    /// The training envelope (per-coordinate bounds of the training states).
+    Envelope,
 }
 
 /// Why a blob was refused by [`crate::Model::from_bytes`]. Field names are
@@ -82,6 +84,12 @@ pub enum BlobError {
     /// The blob needs a part of the runtime (model kind, integrator, port
     /// terms, int8 weights) that this build leaves out by its cargo features.
     NotInThisBuild { section: Section },
+    /// A training envelope whose lower or upper bounds do not hold one
+    /// value per coordinate (2n; `found` is the shorter side's count).
+    EnvelopeCount { found: u32, expected: u32 },
+    /// A training envelope whose lower bound exceeds its upper bound at
+    /// `coordinate` (0-based over q1..qn, p1..pn).
+    EnvelopeInverted { coordinate: u8 },
 }
 
 impl fmt::Display for BlobError {
@@ -154,6 +162,15 @@ impl fmt::Display for BlobError {
                 f,
                 "{section:?} needs a part of visviva-runtime this firmware was built without; \
                  enable the matching cargo feature (or the default features)"
+            ),
+            Self::EnvelopeCount { found, expected } => write!(
+                f,
+                "training envelope holds {found} bounds per side; the model's coordinates need {expected}"
+            ),
+            Self::EnvelopeInverted { coordinate } => write!(
+                f,
+                "training envelope's lower bound exceeds its upper bound at coordinate {coordinate} \
+                 (counted from 0 over q1..qn, p1..pn)"
             ),
         }
     }

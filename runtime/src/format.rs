@@ -5,7 +5,8 @@
 //! offset  size  field
 //! 0       4     magic tag b"VVMB"
 //! 4       2     format version (u16): 1; 2 with constant port terms;
-//!                3 with port terms that are networks of q
+//!                3 with port terms that are networks of q; 4 with a
+//!                training envelope
 //! 6       4     payload length L (u32)
 //! 10      L     payload: postcard encoding of [`ModelDesc`]
 //! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
@@ -16,6 +17,20 @@
 //! straight from the blob (flash) with no copy. Enum variants are encoded by
 //! index: new variants are appended, never reordered, and any change a reader
 //! of the current version cannot skip bumps [`FORMAT_VERSION`].
+//!
+//! Optional trailing sections (version 4 on): after the port terms the
+//! payload may end, or go on with one postcard `Option` per trailing section
+//! in the order they were added. A blob writes none of them when all are
+//! absent, so a blob without them keeps its older layout byte for byte; a
+//! later section's presence means writing `None` (one zero byte) for the
+//! absent ones before it. The one such section so far is the training
+//! envelope ([`TrainingEnvelope`], version 4): per-coordinate lower and upper
+//! bounds of the states the model was fitted on, each 2n little-endian
+//! `f32` (q1..qn, p1..pn, physical units). The writer stores them already
+//! widened: the training states' minimum and maximum per coordinate, each
+//! moved outward by a tenth of that coordinate's range (max - min), then
+//! rounded to the nearest `f32`; a reader compares a state with the stored
+//! numbers as they are and widens nothing.
 //!
 //! Value ranges (checked by [`crate::Model::from_bytes`]; a value that is
 //! finite but outside its range is refused with [`BlobError::OutOfRange`],
@@ -32,6 +47,7 @@
 //! substeps                               1..=1024 (dt / substeps stays normal)
 //! iteration limit                        1..=1000
 //! implicit-method tolerance              [MIN_TOLERANCE, 1] = [1e-12, 1]
+//! training envelope bounds               |bound| <= MAX_OFFSET = 1e18, lower <= upper
 //! ```
 //!
 //! Subnormal values (below 1.18e-38) lie below every range above. Network
@@ -47,10 +63,12 @@ use crate::integrate::Integrator;
 pub const MAGIC: [u8; 4] = *b"VVMB";
 /// The newest format version this runtime reads and writes. Version 2 added
 /// the dissipation and input sections, version 3 their network variants
-/// (R and G as functions of q). A blob is always written with the oldest
-/// version that can express it, so older firmware keeps reading the blobs
-/// it understands.
-pub const FORMAT_VERSION: u16 = 3;
+/// (R and G as functions of q), version 4 the training envelope. A blob is
+/// always written with the oldest version that can express it, so older
+/// firmware keeps reading the blobs it understands.
+pub const FORMAT_VERSION: u16 = 4;
+/// The format version that added the training envelope section.
+pub const ENVELOPE_VERSION: u16 = 4;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
 /// Bytes before the payload: magic, version, length.
@@ -251,10 +269,49 @@ pub enum InputDesc<'a> {
     },
 }
 
+/// Per-coordinate bounds of the states a model was trained on (format
+/// version 4): 2n lower and 2n upper bounds, q1..qn then p1..pn, physical
+/// units, stored already widened (see the module's layout comment). The
+/// runtime checks at parse time that both hold 2n finite values within
+/// +-[`MAX_OFFSET`] and that no lower bound exceeds its upper bound.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct TrainingEnvelope<'a> {
+    /// Lower bounds, q then p.
+    #[serde(borrow)]
+    pub lower: F32Bytes<'a>,
+    /// Upper bounds, q then p.
+    #[serde(borrow)]
+    pub upper: F32Bytes<'a>,
+}
+
+impl TrainingEnvelope<'_> {
+    /// Number of coordinates (2n once validated).
+    pub fn coordinates(&self) -> usize {
+        self.lower.len()
+    }
+
+    /// Whether each value of `x`, a state laid out as q1..qn, p1..pn, lies
+    /// within its coordinate's bounds, ends included (false for NaN and
+    /// for values beyond the stored coordinates).
+    pub fn contains(&self, x: &[f32]) -> bool {
+        x.iter()
+            .enumerate()
+            .all(|(k, v)| (self.lower.get(k)..=self.upper.get(k)).contains(v))
+    }
+}
+
 impl ModelDesc<'_> {
     /// The oldest format version that can express this model.
     pub fn needed_version(&self) -> u16 {
-        version_for(&self.dissipation, &self.input)
+        version_for(&self.dissipation, &self.input).max(envelope_version(&self.envelope))
+    }
+}
+
+/// The oldest format version that can carry this training envelope.
+fn envelope_version(envelope: &Option<TrainingEnvelope<'_>>) -> u16 {
+    match envelope {
+        Some(_) => ENVELOPE_VERSION,
+        None => OLDEST_READABLE_VERSION,
     }
 }
 
@@ -297,6 +354,11 @@ pub struct ModelDesc<'a> {
     /// Input coupling G (none for an autonomous model).
     #[serde(borrow)]
     pub input: InputDesc<'a>,
+    /// The training envelope (format version 4), a trailing optional
+    /// section: [`encode`] and [`decode`] write and read it after the
+    /// fields above (serde skips it, so a blob without it keeps its layout).
+    #[serde(skip)]
+    pub envelope: Option<TrainingEnvelope<'a>>,
 }
 
 /// Write `desc` as a complete blob into `out`; returns the bytes used.
@@ -311,12 +373,24 @@ pub fn encode(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> 
     }
     let body_room = out.len() - HEADER_LEN - TRAILER_LEN;
     let (head, rest) = out.split_at_mut(HEADER_LEN);
-    let body_len = postcard::to_slice(desc, &mut rest[..body_room])
-        .map_err(|_| BlobError::Truncated {
-            needed: room.saturating_add(1),
-            found: room,
-        })?
+    let too_small = BlobError::Truncated {
+        needed: room.saturating_add(1),
+        found: room,
+    };
+    let body = &mut rest[..body_room];
+    let fields_len = postcard::to_slice(desc, &mut *body)
+        .map_err(|_| too_small)?
         .len();
+    let trailing_len = match &desc.envelope {
+        None => 0,
+        Some(envelope) => {
+            let tail = body.get_mut(fields_len..).ok_or(too_small)?;
+            postcard::to_slice(&Some(*envelope), tail)
+                .map_err(|_| too_small)?
+                .len()
+        }
+    };
+    let body_len = fields_len + trailing_len;
     head[..4].copy_from_slice(&MAGIC);
     // The oldest version that can express the model, so older firmware
     // keeps reading the blobs it understands.
@@ -419,13 +493,16 @@ pub fn open(bytes: &[u8]) -> Result<(Envelope, &[u8]), BlobError> {
 /// Check the container and decode the description (not yet validated).
 pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
     let (env, payload) = open(bytes)?;
-    let (desc, rest) =
+    let (mut desc, rest) =
         postcard::take_from_bytes::<ModelDesc<'_>>(payload).map_err(|_| BlobError::Malformed)?;
-    if !rest.is_empty() {
+    let mut trailing = Fields { rest };
+    desc.envelope = trailing.take_trailing::<TrainingEnvelope<'_>>()?;
+    if !trailing.rest.is_empty() {
         return Err(BlobError::TrailingBytes);
     }
-    // Version 1 has no port terms and version 2 no port networks; a blob
-    // whose content needs a newer version than it claims is damaged.
+    // Version 1 has no port terms, version 2 no port networks, version 3
+    // no envelope; a blob whose content needs a newer version than it
+    // claims is damaged.
     if env.version < desc.needed_version() {
         return Err(BlobError::Malformed);
     }
@@ -449,6 +526,15 @@ impl<'a> Fields<'a> {
             postcard::take_from_bytes::<T>(self.rest).map_err(|_| BlobError::Malformed)?;
         self.rest = rest;
         Ok(value)
+    }
+
+    /// The next optional trailing section (see the layout comment): `None`
+    /// when the payload has ended or the section is written as absent.
+    pub fn take_trailing<T: Deserialize<'a>>(&mut self) -> Result<Option<T>, BlobError> {
+        if self.rest.is_empty() {
+            return Ok(None);
+        }
+        self.take::<Option<T>>()
     }
 
     /// Skip the next field (decoded in its own stack frame, then dropped).
@@ -479,7 +565,9 @@ pub fn check_fields(bytes: &[u8]) -> Result<Fields<'_>, BlobError> {
     f.skip::<f32>()?;
     f.skip::<EnergyDesc<'_>>()?;
     f.skip::<Integrator>()?;
-    let needed = f.port_version()?;
+    let port = f.port_version()?;
+    let envelope = f.take_trailing::<TrainingEnvelope<'_>>()?;
+    let needed = port.max(envelope_version(&envelope));
     if !f.rest.is_empty() {
         return Err(BlobError::TrailingBytes);
     }

@@ -29,7 +29,8 @@
 //!   the energy) and `Model::momentum_from_velocity`
 //!   (p = M v for separable models with a quadratic kinetic term).
 //! * [`monitor`]: health flags (windowed NIS against chi-square bounds,
-//!   out-of-envelope with caller-given bounds, energy-balance residual).
+//!   out-of-envelope with the blob's training envelope or caller-given
+//!   bounds, energy-balance residual).
 //! * [`linalg`]: small stack matrices (products, pivoted solve, LDL^T test).
 //! * [`math`]: deterministic `tanh`, `softplus` and friends.
 //! * [`error`]: every failure as a typed enum; nothing here panics.

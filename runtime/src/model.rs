@@ -6,7 +6,9 @@
 
 use crate::energy::Energy;
 use crate::error::{BlobError, Section, StepError};
-use crate::format::{self, DissipationDesc, EnergyDesc, F32Bytes, Fields, InputDesc};
+use crate::format::{
+    self, DissipationDesc, EnergyDesc, F32Bytes, Fields, InputDesc, TrainingEnvelope,
+};
 use crate::hamiltonian::Hamiltonian;
 use crate::integrate::Integrator;
 use crate::mlp::Mlp;
@@ -125,6 +127,8 @@ pub struct Model<'a, const D: usize = 8, const W: usize = 128> {
     dissipation: Option<PortMatrix<'a, W>>,
     /// Number of inputs m and G (2n x m, row-major).
     input: Option<(usize, PortMatrix<'a, W>)>,
+    /// Per-coordinate bounds of the training states, when the blob has them.
+    envelope: Option<TrainingEnvelope<'a>>,
 }
 
 impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
@@ -172,6 +176,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         let integrator: Integrator = fields.take()?;
         let dissipation = Self::read_dissipation(&mut fields, n)?;
         let input = Self::read_input(&mut fields, n)?;
+        let envelope = Self::read_envelope(&mut fields, n)?;
         let mut m = Self {
             dof: n,
             offset_q: [0.0; D],
@@ -183,6 +188,7 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
             integrator,
             dissipation,
             input,
+            envelope,
         };
         for i in 0..n {
             m.offset_q[i] = offset.get(i);
@@ -270,6 +276,42 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         })
     }
 
+    /// The training envelope, when the blob has one: 2n lower and 2n upper
+    /// bounds (q then p), each finite, within +-`MAX_OFFSET`, lower <= upper.
+    #[inline(never)]
+    fn read_envelope(
+        fields: &mut Fields<'a>,
+        n: usize,
+    ) -> Result<Option<TrainingEnvelope<'a>>, BlobError> {
+        let Some(env) = fields.take_trailing::<TrainingEnvelope<'a>>()? else {
+            return Ok(None);
+        };
+        let section = Section::Envelope;
+        let (lo, hi) = (env.lower, env.upper);
+        if lo.0.len() != 8 * n || hi.0.len() != 8 * n {
+            return Err(BlobError::EnvelopeCount {
+                found: lo.len().min(hi.len()) as u32,
+                expected: 2 * n as u32,
+            });
+        }
+        // One pass over the coordinates (the first defect found is named).
+        for k in 0..2 * n {
+            let (l, h) = (lo.get(k), hi.get(k));
+            if !(l.is_finite() && h.is_finite()) {
+                return Err(BlobError::NonFinite { section });
+            }
+            if !(format::offset_in_range(l) && format::offset_in_range(h)) {
+                return Err(BlobError::OutOfRange { section });
+            }
+            if l > h {
+                return Err(BlobError::EnvelopeInverted {
+                    coordinate: k as u8,
+                });
+            }
+        }
+        Ok(Some(env))
+    }
+
     /// The same model with other integrator settings, checked as at parse
     /// time (a separable-only method on a general model is refused).
     pub fn with_integrator(mut self, integrator: Integrator) -> Result<Self, BlobError> {
@@ -324,6 +366,14 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
     /// energy, the unit in which the learned energy's drift is judged.
     pub fn energy_scale(&self) -> f32 {
         self.energy_scale
+    }
+
+    /// The per-coordinate bounds of the states the model was trained on
+    /// (q1..qn then p1..pn, physical units, already widened by the writer;
+    /// see [`crate::format`]), or `None` when the blob carries no envelope.
+    /// Borrowed from the blob: no copy, no heap.
+    pub fn envelope(&self) -> Option<TrainingEnvelope<'a>> {
+        self.envelope
     }
 
     /// Number of inputs m that `step_driven` takes (0 for an autonomous model).

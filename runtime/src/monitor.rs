@@ -4,13 +4,16 @@
 //! window's measurement count at a user-chosen false-alarm rate (quantiles
 //! by the Wilson-Hilferty cube-root normal approximation from a small
 //! table of normal quantiles); (2) out-of-envelope: the estimate outside
-//! per-coordinate bounds the caller passes (the blob carries no envelope
-//! section yet); (3) for damped or driven models the energy-balance
+//! per-coordinate bounds, the blob's training envelope when it carries one
+//! ([`Envelope::of_model_or`]), else bounds the caller passes; (3) for
+//! damped or driven models the energy-balance
 //! residual over the window: H(x_k) - H(x_(k-N)) minus the sum of
 //! h g . f(g, u) = h (-|L^T g|^2 + g^T G u).
 
 use crate::error::StepError;
+use crate::format::TrainingEnvelope;
 use crate::hamiltonian::Hamiltonian;
+use crate::model::Model;
 use crate::state::State;
 
 /// Two-sided false-alarm rate of the NIS window test.
@@ -77,6 +80,31 @@ pub struct Envelope<const D: usize> {
 }
 
 impl<const D: usize> Envelope<D> {
+    /// The bounds a blob's training envelope states (q1..qn, p1..pn; with
+    /// n = half its coordinates, at most `D` of them used).
+    pub fn from_training(t: &TrainingEnvelope<'_>) -> Self {
+        let n = t.coordinates() / 2;
+        let mut e = Self {
+            low: ([0.0; D], [0.0; D]),
+            high: ([0.0; D], [0.0; D]),
+        };
+        for i in 0..n.min(D) {
+            e.low.0[i] = t.lower.get(i);
+            e.low.1[i] = t.lower.get(n + i);
+            e.high.0[i] = t.upper.get(i);
+            e.high.1[i] = t.upper.get(n + i);
+        }
+        e
+    }
+
+    /// The blob's training envelope when `model` carries one, else
+    /// `fallback` (the caller's bounds).
+    pub fn of_model_or<const W: usize>(model: &Model<'_, D, W>, fallback: Self) -> Self {
+        model
+            .envelope()
+            .map_or(fallback, |t| Self::from_training(&t))
+    }
+
     /// Whether every active coordinate of `x` lies within the bounds.
     pub fn contains(&self, x: &State<D>) -> bool {
         (0..x.dof()).all(|i| {

@@ -56,6 +56,21 @@ fn seeds() -> Vec<Vec<u8>> {
                     .blob()
                     .unwrap(),
             );
+            // Training envelopes (format version 4), on a conservative and
+            // on a damped, driven blob.
+            out.push(
+                separable(&mut rng, 2, &[5], act, kind, Method::StormerVerlet, 0.05)
+                    .with_envelope(&[-2.0, -1.0, -3.0, -0.5], &[2.0, 1.5, 3.0, 0.5])
+                    .blob()
+                    .unwrap(),
+            );
+            out.push(
+                general(&mut rng, 1, &[4], act, kind, Method::DiscreteGradient, 0.05)
+                    .with_port(&mut rng, 0.3, 1)
+                    .with_envelope(&[-1.0, -1.0], &[1.0, 1.0])
+                    .blob()
+                    .unwrap(),
+            );
         }
     }
     out
@@ -136,6 +151,9 @@ fn exercise(m: &Model<'_, 8, 16>, rng: &mut XorShift64Star) {
     let (mut a, mut b) = ([0.0; 8], [0.0; 8]);
     let _ = m.gradient(&s, &mut a, &mut b);
     let _ = m.step(&mut s);
+    if let Some(env) = m.envelope() {
+        let _ = env.contains(&[s.q(), s.p()].concat());
+    }
     let method = [
         Method::StormerVerlet,
         Method::Yoshida4,

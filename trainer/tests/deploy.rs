@@ -8,7 +8,7 @@ use rand::{Rng, SeedableRng};
 use visviva_runtime::format::Activation;
 use visviva_runtime::{Integrator, Method};
 use visviva_trainer::deploy::blob::{
-    BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights,
+    BlobModel, Bounds, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights,
 };
 use visviva_trainer::deploy::compare::{compare, Verdict};
 use visviva_trainer::deploy::integrator::IntegratorOverrides;
@@ -64,6 +64,7 @@ fn fixture(general: bool) -> BlobModel {
         ),
         dissipation: None,
         input: None,
+        envelope: None,
     }
 }
 
@@ -99,6 +100,46 @@ fn blob_model_round_trips() {
 }
 
 #[test]
+fn the_training_envelope_survives_export_and_inspect_prints_it() {
+    let mut m = fixture(false);
+    m.envelope = Some(Bounds {
+        lower: vec![-0.5, -2.0],
+        upper: vec![0.75, 2.25],
+    });
+    let bytes = m.to_bytes().unwrap();
+    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 4);
+    assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
+    // int8 export keeps the bounds as stored.
+    let (int8, _) = visviva_trainer::deploy::export::export(
+        &m,
+        WeightKind::Int8,
+        &IntegratorOverrides::default(),
+        20,
+        2,
+    )
+    .unwrap();
+    assert_eq!(BlobModel::from_bytes(&int8).unwrap().envelope, m.envelope);
+    let r = visviva_trainer::deploy::inspect::inspect(&bytes).unwrap();
+    assert_eq!(r.format_version, 4);
+    let rows = r.envelope.unwrap();
+    let named: Vec<(&str, f32, f32)> = rows
+        .iter()
+        .map(|e| (e.coordinate.as_str(), e.lower, e.upper))
+        .collect();
+    assert_eq!(named, [("q1", -0.5, 0.75), ("p1", -2.0, 2.25)]);
+    assert!(r
+        .sections
+        .iter()
+        .any(|(n, b)| n == "training envelope" && *b == 19));
+    let total: usize = r.sections.iter().map(|(_, b)| b).sum();
+    assert_eq!(total, bytes.len());
+    // A blob without the section: version 1, no envelope rows.
+    let plain = fixture(false).to_bytes().unwrap();
+    let r = visviva_trainer::deploy::inspect::inspect(&plain).unwrap();
+    assert_eq!((r.format_version, r.envelope), (1, None));
+}
+
+#[test]
 fn damped_driven_models_keep_their_port_terms_through_export() {
     // R = L L^T with L = diag(0, 0.3) (damping on p), G = (0, 1)^T.
     let mut m = fixture(true);
@@ -116,10 +157,7 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     let mut net = m.clone();
     net.input = Some((1, PortTerm::Network(mlp(&mut rng, &[1, 6, 2]))));
     let net_bytes = net.to_bytes().unwrap();
-    assert_eq!(
-        u16::from_le_bytes([net_bytes[4], net_bytes[5]]),
-        visviva_runtime::format::FORMAT_VERSION
-    );
+    assert_eq!(u16::from_le_bytes([net_bytes[4], net_bytes[5]]), 3);
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
     let (net_i8, r) = export_checked(

@@ -9,7 +9,9 @@
 //! [`well_mlp`]) so trajectories oscillate inside the networks' nonlinear
 //! range for all 10^4 steps instead of drifting into tanh saturation, where
 //! the comparison would become trivial; `cargo xtask device` prints each
-//! rollout's largest |x|.
+//! rollout's largest |x|. One separable fixture also carries a training
+//! envelope (format version 4), so the section's parse runs on the
+//! emulator; a fixture whose envelope is inverted must be refused.
 
 use anyhow::Result;
 use visviva_blob_support::{
@@ -120,6 +122,28 @@ fn energy_net(rng: &mut SplitMix64, inputs: usize, net: Net, precision: Precisio
 /// Separable fixture: `dof` coordinates, tanh potential network `net`,
 /// quadratic kinetic energy, Stormer-Verlet.
 fn separable(seed: u64, dof: usize, net: Net, precision: Precision) -> Result<Vec<u8>> {
+    Ok(separable_model(seed, dof, net, precision).blob()?)
+}
+
+/// [`separable`] with a training envelope (format version 4): every
+/// coordinate within +-`half_width` (an inverted one when negative).
+fn separable_with_envelope(
+    seed: u64,
+    dof: usize,
+    precision: Precision,
+    half_width: f32,
+) -> Result<Vec<u8>> {
+    let bound: Vec<f32> = (0..2 * dof)
+        .map(|k| half_width * (1.0 + k as f32))
+        .collect();
+    let lower: Vec<f32> = bound.iter().map(|b| -b).collect();
+    Ok(separable_model(seed, dof, Net::Well, precision)
+        .with_envelope(&lower, &bound)
+        .blob()?)
+}
+
+/// The owned model of [`separable`].
+fn separable_model(seed: u64, dof: usize, net: Net, precision: Precision) -> OwnedModel {
     let mut rng = SplitMix64(seed);
     let potential = energy_net(&mut rng, dof, net, precision);
     // Cholesky factor of M^-1, row by row: unit diagonal, small coupling.
@@ -135,7 +159,7 @@ fn separable(seed: u64, dof: usize, net: Net, precision: Precision) -> Result<Ve
         kinetic: OwnedKinetic::quadratic(chol),
     };
     let it = Integrator::new(Method::StormerVerlet, 0.01);
-    Ok(OwnedModel::new(dof, vec![0.0; 2 * dof], scale, 1.0, energy, it).blob()?)
+    OwnedModel::new(dof, vec![0.0; 2 * dof], scale, 1.0, energy, it)
 }
 
 /// General fixture: H(q, p) as one tanh network, implicit midpoint.
@@ -189,9 +213,10 @@ fn driven_q_networks(seed: u64, dof: usize, precision: Precision) -> Result<Vec<
     Ok(model.blob()?)
 }
 
-/// The good fixture blobs: separable and general, f32 and int8, and two
+/// The good fixture blobs: separable and general, f32 and int8, two
 /// damped, driven models (their names contain `driven`): constant port
-/// terms, and port terms that are networks of q.
+/// terms, and port terms that are networks of q; and the separable f32
+/// model with a training envelope.
 pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
     Ok(vec![
         NamedBlob {
@@ -217,6 +242,10 @@ pub fn good_fixtures() -> Result<Vec<NamedBlob>> {
         NamedBlob {
             name: "fixture-driven-qnet-dgrad-int8".into(),
             bytes: driven_q_networks(0x5EED_0005, 1, Precision::Int8)?,
+        },
+        NamedBlob {
+            name: "fixture-separable-verlet-envelope-f32".into(),
+            bytes: separable_with_envelope(0x5EED_0001, 2, Precision::F32, 2.0)?,
         },
     ])
 }
@@ -271,11 +300,39 @@ pub fn bad_fixtures(max_dof: usize, max_width: usize) -> Result<Vec<BadBlob>> {
             },
             expected_error: "UnsupportedVersion",
         },
+        BadBlob {
+            blob: NamedBlob {
+                name: "bad-inverted-envelope".into(),
+                bytes: separable_with_envelope(0x5EED_0001, 2, Precision::F32, -1.0)?,
+            },
+            expected_error: "EnvelopeInverted",
+        },
     ])
 }
 
 #[cfg(test)]
 mod tests {
+    use super::*;
+    use visviva_runtime::{BlobError, Model};
+
+    #[test]
+    fn the_envelope_fixtures_parse_and_refuse_as_the_device_check_expects() {
+        let good = good_fixtures().unwrap();
+        let env = good
+            .iter()
+            .find(|b| b.name == "fixture-separable-verlet-envelope-f32")
+            .unwrap();
+        assert_eq!(u16::from_le_bytes([env.bytes[4], env.bytes[5]]), 4);
+        let m = Model::<2, 32>::from_bytes(&env.bytes).unwrap();
+        assert_eq!(m.envelope().unwrap().upper.get(3), 8.0);
+        let bad = bad_fixtures(2, 32).unwrap();
+        let inverted = bad.iter().find(|b| b.expected_error == "EnvelopeInverted");
+        assert_eq!(
+            Model::<2, 32>::from_bytes(&inverted.unwrap().blob.bytes).unwrap_err(),
+            BlobError::EnvelopeInverted { coordinate: 0 }
+        );
+    }
+
     #[test]
     fn crc_used_for_the_version_fixture_is_the_standard_crc32() {
         // CRC-32/ISO-HDLC check value over "123456789" is 0xCBF43926

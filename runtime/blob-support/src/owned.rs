@@ -8,7 +8,7 @@ use std::fmt;
 
 use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
-    MlpDesc, ModelDesc, WeightsDesc, MAX_LAYERS,
+    MlpDesc, ModelDesc, TrainingEnvelope, WeightsDesc, MAX_LAYERS,
 };
 use visviva_runtime::{BlobError, Integrator};
 
@@ -297,6 +297,9 @@ pub struct OwnedModel {
     pub dissipation_net: Option<OwnedMlp>,
     /// Inputs m and G(q) as a network of z_q (replaces `input` when set).
     pub input_net: Option<(u8, OwnedMlp)>,
+    /// The training envelope's lower and upper bounds (2n each, q then p),
+    /// as bytes (format version 4).
+    pub envelope: Option<(Vec<u8>, Vec<u8>)>,
 }
 
 impl OwnedModel {
@@ -322,7 +325,15 @@ impl OwnedModel {
             input: None,
             dissipation_net: None,
             input_net: None,
+            envelope: None,
         }
+    }
+
+    /// Add a training envelope: lower and upper bounds, q then p (not
+    /// checked here, so tests can store bounds the runtime refuses).
+    pub fn with_envelope(mut self, lower: &[f32], upper: &[f32]) -> Self {
+        self.envelope = Some((f32_bytes(lower), f32_bytes(upper)));
+        self
     }
 
     /// Add constant port terms: the factor L of R (n (2n + 1) values) and,
@@ -409,6 +420,10 @@ impl OwnedModel {
             integrator: self.integrator,
             dissipation,
             input,
+            envelope: self.envelope.as_ref().map(|(lo, hi)| TrainingEnvelope {
+                lower: F32Bytes(lo),
+                upper: F32Bytes(hi),
+            }),
         })
     }
 
@@ -465,6 +480,27 @@ mod tests {
                 assert_eq!(*w, l.scales[k / l.inputs] * f32::from(l.q[k]));
             }
         }
+    }
+
+    #[test]
+    fn an_envelope_round_trips_and_steps_the_header_to_version_4() {
+        let plain = sample(Precision::F32).blob().unwrap();
+        let owned =
+            sample(Precision::F32).with_envelope(&[-1.0, -2.0, -3.0, -4.0], &[1.0, 2.0, 3.0, 4.0]);
+        let blob = owned.blob().unwrap();
+        assert_eq!(format::decode(&blob).unwrap(), owned.desc().unwrap());
+        assert_eq!(u16::from_le_bytes([plain[4], plain[5]]), 1);
+        assert_eq!(u16::from_le_bytes([blob[4], blob[5]]), 4);
+        // The section follows the version-1 payload: an Option tag and two
+        // byte strings of 16 bytes (postcard varint lengths), 35 bytes.
+        assert_eq!(blob.len(), plain.len() + 1 + 2 * (1 + 16));
+        let m = Model::<2, 8>::from_bytes(&blob).unwrap();
+        let env = m.envelope().unwrap();
+        assert_eq!(
+            env.lower.iter().collect::<Vec<_>>(),
+            [-1.0, -2.0, -3.0, -4.0]
+        );
+        assert_eq!(env.upper.iter().collect::<Vec<_>>(), [1.0, 2.0, 3.0, 4.0]);
     }
 
     #[test]

@@ -122,6 +122,55 @@ fn bad_blobs_are_refused_with_their_status() {
     assert_eq!(init(&mut model, &random_blob(2, 16)), VvStatus::Ok);
 }
 
+/// Version 4 blobs (with the training envelope) initialise and step like
+/// the same model without it; an envelope the runtime refuses is
+/// `BlobInvalid`.
+#[test]
+fn blobs_with_a_training_envelope_are_accepted_and_bad_ones_refused() {
+    let lower: Vec<u8> = [-1.0f32, -1.0, -2.0, -2.0]
+        .iter()
+        .flat_map(|v| v.to_le_bytes())
+        .collect();
+    let upper: Vec<u8> = [1.0f32, 1.0, 2.0, 2.0]
+        .iter()
+        .flat_map(|v| v.to_le_bytes())
+        .collect();
+    let plain = random_blob(2, 16);
+    let mut with = visviva_runtime::format::decode(&plain).unwrap();
+    with.envelope = Some(visviva_runtime::format::TrainingEnvelope {
+        lower: visviva_runtime::format::F32Bytes(&lower),
+        upper: visviva_runtime::format::F32Bytes(&upper),
+    });
+    let blob = visviva_blob_support::encode(&with).unwrap();
+    assert_eq!(u16::from_le_bytes([blob[4], blob[5]]), 4);
+    let (mut a, mut b) = (VvModel::new(), VvModel::new());
+    assert_eq!(init(&mut a, &blob), VvStatus::Ok);
+    assert_eq!(init(&mut b, &plain), VvStatus::Ok);
+    let (mut qa, mut pa, mut qb, mut pb) =
+        ([0.3f32, -0.2], [0.1f32, 0.0], [0.3f32, -0.2], [0.1f32, 0.0]);
+    for _ in 0..100 {
+        // SAFETY: the q and p arrays hold two floats each.
+        unsafe {
+            assert_eq!(
+                vv_step(&a, qa.as_mut_ptr(), pa.as_mut_ptr(), 2),
+                VvStatus::Ok
+            );
+            assert_eq!(
+                vv_step(&b, qb.as_mut_ptr(), pb.as_mut_ptr(), 2),
+                VvStatus::Ok
+            );
+        }
+    }
+    assert_eq!((qa, pa), (qb, pb));
+    // Lower above upper: refused as an invalid blob.
+    with.envelope = Some(visviva_runtime::format::TrainingEnvelope {
+        lower: visviva_runtime::format::F32Bytes(&upper),
+        upper: visviva_runtime::format::F32Bytes(&lower),
+    });
+    let inverted = visviva_blob_support::encode(&with).unwrap();
+    assert_eq!(init(&mut a, &inverted), VvStatus::BlobInvalid);
+}
+
 #[test]
 fn null_misaligned_and_short_arguments_are_refused() {
     let blob = demo_blob("servo-drivetrain", "servo-f32-dgrad.vvb");

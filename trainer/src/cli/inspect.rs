@@ -1,6 +1,7 @@
 //! `visviva inspect`: what a blob holds and what it costs on a device — format
 //! version, CRC status, architecture, weight storage, bytes per section,
-//! runtime RAM and multiply-accumulates — as a table or JSON.
+//! the training envelope, runtime RAM and multiply-accumulates — as a
+//! table or JSON.
 
 use std::path::PathBuf;
 
@@ -66,6 +67,24 @@ pub fn run(args: Args) -> Result<()> {
             terms.push(format!("{} input(s) through G ({form})", r.inputs));
         }
         row("port terms", terms.join(", "));
+    }
+    match &r.envelope {
+        Some(rows) => {
+            row(
+                "training envelope",
+                "training range widened by a tenth on each side".into(),
+            );
+            for e in rows {
+                row(
+                    &format!("  {}", e.coordinate),
+                    format!("[{}, {}]", e.lower, e.upper),
+                );
+            }
+        }
+        None => row(
+            "training envelope",
+            "none (format version 3 or older; observers need bounds of their own)".into(),
+        ),
     }
     row(
         "runtime RAM",

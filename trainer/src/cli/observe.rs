@@ -55,7 +55,7 @@ pub fn run(args: Args) -> Result<()> {
     let settings = ObserverSettings::read(&path, model.dof())?;
     let s = observe_csv(&model, &settings, &args.data, &args.out)?;
     eprintln!(
-        "wrote {} ({} rows, {} trajectories); NIS window ({} updates, false-alarm rate {}): {} of {} full windows above the bound, {} below; {} rows out of the envelope",
+        "wrote {} ({} rows, {} trajectories); NIS window ({} updates, false-alarm rate {}): {} of {} full windows above the bound, {} below; {} rows out of the envelope (bounds: {})",
         args.out.display(),
         s.rows,
         s.trajectories,
@@ -64,7 +64,9 @@ pub fn run(args: Args) -> Result<()> {
         s.nis_high,
         s.full_windows,
         s.nis_low,
-        s.out_of_envelope
+        s.out_of_envelope,
+        s.envelope_source
+            .map_or("none", crate::deploy::observe::EnvelopeSource::describe)
     );
     eprintln!("{}", crate::CAUTION);
     Ok(())

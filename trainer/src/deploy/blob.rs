@@ -7,7 +7,7 @@ use anyhow::{anyhow, bail, Context, Result};
 use visviva_blob_support::quantize::quantize_rows;
 use visviva_runtime::format::{
     self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
-    MlpDesc, ModelDesc, WeightsDesc,
+    MlpDesc, ModelDesc, TrainingEnvelope, WeightsDesc,
 };
 use visviva_runtime::{Integrator, Model};
 
@@ -158,6 +158,19 @@ pub struct BlobModel {
     pub dissipation: Option<PortTerm>,
     /// Inputs m and G (2n x m, row-major), for driven models.
     pub input: Option<(usize, PortTerm)>,
+    /// The training envelope (format version 4): lower and upper bounds
+    /// per coordinate, q then p, physical units, already widened (see
+    /// [`crate::deploy::training_range`]).
+    pub envelope: Option<Bounds>,
+}
+
+/// Per-coordinate lower and upper bounds (q1..qn, p1..pn).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Bounds {
+    /// Lower bounds.
+    pub lower: Vec<f32>,
+    /// Upper bounds.
+    pub upper: Vec<f32>,
 }
 
 /// Precision of stored weight matrices.
@@ -351,6 +364,10 @@ impl BlobModel {
                     Some((*inputs as usize, PortTerm::Network(Mlp::from_desc(net))))
                 }
             },
+            envelope: d.envelope.map(|e| Bounds {
+                lower: f32s(e.lower),
+                upper: f32s(e.upper),
+            }),
         })
     }
 
@@ -395,6 +412,7 @@ impl BlobModel {
         };
         let factor = self.dissipation.as_ref().map(term_bytes);
         let g = self.input.as_ref().map(|(m, g)| (*m, g, term_bytes(g)));
+        let bounds = self.envelope.as_ref().map(|b| (le(&b.lower), le(&b.upper)));
         let desc = ModelDesc {
             dof: u8::try_from(self.dof).context("too many degrees of freedom")?,
             offset: F32Bytes(&offset),
@@ -428,6 +446,10 @@ impl BlobModel {
                     }
                 }
             },
+            envelope: bounds.as_ref().map(|(lo, hi)| TrainingEnvelope {
+                lower: F32Bytes(lo),
+                upper: F32Bytes(hi),
+            }),
         };
         let room = 64 * 1024 + 16 * (offset.len() + chol.len() + self.parameters());
         let mut buf = vec![0u8; room];

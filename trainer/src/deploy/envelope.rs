@@ -4,8 +4,60 @@
 //! deviations from the mean in any coordinate is outside anything the
 //! model saw, and its prediction is an extrapolation. The threshold is
 //! common practice for flagging outliers, not a derived bound.
+//!
+//! The training envelope a fitted blob stores (format version 4) and the
+//! observer's fallback envelope from its tuning logs are both a range of
+//! logged states widened by [`WIDEN`] of it on each side
+//! ([`widened_range`]); [`training_bounds`] is the blob's.
 
-use crate::deploy::blob::BlobModel;
+use crate::data::dataset::Dataset;
+use crate::deploy::blob::{BlobModel, Bounds};
+
+/// Fraction of a coordinate's logged range (max - min) added below its
+/// minimum and above its maximum: a state a little beyond the extremes
+/// seen is still a state the model was fitted near. A setting, not a
+/// derived bound.
+pub const WIDEN: f64 = 0.1;
+
+/// Per-coordinate minimum and maximum of every state of `logs` (q1..qn,
+/// p1..pn), each moved outward by [`WIDEN`] of the range. Without states
+/// the bounds are infinite (lower +inf, upper -inf).
+pub fn widened_range(logs: &[&Dataset], n: usize) -> (Vec<f64>, Vec<f64>) {
+    let (mut low, mut high) = (vec![f64::INFINITY; 2 * n], vec![f64::NEG_INFINITY; 2 * n]);
+    for t in logs.iter().flat_map(|d| &d.trajectories) {
+        for row in t.x.rows() {
+            for c in 0..2 * n {
+                low[c] = low[c].min(row[c]);
+                high[c] = high[c].max(row[c]);
+            }
+        }
+    }
+    for c in 0..2 * n {
+        let margin = WIDEN * (high[c] - low[c]);
+        low[c] -= margin;
+        high[c] += margin;
+    }
+    (low, high)
+}
+
+/// The training envelope a fitted blob stores: [`widened_range`] of the
+/// training states, each bound rounded to the nearest `f32` and clamped to
+/// the format's +-`MAX_OFFSET` (rounding is monotone, so every training
+/// state, rounded to `f32` as the runtime holds it, lies inside). `None`
+/// when the data hold a non-finite value or no state.
+pub fn training_bounds(train: &Dataset) -> Option<Bounds> {
+    let (low, high) = widened_range(&[train], train.dof);
+    let limit = f64::from(visviva_runtime::format::MAX_OFFSET);
+    let to_f32 = |v: &Vec<f64>| -> Option<Vec<f32>> {
+        v.iter()
+            .map(|x| x.is_finite().then(|| x.clamp(-limit, limit) as f32))
+            .collect()
+    };
+    Some(Bounds {
+        lower: to_f32(&low)?,
+        upper: to_f32(&high)?,
+    })
+}
 
 /// Standard deviations from the training mean beyond which a state counts
 /// as far outside the training data.
@@ -99,6 +151,43 @@ impl FarState {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::data::dataset::{DerivativeSource, Trajectory};
+    use ndarray::{array, Array2};
+
+    fn log(x: Array2<f64>) -> Dataset {
+        let rows = x.nrows();
+        Dataset {
+            dof: x.ncols() / 2,
+            inputs: 0,
+            trajectories: vec![Trajectory {
+                id: "0".into(),
+                t: (0..rows).map(|k| k as f64).collect(),
+                dx: Array2::zeros(x.dim()),
+                u: Array2::zeros((rows, 0)),
+                x,
+            }],
+            derivatives: DerivativeSource::Given,
+        }
+    }
+
+    #[test]
+    fn the_training_envelope_is_the_range_widened_by_a_tenth_on_each_side() {
+        // q in [-1, 3] (range 4, margin 0.4), p in [2, 2.5] (range 0.5,
+        // margin 0.05); hand-computed.
+        let data = log(array![[-1.0, 2.0], [3.0, 2.5], [0.0, 2.2]]);
+        let b = training_bounds(&data).unwrap();
+        assert_eq!(b.lower, [-1.4f32, 1.95]);
+        assert_eq!(b.upper, [3.4f32, 2.55]);
+        // A coordinate that never moves keeps one value on both sides.
+        let still = log(array![[0.1, 1.0], [0.1, 2.0]]);
+        let b = training_bounds(&still).unwrap();
+        assert_eq!((b.lower[0], b.upper[0]), (0.1f32, 0.1f32));
+        // Bounds beyond the format's range are clamped; NaN gives none.
+        let huge = log(array![[-1e30, 0.0], [1e30, 1.0]]);
+        let b = training_bounds(&huge).unwrap();
+        assert_eq!((b.lower[0], b.upper[0]), (-1e18f32, 1e18f32));
+        assert!(training_bounds(&log(array![[f64::NAN, 0.0]])).is_none());
+    }
 
     fn envelope() -> Envelope {
         Envelope {

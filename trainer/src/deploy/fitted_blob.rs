@@ -8,6 +8,7 @@ use std::path::Path;
 use anyhow::{bail, Context, Result};
 use visviva_runtime::Integrator;
 
+use crate::data::dataset::Dataset;
 use crate::deploy::blob::{BlobModel, Energy, Kinetic, Layer, Mlp, PortTerm, WeightKind, Weights};
 use crate::learn::hnn::{
     cholesky_from_params, tri_index, BaselineModel, EnergyArch, EnergyModel, KineticArch,
@@ -85,6 +86,7 @@ pub fn blob_model(model: &EnergyModel, integrator: Integrator) -> BlobModel {
             .as_ref()
             .and_then(|p| p.physical_input(n, &model.norm))
             .map(|(m, g)| (m, port_term(g))),
+        envelope: None,
     }
 }
 
@@ -96,6 +98,21 @@ pub fn energy_blob(
     kind: WeightKind,
 ) -> Result<Vec<u8>> {
     blob_model(model, integrator).converted(kind).to_bytes()
+}
+
+/// [`energy_blob`] carrying the training envelope of `train`, the data the
+/// model was fitted on ([`crate::deploy::envelope::training_bounds`];
+/// none when the data hold a non-finite value). Every blob a fit writes
+/// is made here.
+pub fn fitted_energy_blob(
+    model: &EnergyModel,
+    integrator: Integrator,
+    kind: WeightKind,
+    train: &Dataset,
+) -> Result<Vec<u8>> {
+    let mut blob = blob_model(model, integrator).converted(kind);
+    blob.envelope = crate::deploy::envelope::training_bounds(train);
+    blob.to_bytes()
 }
 
 /// Write the blob for `model` to `path` atomically; returns its size.

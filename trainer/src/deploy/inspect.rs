@@ -1,7 +1,8 @@
 //! Inspection: what a blob holds and what it costs on a device (format
 //! version, CRC status, architecture, weight storage, bytes per section,
-//! runtime RAM and multiply-accumulates, and the runtime's own measured
-//! flash and stack for the blob's configuration).
+//! runtime RAM and multiply-accumulates, the training envelope when the
+//! blob carries one, and the runtime's own measured flash and stack for the
+//! blob's configuration).
 
 use anyhow::{anyhow, Result};
 use serde::Serialize;
@@ -58,11 +59,43 @@ pub struct Inspection {
     pub dissipation_form: Option<String>,
     /// Form of G, likewise.
     pub input_form: Option<String>,
+    /// The training envelope (format version 4): per coordinate its name
+    /// (q1..qn, p1..pn) and its lower and upper bound, as stored.
+    pub envelope: Option<Vec<EnvelopeRow>>,
     /// The runtime's own flash, static RAM and stack for this blob's
     /// configuration (None when that configuration was not measured).
     pub runtime: Option<RuntimeFootprint>,
     /// Where `runtime` comes from.
     pub runtime_source: String,
+}
+
+/// One coordinate's bounds in the training envelope.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct EnvelopeRow {
+    /// `q1`..`qn`, `p1`..`pn`.
+    pub coordinate: String,
+    /// Lower bound (physical units).
+    pub lower: f32,
+    /// Upper bound (physical units).
+    pub upper: f32,
+}
+
+/// The envelope's rows for a model of `n` degrees of freedom.
+fn envelope_rows(b: &crate::deploy::blob::Bounds, n: usize) -> Vec<EnvelopeRow> {
+    b.lower
+        .iter()
+        .zip(&b.upper)
+        .enumerate()
+        .map(|(k, (lo, hi))| EnvelopeRow {
+            coordinate: if k < n {
+                format!("q{}", k + 1)
+            } else {
+                format!("p{}", k - n + 1)
+            },
+            lower: *lo,
+            upper: *hi,
+        })
+        .collect()
 }
 
 fn postcard_len<T: Serialize>(v: &T) -> usize {
@@ -97,6 +130,9 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
         "damping and input terms".into(),
         postcard_len(&desc.dissipation) + postcard_len(&desc.input),
     ));
+    if let Some(e) = &desc.envelope {
+        sections.push(("training envelope".into(), postcard_len(&Some(*e))));
+    }
     sections.push(("crc".into(), format::TRAILER_LEN));
     let max_width = model
         .networks()
@@ -134,6 +170,7 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
         inputs: model.input.as_ref().map_or(0, |(m, _)| *m),
         dissipation_form: model.dissipation.as_ref().map(|t| t.label()),
         input_form: model.input.as_ref().map(|(_, g)| g.label()),
+        envelope: model.envelope.as_ref().map(|b| envelope_rows(b, n)),
         runtime: footprint::for_model(&desc),
         runtime_source: footprint::SOURCE.into(),
     })

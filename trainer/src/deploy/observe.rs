@@ -6,7 +6,9 @@
 //! corrects with the row's measurements; a missed sample only predicts.
 //! The first `settle_updates` updates of a trajectory are kept out of the
 //! monitor while the filter settles from its initial spread. The process
-//! noise grows with the estimate's energy when the settings say so.
+//! noise grows with the estimate's energy when the settings say so. The
+//! out-of-envelope flag uses the blob's training envelope when the blob
+//! carries one, else the settings file's envelope ([`EnvelopeSource`]).
 //! [`observe_csv`] streams a log to the estimate CSV (atomic write).
 
 use std::io::Write;
@@ -89,11 +91,32 @@ struct Track<'m, 'b> {
     ticks: usize,
 }
 
+/// Where the out-of-envelope flag's bounds come from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EnvelopeSource {
+    /// The blob's training envelope (format version 4).
+    Blob,
+    /// The observer settings' `envelope_low` / `envelope_high` (the blob
+    /// carries none).
+    Settings,
+}
+
+impl EnvelopeSource {
+    /// The words `visviva observe` prints.
+    pub fn describe(self) -> &'static str {
+        match self {
+            Self::Blob => "the blob's training envelope (training range widened by a tenth on each side)",
+            Self::Settings => "the settings file's envelope_low/envelope_high (the blob carries no training envelope)",
+        }
+    }
+}
+
 /// The observer over a stream of rows.
 pub struct ObserverRun<'m, 'b> {
     model: &'m HostModel<'b>,
     settings: ObserverSettings,
     envelope: Envelope<HOST_MAX_DOF>,
+    envelope_source: EnvelopeSource,
     track: Option<Track<'m, 'b>>,
 }
 
@@ -106,22 +129,32 @@ impl<'m, 'b> ObserverRun<'m, 'b> {
     pub fn new(model: &'m HostModel<'b>, settings: ObserverSettings) -> Result<Self> {
         let n = model.dof();
         settings.validate(n)?;
-        let mut envelope = Envelope {
+        let mut fallback = Envelope {
             low: ([0.0; HOST_MAX_DOF], [0.0; HOST_MAX_DOF]),
             high: ([0.0; HOST_MAX_DOF], [0.0; HOST_MAX_DOF]),
         };
         for i in 0..n {
-            envelope.low.0[i] = settings.envelope_low[i] as f32;
-            envelope.low.1[i] = settings.envelope_low[n + i] as f32;
-            envelope.high.0[i] = settings.envelope_high[i] as f32;
-            envelope.high.1[i] = settings.envelope_high[n + i] as f32;
+            fallback.low.0[i] = settings.envelope_low[i] as f32;
+            fallback.low.1[i] = settings.envelope_low[n + i] as f32;
+            fallback.high.0[i] = settings.envelope_high[i] as f32;
+            fallback.high.1[i] = settings.envelope_high[n + i] as f32;
         }
+        let envelope_source = match model.envelope() {
+            Some(_) => EnvelopeSource::Blob,
+            None => EnvelopeSource::Settings,
+        };
         Ok(Self {
             model,
             settings,
-            envelope,
+            envelope: Envelope::of_model_or(model, fallback),
+            envelope_source,
             track: None,
         })
+    }
+
+    /// Where the out-of-envelope flag's bounds come from.
+    pub fn envelope_source(&self) -> EnvelopeSource {
+        self.envelope_source
     }
 
     /// The measurements of `row` with their noise variances.
@@ -329,6 +362,8 @@ pub struct ObserveSummary {
     pub out_of_envelope: usize,
     /// Rows with the energy flag.
     pub energy_flags: usize,
+    /// Where the envelope's bounds came from (`None` before any run).
+    pub envelope_source: Option<EnvelopeSource>,
 }
 
 impl ObserveSummary {
@@ -409,7 +444,10 @@ pub fn observe_csv(
     let n = model.dof();
     let mut reader = MeasurementReader::open(data, n, model.inputs())?;
     let mut run = ObserverRun::new(model, settings.clone())?;
-    let mut summary = ObserveSummary::default();
+    let mut summary = ObserveSummary {
+        envelope_source: Some(run.envelope_source()),
+        ..ObserveSummary::default()
+    };
     write_atomic_with(out, |w: &mut dyn Write| {
         let mut writer = csv::Writer::from_writer(w);
         writer.write_record(header(n, reader.has_velocities()))?;

@@ -32,6 +32,7 @@ use visviva_runtime::monitor::FalseAlarm;
 use crate::data::dataset::{Dataset, Trajectory};
 use crate::data::measure_log::MeasurementRow;
 use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
+use crate::deploy::envelope::widened_range;
 use crate::deploy::observe::{ObserveSummary, ObserverRun, HOST_STATE};
 use crate::deploy::observer_settings::{
     false_alarm_fraction, false_alarm_text, ObserverSettings, SETTINGS_VERSION,
@@ -186,27 +187,18 @@ fn base_settings(
     window: usize,
     alarm: FalseAlarm,
 ) -> ObserverSettings {
-    let (mut low, mut high) = (vec![f64::INFINITY; 2 * n], vec![f64::NEG_INFINITY; 2 * n]);
     let mut sq = vec![0.0f64; n];
     let mut count = 0usize;
     for t in logs.iter().flat_map(|d| &d.trajectories) {
         for row in t.x.rows() {
-            for c in 0..2 * n {
-                low[c] = low[c].min(row[c]);
-                high[c] = high[c].max(row[c]);
-            }
             for i in 0..n {
                 sq[i] += row[n + i] * row[n + i];
             }
             count += 1;
         }
     }
-    // The envelope: the logs' range widened by 10 % of it on each side.
-    for c in 0..2 * n {
-        let margin = 0.1 * (high[c] - low[c]);
-        low[c] -= margin;
-        high[c] += margin;
-    }
+    // The envelope: the logs' range widened by a tenth of it on each side.
+    let (low, high) = widened_range(logs, n);
     let floor = |v: f64| if v > 0.0 { v } else { 1e-12 };
     ObserverSettings {
         format_version: SETTINGS_VERSION,

@@ -267,8 +267,8 @@ pub struct FitOutcome {
     pub baseline: Option<Fitted<BaselineModel>>,
 }
 
-/// Fit the planned model to `train` (early stopping on `val`), encode it,
-/// and fit the baseline when `baseline` is set; an interrupted fit or one
+/// Fit the planned model to `train` (early stopping on `val`), encode it
+/// with the training envelope of `train`, and fit the baseline when `baseline` is set; an interrupted fit or one
 /// that learned nothing is an error (see [`check_trusted`]).
 pub fn fit_stage(
     train: &Dataset,
@@ -296,8 +296,12 @@ pub fn fit_stage_mode(
         None => fit_model(train, val, &plan.arch, &plan.terms, settings)?,
     };
     check_trusted(&model.report, "energy model")?;
-    let blob =
-        crate::deploy::fitted_blob::energy_blob(&model.model, plan.integrator, WeightKind::F32)?;
+    let blob = crate::deploy::fitted_blob::fitted_energy_blob(
+        &model.model,
+        plan.integrator,
+        WeightKind::F32,
+        train,
+    )?;
     let baseline = if baseline {
         let hidden = &plan.choice.hidden;
         let fitted = fit_baseline(train, val, hidden, plan.choice.activation, settings)?;

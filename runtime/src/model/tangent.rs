@@ -119,6 +119,8 @@ impl<const D: usize, const W: usize> Tangent<D> for Model<'_, D, W> {
                 hq[..n].copy_from_slice(&hz[..n]);
                 hp[..n].copy_from_slice(&hz[n..2 * n]);
             }
+            // Not yet: the observer refuses a mechanical model.
+            Energy::Mechanical(_) => return Err(StepError::NoSecondDerivatives),
             Energy::Separable { potential, kinetic } => {
                 potential.gradient_and_hvp(&zq[..n], &dzq[..n], &mut g[..n], &mut hq[..n]);
                 match kinetic {

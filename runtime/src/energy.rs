@@ -1,10 +1,15 @@
 //! Learned energy functions in normalized coordinates z: a general network
-//! E(z) or a separable sum T(z_p) + V(z_q), where T is a quadratic form with
-//! a learned positive-definite matrix or a network.
+//! E(z), a separable sum T(z_p) + V(z_q), where T is a quadratic form with
+//! a learned positive-definite matrix or a network, or a mechanical energy
+//! 1/2 z_p^T M(z_q)^-1 z_p + V(z_q) (see `mechanical`).
 
 use crate::error::{BlobError, Section};
 use crate::format::{EnergyDesc, F32Bytes, KineticDesc};
 use crate::mlp::Mlp;
+
+mod mechanical;
+
+pub use mechanical::Mechanical;
 
 /// Kinetic energy of a separable model.
 #[derive(Debug, Clone, Copy)]
@@ -27,6 +32,8 @@ pub enum Energy<'a, const W: usize> {
         /// T over the n momenta.
         kinetic: Kinetic<'a, W>,
     },
+    /// 1/2 z_p^T (L(z_q) L(z_q)^T + eps I) z_p + V(z_q).
+    Mechanical(Mechanical<'a, W>),
 }
 
 impl<'a, const W: usize> Energy<'a, W> {
@@ -38,6 +45,16 @@ impl<'a, const W: usize> Energy<'a, W> {
             EnergyDesc::Separable { .. } if !cfg!(feature = "separable") => {
                 left_out(Section::Potential)
             }
+            EnergyDesc::Mechanical { .. } if !cfg!(feature = "mechanical") => {
+                left_out(Section::MassFactor)
+            }
+            EnergyDesc::Mechanical {
+                factor,
+                floor,
+                potential,
+            } => Ok(Self::Mechanical(Mechanical::validate(
+                factor, *floor, potential, n,
+            )?)),
             EnergyDesc::General(mlp) => Ok(Self::General(Mlp::validate(
                 mlp,
                 2 * n,
@@ -66,10 +83,11 @@ impl<'a, const W: usize> Energy<'a, W> {
     }
 
     /// Multiply-accumulates of one potential and one kinetic gradient (for a
-    /// general model, one full gradient and zero).
+    /// general or mechanical model, one full gradient and zero).
     pub fn macs(&self, n: usize) -> (u32, u32) {
         match self {
             Self::General(m) => (m.macs_per_gradient(), 0),
+            Self::Mechanical(m) => (m.macs(n), 0),
             Self::Separable { potential, kinetic } => {
                 let t = match kinetic {
                     Kinetic::Quadratic(_) => (n * (n + 1)) as u32,
@@ -84,6 +102,7 @@ impl<'a, const W: usize> Energy<'a, W> {
     pub fn parameters(&self, n: usize) -> u32 {
         match self {
             Self::General(m) => m.parameters(),
+            Self::Mechanical(m) => m.parameters(),
             Self::Separable { potential, kinetic } => {
                 potential.parameters()
                     + match kinetic {

@@ -28,6 +28,9 @@ pub enum Section {
     InputCoupling,
     /// The training envelope (per-coordinate bounds of the training states).
     Envelope,
+    /// The factor network L(q) of a mechanical model's inverse mass
+    /// matrix M(q)^-1 = L L^T + eps I, and its floor eps.
+    MassFactor,
 }
 
 /// Why a blob was refused by [`crate::Model::from_bytes`]. Field names are
@@ -73,7 +76,8 @@ pub enum BlobError {
     ReluInEnergyNetwork { section: Section },
     /// Step, substeps, iteration limit or tolerance out of range.
     BadIntegratorSettings,
-    /// An explicit separable-only method paired with a general model.
+    /// An explicit separable-only method paired with a general or
+    /// mechanical model.
     MethodNeedsSeparableModel,
     /// A dissipation or input term this runtime version cannot evaluate.
     UnsupportedTerm { section: Section },
@@ -144,8 +148,9 @@ impl fmt::Display for BlobError {
                  1..=1024, iteration limit 1..=1000, tolerance in [1e-12, 1])",
             ),
             Self::MethodNeedsSeparableModel => f.write_str(
-                "Stormer-Verlet and Yoshida-4 need a separable model H = T(p) + V(q); \
-                 use implicit midpoint (or RK4) for a general model",
+                "Stormer-Verlet and Yoshida-4 need a separable model H = T(p) + V(q); a general \
+                 model, or a mechanical one (whose kinetic energy depends on q through M(q)), is \
+                 not separable: use implicit midpoint, the discrete-gradient method or RK4",
             ),
             Self::MethodIgnoresPortTerms => f.write_str(
                 "Stormer-Verlet and Yoshida-4 would drop the damping and input terms; store the \
@@ -200,6 +205,10 @@ pub enum StepError {
     /// An explicit symplectic method was asked to step a damped or driven
     /// model; it would silently drop R and G.
     MethodIgnoresPortTerms,
+    /// Second derivatives of H (Hessian-vector products, the observer's
+    /// exact step Jacobian) asked of a model kind that does not give them
+    /// yet (the mechanical energy).
+    NoSecondDerivatives,
 }
 
 impl fmt::Display for StepError {
@@ -226,6 +235,11 @@ impl fmt::Display for StepError {
             Self::MethodIgnoresPortTerms => f.write_str(
                 "Stormer-Verlet and Yoshida-4 step only the conservative part; use the \
                  discrete-gradient method (or implicit midpoint) for a damped or driven model",
+            ),
+            Self::NoSecondDerivatives => f.write_str(
+                "the observer needs second derivatives of the energy, which this runtime does \
+                 not compute for a mechanical model (mass matrix M(q)) yet; use a separable or \
+                 general model with the observer",
             ),
         }
     }

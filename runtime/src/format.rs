@@ -6,7 +6,8 @@
 //! 0       4     magic tag b"VVMB"
 //! 4       2     format version (u16): 1; 2 with constant port terms;
 //!                3 with port terms that are networks of q; 4 with a
-//!                training envelope
+//!                training envelope; 5 with a mechanical energy (mass
+//!                matrix M(q))
 //! 6       4     payload length L (u32)
 //! 10      L     payload: postcard encoding of [`ModelDesc`]
 //! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
@@ -43,6 +44,7 @@
 //! normalization offsets                  |offset| <= MAX_OFFSET = 1e18
 //! inverse-mass Cholesky diagonal         [1e-18, 1e18]; other entries |v| <= 1e18
 //! int8 row scales                        [1e-18, 1e18]
+//! mechanical floor eps (M^-1 diagonal)   0 or [1e-18, 1e18]
 //! time step dt (s)                       [MIN_DT, MAX_DT] = [1e-12, 1e6]
 //! substeps                               1..=1024 (dt / substeps stays normal)
 //! iteration limit                        1..=1000
@@ -63,12 +65,15 @@ use crate::integrate::Integrator;
 pub const MAGIC: [u8; 4] = *b"VVMB";
 /// The newest format version this runtime reads and writes. Version 2 added
 /// the dissipation and input sections, version 3 their network variants
-/// (R and G as functions of q), version 4 the training envelope. A blob is
-/// always written with the oldest version that can express it, so older
-/// firmware keeps reading the blobs it understands.
-pub const FORMAT_VERSION: u16 = 4;
+/// (R and G as functions of q), version 4 the training envelope, version 5
+/// the mechanical energy ([`EnergyDesc::Mechanical`]). A blob is always
+/// written with the oldest version that can express it, so older firmware
+/// keeps reading the blobs it understands.
+pub const FORMAT_VERSION: u16 = 5;
 /// The format version that added the training envelope section.
 pub const ENVELOPE_VERSION: u16 = 4;
+/// The version that added [`EnergyDesc::Mechanical`].
+pub const MECHANICAL_VERSION: u16 = 5;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
 /// Bytes before the payload: magic, version, length.
@@ -224,6 +229,24 @@ pub enum EnergyDesc<'a> {
         #[serde(borrow)]
         kinetic: KineticDesc<'a>,
     },
+    /// H = 1/2 z_p^T (L(z_q) L(z_q)^T + floor I) z_p + V(z_q): the energy
+    /// of a rigid linkage, whose inverse mass matrix depends on the
+    /// coordinates. L is lower triangular; its diagonal is the softplus of
+    /// the factor network's diagonal outputs, so M^-1 is positive definite.
+    /// Format version 5.
+    Mechanical {
+        /// Network of the n coordinates z_q with n (n + 1) / 2 outputs: L
+        /// row by row (L00, L10, L11, L20, ...), diagonal entries before
+        /// their softplus.
+        #[serde(borrow)]
+        factor: MlpDesc<'a>,
+        /// The floor eps >= 0 added to the diagonal of M^-1 (normalized
+        /// units): 0 or in [MIN_SCALE, MAX_SCALE].
+        floor: f32,
+        /// Potential network V over the n coordinates.
+        #[serde(borrow)]
+        potential: MlpDesc<'a>,
+    },
 }
 
 /// Dissipation in the port-Hamiltonian form dx/dt = (J - R) dH/dx + G u.
@@ -303,7 +326,17 @@ impl TrainingEnvelope<'_> {
 impl ModelDesc<'_> {
     /// The oldest format version that can express this model.
     pub fn needed_version(&self) -> u16 {
-        version_for(&self.dissipation, &self.input).max(envelope_version(&self.envelope))
+        version_for(&self.dissipation, &self.input)
+            .max(energy_version(&self.energy))
+            .max(envelope_version(&self.envelope))
+    }
+}
+
+/// The oldest format version that can express this energy.
+fn energy_version(energy: &EnergyDesc<'_>) -> u16 {
+    match energy {
+        EnergyDesc::Mechanical { .. } => MECHANICAL_VERSION,
+        EnergyDesc::General(_) | EnergyDesc::Separable { .. } => OLDEST_READABLE_VERSION,
     }
 }
 
@@ -501,8 +534,8 @@ pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
         return Err(BlobError::TrailingBytes);
     }
     // Version 1 has no port terms, version 2 no port networks, version 3
-    // no envelope; a blob whose content needs a newer version than it
-    // claims is damaged.
+    // no envelope and versions before 5 no mechanical energy; a blob whose
+    // content needs a newer version than it claims is damaged.
     if env.version < desc.needed_version() {
         return Err(BlobError::Malformed);
     }
@@ -543,6 +576,12 @@ impl<'a> Fields<'a> {
         self.take::<T>().map(drop)
     }
 
+    /// Read the energy field; return the format version it needs.
+    #[inline(never)]
+    fn energy_version(&mut self) -> Result<u16, BlobError> {
+        Ok(energy_version(&self.take::<EnergyDesc<'a>>()?))
+    }
+
     /// Read the two port-term fields; return the format version they need.
     #[inline(never)]
     fn port_version(&mut self) -> Result<u16, BlobError> {
@@ -563,11 +602,11 @@ pub fn check_fields(bytes: &[u8]) -> Result<Fields<'_>, BlobError> {
     f.skip::<F32Bytes<'_>>()?;
     f.skip::<F32Bytes<'_>>()?;
     f.skip::<f32>()?;
-    f.skip::<EnergyDesc<'_>>()?;
+    let energy = f.energy_version()?;
     f.skip::<Integrator>()?;
     let port = f.port_version()?;
     let envelope = f.take_trailing::<TrainingEnvelope<'_>>()?;
-    let needed = port.max(envelope_version(&envelope));
+    let needed = port.max(energy).max(envelope_version(&envelope));
     if !f.rest.is_empty() {
         return Err(BlobError::TrailingBytes);
     }

@@ -12,7 +12,7 @@
 //! * [`model`]: [`Model::from_bytes`] parses a blob without copying weights
 //!   and implements [`Hamiltonian`].
 //! * `energy`, `mlp` (crate-private): the energy networks and their analytic
-//!   gradients.
+//!   gradients (general, separable, and mechanical: M(q)^-1 = L L^T + eps I).
 //! * [`hamiltonian`]: the trait the integrators step (energy, gradient, and
 //!   the field (J - R) g + G u).
 //! * [`integrate`]: Stormer-Verlet, Yoshida-4, implicit midpoint, RK4 and the
@@ -55,8 +55,10 @@
 compile_error!(
     "visviva-runtime needs at least one integrator feature: verlet, yoshida4, midpoint, rk4 or discrete-gradient"
 );
-#[cfg(not(any(feature = "separable", feature = "general")))]
-compile_error!("visviva-runtime needs at least one model kind feature: separable or general");
+#[cfg(not(any(feature = "separable", feature = "general", feature = "mechanical")))]
+compile_error!(
+    "visviva-runtime needs at least one model kind feature: separable, general or mechanical"
+);
 
 mod energy;
 pub mod error;

@@ -2,7 +2,9 @@
 //! pass that keeps what the backward pass needs, and the analytic gradient of
 //! a scalar output with respect to the input (reverse mode, no finite
 //! differences). Energy networks have one output; the networks of the port
-//! terms R(q), G(q) have several and are only evaluated forward. `W` bounds
+//! terms R(q), G(q) have several and are only evaluated forward; the mass
+//! factor L(q) of a mechanical model has several and is pulled back
+//! (vector-Jacobian product). `W` bounds
 //! every layer width and sizes the stack buffers.
 
 use crate::error::{BlobError, Section};
@@ -176,9 +178,25 @@ impl<'a, const W: usize> Mlp<'a, W> {
 
     /// Reverse pass from d(output) = 1 down to the input.
     fn backward(&self, deriv: &[[f32; W]; MAX_LAYERS], grad: &mut [f32]) {
+        self.pullback(deriv, &[1.0], grad);
+    }
+
+    /// All outputs at `x` into `out`, keeping in `tape` what
+    /// [`Self::pullback`] needs.
+    pub fn evaluate_taped(&self, x: &[f32], tape: &mut [[f32; W]; MAX_LAYERS], out: &mut [f32]) {
+        self.forward(x, tape, out);
+    }
+
+    /// Reverse pass (vector-Jacobian product): `grad[..inputs]` receives
+    /// J^T `seed`, with J the Jacobian of the outputs at the input the tape
+    /// was recorded at (`seed` holds the leading outputs' weights; the rest
+    /// count as 0).
+    pub fn pullback(&self, deriv: &[[f32; W]; MAX_LAYERS], seed: &[f32], grad: &mut [f32]) {
         let mut g = [0.0f32; W];
         let mut gp = [0.0f32; W];
-        g[0] = 1.0;
+        for (gj, s) in g.iter_mut().zip(seed) {
+            *gj = *s;
+        }
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
             if k + 1 < self.count {

@@ -440,6 +440,27 @@ impl<'a, const D: usize, const W: usize> Model<'a, D, W> {
         }
     }
 
+    /// dH/dq and dH/dp of a mechanical energy in physical units:
+    /// dH/dx_i = energy_scale * dE/dz_i / scale_i.
+    fn mechanical_gradient(
+        &self,
+        m: &crate::energy::Mechanical<'_, W>,
+        x: &State<D>,
+        dh_dq: &mut [f32; D],
+        dh_dp: &mut [f32; D],
+    ) {
+        let n = self.dof;
+        let (mut zq, mut zp) = ([0.0f32; D], [0.0f32; D]);
+        let (mut gq, mut gp) = ([0.0f32; D], [0.0f32; D]);
+        Self::normalize(&x.q, &self.offset_q, &self.scale_q, n, &mut zq);
+        Self::normalize(&x.p, &self.offset_p, &self.scale_p, n, &mut zp);
+        m.value_and_gradient(&zq[..n], &zp[..n], &mut gq[..n], &mut gp[..n]);
+        for i in 0..n {
+            dh_dq[i] = self.energy_scale * gq[i] / self.scale_q[i];
+            dh_dp[i] = self.energy_scale * gp[i] / self.scale_p[i];
+        }
+    }
+
     fn normalize(v: &[f32; D], off: &[f32; D], sc: &[f32; D], n: usize, z: &mut [f32]) {
         for i in 0..n {
             z[i] = (v[i] - off[i]) / sc[i];
@@ -554,6 +575,7 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
             Energy::Separable { potential, kinetic } if cfg!(feature = "separable") => {
                 potential.value(&zq[..n]) + kinetic.eval(&zp[..n], None)
             }
+            Energy::Mechanical(m) if cfg!(feature = "mechanical") => m.value(&zq[..n], &zp[..n]),
             // A kind this build leaves out never parses.
             _ => return Err(StepError::NotSeparable),
         };
@@ -584,6 +606,10 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
             Energy::Separable { .. } if cfg!(feature = "separable") => {
                 self.potential_gradient(&x.q, dh_dq)?;
                 self.kinetic_gradient(&x.p, dh_dp)
+            }
+            Energy::Mechanical(m) if cfg!(feature = "mechanical") => {
+                self.mechanical_gradient(m, x, dh_dq, dh_dp);
+                Ok(())
             }
             // A kind this build leaves out never parses.
             _ => Err(StepError::NotSeparable),

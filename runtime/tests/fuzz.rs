@@ -71,6 +71,38 @@ fn seeds() -> Vec<Vec<u8>> {
                     .blob()
                     .unwrap(),
             );
+            // Mechanical energies (format version 5), one with a training
+            // envelope after its port terms.
+            out.push(
+                mechanical(
+                    &mut rng,
+                    2,
+                    &[5],
+                    act,
+                    kind,
+                    Method::ImplicitMidpoint,
+                    0.05,
+                    0.01,
+                )
+                .blob()
+                .unwrap(),
+            );
+            out.push(
+                mechanical(
+                    &mut rng,
+                    1,
+                    &[4],
+                    act,
+                    kind,
+                    Method::DiscreteGradient,
+                    0.05,
+                    0.0,
+                )
+                .with_port(&mut rng, 0.3, 1)
+                .with_envelope(&[-1.0, -1.0], &[1.0, 1.0])
+                .blob()
+                .unwrap(),
+            );
         }
     }
     out
@@ -314,7 +346,7 @@ fn hidden_widths(rng: &mut XorShift64Star) -> Vec<usize> {
         .collect()
 }
 
-/// A random model within the tools' bounds: separable or general, f32 or
+/// A random model within the tools' bounds: separable, general or mechanical, f32 or
 /// int8, tanh or softplus, any method the energy kind allows, and port
 /// terms (constant, or networks where their outputs fit in 128) for the
 /// methods that step them. Returns the model and its widest hidden layer.
@@ -326,8 +358,14 @@ fn tool_sized_model(rng: &mut XorShift64Star) -> (OwnedModel, usize) {
     let hidden = hidden_widths(rng);
     let dt = [1e-3, 0.05, 0.5][rng.below(3)];
     let sep = method.needs_separable() || rng.below(2) == 0;
+    // A mechanical factor L(q) has n (n + 1) / 2 outputs: it fits in 128
+    // up to n = 15.
+    let mech = !sep && dof <= 15 && rng.below(2) == 0;
     let mut m = if sep {
         separable(rng, dof, &hidden, act, kind, method, dt)
+    } else if mech {
+        let floor = [0.0, 1e-3][rng.below(2)];
+        mechanical(rng, dof, &hidden, act, kind, method, dt, floor)
     } else {
         general(rng, dof, &hidden, act, kind, method, dt)
     };

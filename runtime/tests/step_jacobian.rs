@@ -83,6 +83,7 @@ fn energy_ref<T: DualNum<Primitive = f64> + Copy>(m: &OwnedModel, x: &[T]) -> T 
             };
             v + t
         }
+        OwnedEnergy::Mechanical { .. } => unreachable!("the observer refuses mechanical models"),
     };
     e * c::<T>(m.energy_scale)
 }

@@ -110,14 +110,8 @@ fn the_training_envelope_survives_export_and_inspect_prints_it() {
     assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 4);
     assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
     // int8 export keeps the bounds as stored.
-    let (int8, _) = visviva_trainer::deploy::export::export(
-        &m,
-        WeightKind::Int8,
-        &IntegratorOverrides::default(),
-        20,
-        2,
-    )
-    .unwrap();
+    let (int8, _) =
+        export_checked(&m, WeightKind::Int8, &IntegratorOverrides::default(), 20, 2).unwrap();
     assert_eq!(BlobModel::from_bytes(&int8).unwrap().envelope, m.envelope);
     let r = visviva_trainer::deploy::inspect::inspect(&bytes).unwrap();
     assert_eq!(r.format_version, 4);

@@ -210,6 +210,8 @@ fn a_fitted_blob_carries_its_training_range_widened_by_a_tenth() {
         envelope_low: vec![5.0, 5.0],
         envelope_high: vec![6.0, 6.0],
         energy_threshold: None,
+        process_variance_per_energy: None,
+        energy_reference: None,
     };
     let host = visviva_trainer::deploy::blob::HostModel::from_bytes(&bytes).unwrap();
     let mut obs = ObserverRun::new(&host, settings.clone()).unwrap();

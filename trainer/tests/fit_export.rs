@@ -1,6 +1,7 @@
 //! Exported blobs evaluate like the trainer: a briefly trained model of a
 //! two-stage vibration-isolation mount (two masses on two springs in series)
-//! is written as a blob, parsed by visviva-runtime, and its energy and gradient
+//! in every structure (separable with quadratic or network kinetic term,
+//! general, mechanical) is written as a blob, parsed by visviva-runtime, and its energy and gradient
 //! dH/dx compared with the trainer's own f32 computation at random states.
 //! The two use different tanh/softplus implementations (std vs the runtime's
 //! deterministic ones, both within ~2.5e-7 of the true value), so agreement is
@@ -74,10 +75,17 @@ fn runtime_matches_trainer_for_every_structure() {
     let mut worst_grad = 0.0f64;
     let mut worst_energy = 0.0f64;
     for activation in [Activation::Tanh, Activation::Softplus] {
-        for (separable, quadratic) in [(true, true), (true, false), (false, false)] {
+        let structures = [
+            (true, true, false),
+            (true, false, false),
+            (false, false, false),
+            (false, false, true),
+        ];
+        for (separable, quadratic, mechanical) in structures {
             let choice = ArchChoice {
                 separable,
                 quadratic_kinetic: quadratic,
+                mechanical,
                 hidden: vec![32, 24],
                 activation,
             };

@@ -7,6 +7,9 @@
 //!   derivative in parameter space; the loss is then formed in dual numbers
 //!   and its derivative must equal gradient . direction;
 //! * against central finite differences of the trainer's own loss.
+//!
+//! The architectures: general, separable (quadratic and network kinetic
+//! term) and mechanical (M(q)^-1 = L(q) L(q)^T + eps I from a network).
 
 mod common;
 
@@ -89,7 +92,25 @@ fn cases() -> Vec<Case> {
                     kinetic: KineticArch::Network(MlpShape::new(dof, &[5], 1, act)),
                 },
             });
+            v.push(Case {
+                name: "mechanical",
+                dof,
+                arch: EnergyArch::Mechanical {
+                    potential: MlpShape::new(dof, &h, 1, act),
+                    factor: MlpShape::new(dof, &[6, 4], dof * (dof + 1) / 2, act),
+                },
+            });
         }
+        // Three degrees of freedom: L has off-diagonal entries below the
+        // first column too.
+        v.push(Case {
+            name: "mechanical",
+            dof: 3,
+            arch: EnergyArch::Mechanical {
+                potential: MlpShape::new(3, &[5], 1, act),
+                factor: MlpShape::new(3, &[7], 6, act),
+            },
+        });
     }
     v
 }

@@ -267,6 +267,16 @@ pub enum OwnedEnergy {
         /// T over the n momenta.
         kinetic: OwnedKinetic,
     },
+    /// H = 1/2 z_p^T (L(z_q) L(z_q)^T + floor I) z_p + V(z_q), L from the
+    /// factor network (n (n + 1) / 2 outputs, softplus on the diagonal).
+    Mechanical {
+        /// The factor network L(z_q).
+        factor: OwnedMlp,
+        /// eps on the diagonal of M^-1.
+        floor: f32,
+        /// V over the n coordinates.
+        potential: OwnedMlp,
+    },
 }
 
 /// A whole model that encodes into a blob.
@@ -383,6 +393,15 @@ impl OwnedModel {
     pub fn desc(&self) -> Result<ModelDesc<'_>, BuildError> {
         let energy = match &self.energy {
             OwnedEnergy::General(m) => EnergyDesc::General(m.desc()?),
+            OwnedEnergy::Mechanical {
+                factor,
+                floor,
+                potential,
+            } => EnergyDesc::Mechanical {
+                factor: factor.desc()?,
+                floor: *floor,
+                potential: potential.desc()?,
+            },
             OwnedEnergy::Separable { potential, kinetic } => EnergyDesc::Separable {
                 potential: potential.desc()?,
                 kinetic: match kinetic {

@@ -3,6 +3,9 @@
 //! quadratic kinetic term) and the coordinate tangent of network port terms
 //! L(q), G(q). With z_i = (x_i - o_i) / s_i and H = e E(z):
 //! (H'' dx)_i = e (E''(z) dz)_i / s_i with dz_i = dx_i / s_i.
+//! A mechanical model (M(q) from a network) has no Hessian-vector product
+//! here yet: it is refused with `StepError::NoSecondDerivatives`, so the
+//! observer and the exact step Jacobian do not take it.
 
 use super::{Model, PortMatrix};
 use crate::energy::{Energy, Kinetic};
@@ -119,6 +122,8 @@ impl<const D: usize, const W: usize> Tangent<D> for Model<'_, D, W> {
                 hq[..n].copy_from_slice(&hz[..n]);
                 hp[..n].copy_from_slice(&hz[n..2 * n]);
             }
+            // Not yet: the observer refuses a mechanical model.
+            Energy::Mechanical(_) => return Err(StepError::NoSecondDerivatives),
             Energy::Separable { potential, kinetic } => {
                 potential.gradient_and_hvp(&zq[..n], &dzq[..n], &mut g[..n], &mut hq[..n]);
                 match kinetic {

@@ -88,3 +88,36 @@ pub fn general(
         rng,
     )
 }
+
+/// A mechanical fixture: the factor L(z_q) and V are MLPs with `hidden`
+/// widths (L with n (n + 1) / 2 outputs), the floor eps = `floor`.
+#[allow(clippy::too_many_arguments)]
+pub fn mechanical(
+    rng: &mut XorShift64Star,
+    dof: usize,
+    hidden: &[usize],
+    act: Activation,
+    precision: Precision,
+    method: Method,
+    dt: f32,
+    floor: f32,
+) -> OwnedModel {
+    let sizes = |out: usize| {
+        let mut s = vec![dof];
+        s.extend_from_slice(hidden);
+        s.push(out);
+        s
+    };
+    let factor = OwnedMlp::random(rng, &sizes(dof * (dof + 1) / 2), act, precision);
+    let potential = OwnedMlp::random(rng, &sizes(1), act, precision);
+    random_model(
+        dof,
+        OwnedEnergy::Mechanical {
+            factor,
+            floor,
+            potential,
+        },
+        Integrator::new(method, dt),
+        rng,
+    )
+}

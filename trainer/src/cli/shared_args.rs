@@ -77,7 +77,7 @@ impl clap::ValueEnum for WeightKind {
 
 impl clap::ValueEnum for Arch {
     fn value_variants<'a>() -> &'a [Self] {
-        &[Arch::Separable, Arch::General]
+        &[Arch::Separable, Arch::General, Arch::Mechanical]
     }
 
     fn to_possible_value(&self) -> Option<PossibleValue> {
@@ -86,6 +86,10 @@ impl clap::ValueEnum for Arch {
                 .help("H = T(p) + V(q): explicit symplectic stepping on the device"),
             Arch::General => PossibleValue::new("general")
                 .help("H(q, p) over all coordinates: needs an implicit method on the device"),
+            Arch::Mechanical => PossibleValue::new("mechanical").help(
+                "H = 1/2 p^T M(q)^-1 p + V(q): a linkage whose mass matrix depends on the \
+                 angles; needs an implicit method on the device",
+            ),
         })
     }
 }

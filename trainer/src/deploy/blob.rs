@@ -89,6 +89,16 @@ pub enum Energy {
         /// T(z_p).
         kinetic: Kinetic,
     },
+    /// 1/2 z_p^T (L(z_q) L(z_q)^T + floor I) z_p + V(z_q) (format version 5).
+    Mechanical {
+        /// The factor network L(z_q): n (n + 1) / 2 outputs, row by row,
+        /// softplus on the diagonal.
+        factor: Mlp,
+        /// eps on the diagonal of M^-1 (normalized units).
+        floor: f32,
+        /// V(z_q).
+        potential: Mlp,
+    },
 }
 
 /// A port matrix (the factor L of R, or G): constant entries, or a network
@@ -342,6 +352,15 @@ impl BlobModel {
                     KineticDesc::Network(m) => Kinetic::Network(Mlp::from_desc(m)),
                 },
             },
+            EnergyDesc::Mechanical {
+                factor,
+                floor,
+                potential,
+            } => Energy::Mechanical {
+                factor: Mlp::from_desc(factor),
+                floor: *floor,
+                potential: Mlp::from_desc(potential),
+            },
         };
         Ok(Self {
             dof: d.dof as usize,
@@ -384,6 +403,9 @@ impl BlobModel {
         let scale = le(&self.scale);
         let (pb, kb, chol) = match &self.energy {
             Energy::General(m) => (Bytes::of(m), None, Vec::new()),
+            Energy::Mechanical {
+                factor, potential, ..
+            } => (Bytes::of(potential), Some(Bytes::of(factor)), Vec::new()),
             Energy::Separable { potential, kinetic } => match kinetic {
                 Kinetic::Quadratic(l) => (Bytes::of(potential), None, le(l)),
                 Kinetic::Network(k) => (Bytes::of(potential), Some(Bytes::of(k)), Vec::new()),
@@ -391,6 +413,18 @@ impl BlobModel {
         };
         let energy = match &self.energy {
             Energy::General(m) => EnergyDesc::General(pb.desc(m)?),
+            Energy::Mechanical {
+                factor,
+                floor,
+                potential,
+            } => EnergyDesc::Mechanical {
+                factor: kb
+                    .as_ref()
+                    .context("mechanical factor bytes")?
+                    .desc(factor)?,
+                floor: *floor,
+                potential: pb.desc(potential)?,
+            },
             Energy::Separable { potential, kinetic } => EnergyDesc::Separable {
                 potential: pb.desc(potential)?,
                 kinetic: match (kinetic, &kb) {
@@ -466,6 +500,9 @@ impl BlobModel {
     pub fn networks(&self) -> Vec<(&'static str, &Mlp)> {
         let mut v = match &self.energy {
             Energy::General(m) => vec![("energy", m)],
+            Energy::Mechanical {
+                factor, potential, ..
+            } => vec![("potential", potential), ("mass factor", factor)],
             Energy::Separable { potential, kinetic } => {
                 let mut v = vec![("potential", potential)];
                 if let Kinetic::Network(k) = kinetic {
@@ -514,6 +551,15 @@ impl BlobModel {
     pub fn converted(&self, kind: WeightKind) -> Self {
         let energy = match &self.energy {
             Energy::General(m) => Energy::General(m.converted(kind)),
+            Energy::Mechanical {
+                factor,
+                floor,
+                potential,
+            } => Energy::Mechanical {
+                factor: factor.converted(kind),
+                floor: *floor,
+                potential: potential.converted(kind),
+            },
             Energy::Separable { potential, kinetic } => Energy::Separable {
                 potential: potential.converted(kind),
                 kinetic: match kinetic {
@@ -542,6 +588,15 @@ impl BlobModel {
         let act = |m: &Mlp| format!("{:?}", m.activation).to_lowercase();
         match &self.energy {
             Energy::General(m) => format!("general H {} {}", w(m), act(m)),
+            Energy::Mechanical {
+                factor, potential, ..
+            } => format!(
+                "mechanical V {} {}, M(q)^-1 factor {} {}",
+                w(potential),
+                act(potential),
+                w(factor),
+                act(factor)
+            ),
             Energy::Separable { potential, kinetic } => format!(
                 "separable V {} {}, T {}",
                 w(potential),

@@ -48,6 +48,14 @@ pub fn blob_model(model: &EnergyModel, integrator: Integrator) -> BlobModel {
     let n = model.dof;
     let energy = match &model.arch {
         EnergyArch::General(m) => Energy::General(blob_mlp(m, &model.params)),
+        EnergyArch::Mechanical { potential, factor } => {
+            let (pv, pf) = model.params.split_at(potential.param_count());
+            Energy::Mechanical {
+                factor: blob_mlp(factor, pf),
+                floor: crate::learn::mechanical::FLOOR,
+                potential: blob_mlp(potential, pv),
+            }
+        }
         EnergyArch::Separable { potential, kinetic } => {
             let (pv, pt) = model.params.split_at(potential.param_count());
             let kinetic = match kinetic {

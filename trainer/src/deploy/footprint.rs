@@ -88,6 +88,9 @@ fn any_int8(desc: &ModelDesc<'_>) -> bool {
     };
     let energy = match &desc.energy {
         EnergyDesc::General(m) => int8(m),
+        EnergyDesc::Mechanical {
+            factor, potential, ..
+        } => int8(factor) || int8(potential),
         EnergyDesc::Separable { potential, kinetic } => {
             int8(potential) || matches!(kinetic, KineticDesc::Network(k) if int8(k))
         }

@@ -116,6 +116,16 @@ pub fn inspect(bytes: &[u8]) -> Result<Inspection> {
     ));
     match &desc.energy {
         EnergyDesc::General(m) => sections.push(("energy network".into(), postcard_len(m) + 1)),
+        EnergyDesc::Mechanical {
+            factor,
+            floor,
+            potential,
+        } => {
+            // The variant tag goes with the first section.
+            sections.push(("mass-factor network L(q)".into(), postcard_len(factor) + 1));
+            sections.push(("mass floor".into(), postcard_len(floor)));
+            sections.push(("potential network".into(), postcard_len(potential)));
+        }
         EnergyDesc::Separable { potential, kinetic } => {
             sections.push(("potential network".into(), postcard_len(potential) + 1));
             let name = match kinetic {

@@ -30,6 +30,14 @@ pub fn plain_description(m: &BlobModel) -> String {
             "energy = one function of positions and momenta together ({})",
             network(net, "positions and momenta")
         ),
+        Energy::Mechanical {
+            factor, potential, ..
+        } => format!(
+            "energy = kinetic (learned mass matrix that depends on the positions, its inverse's \
+             factor a {}) + potential ({})",
+            network(factor, "positions"),
+            network(potential, "positions")
+        ),
         Energy::Separable { potential, kinetic } => {
             let kin = match kinetic {
                 Kinetic::Quadratic(_) => "learned constant mass".to_string(),

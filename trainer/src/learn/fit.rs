@@ -83,6 +83,9 @@ pub struct ArchChoice {
     pub separable: bool,
     /// For separable models: quadratic T (learned inverse mass) or a network.
     pub quadratic_kinetic: bool,
+    /// Mechanical E = V(q) + 1/2 p^T M(q)^-1 p with M(q)^-1 = L(q) L(q)^T +
+    /// eps I (`separable` is then false).
+    pub mechanical: bool,
     /// Hidden-layer widths.
     pub hidden: Vec<usize>,
     /// Hidden-layer activation.
@@ -98,6 +101,7 @@ impl Default for ArchChoice {
         Self {
             separable: true,
             quadratic_kinetic: true,
+            mechanical: false,
             hidden: vec![64, 64],
             activation: Activation::Tanh,
         }
@@ -122,7 +126,19 @@ impl ArchChoice {
             bail!("{dof} degrees of freedom is more than the runtime supports");
         }
         let a = self.activation;
-        Ok(if self.separable {
+        let factor_outputs = dof * (dof + 1) / 2;
+        if self.mechanical && factor_outputs > 128 {
+            bail!(
+                "a mechanical model of {dof} degrees of freedom needs {factor_outputs} mass-factor \
+                 outputs; the runtime's widest layer is 128"
+            );
+        }
+        Ok(if self.mechanical {
+            EnergyArch::Mechanical {
+                potential: MlpShape::new(dof, &self.hidden, 1, a),
+                factor: MlpShape::new(dof, &self.hidden, factor_outputs, a),
+            }
+        } else if self.separable {
             EnergyArch::Separable {
                 potential: MlpShape::new(dof, &self.hidden, 1, a),
                 kinetic: if self.quadratic_kinetic {
@@ -251,13 +267,15 @@ fn check_matching(train: &Dataset, val: &Dataset) -> Result<()> {
     Ok(())
 }
 
+/// Whether the kinetic energy is quadratic in p (constant or q-dependent
+/// mass): its minimum must then sit at p = 0, so momenta are not centred.
 fn quadratic_kinetic(arch: &EnergyArch) -> bool {
     matches!(
         arch,
         EnergyArch::Separable {
             kinetic: KineticArch::Quadratic,
             ..
-        }
+        } | EnergyArch::Mechanical { .. }
     )
 }
 

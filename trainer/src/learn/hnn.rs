@@ -26,6 +26,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use crate::data::dataset::Dataset;
+use crate::learn::mechanical;
 use crate::learn::net::{self, Activation, MlpShape, MlpWork};
 pub use crate::learn::port::{PhysicalTerm, PortArch, PortModel, PortObjective};
 
@@ -52,6 +53,15 @@ pub enum EnergyArch {
         /// The kinetic term.
         kinetic: KineticArch,
     },
+    /// E = V(z_q) + 1/2 z_p^T (L(z_q) L(z_q)^T + eps I) z_p (see
+    /// [`crate::learn::mechanical`]); parameters are V's followed by the
+    /// factor network's.
+    Mechanical {
+        /// The potential network over n coordinates.
+        potential: MlpShape,
+        /// The factor network: n inputs, n (n + 1) / 2 outputs.
+        factor: MlpShape,
+    },
 }
 
 impl EnergyArch {
@@ -59,6 +69,9 @@ impl EnergyArch {
     pub fn param_count(&self, dof: usize) -> usize {
         match self {
             Self::General(m) => m.param_count(),
+            Self::Mechanical { potential, factor } => {
+                potential.param_count() + factor.param_count()
+            }
             Self::Separable { potential, kinetic } => {
                 potential.param_count()
                     + match kinetic {
@@ -75,6 +88,10 @@ impl EnergyArch {
         let mut p = Vec::with_capacity(self.param_count(dof));
         match self {
             Self::General(m) => m.init(&mut rng, &mut p),
+            Self::Mechanical { potential, factor } => {
+                potential.init(&mut rng, &mut p);
+                factor.init(&mut rng, &mut p);
+            }
             Self::Separable { potential, kinetic } => {
                 potential.init(&mut rng, &mut p);
                 match kinetic {
@@ -302,6 +319,20 @@ impl HnnObjective {
                 work.u.assign(&work.first.input_grad());
                 work.first.output().column(0).to_owned()
             }
+            EnergyArch::Mechanical { potential, factor } => {
+                let (pv, pf) = p.split_at(potential.param_count());
+                let zq = z.slice(s![.., ..n]);
+                net::forward(potential, pv, zq, &mut work.first);
+                net::input_gradient(potential, pv, &mut work.first);
+                net::forward(factor, pf, zq, &mut work.second);
+                let zp = z.slice(s![.., n..2 * n]);
+                let (t, up, seed) = mechanical::kinetic(work.second.output(), zp, n);
+                net::input_vjp(factor, pf, seed.view(), &mut work.second);
+                let uq = &work.first.input_grad() + &work.second.input_grad();
+                work.u.slice_mut(s![.., ..n]).assign(&uq);
+                work.u.slice_mut(s![.., n..]).assign(&up);
+                &work.first.output().column(0) + &t
+            }
             EnergyArch::Separable { potential, kinetic } => {
                 let np = potential.param_count();
                 let (pv, pt) = p.split_at(np);
@@ -387,6 +418,24 @@ impl HnnObjective {
         match &self.arch {
             EnergyArch::General(m) => {
                 net::backprop_input_gradient_loss(m, p, work.r.view(), &mut work.first, grad);
+            }
+            EnergyArch::Mechanical { potential, factor } => {
+                let np = potential.param_count();
+                let (pv, pf) = p.split_at(np);
+                let (gv, gf) = grad.split_at_mut(np);
+                let rq = work.r.slice(s![.., ..n]);
+                net::backprop_input_gradient_loss(potential, pv, rq, &mut work.first, gv);
+                // r_q . J^T a at fixed a, then a's and dT/dz_p's dependence
+                // on the factor outputs.
+                net::backprop_input_gradient_loss(factor, pf, rq, &mut work.second, gf);
+                let c = mechanical::factor_cotangent(
+                    work.second.output(),
+                    z.slice(s![.., n..2 * n]),
+                    work.r.slice(s![.., n..]),
+                    work.second.tangent_output(),
+                    n,
+                );
+                net::backprop_output_loss(factor, pf, c.view(), &mut work.second, gf);
             }
             EnergyArch::Separable { potential, kinetic } => {
                 let np = potential.param_count();
@@ -555,7 +604,9 @@ impl EnergyModel {
     pub fn activation(&self) -> Activation {
         match &self.arch {
             EnergyArch::General(m) => m.activation,
-            EnergyArch::Separable { potential, .. } => potential.activation,
+            EnergyArch::Separable { potential, .. } | EnergyArch::Mechanical { potential, .. } => {
+                potential.activation
+            }
         }
     }
 }

@@ -3,6 +3,7 @@
 
 pub mod fit;
 pub mod hnn;
+pub mod mechanical;
 pub mod mode;
 pub mod net;
 pub mod optim;

@@ -1,5 +1,6 @@
 //! Batched multilayer perceptrons on `ndarray` (f32) for training: forward
-//! pass with cached pre-activations, the input gradient of a scalar output,
+//! pass with cached pre-activations, the input gradient of a scalar output
+//! (or the vector-Jacobian product of a many-output one, seed g_{L-1}),
 //! and parameter gradients of (a) a loss on the outputs and (b) a loss on the
 //! *input gradient* (double backpropagation), all as matrix products over the
 //! batch with buffers kept in a reusable [`MlpWork`].
@@ -208,6 +209,12 @@ impl MlpWork {
     pub fn input_grad(&self) -> ArrayView2<'_, f32> {
         self.d[0].view()
     }
+
+    /// The output tangent J R of the last [`backprop_input_gradient_loss`]
+    /// along R (rows x outputs).
+    pub fn tangent_output(&self) -> ArrayView2<'_, f32> {
+        self.zdot[self.zdot.len() - 1].view()
+    }
 }
 
 /// Forward pass over the rows of `x`; caches what the backward passes need.
@@ -243,6 +250,23 @@ pub fn input_gradient(shape: &MlpShape, p: &[f32], work: &mut MlpWork) {
     assert_eq!(shape.outputs(), 1, "input gradient needs a scalar output");
     let l = shape.layers();
     work.g[l - 1].fill(1.0);
+    input_pullback(shape, p, work);
+}
+
+/// The vector-Jacobian product J(x_b)^T seed_b of a many-output network
+/// for the rows of the last [`forward`] (`seed`: rows x outputs); the
+/// result is in [`MlpWork::input_grad`]. [`backprop_input_gradient_loss`]
+/// then gives the parameter gradient of sum_b R_b . J^T seed_b with the
+/// seed held fixed, and [`MlpWork::tangent_output`] the tangent J R.
+pub fn input_vjp(shape: &MlpShape, p: &[f32], seed: ArrayView2<'_, f32>, work: &mut MlpWork) {
+    let l = shape.layers();
+    work.g[l - 1].assign(&seed);
+    input_pullback(shape, p, work);
+}
+
+/// The reverse pass from the output adjoint in `work.g[L-1]` to the input.
+fn input_pullback(shape: &MlpShape, p: &[f32], work: &mut MlpWork) {
+    let l = shape.layers();
     for k in (0..l).rev() {
         let (w, _) = shape.layer(p, k);
         general_mat_mul(1.0, &work.g[k], &w, 0.0, &mut work.d[k]);

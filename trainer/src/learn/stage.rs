@@ -207,7 +207,11 @@ pub fn check_method(method: Method, separable: bool, port: bool, setting: &str) 
         );
     }
     if method.needs_separable() && !separable {
-        bail!("{setting} = \"{name}\" needs a separable energy (arch = separable); use midpoint");
+        bail!(
+            "{setting} = \"{name}\" needs a separable energy H = T(p) + V(q) (arch = separable); \
+             a general or mechanical energy is not separable (a mechanical one's kinetic energy \
+             depends on q through M(q)); use midpoint or discrete-gradient"
+        );
     }
     Ok(())
 }

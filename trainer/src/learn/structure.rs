@@ -16,6 +16,9 @@ pub enum Arch {
     Separable,
     /// H(q, p) over all coordinates: needs an implicit method on the device.
     General,
+    /// H = 1/2 p^T M(q)^-1 p + V(q): a rigid linkage, whose mass matrix
+    /// depends on the angles; needs an implicit method on the device.
+    Mechanical,
 }
 
 /// Kinetic term of a separable model.
@@ -66,6 +69,7 @@ pub fn arch_choice(
     Ok(ArchChoice {
         separable: arch == Arch::Separable,
         quadratic_kinetic: kinetic == KineticKind::Quadratic,
+        mechanical: arch == Arch::Mechanical,
         hidden: hidden.to_vec(),
         activation: energy_activation(activation, activation_setting)?,
     })

@@ -15,6 +15,7 @@ pub mod crane;
 pub mod drivetrain;
 pub mod excitation;
 pub mod flexure;
+pub mod linkage;
 pub mod mount;
 pub mod params;
 pub mod simulate;
@@ -183,6 +184,12 @@ pub const CATALOG: &[SystemEntry] = &[
             inputs: &["m/s^2"],
             ..ANGULAR
         },
+    },    SystemEntry {
+        name: "double-pendulum",
+        summary: "two-link arm hanging from a pivot (double pendulum, point masses): the mass matrix depends on the angles, 2 dof",
+        params: linkage::DOUBLE_PENDULUM_PARAMS,
+        build: linkage::DoublePendulum::build,
+        units: ANGULAR,
     },
 ];
 
@@ -299,7 +306,13 @@ mod tests {
         // coupled-oscillator result).
         let m = build_system("mount", &[]).unwrap();
         let w_slow = (4000.0 * (3.0 - 5f64.sqrt()) / 2.0).sqrt();
-        assert!((m.small_amplitude_period().unwrap() - 2.0 * PI / w_slow).abs() < 1e-12);
+        assert!((m.small_amplitude_period().unwrap() - 2.0 * PI / w_slow).abs() < 1e-12); // Double pendulum with equal masses and lengths: w^2 = (g/l)(2 -+ sqrt 2)
+                                                                                          // (textbook normal modes, e.g. Goldstein ch. 6; from memory).
+        let params = [("m1", 1.3), ("m2", 1.3), ("l1", 0.7), ("l2", 0.7)];
+        let params: Vec<(String, f64)> = params.iter().map(|(k, v)| (k.to_string(), *v)).collect();
+        let d = build_system("double-pendulum", &params).unwrap();
+        let w_slow = (9.81 / 0.7 * (2.0 - 2f64.sqrt())).sqrt();
+        assert!((d.small_amplitude_period().unwrap() * w_slow / (2.0 * PI) - 1.0).abs() < 1e-12);
     }
 
     #[test]

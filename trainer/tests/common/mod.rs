@@ -72,6 +72,35 @@ pub fn energy_generic<T: DualNum<Primitive = f64> + Copy>(
             };
             v + t
         }
+        EnergyArch::Mechanical { potential, factor } => {
+            // 1/2 z_p^T (L L^T + eps I) z_p + V, L_ij the factor outputs row
+            // by row, softplus ln(1 + e^x) on the diagonal; M^-1 formed
+            // explicitly (the trainer never forms it).
+            let np = potential.param_count();
+            let soft = potential.activation == Activation::Softplus;
+            let v = mlp_generic(potential, &p[..np], &z[..n], soft)[0];
+            let raw = mlp_generic(factor, &p[np..], &z[..n], soft);
+            let l = |i: usize, j: usize| {
+                let r = raw[tri_index(i, j)];
+                if i == j {
+                    (r.exp() + 1.0).ln()
+                } else {
+                    r
+                }
+            };
+            let eps = visviva_trainer::learn::mechanical::FLOOR as f64;
+            let mut t = T::zero();
+            for a in 0..n {
+                for b in 0..n {
+                    let mut minv = if a == b { T::from(eps) } else { T::zero() };
+                    for k in 0..=a.min(b) {
+                        minv += l(a, k) * l(b, k);
+                    }
+                    t += z[n + a] * minv * z[n + b] * 0.5;
+                }
+            }
+            v + t
+        }
     }
 }
 

@@ -1,0 +1,167 @@
+//! The mechanical energy of a rigid linkage in normalized coordinates:
+//! E(z_q, z_p) = 1/2 z_p^T (L(z_q) L(z_q)^T + eps I) z_p + V(z_q), with L
+//! lower triangular from a network of z_q (diagonal through softplus, so
+//! M^-1 is positive definite) and V a network. The gradient is analytic:
+//! dE/dz_p = L L^T z_p + eps z_p, and dE/dz_q = dV/dz_q plus the factor
+//! network's vector-Jacobian product with dE/dL_ij = z_p,i (L^T z_p)_j
+//! (times sigmoid on the diagonal). One forward and one reverse pass per
+//! network; fixed-order sums, no heap.
+
+use crate::error::{BlobError, Section};
+use crate::format::{self, MlpDesc, MAX_LAYERS};
+use crate::math;
+use crate::mlp::Mlp;
+
+const CAP: usize = crate::MAX_DOF_SUPPORTED;
+
+/// A validated mechanical energy.
+#[derive(Debug, Clone, Copy)]
+pub struct Mechanical<'a, const W: usize> {
+    factor: Mlp<'a, W>,
+    floor: f32,
+    potential: Mlp<'a, W>,
+}
+
+/// Index of L_ij (i >= j) in the row-by-row packing.
+#[inline(always)]
+fn at(i: usize, j: usize) -> usize {
+    i * (i + 1) / 2 + j
+}
+
+impl<'a, const W: usize> Mechanical<'a, W> {
+    /// Validate the two networks and the floor for `n` degrees of freedom.
+    pub fn validate(
+        factor: &MlpDesc<'a>,
+        floor: f32,
+        potential: &MlpDesc<'a>,
+        n: usize,
+    ) -> Result<Self, BlobError> {
+        let section = Section::MassFactor;
+        if n > CAP {
+            return Err(BlobError::ShapeMismatch { section, layer: 0 });
+        }
+        if !floor.is_finite() {
+            return Err(BlobError::NonFinite { section });
+        }
+        if floor < 0.0 {
+            return Err(BlobError::NotPositive { section });
+        }
+        if floor != 0.0 && !format::scale_in_range(floor) {
+            return Err(BlobError::OutOfRange { section });
+        }
+        Ok(Self {
+            factor: Mlp::validate(factor, n, n * (n + 1) / 2, section)?,
+            floor,
+            potential: Mlp::validate(potential, n, 1, Section::Potential)?,
+        })
+    }
+
+    /// The factor network's raw outputs turned into L (softplus on the
+    /// diagonal); `slope` receives dL/draw (sigmoid on the diagonal, 1 off
+    /// it).
+    fn factor_from_raw(raw: &[f32; W], n: usize, l: &mut [f32; W], slope: &mut [f32; W]) {
+        for i in 0..n {
+            for j in 0..=i {
+                let k = at(i, j);
+                if i == j {
+                    l[k] = math::softplus(raw[k]);
+                    slope[k] = math::sigmoid(raw[k]);
+                } else {
+                    l[k] = raw[k];
+                    slope[k] = 1.0;
+                }
+            }
+        }
+    }
+
+    /// u = L^T z_p (u_j = sum_{i >= j} L_ij z_i, in index order).
+    fn project(l: &[f32; W], zp: &[f32], n: usize) -> [f32; CAP] {
+        let mut u = [0.0f32; CAP];
+        for (j, uj) in u.iter_mut().enumerate().take(n) {
+            let mut acc = 0.0f32;
+            for (i, zi) in zp.iter().enumerate().take(n).skip(j) {
+                acc += l[at(i, j)] * zi;
+            }
+            *uj = acc;
+        }
+        u
+    }
+
+    /// 1/2 (|L^T z_p|^2 + eps |z_p|^2).
+    fn kinetic(&self, u: &[f32; CAP], zp: &[f32], n: usize) -> f32 {
+        let (mut uu, mut zz) = (0.0f32, 0.0f32);
+        for (uj, zj) in u.iter().zip(zp).take(n) {
+            uu += uj * uj;
+            zz += zj * zj;
+        }
+        0.5 * (uu + self.floor * zz)
+    }
+
+    /// E at (z_q, z_p), both of length n.
+    pub fn value(&self, zq: &[f32], zp: &[f32]) -> f32 {
+        let n = zq.len().min(zp.len()).min(CAP);
+        if n * (n + 1) / 2 > W {
+            return f32::NAN; // refused at validation (the factor is too wide)
+        }
+        let (mut raw, mut l, mut slope) = ([0.0f32; W], [0.0f32; W], [0.0f32; W]);
+        self.factor.evaluate(zq, &mut raw);
+        Self::factor_from_raw(&raw, n, &mut l, &mut slope);
+        let u = Self::project(&l, zp, n);
+        self.kinetic(&u, zp, n) + self.potential.value(zq)
+    }
+
+    /// E at (z_q, z_p) and its gradient: dE/dz_q into `gq`, dE/dz_p into
+    /// `gp` (length n each).
+    pub fn value_and_gradient(
+        &self,
+        zq: &[f32],
+        zp: &[f32],
+        gq: &mut [f32],
+        gp: &mut [f32],
+    ) -> f32 {
+        let n = zq.len().min(zp.len()).min(CAP).min(gq.len()).min(gp.len());
+        if n * (n + 1) / 2 > W {
+            return f32::NAN; // refused at validation (the factor is too wide)
+        }
+        let mut tape = [[0.0f32; W]; MAX_LAYERS];
+        let (mut raw, mut l, mut slope) = ([0.0f32; W], [0.0f32; W], [0.0f32; W]);
+        self.factor.evaluate_taped(zq, &mut tape, &mut raw);
+        Self::factor_from_raw(&raw, n, &mut l, &mut slope);
+        let u = Self::project(&l, zp, n);
+        // dE/dz_p = L u + eps z_p.
+        for (i, g) in gp.iter_mut().enumerate().take(n) {
+            let mut acc = 0.0f32;
+            for (j, uj) in u.iter().enumerate().take(i + 1) {
+                acc += l[at(i, j)] * uj;
+            }
+            *g = acc + self.floor * zp[i];
+        }
+        // dE/draw_ij = z_p,i u_j dL_ij/draw_ij, pulled back to z_q.
+        let mut seed = [0.0f32; W];
+        for i in 0..n {
+            for j in 0..=i {
+                let k = at(i, j);
+                seed[k] = zp[i] * u[j] * slope[k];
+            }
+        }
+        let mut gv = [0.0f32; CAP];
+        let v = self.potential.value_and_gradient(zq, &mut gv[..n]);
+        self.factor
+            .pullback(&tape, &seed[..n * (n + 1) / 2], &mut gq[..n]);
+        for (g, dv) in gq.iter_mut().zip(&gv).take(n) {
+            *g += dv;
+        }
+        self.kinetic(&u, zp, n) + v
+    }
+
+    /// Multiply-accumulates of one gradient (both networks forward and
+    /// back, plus the quadratic form).
+    pub fn macs(&self, n: usize) -> u32 {
+        self.factor.macs_per_gradient() + self.potential.macs_per_gradient() + (2 * n * n) as u32
+    }
+
+    /// Learned parameters of both networks.
+    pub fn parameters(&self) -> u32 {
+        self.factor.parameters() + self.potential.parameters()
+    }
+}

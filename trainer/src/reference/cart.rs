@@ -117,9 +117,9 @@ impl CraneCart {
 
     /// The angular frequency of small swings about the hanging rest with
     /// the trolley free: linearizing at theta = 0, det(K - w^2 M(0)) = 0 with
-    /// K = diag(0, m g l) gives w^2 [(M + m) m l^2 w^2 - m^2 l^2 w^2
-    /// - (M + m) m g l] = 0, so besides the zero mode (the whole crane
-    /// rolling) w^2 = g (M + m) / (M l).
+    /// K = diag(0, m g l) gives
+    /// w^2 [(M + m) m l^2 w^2 - m^2 l^2 w^2 - (M + m) m g l] = 0, so besides
+    /// the zero mode (the whole crane rolling) w^2 = g (M + m) / (M l).
     pub fn swing_frequency(&self) -> f64 {
         (self.g * (self.trolley + self.m) / (self.trolley * self.l)).sqrt()
     }

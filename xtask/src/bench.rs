@@ -255,100 +255,30 @@ fn run_one(
         cfg.threads
     ));
     let _ = std::fs::remove_file(&json);
-    let hidden = HIDDEN.map(|w| w.to_string()).join(",");
-    let (batch, steps_s, threads) = (
-        cfg.batch.to_string(),
-        steps.to_string(),
-        cfg.threads.to_string(),
-    );
-    let mut args: Vec<String> = Vec::new();
-    let program = match imp {
-        Impl::Visviva => {
-            let model = work.join("visviva-model.vvb");
-            for a in [
-                "fit",
-                "--data",
-                &data.display().to_string(),
-                "--val-fraction",
-                "0",
-                "--arch",
-                "general",
-                "--hidden",
-                &hidden,
-                "--batch",
-                &batch,
-                "--optimizer-steps",
-                &steps_s,
-                "--lr",
-                LR,
-                "--threads",
-                &threads,
-                "--no-early-stop",
-                "--quiet",
-                "--out",
-                &model.display().to_string(),
-                "--json",
-                &json.display().to_string(),
-            ] {
-                args.push(a.into());
-            }
-            tools.visviva.clone()
-        }
-        Impl::Torch | Impl::Jax => {
-            let script = root
-                .join("bench")
-                .join(format!("hnn_{}.py", imp.name()))
-                .display()
-                .to_string();
-            for a in [
-                script.as_str(),
-                "--data",
-                &data.display().to_string(),
-                "--hidden",
-                &hidden,
-                "--batch",
-                &batch,
-                "--optimizer-steps",
-                &steps_s,
-                "--lr",
-                LR,
-                "--threads",
-                &threads,
-                "--json",
-                &json.display().to_string(),
-            ] {
-                args.push(a.into());
-            }
-            if let Some(init) = &tools.init {
-                args.push("--init".into());
-                args.push(init.display().to_string());
-            }
+    let shared = SharedArgs {
+        data: data.display().to_string(),
+        hidden: HIDDEN.map(|w| w.to_string()).join(","),
+        batch: cfg.batch.to_string(),
+        steps: steps.to_string(),
+        threads: cfg.threads.to_string(),
+        json: json.display().to_string(),
+    };
+    let (program, args) = match imp {
+        Impl::Visviva => (tools.visviva.clone(), visviva_args(work, &shared)),
+        Impl::Torch | Impl::Jax => (
             tools
                 .python
                 .clone()
-                .context("no Python environment for the references")?
-        }
+                .context("no Python environment for the references")?,
+            reference_args(root, imp, &shared, tools.init.as_deref()),
+        ),
     };
-    let mut cmd = if tools.taskset {
-        let mut c = Command::new("taskset");
-        c.arg("-c")
-            .arg(
-                (0..cfg.threads)
-                    .map(|c| c.to_string())
-                    .collect::<Vec<_>>()
-                    .join(","),
-            )
-            .arg(&program);
-        c
-    } else {
-        Command::new(&program)
-    };
-    cmd.args(&args)
+    let out = pinned_command(tools, cfg, &program)
+        .args(&args)
         .current_dir(root.join("bench"))
         .env("CUDA_VISIBLE_DEVICES", "")
         .env("PYTHONDONTWRITEBYTECODE", "1")
-        .env("JAX_PLATFORMS", "cpu");
-    let out = cmd
+        .env("JAX_PLATFORMS", "cpu")
         .output()
         .with_context(|| format!("starting {}", program.display()))?;
     if !out.status.success() {
@@ -360,7 +290,101 @@ fn run_one(
             String::from_utf8_lossy(&out.stderr)
         );
     }
-    let text = std::fs::read_to_string(&json)
+    read_summary(imp, &json)
+}
+
+/// The settings every implementation gets, as command-line values.
+struct SharedArgs {
+    data: String,
+    hidden: String,
+    batch: String,
+    steps: String,
+    threads: String,
+    json: String,
+}
+
+/// `visviva fit` on the benchmark log: no validation split, no early stop.
+fn visviva_args(work: &Path, a: &SharedArgs) -> Vec<String> {
+    let model = work.join("visviva-model.vvb").display().to_string();
+    [
+        "fit",
+        "--data",
+        &a.data,
+        "--val-fraction",
+        "0",
+        "--arch",
+        "general",
+        "--hidden",
+        &a.hidden,
+        "--batch",
+        &a.batch,
+        "--optimizer-steps",
+        &a.steps,
+        "--lr",
+        LR,
+        "--threads",
+        &a.threads,
+        "--no-early-stop",
+        "--quiet",
+        "--out",
+        &model,
+        "--json",
+        &a.json,
+    ]
+    .map(String::from)
+    .to_vec()
+}
+
+/// A reference script (`bench/hnn_<impl>.py`) from the shared initial weights.
+fn reference_args(root: &Path, imp: Impl, a: &SharedArgs, init: Option<&Path>) -> Vec<String> {
+    let script = root
+        .join("bench")
+        .join(format!("hnn_{}.py", imp.name()))
+        .display()
+        .to_string();
+    let mut args: Vec<String> = [
+        script.as_str(),
+        "--data",
+        &a.data,
+        "--hidden",
+        &a.hidden,
+        "--batch",
+        &a.batch,
+        "--optimizer-steps",
+        &a.steps,
+        "--lr",
+        LR,
+        "--threads",
+        &a.threads,
+        "--json",
+        &a.json,
+    ]
+    .map(String::from)
+    .to_vec();
+    if let Some(init) = init {
+        args.push("--init".into());
+        args.push(init.display().to_string());
+    }
+    args
+}
+
+/// `program` pinned to the first `cfg.threads` CPUs when taskset works.
+fn pinned_command(tools: &Tools, cfg: Config, program: &Path) -> Command {
+    if !tools.taskset {
+        return Command::new(program);
+    }
+    let cpus = (0..cfg.threads)
+        .map(|c| c.to_string())
+        .collect::<Vec<_>>()
+        .join(",");
+    let mut c = Command::new("taskset");
+    c.arg("-c").arg(cpus).arg(program);
+    c
+}
+
+/// Throughput and final loss from the summary a run wrote.
+fn read_summary(imp: Impl, json: &Path) -> Result<RunResult> {
+    let text = std::fs::read_to_string(json)
         .with_context(|| format!("{} wrote no summary {}", imp.name(), json.display()))?;
     let get = |k: &str| {
         json_number(&text, k).with_context(|| format!("{}: no number `{k}`", json.display()))

@@ -477,7 +477,7 @@ pub(crate) fn correction_share(resid: f32, noise: f32) -> f32 {
 /// The slopes of k = `correction_share`(resid, noise) * resid with respect
 /// to resid and to noise (for the step's exact Jacobian): (share, 0) off the
 /// ramp, (share + |resid| / noise, -resid |resid| / noise^2) on it.
-#[cfg(feature = "discrete-gradient")]
+#[cfg(feature = "observer")]
 pub(crate) fn correction_slopes(resid: f32, noise: f32) -> (f32, f32) {
     let share = correction_share(resid, noise);
     let r = resid.abs();

@@ -185,7 +185,7 @@ fn start<'m, 'a>(
         let _ = model.momentum_from_velocity(&v[..n], &mut p[..n]);
     }
     let x0 = State::new(&q[..n], &p[..n]).unwrap_or_else(|e| fail(r, "initial state", e.into()));
-    let observer = Observer::new(
+    let mut observer = Observer::new(
         model,
         model.integrator(),
         x0,
@@ -193,6 +193,15 @@ fn start<'m, 'a>(
         &process[..2 * n],
     )
     .unwrap_or_else(|e| fail(r, "observer", e));
+    if let Some(reference) = plan.energy_reference() {
+        let mut per_energy = [0.0f32; STATE];
+        for (k, slot) in per_energy.iter_mut().enumerate().take(2 * n) {
+            *slot = plan.process_variance_per_energy(k);
+        }
+        observer
+            .set_energy_scaled_process(&per_energy[..2 * n], reference)
+            .unwrap_or_else(|e| fail(r, "energy-scaled process noise", e));
+    }
     Track {
         observer,
         monitor: AnyMonitor::new(plan.window(), plan.alarm(), plan.energy_threshold()),

@@ -7,7 +7,7 @@
 //! ```text
 //! offset  words     field
 //! 0       1         tag b"VOBS"
-//! 4       1         layout version (1)
+//! 4       1         layout version (2)
 //! 8       1         degrees of freedom n
 //! 12      1         inputs per row m
 //! 16      1         1 when the log has velocity columns v1..vn, else 0
@@ -15,12 +15,16 @@
 //! 24      1         false-alarm rate: 0 = 10 %, 1 = 5 %, 2 = 1 %, 3 = 0.2 %
 //! 28      1         updates kept out of the monitor at a trajectory's start
 //! 32      1         energy threshold (f32; +inf: the flag is never raised)
-//! 36      1         rows R
-//! 40      11 n      f32 constants: position variance (n), velocity
+//! 36      1         energy reference H_ref of the energy-scaled process
+//!                   noise (f32; NaN: the process noise is constant)
+//! 40      1         rows R
+//! 44      13 n      f32 constants: position variance (n), velocity
 //!                   variance (n), process variance per step (2n, q then
 //!                   p), initial momentum variance (n), initial variance of
 //!                   an unmeasured position (n), start of an unmeasured
-//!                   position (n), envelope low (2n), envelope high (2n)
+//!                   position (n), envelope low (2n), envelope high (2n),
+//!                   process variance per step and unit of energy above
+//!                   H_ref (2n, q then p; read only when H_ref is a number)
 //! ...     R rows    each: steps since the previous row (0: the row starts a
 //!                   trajectory), presence mask (bit i: q_(i+1) measured,
 //!                   bit n+i: v_(i+1) measured), measured values q1..qn
@@ -38,9 +42,9 @@ pub static EMBEDDED_PLAN: &[u8] = include_bytes!(env!(
 ));
 
 const TAG: [u8; 4] = *b"VOBS";
-const HEADER_WORDS: usize = 10;
+const HEADER_WORDS: usize = 11;
 /// Constant words per degree of freedom.
-const CONSTANT_WORDS: usize = 11;
+const CONSTANT_WORDS: usize = 13;
 /// Inputs per row the firmware can hold.
 pub const MAX_INPUTS: usize = visviva_runtime::MAX_INPUTS;
 /// Most steps between two rows (as `visviva observe`).
@@ -73,6 +77,7 @@ pub struct ObserverPlan<'a> {
     alarm: FalseAlarm,
     settle: u32,
     energy_threshold: f32,
+    energy_reference: f32,
     rows: usize,
     constants: &'a [u8],
     row_bytes: &'a [u8],
@@ -110,7 +115,7 @@ impl<'a> ObserverPlan<'a> {
     /// step count.
     pub fn parse(bytes: &'a [u8]) -> Result<Self, PlanError> {
         let header = 4 * HEADER_WORDS;
-        if bytes.len() < header || bytes[..4] != TAG || word(bytes, 4) != 1 {
+        if bytes.len() < header || bytes[..4] != TAG || word(bytes, 4) != 2 {
             return Err(PlanError::NotAnObserverPlan);
         }
         let dof = word(bytes, 8);
@@ -132,7 +137,7 @@ impl<'a> ObserverPlan<'a> {
         }
         let alarm = alarm_from_code(word(bytes, 24)).ok_or(PlanError::BadSetting { offset: 24 })?;
         let (n, m) = (dof as u64, inputs as u64);
-        let rows = word(bytes, 36) as u64;
+        let rows = word(bytes, 40) as u64;
         let channels = if velocities { 2 * n } else { n };
         let constant_bytes = CONSTANT_WORDS as u64 * n * 4;
         let row_bytes = rows * (2 + channels + m) * 4;
@@ -152,6 +157,7 @@ impl<'a> ObserverPlan<'a> {
             alarm,
             settle: word(bytes, 28),
             energy_threshold: real(bytes, 32),
+            energy_reference: real(bytes, 36),
             rows: rows as usize,
             constants,
             row_bytes,
@@ -202,6 +208,12 @@ impl<'a> ObserverPlan<'a> {
         self.energy_threshold
     }
 
+    /// The energy-scaled process noise's reference energy, when the
+    /// process noise grows with the energy.
+    pub fn energy_reference(&self) -> Option<f32> {
+        (!self.energy_reference.is_nan()).then_some(self.energy_reference)
+    }
+
     /// Number of rows.
     pub fn rows(&self) -> usize {
         self.rows
@@ -210,7 +222,8 @@ impl<'a> ObserverPlan<'a> {
     /// Constant `k` of block `block` (0: position variance, 1: velocity
     /// variance, 2: process variance (2n), 4: initial momentum variance,
     /// 5: unmeasured position variance, 6: unmeasured position start, 7:
-    /// envelope low (2n), 9: envelope high (2n)), in units of n words.
+    /// envelope low (2n), 9: envelope high (2n), 11: process variance per
+    /// unit of energy (2n)), in units of n words.
     fn constant(&self, block: usize, k: usize) -> f32 {
         real(self.constants, 4 * (block * self.dof + k))
     }
@@ -228,6 +241,12 @@ impl<'a> ObserverPlan<'a> {
     /// Process variance per step of state coordinate k (q then p).
     pub fn process_variance(&self, k: usize) -> f32 {
         self.constant(2, k)
+    }
+
+    /// Process variance per step and unit of energy above the reference,
+    /// of state coordinate k (q then p).
+    pub fn process_variance_per_energy(&self, k: usize) -> f32 {
+        self.constant(11, k)
     }
 
     /// Initial variance of p_(i+1).

@@ -313,6 +313,11 @@ pub const CLAIMS: &[Claim] = &[
         backing: Backing::OneRun,
     },
     Claim {
+        figure: "1e-6",
+        context: "process-noise scales the tuning",
+        backing: Backing::OneRun,
+    },
+    Claim {
         figure: "2.6e-4",
         context: "or less",
         backing: Backing::OneRun,

@@ -43,9 +43,12 @@ pub struct ObserverCase {
 /// only, two trajectories) and the flexure sensor (implicit midpoint, whose
 /// Jacobian comes from the implicit function theorem; positions and
 /// velocities, momenta started from the first velocity), each tuned from
-/// logs the project's observer tests tune from. The damped, driven demos
-/// (trolley crane, servo drivetrain) are not here: `visviva tune-observer`
-/// refuses their noise-free logs.
+/// logs the project's observer tests tune from; and the servo drivetrain
+/// (damped and driven, discrete-gradient method: the Jacobian through the
+/// port terms, inputs held between rows), tuned from its training log. The
+/// trolley crane is not here: `visviva tune-observer` refuses its
+/// noise-free logs (the f32 covariance loses definiteness at the largest
+/// trial scales).
 pub const CASES: &[ObserverCase] = &[
     ObserverCase {
         project: "crane-sway",
@@ -75,6 +78,22 @@ pub const CASES: &[ObserverCase] = &[
                 q_every: (7, 3),
                 v_every: (5, 2),
                 run: (100, 104),
+            },
+        },
+        energy_threshold: None,
+    },
+    ObserverCase {
+        project: "servo-drivetrain",
+        blob: "servo-f32-dgrad",
+        tuning: &["data/train.csv"],
+        sequence: SeqSource {
+            log: "models-demo/servo-drivetrain/data/val.csv",
+            take: &[("0", 150), ("1", 100)],
+            velocity_prefix: None,
+            gaps: Gaps {
+                q_every: (8, 5),
+                v_every: (0, 0),
+                run: (40, 44),
             },
         },
         energy_threshold: None,

@@ -14,7 +14,8 @@ use anyhow::{bail, ensure, Context, Result};
 
 use crate::observer_sequence::SeqRow;
 
-/// The settings file's values (format version 1).
+/// The settings file's values (format version 1, or 2 with the
+/// energy-scaled process noise).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Settings {
     pub position_noise: Vec<f64>,
@@ -27,6 +28,9 @@ pub struct Settings {
     pub envelope_low: Vec<f64>,
     pub envelope_high: Vec<f64>,
     pub energy_threshold: Option<f64>,
+    /// Process variance per unit of energy above `energy_reference` (2n).
+    pub process_variance_per_energy: Option<Vec<f64>>,
+    pub energy_reference: Option<f64>,
 }
 
 fn numbers(table: &toml::Table, key: &str, len: usize) -> Result<Vec<f64>> {
@@ -64,10 +68,15 @@ impl Settings {
             .parse()
             .with_context(|| format!("{}: not TOML", path.display()))?;
         let read = || -> Result<Self> {
+            let version = integer(&t, "format_version")?;
             ensure!(
-                integer(&t, "format_version")? == 1,
-                "format_version is not 1"
+                version == 1 || version == 2,
+                "format_version {version} is neither 1 nor 2"
             );
+            let per_energy = match t.get("process_variance_per_energy") {
+                Some(_) => Some(numbers(&t, "process_variance_per_energy", 2 * n)?),
+                None => None,
+            };
             Ok(Self {
                 position_noise: numbers(&t, "position_noise", n)?,
                 velocity_noise: numbers(&t, "velocity_noise", n)?,
@@ -83,6 +92,8 @@ impl Settings {
                 envelope_low: numbers(&t, "envelope_low", 2 * n)?,
                 envelope_high: numbers(&t, "envelope_high", 2 * n)?,
                 energy_threshold: t.get("energy_threshold").and_then(toml::Value::as_float),
+                process_variance_per_energy: per_energy,
+                energy_reference: t.get("energy_reference").and_then(toml::Value::as_float),
             })
         };
         read().with_context(|| format!("{}", path.display()))
@@ -99,7 +110,16 @@ impl Settings {
         })
     }
 
-    /// The 11 n constants in plan order.
+    /// The energy-scaled process noise as the host applies it: both the
+    /// slope and the reference given (trainer/src/deploy/observe.rs).
+    fn energy_scaled(&self) -> Option<(&[f64], f64)> {
+        match (&self.process_variance_per_energy, self.energy_reference) {
+            (Some(slope), Some(reference)) => Some((slope, reference)),
+            _ => None,
+        }
+    }
+
+    /// The 13 n constants in plan order.
     fn constants(&self) -> Vec<f32> {
         let n = self.position_noise.len();
         let square = |v: &[f64]| v.iter().map(|s| (s * s) as f32).collect::<Vec<f32>>();
@@ -117,6 +137,10 @@ impl Settings {
         }
         out.extend(f32s(&self.envelope_low));
         out.extend(f32s(&self.envelope_high));
+        match self.energy_scaled() {
+            Some((slope, _)) => out.extend(f32s(slope)),
+            None => out.extend(std::iter::repeat_n(0.0f32, 2 * n)),
+        }
         out
     }
 }
@@ -140,7 +164,7 @@ pub fn to_bytes(settings: &Settings, rows: &[SeqRow], dt: f32, inputs: usize) ->
     let velocities = !first.v.is_empty();
     let mut words: Vec<u32> = vec![
         u32::from_le_bytes(*b"VOBS"),
-        1,
+        2,
         n as u32,
         inputs as u32,
         u32::from(velocities),
@@ -150,6 +174,10 @@ pub fn to_bytes(settings: &Settings, rows: &[SeqRow], dt: f32, inputs: usize) ->
         settings
             .energy_threshold
             .map_or(f32::INFINITY, |t| t as f32)
+            .to_bits(),
+        settings
+            .energy_scaled()
+            .map_or(f32::NAN, |(_, reference)| reference as f32)
             .to_bits(),
         rows.len() as u32,
     ];
@@ -196,6 +224,8 @@ mod tests {
             envelope_low: vec![-1.0, -4.0],
             envelope_high: vec![3.0, 4.0],
             energy_threshold: None,
+            process_variance_per_energy: None,
+            energy_reference: None,
         }
     }
 
@@ -225,25 +255,45 @@ mod tests {
             row("1", 5.0, Some(1.5), 4.0),
         ];
         let w = words(&to_bytes(&settings(), &rows, 0.05, 1).unwrap());
-        assert_eq!(&w[..2], &[u32::from_le_bytes(*b"VOBS"), 1]);
-        // n, m, velocities, window, 1 % = code 2, settle, no threshold, rows.
+        assert_eq!(&w[..2], &[u32::from_le_bytes(*b"VOBS"), 2]);
+        // n, m, velocities, window, 1 % = code 2, settle, no threshold,
+        // constant process noise (NaN reference), rows.
         assert_eq!(&w[2..8], &[1, 1, 0, 50, 2, 20]);
         assert_eq!(f32::from_bits(w[8]), f32::INFINITY);
-        assert_eq!(w[9], 4);
+        assert!(f32::from_bits(w[9]).is_nan());
+        assert_eq!(w[10], 4);
         // Variances are squared standard deviations; the unmeasured start is
-        // the envelope's middle with its width as the spread.
-        let c: Vec<f32> = w[10..21].iter().map(|b| f32::from_bits(*b)).collect();
+        // the envelope's middle with its width as the spread; no growth with
+        // the energy.
+        let c: Vec<f32> = w[11..24].iter().map(|b| f32::from_bits(*b)).collect();
         assert_eq!(
             c,
-            [0.25, 4.0, 0.25, 1.0, 9.0, 16.0, 1.0, -1.0, -4.0, 3.0, 4.0]
+            [0.25, 4.0, 0.25, 1.0, 9.0, 16.0, 1.0, -1.0, -4.0, 3.0, 4.0, 0.0, 0.0]
         );
         // Rows: steps (0 starts a trajectory; 0.1 s / 0.05 s = 2), mask,
         // value, input.
-        let r: Vec<&[u32]> = w[21..].chunks(4).collect();
+        let r: Vec<&[u32]> = w[24..].chunks(4).collect();
         assert_eq!(r[0], &[0, 1, 0.5f32.to_bits(), 1.0f32.to_bits()]);
         assert_eq!(r[1], &[2, 0, 0, 2.0f32.to_bits()]);
         assert_eq!(r[2][..2], [2, 1]);
         assert_eq!(r[3][..2], [0, 1]);
+    }
+
+    #[test]
+    fn the_energy_scaled_process_noise_rides_in_the_header_and_the_last_block() {
+        let mut s = settings();
+        s.process_variance_per_energy = Some(vec![0.125, 0.5]);
+        s.energy_reference = Some(-0.75);
+        let rows = [row("0", 0.0, Some(0.5), 1.0)];
+        let w = words(&to_bytes(&s, &rows, 0.05, 1).unwrap());
+        assert_eq!(f32::from_bits(w[9]), -0.75);
+        assert_eq!(f32::from_bits(w[22]), 0.125);
+        assert_eq!(f32::from_bits(w[23]), 0.5);
+        // A slope without its reference is not applied (as on the host).
+        s.energy_reference = None;
+        let w = words(&to_bytes(&s, &rows, 0.05, 1).unwrap());
+        assert!(f32::from_bits(w[9]).is_nan());
+        assert_eq!(&w[22..24], &[0, 0]);
     }
 
     #[test]

@@ -51,6 +51,16 @@ pub struct Args {
     /// 10000).
     #[arg(long = "horizon-steps", visible_alias = "horizon", value_name = "N")]
     pub horizon: Option<usize>,
+    /// Horizons (s after each held-out trajectory's first sample) at which
+    /// the model's and the baseline's state errors are reported; a horizon
+    /// longer than a trajectory is reported as not reached for it.
+    #[arg(
+        long,
+        value_delimiter = ',',
+        value_name = "S1,..",
+        default_value = "1,5,20"
+    )]
+    pub horizons: Vec<f64>,
     /// Fit history (JSON from `visviva fit --history`) for the loss plot.
     #[arg(long, value_name = "FILE.json")]
     pub history: Option<PathBuf>,
@@ -68,6 +78,7 @@ fn check_paths(args: &Args) -> Result<()> {
     if let Some(m) = &args.mass {
         crate::learn::stage::check_masses(m, "--masses")?;
     }
+    crate::evidence::horizons::check_horizons(&args.horizons, "--horizons")?;
     let mut inputs = vec![
         ("--model", args.model.as_path()),
         ("--validation", args.data.as_path()),
@@ -136,6 +147,7 @@ pub fn run(args: Args) -> Result<()> {
         .transpose()?;
     let settings = CheckSettings {
         horizon_steps: args.horizon,
+        horizons: args.horizons.clone(),
         ..CheckSettings::default()
     };
     let r = check(

@@ -77,6 +77,7 @@ pub fn print_table(r: &CheckReport) {
             r.integrator, t.dt, t.horizon_steps
         );
     }
+    print_horizons(r);
     for t in &r.trajectories {
         for (who, m) in [("model", Some(&t.model)), ("baseline", t.baseline.as_ref())] {
             if let Some(f) = m.and_then(|m| m.failure.as_ref()) {
@@ -86,6 +87,45 @@ pub fn print_table(r: &CheckReport) {
                 );
             }
         }
+    }
+}
+
+/// The state errors at the chosen horizons: per trajectory (model /
+/// baseline, "not reached" when the trajectory is shorter), then the
+/// median over the trajectories that reach it.
+fn print_horizons(r: &CheckReport) {
+    if r.horizons.is_empty() {
+        return;
+    }
+    println!("relative state error at horizons (model / baseline):");
+    for (j, s) in r.horizons.iter().enumerate() {
+        let each: Vec<String> = r
+            .trajectories
+            .iter()
+            .map(|t| {
+                let e = &t.horizons[j];
+                if e.reached {
+                    let stopped = |v: Option<f64>| v.map(sci).unwrap_or_else(|| "stopped".into());
+                    let b = if t.baseline.is_some() {
+                        stopped(e.baseline)
+                    } else {
+                        "-".into()
+                    };
+                    format!("{} {} / {b}", t.id, stopped(e.model))
+                } else {
+                    format!("{} not reached", t.id)
+                }
+            })
+            .collect();
+        println!(
+            "  {} s: median {} / {} over {} of {} trajectories reaching it ({})",
+            s.seconds,
+            opt(s.median_model),
+            opt(s.median_baseline),
+            s.reached,
+            r.trajectories.len(),
+            each.join(", ")
+        );
     }
 }
 

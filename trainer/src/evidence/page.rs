@@ -34,7 +34,10 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     data_section(&mut h, report);
     fit_section(&mut h, report);
     match &report.evidence {
-        Evidence::Check(check) => conservative_section(&mut h, check),
+        Evidence::Check(check) => {
+            conservative_section(&mut h, check);
+            horizons_section(&mut h, check);
+        }
         Evidence::Port(port) => port_section(&mut h, port),
     }
     for (title, svg) in charts {
@@ -374,6 +377,90 @@ fn conservative_section(h: &mut Html<'_>, check: &CheckReport) {
         h.p("<p class=\"note\">Baseline energy drift: - (the baseline has no energy; name the built-in system in <code>[check] reference_system</code> to measure the true-energy drift of both).</p>");
     }
     h.p("<p class=\"note\">How to read it: the energy model should match or beat the baseline on vector-field and state error, and its energy drift should stay small and bounded while the baseline's grows. A large state error with a small energy drift usually means a phase error (slightly wrong frequency), which grows linearly with time.</p>");
+}
+
+/// The state errors at the chosen horizons: per horizon, one row per
+/// trajectory (the logged sample the error is taken at, model, baseline;
+/// "not reached" when the trajectory is shorter), then the median over the
+/// trajectories that reach it.
+fn horizons_section(h: &mut Html<'_>, check: &CheckReport) {
+    let (hs, n) = (check.horizons.len(), check.trajectories.len());
+    if hs == 0 {
+        return;
+    }
+    let traj = |i: usize, j: usize, f: &str| format!("check/trajectories/{i}/horizons/{j}/{f}");
+    let sum = |j: usize, f: &str| format!("check/horizons/{j}/{f}");
+    let mut errs = Vec::new();
+    let mut times = Vec::new();
+    for j in 0..hs {
+        for i in 0..n {
+            errs.extend([traj(i, j, "model"), traj(i, j, "baseline")]);
+            times.push(traj(i, j, "at_s"));
+        }
+        errs.extend([sum(j, "median_model"), sum(j, "median_baseline")]);
+        times.push(sum(j, "seconds"));
+    }
+    let err = h.col(&errs, Quantity::Fraction);
+    let secs = h.col(&times, Quantity::Si("s"));
+    let base = check.median_baseline.is_some();
+    let mut rows = Vec::new();
+    for (j, hz) in check.horizons.iter().enumerate() {
+        for (i, t) in check.trajectories.iter().enumerate() {
+            let e = &t.horizons[j];
+            let value = |f: &str, v: Option<f64>, none: &str| match v {
+                Some(_) => h.val(&traj(i, j, f), &err),
+                None => format!("<span class=\"nm\">{none}</span>"),
+            };
+            rows.push(if e.reached {
+                vec![
+                    h.val(&sum(j, "seconds"), &secs),
+                    h.num(&format!("check/trajectories/{i}/id")),
+                    h.val(&traj(i, j, "at_s"), &secs),
+                    value("model", e.model, "stopped before"),
+                    value(
+                        "baseline",
+                        e.baseline,
+                        if base {
+                            "stopped before"
+                        } else {
+                            "no baseline"
+                        },
+                    ),
+                ]
+            } else {
+                let not = "<span class=\"nm\">not reached</span>".to_string();
+                vec![
+                    h.val(&sum(j, "seconds"), &secs),
+                    h.num(&format!("check/trajectories/{i}/id")),
+                    "<span class=\"nm\">trajectory shorter</span>".into(),
+                    not.clone(),
+                    not,
+                ]
+            });
+        }
+        let median = |f: &str, v: Option<f64>| match v {
+            Some(_) => h.val(&sum(j, f), &err),
+            None => "-".into(),
+        };
+        rows.push(vec![
+            format!("<!--sum-->{}", h.val(&sum(j, "seconds"), &secs)),
+            format!("median of {} reaching", h.num(&sum(j, "reached"))),
+            String::new(),
+            median("median_model", hz.median_model),
+            median("median_baseline", hz.median_baseline),
+        ]);
+    }
+    h.p("<h3>State error at chosen horizons</h3>");
+    h.p("<p>The relative state error (RMS over the coordinates of rollout minus log, over the trajectory's RMS state) at the logged sample nearest each horizon after the first state (<code>[check] horizons</code>, <code>visviva check --horizons</code>). A horizon longer than a held-out trajectory is not reached for it: no error is given there, and it is left out of the median.</p>");
+    let head = [
+        format!("horizon ({})", secs.unit()),
+        "trajectory".to_string(),
+        format!("sample at ({})", secs.unit()),
+        format!("model ({})", err.unit()),
+        format!("baseline ({})", err.unit()),
+    ];
+    let head: Vec<&str> = head.iter().map(String::as_str).collect();
+    h.table(&head, &rows);
 }
 
 /// A damped or driven model's check: learned damping per mode and the

@@ -219,7 +219,7 @@ fn check_sizes(project: &Project, dir: &Path, dof: usize) -> Result<()> {
     check_memory("[check] golden_states", states, 24 + 8 * dof as u128)?;
     let rows = (c.golden_steps as u128).saturating_add(1);
     let per_target = rows
-        .saturating_mul(csv_row_bytes(dof, true))
+        .saturating_mul(csv_row_bytes(dof, true, false))
         .saturating_mul(states);
     let targets = project.export_targets().len() as u128;
     let golden = dir.join("out").join("golden").join("x.csv");
@@ -500,6 +500,7 @@ pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
             reference.as_deref(),
             &CheckSettings {
                 horizon_steps: Some(prep.project.check.horizon_steps),
+                horizons: prep.project.check.horizons.clone(),
                 ..CheckSettings::default()
             },
         )?;
@@ -778,7 +779,7 @@ fn write_golden(
             Ok(())
         };
         write_atomic_with(&out.join(&file), |w| {
-            stream_csv(&dev, x0, steps, fill, true, watch, None, w)?.complete()
+            stream_csv(&dev, x0, steps, fill, true, false, watch, None, w)?.complete()
         })
         .with_context(|| format!("golden rollout {k} of {name}"))?;
         golden.push(file);

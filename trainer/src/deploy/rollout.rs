@@ -568,7 +568,30 @@ pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
 
 #[cfg(test)]
 mod tests {
-    use super::time_text;
+    use super::{parse_init, parse_init_spec, time_text, InitSpec, Rates};
+
+    #[test]
+    fn init_takes_momenta_or_velocities_one_kind_for_all() {
+        let v = parse_init_spec("v2=0.5, q1=1,q2=2,v1=-0.25", 2).unwrap();
+        assert_eq!(
+            v,
+            InitSpec {
+                q: vec![1.0, 2.0],
+                rates: Rates::Velocities(vec![-0.25, 0.5])
+            }
+        );
+        assert_eq!(parse_init("q1=1,p1=3", 1).unwrap(), vec![1.0, 3.0]);
+        let refusal = |spec: &str, dof: usize| parse_init_spec(spec, dof).unwrap_err().to_string();
+        assert!(refusal("q1=0,p1=1,v1=2", 1).contains("p1 and v1 both given"));
+        assert!(refusal("q1=0,q2=0,p1=1,v2=2", 2).contains("p1 and v2 mix"));
+        assert!(refusal("q1=0,q2=0,v2=2", 2).contains("v1 missing"));
+        assert!(refusal("q1=0,w1=2", 1).contains("p1..p1 or v1..v1"));
+        assert!(refusal("q1=0,v1=2,v1=3", 1).contains("v1 given twice"));
+        // Where no mass matrix converts them (a baseline file), velocities
+        // are refused naming the flag.
+        let e = parse_init("q1=0,v1=2", 1).unwrap_err().to_string();
+        assert!(e.starts_with("--init: velocities"), "{e}");
+    }
 
     #[test]
     fn times_carry_the_step_precision() {

@@ -144,26 +144,7 @@ fn horizons_table_is_tagged(json: &serde_json::Value, html: &str) {
     let h = json["check"]["horizons"].as_array().unwrap();
     let seconds: Vec<f64> = h.iter().map(|x| x["seconds"].as_f64().unwrap()).collect();
     assert_eq!(seconds, [1.0, 5.0, 20.0]);
-    let (_, after) = html.split_once("State error at chosen horizons").unwrap();
-    let table = &after[..after.find("</table>").unwrap()];
-    let mut cells = 0;
-    for cell in table.split("<td>").skip(1) {
-        let mut text = cell.split("</td>").next().unwrap().to_string();
-        // Drop tagged numbers, then every remaining tag.
-        while let Some(a) = text.find("<span data-k=") {
-            let b = a + text[a..].find("</span>").unwrap() + "</span>".len();
-            text.replace_range(a..b, "");
-        }
-        while let Some(a) = text.find('<') {
-            let b = a + text[a..].find('>').unwrap() + 1;
-            text.replace_range(a..b, "");
-        }
-        assert!(
-            !text.chars().any(|c| c.is_ascii_digit()),
-            "untagged digit in {cell}"
-        );
-        cells += 1;
-    }
+    let cells = page_numbers::cells_without_untagged_digits(html, "State error at chosen horizons");
     assert!(cells >= 5 * 3, "{cells} cells");
 }
 

@@ -1,13 +1,17 @@
 //! `visviva rollout`: step a blob on the host through `visviva-runtime` — the
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
-//! f32 bit patterns for bit-for-bit comparison with a board. The rollout
-//! streams: each row is written as its state is computed, so memory does not
-//! grow with `--steps`; a file output appears only when complete. A rollout
-//! that stops part-way (a step the integrator cannot take) keeps what it
-//! computed: `--out run.csv` then writes `run.partial.csv` (and leaves
-//! `run.csv` as it was), and the command exits non-zero naming the step and
-//! the reason. A baseline file (`fit --baseline`) rolls out the same way,
-//! by RK4 at `--dt`, from any state.
+//! f32 bit patterns for bit-for-bit comparison with a board. A blob's rows
+//! carry the velocities v = dH/dp after the momenta, and `--init` takes
+//! velocities `v*` instead of momenta, converted with the model's own mass
+//! matrix p = M(q) v (refused, with the reason, for a model without one).
+//! The rollout streams: each row is written as its state is computed, so
+//! memory does not grow with `--steps`; a file output appears only when
+//! complete. A rollout that stops part-way (a step the integrator cannot
+//! take) keeps what it computed: `--out run.csv` then writes
+//! `run.partial.csv` (and leaves `run.csv` as it was), and the command
+//! exits non-zero naming the step and the reason. A baseline file
+//! (`fit --baseline`) rolls out the same way, by RK4 at `--dt`, from any
+//! state given by momenta (its rows carry no velocity columns).
 
 use std::path::{Path, PathBuf};
 

@@ -1,5 +1,6 @@
 //! Host rollouts through `visviva-runtime`, the very arithmetic the device
-//! runs, plus the helpers around them: parsing initial states, sampling
+//! runs, plus the helpers around them: parsing initial states (momenta or
+//! velocities), the velocity columns v = dH/dp of a rollout CSV, sampling
 //! test states inside a model's normalization range, and drift measures.
 
 use std::fmt::Write as _;

@@ -515,6 +515,42 @@ fn driven_rel_rmse(states: &[Vec<f32>], traj: &Trajectory) -> f64 {
     (sum / d as f64).sqrt()
 }
 
+/// The driven rollout's error at each logged sample (as many as `states`
+/// reach): sqrt(mean over coordinates of (x_i - logged x_i)^2 /
+/// mean(logged x_i^2)), the per-sample form of [`driven_rel_rmse`].
+fn driven_errors(states: &[Vec<f32>], traj: &Trajectory) -> Vec<f64> {
+    let d = traj.x.ncols();
+    let ms: Vec<f64> = (0..d)
+        .map(|i| {
+            let c = traj.x.column(i);
+            (c.iter().map(|v| v * v).sum::<f64>() / c.len().max(1) as f64).max(f64::MIN_POSITIVE)
+        })
+        .collect();
+    states
+        .iter()
+        .zip(traj.x.rows())
+        .map(|(s, truth)| {
+            let e: f64 = (0..d)
+                .map(|i| (s[i] as f64 - truth[i]).powi(2) / ms[i])
+                .sum();
+            (e / d as f64).sqrt()
+        })
+        .collect()
+}
+
+/// The driven rollouts' state errors (model, and baseline when given) of
+/// one held-out trajectory at the chosen horizons.
+pub fn driven_horizons(
+    traj: &Trajectory,
+    model: &DrivenRollout,
+    baseline: Option<&DrivenRollout>,
+    horizons: &[f64],
+) -> Vec<HorizonError> {
+    let m = driven_errors(&model.states, traj);
+    let b = baseline.map(|b| driven_errors(&b.states, traj));
+    errors_at(&traj.t, trajectory_dt(traj), &m, b.as_deref(), horizons)
+}
+
 /// A trajectory's logged inputs as f32 rows (empty without inputs).
 fn input_rows(traj: &Trajectory) -> Vec<Vec<f32>> {
     if traj.u.ncols() == 0 {

@@ -54,6 +54,17 @@ pub trait Hamiltonian<const D: usize> {
         wq.iter_mut().chain(wp.iter_mut()).for_each(|w| *w = 1.0);
     }
 
+    /// The size of the terms `energy` sums before they cancel to H, in
+    /// energy units: its f32 round-off is a few eps times this whatever |H|
+    /// is (the dot-product error bound, Higham, Accuracy and Stability of
+    /// Numerical Algorithms, 2002, sec. 3.1). The discrete-gradient method
+    /// keeps its difference-quotient correction only above that level. 0 by
+    /// default (H evaluated without cancellation); learned models give
+    /// their energy scale, the unit of the network's O(1) output.
+    fn energy_term_size(&self) -> f32 {
+        0.0
+    }
+
     /// The field f = (J - R(q)) g + G(q) u for a given gradient g = (gq, gp),
     /// with R and G taken at coordinates `q`: `fq`, `fp` receive dq/dt and
     /// dp/dt. `u` holds `inputs()` values. The default is the conservative

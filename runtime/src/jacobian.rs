@@ -15,7 +15,9 @@
 //! Df = (J - R) H'' + d/dq[(J - R(q)) g + G(q) u] comes from [`Tangent`].
 
 use crate::error::StepError;
-use crate::integrate::{Integrator, Method, YOSHIDA_W0, YOSHIDA_W1};
+use crate::integrate::{
+    correction_share, correction_slopes, roundoff_level, Integrator, Method, YOSHIDA_W0, YOSHIDA_W1,
+};
 use crate::linalg::{self, Mat};
 use crate::observer::ObserverError;
 use crate::state::State;
@@ -276,8 +278,8 @@ pub(crate) fn flat<const D: usize, const S: usize>(x: &State<D>) -> [f32; S] {
 
 /// dgbar/dx1 and dgbar/dx0 of the discrete gradient
 /// gbar = g(m) + c W d, c = (H(x1) - H(x0) - g(m) . d) / (d . W d), with the
-/// integrator's own switch: the correction is used only where its residual
-/// exceeds the round-off level. Without it (and for implicit midpoint)
+/// integrator's own share of the correction (`correction_share`: none at
+/// the round-off level, all from twice it, a ramp between). Without it (and for implicit midpoint)
 /// both are H''(m) / 2. Returns them with gbar.
 #[allow(clippy::type_complexity)]
 fn discrete_gradient_parts<const D: usize, const S: usize, H: Tangent<D> + ?Sized>(
@@ -315,12 +317,16 @@ fn discrete_gradient_parts<const D: usize, const S: usize, H: Tangent<D> + ?Size
         dwd += wp[i] * dp * dp;
     }
     let resid = h1 - h0 - gd;
-    let noise = 8.0 * f32::EPSILON * (h0.abs() + h1.abs());
-    if !(dwd > 0.0 && dwd.is_finite() && resid.abs() > noise) {
+    let noise = roundoff_level(h0, h1, ham.energy_term_size(), mid, &gm.0, &gm.1);
+    let share = correction_share(resid, noise);
+    if !(dwd > 0.0 && dwd.is_finite() && share > 0.0) {
         return Ok((gb1, gb0, gm));
     }
-    let c = resid / dwd;
+    let c = share * resid / dwd;
+    // k = share * resid: its slopes in resid and in the round-off level.
+    let (kr, kn) = correction_slopes(resid, noise);
     let (a, b) = (flat::<D, S>(x0), flat::<D, S>(x1));
+    let (dn1, dn0) = roundoff_level_slopes::<D, S>(&hm, (h0, h1), mid, &gm, k);
     let mut w = [0.0f32; S];
     let mut d = [0.0f32; S];
     w[..n].copy_from_slice(&wq[..n]);
@@ -339,8 +345,8 @@ fn discrete_gradient_parts<const D: usize, const S: usize, H: Tangent<D> + ?Size
         }
         // dc/dx1_i and dc/dx0_i.
         let wd = 2.0 * c * w[i] * d[i];
-        let a1 = (at(&g1, i) - at(&gm, i) - 0.5 * hd - wd) / dwd;
-        let a0 = (at(&gm, i) - at(&g0, i) - 0.5 * hd + wd) / dwd;
+        let a1 = (kr * (at(&g1, i) - at(&gm, i) - 0.5 * hd) + kn * dn1(&g1, i) - wd) / dwd;
+        let a0 = (kr * (at(&gm, i) - at(&g0, i) - 0.5 * hd) + kn * dn0(&g0, i) + wd) / dwd;
         for r in 0..k {
             gb1[r][i] += w[r] * d[r] * a1;
             gb0[r][i] += w[r] * d[r] * a0;
@@ -354,6 +360,47 @@ fn discrete_gradient_parts<const D: usize, const S: usize, H: Tangent<D> + ?Size
         gbar.1[i] += c * wp[i] * d[n + i];
     }
     Ok((gb1, gb0, gbar))
+}
+
+/// The slopes of the integrator's round-off level
+/// 8 eps (|H0| + |H1| + 2 E_t + 2 sum |m_i g_i(m)|) in x1 and in x0, as functions of
+/// the end's gradient and the coordinate: 8 eps (sign(H) g_end_j +
+/// sign(m_j) |g_j| + (H''(m) s)_j) with s_i = |m_i| sign(g_i) (H'' is
+/// symmetric; m moves by half of either end).
+#[allow(clippy::type_complexity)]
+fn roundoff_level_slopes<const D: usize, const S: usize>(
+    hm: &Mat<S>,
+    (h0, h1): (f32, f32),
+    mid: &State<D>,
+    gm: &([f32; D], [f32; D]),
+    k: usize,
+) -> (
+    impl Fn(&([f32; D], [f32; D]), usize) -> f32,
+    impl Fn(&([f32; D], [f32; D]), usize) -> f32,
+) {
+    let n = k / 2;
+    let sign = |e: f32| if e < 0.0 { -1.0f32 } else { 1.0 };
+    let (m, g) = (flat::<D, S>(mid), {
+        let mut g = [0.0f32; S];
+        g[..n].copy_from_slice(&gm.0[..n]);
+        g[n..k].copy_from_slice(&gm.1[..n]);
+        g
+    });
+    let mut common = [0.0f32; S];
+    for j in 0..k {
+        let mut hs = 0.0f32;
+        for i in 0..k {
+            hs += hm[j][i] * m[i].abs() * sign(g[i]);
+        }
+        common[j] = sign(m[j]) * g[j].abs() + hs;
+    }
+    let e8 = 8.0 * f32::EPSILON;
+    let at = move |g: &([f32; D], [f32; D]), i: usize| if i < n { g.0[i] } else { g.1[i - n] };
+    let (s1, s0) = (sign(h1), sign(h0));
+    (
+        move |g1: &([f32; D], [f32; D]), j: usize| e8 * (s1 * at(g1, j) + common[j]),
+        move |g0: &([f32; D], [f32; D]), j: usize| e8 * (s0 * at(g0, j) + common[j]),
+    )
 }
 
 /// Jacobian of x1 = x0 + h f(gbar, q_m) at the converged `x1` (implicit

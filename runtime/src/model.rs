@@ -492,6 +492,10 @@ impl<const D: usize, const W: usize> Hamiltonian<D> for Model<'_, D, W> {
         }
     }
 
+    fn energy_term_size(&self) -> f32 {
+        self.energy_scale.abs()
+    }
+
     fn field_from_gradient(
         &self,
         q: &[f32; D],

@@ -255,100 +255,30 @@ fn run_one(
         cfg.threads
     ));
     let _ = std::fs::remove_file(&json);
-    let hidden = HIDDEN.map(|w| w.to_string()).join(",");
-    let (batch, steps_s, threads) = (
-        cfg.batch.to_string(),
-        steps.to_string(),
-        cfg.threads.to_string(),
-    );
-    let mut args: Vec<String> = Vec::new();
-    let program = match imp {
-        Impl::Visviva => {
-            let model = work.join("visviva-model.vvb");
-            for a in [
-                "fit",
-                "--data",
-                &data.display().to_string(),
-                "--val-fraction",
-                "0",
-                "--arch",
-                "general",
-                "--hidden",
-                &hidden,
-                "--batch",
-                &batch,
-                "--optimizer-steps",
-                &steps_s,
-                "--lr",
-                LR,
-                "--threads",
-                &threads,
-                "--no-early-stop",
-                "--quiet",
-                "--out",
-                &model.display().to_string(),
-                "--json",
-                &json.display().to_string(),
-            ] {
-                args.push(a.into());
-            }
-            tools.visviva.clone()
-        }
-        Impl::Torch | Impl::Jax => {
-            let script = root
-                .join("bench")
-                .join(format!("hnn_{}.py", imp.name()))
-                .display()
-                .to_string();
-            for a in [
-                script.as_str(),
-                "--data",
-                &data.display().to_string(),
-                "--hidden",
-                &hidden,
-                "--batch",
-                &batch,
-                "--optimizer-steps",
-                &steps_s,
-                "--lr",
-                LR,
-                "--threads",
-                &threads,
-                "--json",
-                &json.display().to_string(),
-            ] {
-                args.push(a.into());
-            }
-            if let Some(init) = &tools.init {
-                args.push("--init".into());
-                args.push(init.display().to_string());
-            }
+    let shared = SharedArgs {
+        data: data.display().to_string(),
+        hidden: HIDDEN.map(|w| w.to_string()).join(","),
+        batch: cfg.batch.to_string(),
+        steps: steps.to_string(),
+        threads: cfg.threads.to_string(),
+        json: json.display().to_string(),
+    };
+    let (program, args) = match imp {
+        Impl::Visviva => (tools.visviva.clone(), visviva_args(work, &shared)),
+        Impl::Torch | Impl::Jax => (
             tools
                 .python
                 .clone()
-                .context("no Python environment for the references")?
-        }
+                .context("no Python environment for the references")?,
+            reference_args(root, imp, &shared, tools.init.as_deref()),
+        ),
     };
-    let mut cmd = if tools.taskset {
-        let mut c = Command::new("taskset");
-        c.arg("-c")
-            .arg(
-                (0..cfg.threads)
-                    .map(|c| c.to_string())
-                    .collect::<Vec<_>>()
-                    .join(","),
-            )
-            .arg(&program);
-        c
-    } else {
-        Command::new(&program)
-    };
-    cmd.args(&args)
+    let out = pinned_command(tools, cfg, &program)
+        .args(&args)
         .current_dir(root.join("bench"))
         .env("CUDA_VISIBLE_DEVICES", "")
         .env("PYTHONDONTWRITEBYTECODE", "1")
-        .env("JAX_PLATFORMS", "cpu");
-    let out = cmd
+        .env("JAX_PLATFORMS", "cpu")
         .output()
         .with_context(|| format!("starting {}", program.display()))?;
     if !out.status.success() {
@@ -360,7 +290,101 @@ fn run_one(
             String::from_utf8_lossy(&out.stderr)
         );
     }
-    let text = std::fs::read_to_string(&json)
+    read_summary(imp, &json)
+}
+
+/// The settings every implementation gets, as command-line values.
+struct SharedArgs {
+    data: String,
+    hidden: String,
+    batch: String,
+    steps: String,
+    threads: String,
+    json: String,
+}
+
+/// `visviva fit` on the benchmark log: no validation split, no early stop.
+fn visviva_args(work: &Path, a: &SharedArgs) -> Vec<String> {
+    let model = work.join("visviva-model.vvb").display().to_string();
+    [
+        "fit",
+        "--data",
+        &a.data,
+        "--val-fraction",
+        "0",
+        "--arch",
+        "general",
+        "--hidden",
+        &a.hidden,
+        "--batch",
+        &a.batch,
+        "--optimizer-steps",
+        &a.steps,
+        "--lr",
+        LR,
+        "--threads",
+        &a.threads,
+        "--no-early-stop",
+        "--quiet",
+        "--out",
+        &model,
+        "--json",
+        &a.json,
+    ]
+    .map(String::from)
+    .to_vec()
+}
+
+/// A reference script (`bench/hnn_<impl>.py`) from the shared initial weights.
+fn reference_args(root: &Path, imp: Impl, a: &SharedArgs, init: Option<&Path>) -> Vec<String> {
+    let script = root
+        .join("bench")
+        .join(format!("hnn_{}.py", imp.name()))
+        .display()
+        .to_string();
+    let mut args: Vec<String> = [
+        script.as_str(),
+        "--data",
+        &a.data,
+        "--hidden",
+        &a.hidden,
+        "--batch",
+        &a.batch,
+        "--optimizer-steps",
+        &a.steps,
+        "--lr",
+        LR,
+        "--threads",
+        &a.threads,
+        "--json",
+        &a.json,
+    ]
+    .map(String::from)
+    .to_vec();
+    if let Some(init) = init {
+        args.push("--init".into());
+        args.push(init.display().to_string());
+    }
+    args
+}
+
+/// `program` pinned to the first `cfg.threads` CPUs when taskset works.
+fn pinned_command(tools: &Tools, cfg: Config, program: &Path) -> Command {
+    if !tools.taskset {
+        return Command::new(program);
+    }
+    let cpus = (0..cfg.threads)
+        .map(|c| c.to_string())
+        .collect::<Vec<_>>()
+        .join(",");
+    let mut c = Command::new("taskset");
+    c.arg("-c").arg(cpus).arg(program);
+    c
+}
+
+/// Throughput and final loss from the summary a run wrote.
+fn read_summary(imp: Impl, json: &Path) -> Result<RunResult> {
+    let text = std::fs::read_to_string(json)
         .with_context(|| format!("{} wrote no summary {}", imp.name(), json.display()))?;
     let get = |k: &str| {
         json_number(&text, k).with_context(|| format!("{}: no number `{k}`", json.display()))
@@ -526,6 +550,48 @@ fn shell_line(program: &str, args: &[&str]) -> String {
         .unwrap_or_default()
 }
 
+/// Every implementation's results per configuration, one entry per round:
+/// `rounds[config][impl]`.
+struct Measured<'a> {
+    configs: &'a [Config],
+    impls: &'a [Impl],
+    rounds: Vec<Vec<Vec<RunResult>>>,
+}
+
+impl Measured<'_> {
+    fn position(&self, imp: Impl) -> Option<usize> {
+        self.impls.iter().position(|i| *i == imp)
+    }
+
+    /// Median throughput over rounds of configuration `ci`, implementation `ii`.
+    fn median_rate(&self, ci: usize, ii: usize) -> f64 {
+        median(
+            self.rounds[ci][ii]
+                .iter()
+                .map(|r| r.samples_per_second)
+                .collect(),
+        )
+    }
+
+    /// Median over rounds of the throughput ratio a / b measured within
+    /// each round.
+    fn paired_ratio(&self, ci: usize, a: usize, b: usize) -> f64 {
+        median(
+            self.rounds[ci][a]
+                .iter()
+                .zip(&self.rounds[ci][b])
+                .map(|(x, y)| x.samples_per_second / y.samples_per_second)
+                .collect(),
+        )
+    }
+
+    fn median_losses(&self, ci: usize) -> Vec<f64> {
+        (0..self.impls.len())
+            .map(|ii| median(self.rounds[ci][ii].iter().map(|r| r.final_loss).collect()))
+            .collect()
+    }
+}
+
 /// Run the benchmark; Ok(false) when the final losses disagree.
 pub fn run(args: &[String]) -> Result<bool> {
     let o = parse_options(args)?;
@@ -534,11 +600,42 @@ pub fn run(args: &[String]) -> Result<bool> {
     std::fs::create_dir_all(&work).with_context(|| format!("creating {}", work.display()))?;
     let data = work.join("mass-spring.csv");
     write_file(&data, &mass_spring_csv())?;
+    let tools = prepare_tools(&root, &work, &data, &o)?;
+    let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let thread_counts: Vec<usize> = [1, 2].into_iter().filter(|t| *t <= cpus).collect();
+    let configs = configurations(&thread_counts);
+    let cpu = cpu_info();
+    print_machine(&cpu, cpus, &data, &o, tools.taskset);
+    let measured = Measured {
+        configs: &configs,
+        impls: &o.impls,
+        rounds: measure_rounds(&tools, &root, &work, &data, &o, &configs)?,
+    };
+    println!();
+    let agree = print_throughput_and_losses(&measured);
+    if thread_counts.len() == 2 {
+        print_scaling(&measured);
+    }
+    if let Some(k) = measured.position(Impl::Visviva) {
+        print_flops(&measured, k, &cpu);
+    }
+    if o.impls.contains(&Impl::Visviva) && o.large_samples > 0 {
+        crate::bench_large::run(&tools.visviva, &work, o.large_samples, cpus)?;
+    }
+    if !agree {
+        println!("final losses disagree by more than a factor of 2: the comparison is not valid");
+    }
+    Ok(agree)
+}
+
+/// The trainer binary, the reference implementations' Python (only when
+/// one is compared), CPU pinning, and the shared initial weights.
+fn prepare_tools(root: &Path, work: &Path, data: &Path, o: &Options) -> Result<Tools> {
     let needs_python = o.impls.iter().any(|i| *i != Impl::Visviva);
     let mut tools = Tools {
-        visviva: build_visviva(&root)?,
+        visviva: build_visviva(root)?,
         python: if needs_python {
-            Some(ensure_venv(&root)?)
+            Some(ensure_venv(root)?)
         } else {
             None
         },
@@ -548,16 +645,23 @@ pub fn run(args: &[String]) -> Result<bool> {
             .is_ok_and(|s| s.success()),
         init: None,
     };
-    tools.init = Some(write_initial_weights(&tools, &work, &data)?);
-    let cpus = std::thread::available_parallelism().map_or(1, |n| n.get());
-    let thread_counts: Vec<usize> = [1, 2].into_iter().filter(|t| *t <= cpus).collect();
-    let mut configs = Vec::new();
-    for batch in BATCHES {
-        for &threads in &thread_counts {
-            configs.push(Config { batch, threads });
-        }
-    }
-    let cpu = cpu_info();
+    tools.init = Some(write_initial_weights(&tools, work, data)?);
+    Ok(tools)
+}
+
+/// Every batch size with every thread count.
+fn configurations(thread_counts: &[usize]) -> Vec<Config> {
+    BATCHES
+        .into_iter()
+        .flat_map(|batch| {
+            thread_counts
+                .iter()
+                .map(move |&threads| Config { batch, threads })
+        })
+        .collect()
+}
+
+fn print_machine(cpu: &Cpu, cpus: usize, data: &Path, o: &Options, taskset: bool) {
     println!(
         "machine: {} CPUs, {} at {:.0} MHz; {}; data {} ({} x {} samples); {} rounds of {} steps",
         cpus,
@@ -570,10 +674,21 @@ pub fn run(args: &[String]) -> Result<bool> {
         o.rounds,
         o.steps
     );
-    if !tools.taskset {
+    if !taskset {
         println!("note: taskset not available; runs are not pinned to CPUs");
     }
-    // results[config][impl] = one entry per round.
+}
+
+/// All rounds; within a round every configuration runs every
+/// implementation, the order rotated per round so none always runs first.
+fn measure_rounds(
+    tools: &Tools,
+    root: &Path,
+    work: &Path,
+    data: &Path,
+    o: &Options,
+    configs: &[Config],
+) -> Result<Vec<Vec<Vec<RunResult>>>> {
     let ni = o.impls.len();
     let mut results: Vec<Vec<Vec<RunResult>>> = vec![vec![Vec::new(); ni]; configs.len()];
     for round in 0..o.rounds {
@@ -581,7 +696,7 @@ pub fn run(args: &[String]) -> Result<bool> {
             for j in 0..ni {
                 let ii = (j + round) % ni;
                 let imp = o.impls[ii];
-                let r = run_one(&tools, &root, &work, &data, imp, *cfg, o.steps)?;
+                let r = run_one(tools, root, work, data, imp, *cfg, o.steps)?;
                 println!(
                     "  round {} {} {}: {:.0} samples/s, final loss {:.3e}",
                     round + 1,
@@ -594,56 +709,27 @@ pub fn run(args: &[String]) -> Result<bool> {
             }
         }
     }
-    let pos = |imp: Impl| o.impls.iter().position(|i| *i == imp);
-    let med_rate = |ci: usize, ii: usize| {
-        median(
-            results[ci][ii]
-                .iter()
-                .map(|r| r.samples_per_second)
-                .collect(),
-        )
-    };
-    // Median over rounds of the ratio measured within each round.
-    let paired = |ci: usize, a: usize, b: usize| {
-        median(
-            results[ci][a]
-                .iter()
-                .zip(&results[ci][b])
-                .map(|(x, y)| x.samples_per_second / y.samples_per_second)
-                .collect(),
-        )
-    };
-    println!();
+    Ok(results)
+}
+
+/// One `train` line (throughput and paired ratios) and one final-loss line
+/// per configuration; false when some configuration's losses disagree.
+fn print_throughput_and_losses(m: &Measured<'_>) -> bool {
     let mut agree = true;
-    for (ci, cfg) in configs.iter().enumerate() {
-        let mut line = format!("train {}:", cfg.label());
-        let mut parts = Vec::new();
-        for (ii, imp) in o.impls.iter().enumerate() {
-            parts.push(if *imp == Impl::Visviva {
-                format!(" {} {:.0} samples/s", imp.name(), med_rate(ci, ii))
-            } else {
-                format!(" {} {:.0}", imp.name(), med_rate(ci, ii))
-            });
-        }
-        if let Some(k) = pos(Impl::Visviva) {
-            for other in [Impl::Torch, Impl::Jax] {
-                if let Some(x) = pos(other) {
-                    parts.push(format!(" visviva/{} {:.2}", other.name(), paired(ci, k, x)));
-                }
-            }
-        }
-        line.push_str(&parts.join(","));
-        println!("{line}");
-        let losses: Vec<f64> = (0..ni)
-            .map(|ii| median(results[ci][ii].iter().map(|r| r.final_loss).collect()))
-            .collect();
+    for (ci, cfg) in m.configs.iter().enumerate() {
+        println!(
+            "train {}:{}",
+            cfg.label(),
+            throughput_parts(m, ci).join(",")
+        );
+        let losses = m.median_losses(ci);
         let lo = losses.iter().copied().fold(f64::INFINITY, f64::min);
         let hi = losses.iter().copied().fold(0.0, f64::max);
         let ok = lo.is_finite() && hi.is_finite() && lo > 0.0 && hi <= 2.0 * lo;
         agree &= ok;
         println!(
             "  final loss (all 4096 samples, median): {} -> {}",
-            o.impls
+            m.impls
                 .iter()
                 .zip(&losses)
                 .map(|(i, l)| format!("{} {l:.3e}", i.name()))
@@ -656,79 +742,106 @@ pub fn run(args: &[String]) -> Result<bool> {
             }
         );
     }
-    if thread_counts.len() == 2 {
-        for batch in BATCHES {
-            let one = configs
-                .iter()
-                .position(|c| c.batch == batch && c.threads == 1);
-            let two = configs
-                .iter()
-                .position(|c| c.batch == batch && c.threads == 2);
-            let (Some(one), Some(two)) = (one, two) else {
-                continue;
-            };
-            let ratios: Vec<String> = o
-                .impls
-                .iter()
-                .enumerate()
-                .map(|(ii, imp)| {
-                    format!(
-                        "{} {:.2}",
-                        imp.name(),
-                        med_rate(two, ii) / med_rate(one, ii)
-                    )
-                })
-                .collect();
-            println!(
-                "scaling batch {batch}: 2-thread / 1-thread throughput: {}",
-                ratios.join(", ")
-            );
-        }
-    }
-    if let Some(k) = pos(Impl::Visviva) {
-        let mut sizes = vec![2];
-        sizes.extend_from_slice(&HIDDEN);
-        sizes.push(1);
-        let (per_sample, per_step) = flops_per_sample(&sizes);
-        // Peak per core: vector lanes x 2 (fused multiply-add) x 2 FMA units
-        // per core (common practice for recent x86 server cores; an
-        // assumption, not measured). ndarray's matrix products use 256-bit
-        // AVX2 + FMA kernels, so the AVX2 peak is the relevant one.
-        let lanes = if cpu.avx2 { 8.0 } else { 4.0 };
-        let fma = if cpu.fma { 2.0 } else { 1.0 };
-        let peak = cpu.mhz / 1000.0 * lanes * fma * 2.0;
-        println!(
-            "flops: visviva step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
-             (Adam, clipping); peak assumption {peak:.1} GFLOP/s per core = {:.2} GHz x {} f32 \
-             lanes ({}) x {} (FMA) x 2 FMA units{}",
-            cpu.mhz / 1000.0,
-            lanes,
-            if cpu.avx2 { "AVX2" } else { "SSE" },
-            fma,
-            if cpu.avx512 {
-                "; AVX-512 would double it, but the matrix kernels in use are AVX2"
+    agree
+}
+
+/// Each implementation's median throughput, then visviva's paired ratio
+/// against each reference.
+fn throughput_parts(m: &Measured<'_>, ci: usize) -> Vec<String> {
+    let mut parts: Vec<String> = m
+        .impls
+        .iter()
+        .enumerate()
+        .map(|(ii, imp)| {
+            if *imp == Impl::Visviva {
+                format!(" {} {:.0} samples/s", imp.name(), m.median_rate(ci, ii))
             } else {
-                ""
+                format!(" {} {:.0}", imp.name(), m.median_rate(ci, ii))
             }
-        );
-        for (ci, cfg) in configs.iter().enumerate() {
-            let rate = med_rate(ci, k);
-            let gflops = rate * (per_sample + per_step / cfg.batch as f64) / 1e9;
-            let cores_peak = peak * cfg.threads as f64;
-            println!(
-                "flops {}: visviva {gflops:.2} GFLOP/s achieved of {cores_peak:.1} peak ({:.1} %)",
-                cfg.label(),
-                100.0 * gflops / cores_peak
-            );
+        })
+        .collect();
+    if let Some(k) = m.position(Impl::Visviva) {
+        for other in [Impl::Torch, Impl::Jax] {
+            if let Some(x) = m.position(other) {
+                parts.push(format!(
+                    " visviva/{} {:.2}",
+                    other.name(),
+                    m.paired_ratio(ci, k, x)
+                ));
+            }
         }
     }
-    if o.impls.contains(&Impl::Visviva) && o.large_samples > 0 {
-        crate::bench_large::run(&tools.visviva, &work, o.large_samples, cpus)?;
+    parts
+}
+
+/// Per batch size: 2-thread over 1-thread throughput of every implementation.
+fn print_scaling(m: &Measured<'_>) {
+    for batch in BATCHES {
+        let find = |threads| {
+            m.configs
+                .iter()
+                .position(|c| c.batch == batch && c.threads == threads)
+        };
+        let (Some(one), Some(two)) = (find(1), find(2)) else {
+            continue;
+        };
+        let ratios: Vec<String> = m
+            .impls
+            .iter()
+            .enumerate()
+            .map(|(ii, imp)| {
+                format!(
+                    "{} {:.2}",
+                    imp.name(),
+                    m.median_rate(two, ii) / m.median_rate(one, ii)
+                )
+            })
+            .collect();
+        println!(
+            "scaling batch {batch}: 2-thread / 1-thread throughput: {}",
+            ratios.join(", ")
+        );
     }
-    if !agree {
-        println!("final losses disagree by more than a factor of 2: the comparison is not valid");
+}
+
+/// The FLOP count per sample, the assumed peak, and the achieved GFLOP/s of
+/// visviva (implementation `k`) per configuration.
+fn print_flops(m: &Measured<'_>, k: usize, cpu: &Cpu) {
+    let mut sizes = vec![2];
+    sizes.extend_from_slice(&HIDDEN);
+    sizes.push(1);
+    let (per_sample, per_step) = flops_per_sample(&sizes);
+    // Peak per core: vector lanes x 2 (fused multiply-add) x 2 FMA units
+    // per core (common practice for recent x86 server cores; an
+    // assumption, not measured). ndarray's matrix products use 256-bit
+    // AVX2 + FMA kernels, so the AVX2 peak is the relevant one.
+    let lanes = if cpu.avx2 { 8.0 } else { 4.0 };
+    let fma = if cpu.fma { 2.0 } else { 1.0 };
+    let peak = cpu.mhz / 1000.0 * lanes * fma * 2.0;
+    println!(
+        "flops: visviva step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
+         (Adam, clipping); peak assumption {peak:.1} GFLOP/s per core = {:.2} GHz x {} f32 \
+         lanes ({}) x {} (FMA) x 2 FMA units{}",
+        cpu.mhz / 1000.0,
+        lanes,
+        if cpu.avx2 { "AVX2" } else { "SSE" },
+        fma,
+        if cpu.avx512 {
+            "; AVX-512 would double it, but the matrix kernels in use are AVX2"
+        } else {
+            ""
+        }
+    );
+    for (ci, cfg) in m.configs.iter().enumerate() {
+        let rate = m.median_rate(ci, k);
+        let gflops = rate * (per_sample + per_step / cfg.batch as f64) / 1e9;
+        let cores_peak = peak * cfg.threads as f64;
+        println!(
+            "flops {}: visviva {gflops:.2} GFLOP/s achieved of {cores_peak:.1} peak ({:.1} %)",
+            cfg.label(),
+            100.0 * gflops / cores_peak
+        );
     }
-    Ok(agree)
 }
 
 #[cfg(test)]

@@ -589,6 +589,54 @@ pub fn run_observer_only() -> Result<bool> {
     Ok(ran && observed.iter().all(|r| r.same == r.total && r.total > 0))
 }
 
+/// The blobs to run: the given files, or (with none given) the fixtures,
+/// the exported demo blobs and the C cores' cases; the cores' cases also
+/// run on the Rust firmware.
+fn gather_cases(
+    root: &Path,
+    work: &Path,
+    host: &VisvivaCommand,
+    blobs: &[PathBuf],
+) -> Result<(Vec<DeviceCase>, Vec<CoreCase>)> {
+    let (mut cases, core_cases) = if blobs.is_empty() {
+        let exported = exported_demo_blobs(root);
+        for b in &exported {
+            println!("device check: found exported demo blob {}", b.display());
+        }
+        let mut cases = fixture_cases(work)?;
+        cases.extend(file_cases(&exported)?);
+        (cases, c_cores::cases(root, host)?)
+    } else {
+        (file_cases(blobs)?, Vec::new())
+    };
+    cases.extend(core_device_cases(&core_cases));
+    Ok((cases, core_cases))
+}
+
+/// Every case's rollouts on the emulated Rust firmware: states matched,
+/// states expected, and one report row per case that ran.
+fn run_good_cases(
+    root: &Path,
+    work: &Path,
+    cases: &[DeviceCase],
+    host: &VisvivaCommand,
+) -> (usize, usize, Vec<ReportRow>) {
+    let mut total = 0usize;
+    let mut matched = 0usize;
+    let mut rows = Vec::new();
+    for case in cases {
+        total += case.plan.state_count();
+        match run_good_case(root, work, case, host) {
+            Ok((same, row)) => {
+                matched += same;
+                rows.push(row);
+            }
+            Err(e) => println!("  {}: FAILED: {e:#}", case.name),
+        }
+    }
+    (matched, total, rows)
+}
+
 /// Run the whole device check. Ok(true) when every state matched and every
 /// refusal and fault drill behaved.
 pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
@@ -601,31 +649,8 @@ pub fn run(blobs: Vec<PathBuf>) -> Result<bool> {
     println!("device check: host reference = {}", host.describe());
 
     let default_run = blobs.is_empty();
-    let (mut cases, core_cases) = if default_run {
-        let exported = exported_demo_blobs(&root);
-        for b in &exported {
-            println!("device check: found exported demo blob {}", b.display());
-        }
-        let mut cases = fixture_cases(&work)?;
-        cases.extend(file_cases(&exported)?);
-        (cases, c_cores::cases(&root, &host)?)
-    } else {
-        (file_cases(&blobs)?, Vec::new())
-    };
-    cases.extend(core_device_cases(&core_cases));
-    let mut total = 0usize;
-    let mut matched = 0usize;
-    let mut rows = Vec::new();
-    for case in &cases {
-        total += case.plan.state_count();
-        match run_good_case(&root, &work, case, &host) {
-            Ok((same, row)) => {
-                matched += same;
-                rows.push(row);
-            }
-            Err(e) => println!("  {}: FAILED: {e:#}", case.name),
-        }
-    }
+    let (cases, core_cases) = gather_cases(&root, &work, &host, &blobs)?;
+    let (matched, total, rows) = run_good_cases(&root, &work, &cases, &host);
 
     let golden_ok = rows
         .iter()

@@ -82,6 +82,8 @@ pub fn run() -> Result<bool> {
                         "--test",
                         "observer_crane",
                         "--test",
+                        "observer_damped",
+                        "--test",
                         "observer_faults",
                         "--test",
                         "observe_cli",

@@ -13,8 +13,9 @@ use std::path::PathBuf;
 #[derive(Debug, clap::Args)]
 #[command(after_help = after_help())]
 pub struct Args {
-    /// Built-in system: flexure, crane, mount, double-pendulum (its mass
-    /// matrix depends on the angles: fit it with --arch mechanical), or the
+    /// Built-in system: flexure, crane, mount, double-pendulum and
+    /// crane-cart (their mass matrices depend on the angles: fit them with
+    /// --arch mechanical), or the
     /// damped/driven flexure-damped, drivetrain, flexure-squeeze and
     /// crane-trolley.
     #[arg(long, value_name = "NAME")]

@@ -144,8 +144,8 @@ impl Units {
             return Ok(Self {
                 source: format!("built-in system {}", system.unwrap_or_default()),
                 declared: true,
-                q: all(u.q, dof),
-                p: all(u.p, dof),
+                q: per_coordinate(u.q, dof),
+                p: per_coordinate(u.p, dof),
                 energy: "J".into(),
                 inputs: u.inputs.iter().map(|s| s.to_string()).collect(),
                 time: "s".into(),
@@ -207,6 +207,17 @@ impl Units {
     }
 }
 
+/// A built-in system's units for `n` coordinates: one entry repeats for
+/// every coordinate, else one per coordinate (missing ones undeclared).
+fn per_coordinate(list: &[&str], n: usize) -> Vec<String> {
+    match list {
+        [one] => vec![one.to_string(); n],
+        _ => (0..n)
+            .map(|i| list.get(i).copied().unwrap_or(UNDECLARED).to_string())
+            .collect(),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -250,6 +261,10 @@ mod tests {
         );
         let u = Units::resolve(None, Some("drivetrain"), 2, 1).unwrap();
         assert_eq!(u.inputs, ["N m"]);
+        // The free-trolley crane mixes a position and an angle.
+        let u = Units::resolve(None, Some("crane-cart"), 2, 0).unwrap();
+        assert_eq!(u.q, ["m", "rad"]);
+        assert_eq!(u.p, ["kg m/s", "kg m^2/s"]);
         let u = Units::resolve(None, None, 1, 0).unwrap();
         assert!(!u.declared && u.source.contains("[data] units"));
     }

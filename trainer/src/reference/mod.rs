@@ -10,6 +10,7 @@
 use rand_chacha::ChaCha8Rng;
 use std::fmt;
 
+pub mod cart;
 pub mod change;
 pub mod crane;
 pub mod drivetrain;
@@ -103,23 +104,23 @@ pub struct SystemEntry {
 /// The SI units of a built-in system's state and inputs.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct StateUnits {
-    /// Every coordinate q_i.
-    pub q: &'static str,
-    /// Every momentum p_i.
-    pub p: &'static str,
+    /// Each coordinate q_i (one entry: the same for every coordinate).
+    pub q: &'static [&'static str],
+    /// Each momentum p_i (one entry: the same for every momentum).
+    pub p: &'static [&'static str],
     /// Each input u_j.
     pub inputs: &'static [&'static str],
 }
 
 const LINEAR: StateUnits = StateUnits {
-    q: "m",
-    p: "kg m/s",
+    q: &["m"],
+    p: &["kg m/s"],
     inputs: &[],
 };
 
 const ANGULAR: StateUnits = StateUnits {
-    q: "rad",
-    p: "kg m^2/s",
+    q: &["rad"],
+    p: &["kg m^2/s"],
     inputs: &[],
 };
 
@@ -190,6 +191,17 @@ pub const CATALOG: &[SystemEntry] = &[
         params: linkage::DOUBLE_PENDULUM_PARAMS,
         build: linkage::DoublePendulum::build,
         units: ANGULAR,
+    },
+    SystemEntry {
+        name: "crane-cart",
+        summary: "payload swinging under a trolley that rolls freely on its rail (cart-pendulum, q = trolley position, rope angle): the mass matrix depends on the angle, 2 dof",
+        params: cart::CRANE_CART_PARAMS,
+        build: cart::CraneCart::build,
+        units: StateUnits {
+            q: &["m", "rad"],
+            p: &["kg m/s", "kg m^2/s"],
+            inputs: &[],
+        },
     },
 ];
 

@@ -27,7 +27,9 @@
 //!   model's own step, Joseph-form covariance, position and velocity
 //!   measurements, missed samples, process noise constant or growing with
 //!   the energy) and `Model::momentum_from_velocity`
-//!   (p = M v for separable models with a quadratic kinetic term).
+//!   (p = M v for separable models with a quadratic kinetic term;
+//!   `Model::momentum_from_velocity_at` also for the mechanical energy,
+//!   p = M(q) v).
 //! * [`monitor`]: health flags (windowed NIS against chi-square bounds,
 //!   out-of-envelope with the blob's training envelope or caller-given
 //!   bounds, energy-balance residual).

@@ -233,3 +233,33 @@ fn the_observer_refuses_a_mechanical_model_with_a_typed_error() {
         .momentum_from_velocity(&[0.1, 0.1], &mut [0.0; 2])
         .is_none());
 }
+
+#[test]
+fn momentum_from_velocity_at_inverts_the_mechanical_velocity() {
+    // p = M(q) v solved by pivoted elimination; v = dH/dp from the
+    // runtime's gradient (checked against num-dual in `gradient.rs`) at
+    // the p found must give back v. The M(q) closed form is checked
+    // through the binary in trainer/tests/rollout_init.rs.
+    let mut rng = XorShift64Star(16);
+    let owned = fixture(&mut rng, Method::ImplicitMidpoint, 0.01);
+    let blob = owned.blob().unwrap();
+    let m = M::from_bytes(&blob).unwrap();
+    let mut worst = 0.0f32;
+    for _ in 0..20 {
+        let q = [rng.uniform(-2.0, 2.0) as f32, rng.uniform(-2.0, 2.0) as f32];
+        let v = [rng.uniform(-1.0, 1.0) as f32, rng.uniform(-1.0, 1.0) as f32];
+        let mut p = [0.0f32; 2];
+        m.momentum_from_velocity_at(&q, &v, &mut p).unwrap();
+        let x = State::<4>::new(&q, &p).unwrap();
+        let (mut gq, mut gp) = ([0.0f32; 4], [0.0f32; 4]);
+        m.gradient(&x, &mut gq, &mut gp).unwrap();
+        for i in 0..2 {
+            worst = worst.max((gp[i] - v[i]).abs());
+        }
+    }
+    assert!(worst < 1e-4, "largest |dH/dp - v| {worst}");
+    // Non-finite input is refused, not propagated.
+    assert!(m
+        .momentum_from_velocity_at(&[f32::NAN, 0.0], &[0.1, 0.1], &mut [0.0; 2])
+        .is_none());
+}

@@ -411,7 +411,7 @@ fn a_rollout_to_standard_output_that_stops_part_way_exits_non_zero() {
     let step = number_after(&err, "at step ") as usize;
     let out = text(&o).0;
     assert_eq!(out.lines().count(), step + 1, "{out}");
-    assert!(out.starts_with("t,q1,p1\n"), "{out}");
+    assert!(out.starts_with("t,q1,p1,v1\n"), "{out}");
 }
 
 /// Adapter so the `ode_solvers` crate integrates the baseline's vector

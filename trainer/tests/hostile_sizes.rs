@@ -283,7 +283,7 @@ fn ctrl_c_and_failures_in_the_middle_of_a_write_leave_no_temporary_file() {
         .unwrap();
     let text = String::from_utf8(partial).unwrap();
     let rows: Vec<&str> = text.lines().collect();
-    assert_eq!(rows[0], "t,q1,p1");
+    assert_eq!(rows[0], "t,q1,p1,v1");
     assert_eq!(rows.len(), step + 1, "{err}");
     assert!((600..1000).contains(&step), "failed at step {step}");
     for r in &rows[1..] {

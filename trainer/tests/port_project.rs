@@ -230,6 +230,7 @@ epochs = 15
 horizon_steps = 200
 golden_steps = 120
 reference_system = "drivetrain"
+horizons = [0.25, 0.5, 5.0]
 [[export]]
 name = "tiny-dgrad"
 [[export]]
@@ -299,6 +300,28 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
         "page text, read back as numbers, disagrees with report.json (key, page, report)"
     );
     assert!(tags.iter().any(|(k, _)| k == "port/modes/0/damping_ratio"));
+    // The driven state errors at [check] horizons: the 1 s held-out
+    // trajectories reach 0.25 s and 0.5 s, not 5 s (reported, not clipped).
+    let h = port["horizons"].as_array().unwrap();
+    let reached: Vec<u64> = h.iter().map(|x| x["reached"].as_u64().unwrap()).collect();
+    assert_eq!(reached, [2, 2, 0]);
+    for d in port["driven"].as_array().unwrap() {
+        let e = &d["horizons"];
+        assert!(e[0]["model"].as_f64().unwrap() >= 0.0);
+        assert!(e[1]["baseline"].as_f64().unwrap() >= 0.0);
+        assert_eq!(e[2]["reached"], false);
+        assert!(e[2]["model"].is_null());
+    }
+    assert!(tags
+        .iter()
+        .any(|(k, _)| k == "port/horizons/1/median_model"));
+    let cells =
+        page_numbers::cells_without_untagged_digits(&html, "State error at chosen horizons");
+    assert_eq!(
+        cells,
+        3 * 3 * 5,
+        "3 horizons x (2 trajectories + median) x 5 columns"
+    );
     assert!(tags
         .iter()
         .any(|(k, _)| k == "port/driven/0/baseline_state_rel_rmse"));
@@ -349,8 +372,11 @@ fn run_reports_damping_and_replays_the_held_out_inputs() {
         ]);
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
         let replay = read_rows(&host);
+        // The golden files hold t,q1,q2,p1,p2; the rollout adds v1,v2.
+        assert_eq!(replay[0].len(), 7, "{name}");
+        assert_eq!(golden[0].len(), 5, "{name}");
         let states = |rows: &[Vec<String>]| -> Vec<Vec<String>> {
-            rows.iter().map(|r| r[1..].to_vec()).collect()
+            rows.iter().map(|r| r[1..5].to_vec()).collect()
         };
         assert_eq!(states(&replay), states(&golden), "{name}");
     }

@@ -101,6 +101,7 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     }
     assert!(html.matches("<svg").count() >= 4);
     assert!(html.contains("exceeds the flash budget"));
+    horizons_table_is_tagged(&json, &html);
     assert_eq!(json["fit"]["reused"], false);
     provenance_units_and_verdicts(p, &json, &html);
 
@@ -134,6 +135,17 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     assert_eq!(page_numbers::disagreements(&html, &json), vec![]);
     assert!(p.join("out/tiny-int8.vvb").exists());
     assert!(p.join("out/golden/tiny-int8-0.csv").exists());
+}
+
+/// The state errors at the default horizons (1, 5, 20 s) are in
+/// report.json and on the page, and every cell of their table that shows a
+/// digit shows it inside a tagged number (as `cargo xtask browser` demands).
+fn horizons_table_is_tagged(json: &serde_json::Value, html: &str) {
+    let h = json["check"]["horizons"].as_array().unwrap();
+    let seconds: Vec<f64> = h.iter().map(|x| x["seconds"].as_f64().unwrap()).collect();
+    assert_eq!(seconds, [1.0, 5.0, 20.0]);
+    let cells = page_numbers::cells_without_untagged_digits(html, "State error at chosen horizons");
+    assert!(cells >= 5 * 3, "{cells} cells");
 }
 
 /// Provenance (hashes against sha2's SHA-256 of the files), the units of

@@ -1,5 +1,6 @@
 //! Golden rollouts written by `visviva run` next to an exported blob
-//! (`<dir>/golden/<blob stem>-<k>.csv`, columns `t,q1..qn,p1..pn`, values as
+//! (`<dir>/golden/<blob stem>-<k>.csv`, columns `t,q1..qn,p1..pn`; a
+//! `visviva rollout` file adds `v1..vn`, read and dropped), values as
 //! `0x`-prefixed `f32` bit patterns or decimal numbers). When present they
 //! supply the device check's initial states and step count, and serve as a
 //! second reference beside the in-process rollout. A driven model's golden
@@ -37,13 +38,14 @@ pub fn inputs_file_for(blob: &Path) -> Option<PathBuf> {
 
 /// A table of `0x`-hex bit patterns or decimal numbers under a header that
 /// `header_ok` accepts (`expected` describes it in the error): the header
-/// and every row's bit patterns, the first (`t`) column dropped. Errors
+/// (its names) and every row's bit patterns, the first (`t`) column
+/// dropped. Errors
 /// name the file, line and column.
 fn read_table(
     path: &Path,
     header_ok: impl Fn(&[&str]) -> bool,
     expected: &str,
-) -> Result<(usize, Vec<Vec<u32>>)> {
+) -> Result<(Vec<String>, Vec<Vec<u32>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
     let mut lines = text.lines();
@@ -85,7 +87,7 @@ fn read_table(
         }
         rows.push(row);
     }
-    Ok((columns, rows))
+    Ok((header.iter().map(|c| c.to_string()).collect(), rows))
 }
 
 /// An input sequence file: one row of m values per step (the `t` column
@@ -111,14 +113,38 @@ fn parse_value(text: &str) -> Option<u32> {
     }
 }
 
-/// One file: the dof and every row's bit patterns (the `t` column dropped).
+/// Whether `h` is `t,q1..qn,p1..pn` (golden files) or
+/// `t,q1..qn,p1..pn,v1..vn` (`visviva rollout`, velocities after the
+/// state); the dof when it is.
+fn states_dof(h: &[&str]) -> Option<usize> {
+    let names = |n: usize, kinds: &[&str]| -> Vec<String> {
+        let mut v = vec!["t".to_string()];
+        for k in kinds {
+            v.extend((1..=n).map(|i| format!("{k}{i}")));
+        }
+        v
+    };
+    let h: Vec<String> = h.iter().map(|c| c.trim().to_string()).collect();
+    let c = h.len().checked_sub(1)?;
+    [(2, &["q", "p"][..]), (3, &["q", "p", "v"][..])]
+        .into_iter()
+        .filter(|(k, _)| c > 0 && c % k == 0)
+        .find(|(k, kinds)| h == names(c / k, kinds))
+        .map(|(k, _)| c / k)
+}
+
+/// One file: the dof and every row's state bit patterns (the `t` column
+/// and any velocity columns dropped).
 pub fn read_one(path: &Path) -> Result<(usize, Vec<Vec<u32>>)> {
-    let states_header = |h: &[&str]| h.len() >= 3 && !h.len().is_multiple_of(2);
-    let (columns, rows) = read_table(path, states_header, "t,q1..qn,p1..pn")?;
+    let states_header = |h: &[&str]| states_dof(h).is_some();
+    let (header, mut rows) = read_table(path, states_header, "t,q1..qn,p1..pn[,v1..vn]")?;
     if rows.is_empty() {
         bail!("{}: no rows", path.display());
     }
-    Ok(((columns - 1) / 2, rows))
+    let h: Vec<&str> = header.iter().map(String::as_str).collect();
+    let n = states_dof(&h).context("header checked")?;
+    rows.iter_mut().for_each(|r| r.truncate(2 * n));
+    Ok((n, rows))
 }
 
 /// Read all golden files of a blob and, for a driven model, their input
@@ -176,6 +202,24 @@ mod tests {
         assert_eq!(parse_value("0x3f000000"), Some(0x3F00_0000));
         assert_eq!(parse_value("-1.5"), Some(0xBFC0_0000));
         assert_eq!(parse_value("nope"), None);
+    }
+
+    #[test]
+    fn velocity_columns_are_dropped_and_the_header_decides_the_dof() {
+        let dir = std::env::temp_dir().join(format!("xtask-golden-v-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        // Six value columns: two dof with velocities, or three without.
+        let (with_v, without_v) = (dir.join("v.csv"), dir.join("s.csv"));
+        std::fs::write(&with_v, "t,q1,q2,p1,p2,v1,v2\n0,1,2,3,4,5,6\n").unwrap();
+        std::fs::write(&without_v, "t,q1,q2,q3,p1,p2,p3\n0,1,2,3,4,5,6\n").unwrap();
+        let (n, rows) = read_one(&with_v).unwrap();
+        let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        assert_eq!((n, rows[0].clone()), (2, bits(&[1.0, 2.0, 3.0, 4.0])));
+        let (n, rows) = read_one(&without_v).unwrap();
+        assert_eq!((n, rows[0].len()), (3, 6));
+        std::fs::write(&with_v, "t,q1,p1,v2\n0,1,2,3\n").unwrap();
+        assert!(read_one(&with_v).is_err());
+        std::fs::remove_dir_all(&dir).ok();
     }
 
     #[test]

@@ -154,6 +154,29 @@ impl<'a, const W: usize> Mechanical<'a, W> {
         self.kinetic(&u, zp, n) + v
     }
 
+    /// The inverse mass matrix A = L(z_q) L(z_q)^T + eps I in normalized
+    /// coordinates (dE/dz_p = A z_p) into the leading n x n block of `a`;
+    /// `false` when the factor is too wide for W (refused at validation).
+    pub fn inverse_mass(&self, zq: &[f32], a: &mut [[f32; CAP]; CAP]) -> bool {
+        let n = zq.len().min(CAP);
+        if n * (n + 1) / 2 > W {
+            return false;
+        }
+        let (mut raw, mut l, mut slope) = ([0.0f32; W], [0.0f32; W], [0.0f32; W]);
+        self.factor.evaluate(zq, &mut raw);
+        Self::factor_from_raw(&raw, n, &mut l, &mut slope);
+        for i in 0..n {
+            for j in 0..n {
+                let mut acc = 0.0f32;
+                for k in 0..=i.min(j) {
+                    acc += l[at(i, k)] * l[at(j, k)];
+                }
+                a[i][j] = acc + if i == j { self.floor } else { 0.0 };
+            }
+        }
+        true
+    }
+
     /// Multiply-accumulates of one gradient (both networks forward and
     /// back, plus the quadratic form).
     pub fn macs(&self, n: usize) -> u32 {

@@ -6,6 +6,10 @@
 //! A mechanical model (M(q) from a network) has no Hessian-vector product
 //! here yet: it is refused with `StepError::NoSecondDerivatives`, so the
 //! observer and the exact step Jacobian do not take it.
+//! Momenta from velocities: p = M v for the energies whose velocity dH/dp
+//! is linear in p (a quadratic kinetic term, and the mechanical energy at
+//! a given q, where M(q)^-1 = L L^T + eps I is solved by pivoted
+//! elimination).
 
 use super::{Model, PortMatrix};
 use crate::energy::{Energy, Kinetic};
@@ -83,6 +87,46 @@ impl<const D: usize, const W: usize> Model<'_, D, W> {
             p[i] = self.offset_p[i] + self.scale_p[i] * z[i];
         }
         Some(())
+    }
+}
+
+impl<const D: usize, const W: usize> Model<'_, D, W> {
+    /// p = M(q) v at the coordinates `q`: the separable quadratic case of
+    /// [`Model::momentum_from_velocity`], or for a mechanical energy
+    /// v = e S^-1 A(z_q) S^-1 (p - o_p) with A = L L^T + eps I, solved for
+    /// p. `None` for models whose velocity is not linear in p (network
+    /// kinetic term, general energy), for non-finite input, or a singular
+    /// solve.
+    pub fn momentum_from_velocity_at(&self, q: &[f32], v: &[f32], p: &mut [f32]) -> Option<()> {
+        let n = self.dof;
+        let Energy::Mechanical(m) = &self.energy else {
+            return self.momentum_from_velocity(v, p);
+        };
+        if !cfg!(feature = "mechanical") || q.len() < n || v.len() < n || p.len() < n {
+            return None;
+        }
+        if q[..n].iter().chain(&v[..n]).any(|x| !x.is_finite()) {
+            return None;
+        }
+        let mut zq = [0.0f32; D];
+        for i in 0..n {
+            zq[i] = (q[i] - self.offset_q[i]) / self.scale_q[i];
+        }
+        const CAP: usize = crate::MAX_DOF_SUPPORTED;
+        let mut a = [[0.0f32; CAP]; CAP];
+        if !m.inverse_mass(&zq[..n], &mut a) {
+            return None;
+        }
+        // A z = S v / e, one right-hand side in column 0.
+        let mut b = [[0.0f32; CAP]; CAP];
+        for i in 0..n {
+            b[i][0] = self.scale_p[i] * v[i] / self.energy_scale;
+        }
+        crate::linalg::solve(&mut a, &mut b, n)?;
+        for i in 0..n {
+            p[i] = self.offset_p[i] + self.scale_p[i] * b[i][0];
+        }
+        p[..n].iter().all(|x| x.is_finite()).then_some(())
     }
 }
 

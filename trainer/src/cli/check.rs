@@ -10,11 +10,13 @@ use anyhow::{anyhow, Context, Result};
 use visviva_runtime::Hamiltonian;
 
 use crate::atomic::write_atomic;
-use crate::cli::tables::{print_table, sci};
+use crate::cli::tables::{print_horizons, print_table, sci};
 use crate::data::log::{load_csv, LoadOptions};
 use crate::deploy::blob::HostModel;
 use crate::evidence::charts::{charts, HistoryFile};
+use crate::evidence::check::driven_horizons;
 use crate::evidence::check::{check, CheckSettings};
+use crate::evidence::horizons::{summarize, HorizonError, HorizonSummary};
 use crate::reference::{build_system, parse_param};
 
 /// Arguments of `visviva check`.
@@ -51,6 +53,16 @@ pub struct Args {
     /// 10000).
     #[arg(long = "horizon-steps", visible_alias = "horizon", value_name = "N")]
     pub horizon: Option<usize>,
+    /// Horizons (s after each held-out trajectory's first sample) at which
+    /// the model's and the baseline's state errors are reported; a horizon
+    /// longer than a trajectory is reported as not reached for it.
+    #[arg(
+        long,
+        value_delimiter = ',',
+        value_name = "S1,..",
+        default_value = "1,5,20"
+    )]
+    pub horizons: Vec<f64>,
     /// Fit history (JSON from `visviva fit --history`) for the loss plot.
     #[arg(long, value_name = "FILE.json")]
     pub history: Option<PathBuf>,
@@ -68,6 +80,7 @@ fn check_paths(args: &Args) -> Result<()> {
     if let Some(m) = &args.mass {
         crate::learn::stage::check_masses(m, "--masses")?;
     }
+    crate::evidence::horizons::check_horizons(&args.horizons, "--horizons")?;
     let mut inputs = vec![
         ("--model", args.model.as_path()),
         ("--validation", args.data.as_path()),
@@ -136,6 +149,7 @@ pub fn run(args: Args) -> Result<()> {
         .transpose()?;
     let settings = CheckSettings {
         horizon_steps: args.horizon,
+        horizons: args.horizons.clone(),
         ..CheckSettings::default()
     };
     let r = check(
@@ -180,6 +194,11 @@ struct PortJson<'a> {
     #[serde(flatten)]
     model: &'a crate::evidence::check::PortCheckReport,
     baseline_rollouts: Option<Vec<crate::evidence::check::DrivenRollout>>,
+    /// State errors at the chosen horizons per held-out trajectory (in the
+    /// order of `rollouts`).
+    rollout_horizons: Vec<Vec<HorizonError>>,
+    /// Medians at each horizon over the trajectories reaching it.
+    horizons: Vec<HorizonSummary>,
 }
 
 /// `run` for a damped or driven model (`baseline`: a plain network taking
@@ -253,10 +272,25 @@ fn run_port(
         let b = base.as_ref().map_or("-".to_string(), |b| value(&b[k]));
         println!("{:<10} {:>28} {:>12}", t.id, value(t), b);
     }
+    let per: Vec<Vec<HorizonError>> = r
+        .rollouts
+        .iter()
+        .enumerate()
+        .map(|(k, m)| {
+            let b = base.as_ref().map(|b| &b[k]);
+            driven_horizons(&data.trajectories[k], m, b, &args.horizons)
+        })
+        .collect();
+    let slices: Vec<&[HorizonError]> = per.iter().map(Vec::as_slice).collect();
+    let horizons = summarize(&slices, &args.horizons, base.is_some());
+    let ids: Vec<&str> = r.rollouts.iter().map(|t| t.id.as_str()).collect();
+    print_horizons(&ids, &slices, &horizons, base.is_some());
     if let Some(p) = &args.report {
         let json = PortJson {
             model: &r,
             baseline_rollouts: base,
+            rollout_horizons: per,
+            horizons,
         };
         write_atomic(p, serde_json::to_string_pretty(&json)?.as_bytes())?;
         println!("report: {}", p.display());

@@ -1,13 +1,17 @@
 //! `visviva rollout`: step a blob on the host through `visviva-runtime` — the
 //! device's arithmetic — and write the trajectory as CSV, optionally as exact
-//! f32 bit patterns for bit-for-bit comparison with a board. The rollout
-//! streams: each row is written as its state is computed, so memory does not
-//! grow with `--steps`; a file output appears only when complete. A rollout
-//! that stops part-way (a step the integrator cannot take) keeps what it
-//! computed: `--out run.csv` then writes `run.partial.csv` (and leaves
-//! `run.csv` as it was), and the command exits non-zero naming the step and
-//! the reason. A baseline file (`fit --baseline`) rolls out the same way,
-//! by RK4 at `--dt`, from any state.
+//! f32 bit patterns for bit-for-bit comparison with a board. A blob's rows
+//! carry the velocities v = dH/dp after the momenta, and `--init` takes
+//! velocities `v*` instead of momenta, converted with the model's own mass
+//! matrix p = M(q) v (refused, with the reason, for a model without one).
+//! The rollout streams: each row is written as its state is computed, so
+//! memory does not grow with `--steps`; a file output appears only when
+//! complete. A rollout that stops part-way (a step the integrator cannot
+//! take) keeps what it computed: `--out run.csv` then writes
+//! `run.partial.csv` (and leaves `run.csv` as it was), and the command
+//! exits non-zero naming the step and the reason. A baseline file
+//! (`fit --baseline`) rolls out the same way, by RK4 at `--dt`, from any
+//! state given by momenta (its rows carry no velocity columns).
 
 use std::path::{Path, PathBuf};
 
@@ -22,7 +26,8 @@ use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::envelope::{Envelope, FarState};
 use crate::deploy::fitted_blob::read_baseline;
 use crate::deploy::rollout::{
-    csv_row_bytes, parse_init, stream_csv, stream_rows, InputRows, RowSettings, Streamed,
+    csv_row_bytes, parse_init, parse_init_spec, stream_csv, stream_rows, InputRows, Rates,
+    RowSettings, Streamed,
 };
 use crate::interrupt::Watch;
 
@@ -33,8 +38,10 @@ pub struct Args {
     /// `fit --baseline`), stepped by RK4 at --dt.
     #[arg(long, value_name = "MODEL.vvb")]
     pub model: PathBuf,
-    /// Initial state, every coordinate named once: "q1=0.5,p1=0".
-    #[arg(long, value_name = "q1=X,..,p1=Y,..")]
+    /// Initial state, every coordinate named once: "q1=0.5,p1=0", or with
+    /// velocities "q1=0.5,v1=0.2" (converted with the model's own mass
+    /// matrix, p = M(q) v; a baseline file takes momenta only).
+    #[arg(long, value_name = "q1=X,..,p1=Y|v1=Y,..")]
     pub init: String,
     /// Number of steps (any number: the rollout streams; with --out the
     /// disk must have room for the file).
@@ -81,7 +88,7 @@ pub fn run(args: Args) -> Result<()> {
         .with_integrator(overrides.apply(model.integrator()))
         .map_err(|e| anyhow!("{e}"))?;
     let dof = visviva_runtime::Hamiltonian::dof(&model);
-    let x0 = parse_init(&args.init, dof)?;
+    let x0 = initial_state(&model, &args.init, dof)?;
     let envelope = BlobModel::from_bytes(&bytes)
         .map(|b| Envelope::of(&b))
         .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
@@ -96,12 +103,40 @@ pub fn run(args: Args) -> Result<()> {
     let watch = Watch::new();
     let stream = |w: &mut dyn std::io::Write| {
         let envelope = Some(&envelope);
-        stream_csv(&model, &x0, args.steps, fill, args.bits, watch, envelope, w)
+        stream_csv(
+            &model, &x0, args.steps, fill, args.bits, true, watch, envelope, w,
+        )
     };
-    let streamed = write_rollout(&args, dof, stream)?;
+    let streamed = write_rollout(&args, dof, true, stream)?;
     warn_later(streamed.far, dof);
     eprintln!("{}", crate::CAUTION);
     stopped_part_way(&streamed, args.out.as_deref())
+}
+
+/// The initial state (q, p) of `--init`: momenta as given, or velocities
+/// converted with the model's own mass matrix p = M(q) v (a quadratic
+/// kinetic term, or the mechanical M(q)^-1 = L L^T + eps I); a model whose
+/// velocity is not linear in p is refused with the reason.
+fn initial_state(model: &HostModel<'_>, spec: &str, dof: usize) -> Result<Vec<f32>> {
+    let init = parse_init_spec(spec, dof)?;
+    let p = match init.rates {
+        Rates::Momenta(p) => p,
+        Rates::Velocities(v) => {
+            let mut p = vec![0.0f32; dof];
+            model
+                .momentum_from_velocity_at(&init.q, &v, &mut p)
+                .with_context(|| {
+                    format!(
+                        "--init: v1..v{dof} cannot be converted to momenta for this model: \
+                         its kinetic energy is not quadratic in p (a network kinetic term or a \
+                         general energy H(q, p)), so there is no mass matrix with p = M(q) v; \
+                         give the momenta p1..p{dof}"
+                    )
+                })?;
+            p
+        }
+    };
+    Ok(init.q.into_iter().chain(p).collect())
 }
 
 /// Whether `--model` names a baseline file (`*.baseline.json`).
@@ -158,10 +193,11 @@ fn run_baseline(args: &Args) -> Result<()> {
             bits: args.bits,
             watch,
             envelope: Some(&envelope),
+            velocity: None,
         };
         stream_rows(&rows, &x0, args.steps, step, w)
     };
-    let streamed = write_rollout(args, dof, stream)?;
+    let streamed = write_rollout(args, dof, false, stream)?;
     warn_later(streamed.far, dof);
     eprintln!("{}", crate::CAUTION);
     stopped_part_way(&streamed, args.out.as_deref())
@@ -172,6 +208,7 @@ fn run_baseline(args: &Args) -> Result<()> {
 fn write_rollout(
     args: &Args,
     dof: usize,
+    velocities: bool,
     stream: impl FnOnce(&mut dyn std::io::Write) -> Result<Streamed>,
 ) -> Result<Streamed> {
     let Some(p) = &args.out else {
@@ -184,7 +221,7 @@ fn write_rollout(
     check_disk(
         "--steps",
         p,
-        rows.saturating_mul(csv_row_bytes(dof, args.bits)),
+        rows.saturating_mul(csv_row_bytes(dof, args.bits, velocities)),
     )?;
     let mut streamed = None;
     let written = write_atomic_routed(p, |w| {

@@ -1,6 +1,7 @@
 //! Terminal tables shared by the commands that print check results.
 
 use crate::evidence::check::CheckReport;
+use crate::evidence::horizons::{HorizonError, HorizonSummary};
 use crate::evidence::report::PortReport;
 
 pub fn sci(v: f64) -> String {
@@ -77,6 +78,13 @@ pub fn print_table(r: &CheckReport) {
             r.integrator, t.dt, t.horizon_steps
         );
     }
+    let ids: Vec<&str> = r.trajectories.iter().map(|t| t.id.as_str()).collect();
+    let per: Vec<&[HorizonError]> = r
+        .trajectories
+        .iter()
+        .map(|t| t.horizons.as_slice())
+        .collect();
+    print_horizons(&ids, &per, &r.horizons, r.median_baseline.is_some());
     for t in &r.trajectories {
         for (who, m) in [("model", Some(&t.model)), ("baseline", t.baseline.as_ref())] {
             if let Some(f) = m.and_then(|m| m.failure.as_ref()) {
@@ -86,6 +94,48 @@ pub fn print_table(r: &CheckReport) {
                 );
             }
         }
+    }
+}
+
+/// The state errors at the chosen horizons: per trajectory `ids[i]` with
+/// errors `per[i]` (model / baseline, "not reached" when the trajectory is
+/// shorter), then the median over the trajectories that reach it.
+pub fn print_horizons(
+    ids: &[&str],
+    per: &[&[HorizonError]],
+    summary: &[HorizonSummary],
+    with_baseline: bool,
+) {
+    if summary.is_empty() {
+        return;
+    }
+    println!("relative state error at horizons (model / baseline):");
+    let stopped = |v: Option<f64>| v.map(sci).unwrap_or_else(|| "stopped".into());
+    for (j, s) in summary.iter().enumerate() {
+        let each: Vec<String> = ids
+            .iter()
+            .zip(per)
+            .map(|(id, errs)| match errs.get(j) {
+                Some(e) if e.reached => {
+                    let b = if with_baseline {
+                        stopped(e.baseline)
+                    } else {
+                        "-".into()
+                    };
+                    format!("{id} {} / {b}", stopped(e.model))
+                }
+                _ => format!("{id} not reached"),
+            })
+            .collect();
+        println!(
+            "  {} s: median {} / {} over {} of {} trajectories reaching it ({})",
+            s.seconds,
+            opt(s.median_model),
+            opt(s.median_baseline),
+            s.reached,
+            ids.len(),
+            each.join(", ")
+        );
     }
 }
 

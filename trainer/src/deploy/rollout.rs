@@ -1,5 +1,6 @@
 //! Host rollouts through `visviva-runtime`, the very arithmetic the device
-//! runs, plus the helpers around them: parsing initial states, sampling
+//! runs, plus the helpers around them: parsing initial states (momenta or
+//! velocities), the velocity columns v = dH/dp of a rollout CSV, sampling
 //! test states inside a model's normalization range, and drift measures.
 
 use std::fmt::Write as _;
@@ -114,10 +115,15 @@ pub fn roll_each(
     Ok(None)
 }
 
-/// The CSV header `t,q1..qn,p1..pn`.
-pub fn write_csv_header(w: &mut dyn Write, dof: usize) -> std::io::Result<()> {
+/// The CSV header `t,q1..qn,p1..pn`, then `v1..vn` with `velocities`.
+pub fn write_csv_header(w: &mut dyn Write, dof: usize, velocities: bool) -> std::io::Result<()> {
     let mut s = String::from("t");
-    for k in ["q", "p"] {
+    let kinds: &[&str] = if velocities {
+        &["q", "p", "v"]
+    } else {
+        &["q", "p"]
+    };
+    for k in kinds {
         for i in 1..=dof {
             let _ = write!(s, ",{k}{i}");
         }
@@ -147,10 +153,25 @@ pub fn write_csv_row(
 }
 
 /// About how many bytes a CSV row of `dof` degrees of freedom takes (for
-/// the disk-space check before a long rollout).
-pub fn csv_row_bytes(dof: usize, bits: bool) -> u128 {
+/// the disk-space check before a long rollout), with or without the
+/// velocity columns.
+pub fn csv_row_bytes(dof: usize, bits: bool, velocities: bool) -> u128 {
     let value = if bits { 11 } else { 10 };
-    8 + 2 * dof as u128 * value
+    let columns = if velocities { 3 } else { 2 };
+    8 + columns * dof as u128 * value
+}
+
+/// The velocities v = dH/dp of `model` at the flat state `x` (q, p) into
+/// `v`, from the runtime's own gradient; NaN where the model cannot
+/// evaluate the state.
+pub fn velocity_of(model: &HostModel<'_>, x: &[f32], v: &mut [f32]) {
+    let (mut gq, mut gp) = ([0.0f32; HOST_MAX_DOF], [0.0f32; HOST_MAX_DOF]);
+    let ok = state_of(x)
+        .ok()
+        .and_then(|s| model.gradient(&s, &mut gq, &mut gp).ok());
+    for (i, vi) in v.iter_mut().enumerate() {
+        *vi = if ok.is_some() { gp[i] } else { f32::NAN };
+    }
 }
 
 /// What a streamed rollout found besides its rows.
@@ -188,9 +209,10 @@ impl Streamed {
     }
 }
 
-/// Stream a rollout of `model` into `w` as CSV (`t,q1..qn,p1..pn`), each
-/// row written as its state is computed; `fill(k, u)` writes the inputs
-/// held over step k (zeros unless it writes). See [`stream_rows`].
+/// Stream a rollout of `model` into `w` as CSV (`t,q1..qn,p1..pn`, then
+/// `v1..vn` = dH/dp with `velocities`), each row written as its state is
+/// computed; `fill(k, u)` writes the inputs held over step k (zeros unless
+/// it writes). See [`stream_rows`].
 #[allow(clippy::too_many_arguments)]
 pub fn stream_csv(
     model: &HostModel<'_>,
@@ -198,6 +220,7 @@ pub fn stream_csv(
     steps: usize,
     mut fill: impl FnMut(usize, &mut [f32]) -> Result<()>,
     bits: bool,
+    velocities: bool,
     watch: crate::interrupt::Watch,
     envelope: Option<&Envelope>,
     w: &mut dyn Write,
@@ -217,15 +240,20 @@ pub fn stream_csv(
             Err(e) => Some(e.to_string()),
         })
     };
+    let velocity = |x: &[f32], v: &mut [f32]| velocity_of(model, x, v);
     let rows = RowSettings {
         dof,
         dt: model.integrator().dt,
         bits,
         watch,
         envelope,
+        velocity: velocities.then_some(&velocity as &VelocityFn<'_>),
     };
     stream_rows(&rows, x0, steps, step, w)
 }
+
+/// The velocities of a flat state (q, p) written into the slice.
+pub type VelocityFn<'a> = dyn Fn(&[f32], &mut [f32]) + 'a;
 
 /// How [`stream_rows`] writes: degrees of freedom, the time step of a row,
 /// bit patterns or decimals, Ctrl-C, and the envelope to warn about.
@@ -240,6 +268,8 @@ pub struct RowSettings<'a> {
     pub watch: crate::interrupt::Watch,
     /// The training data's envelope, when known.
     pub envelope: Option<&'a Envelope>,
+    /// Velocities of a state, written as `v1..vn` after the momenta.
+    pub velocity: Option<&'a VelocityFn<'a>>,
 }
 
 /// Stream a rollout into `w` as CSV, each row written as its state is
@@ -256,8 +286,9 @@ pub fn stream_rows(
     mut step: impl FnMut(usize, &mut [f32]) -> Result<Option<String>>,
     w: &mut dyn Write,
 ) -> Result<Streamed> {
-    write_csv_header(w, rows.dof)?;
+    write_csv_header(w, rows.dof, rows.velocity.is_some())?;
     let mut x = x0.to_vec();
+    let mut row = vec![0.0f32; 3 * rows.dof];
     let mut far = None;
     let mut failure = None;
     for k in 0..=steps {
@@ -273,7 +304,16 @@ pub fn stream_rows(
         if far.is_none() {
             far = rows.envelope.and_then(|e| e.far(k, &x));
         }
-        write_csv_row(w, k, rows.dt, &x, rows.bits)?;
+        let line = match rows.velocity {
+            Some(velocity) => {
+                let n = x.len();
+                row[..n].copy_from_slice(&x);
+                velocity(&x, &mut row[n..n + rows.dof]);
+                &row[..n + rows.dof]
+            }
+            None => &x[..],
+        };
+        write_csv_row(w, k, rows.dt, line, rows.bits)?;
     }
     Ok(Streamed {
         far,
@@ -363,54 +403,126 @@ impl InputRows {
     }
 }
 
+/// An initial state as `--init` gives it: the coordinates, and either the
+/// momenta or the velocities (one kind for all coordinates).
+#[derive(Debug, Clone, PartialEq)]
+pub struct InitSpec {
+    /// q1..qn.
+    pub q: Vec<f32>,
+    /// p1..pn or v1..vn.
+    pub rates: Rates,
+}
+
+/// The second half of an initial state.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Rates {
+    /// Momenta p1..pn, the model's own state.
+    Momenta(Vec<f32>),
+    /// Velocities v1..vn, to be converted with the model's p = M(q) v.
+    Velocities(Vec<f32>),
+}
+
 /// Parse `q1=0.1,p1=0` (every coordinate named once) for `dof` degrees of
-/// freedom.
+/// freedom; velocities (`v1=..`) are refused here: see [`parse_init_spec`]
+/// for a model that converts them.
 pub fn parse_init(spec: &str, dof: usize) -> Result<Vec<f32>> {
-    let mut x = vec![None; 2 * dof];
+    let init = parse_init_spec(spec, dof)?;
+    match init.rates {
+        Rates::Momenta(p) => Ok(init.q.into_iter().chain(p).collect()),
+        Rates::Velocities(_) => bail!(
+            "--init: velocities (v1..v{dof}) need a model with a mass matrix p = M(q) v; \
+             give the momenta p1..p{dof}"
+        ),
+    }
+}
+
+/// Parse `q1=0.1,p1=0` or `q1=0.1,v1=0.2` for `dof` degrees of freedom:
+/// every coordinate named once, and for each index either p or v, the same
+/// kind for all (a p and a v of one coordinate, or a mix of kinds, is
+/// refused naming the keys).
+pub fn parse_init_spec(spec: &str, dof: usize) -> Result<InitSpec> {
+    // Slots: q1..qn, p1..pn, v1..vn.
+    let mut x = vec![None; 3 * dof];
     for part in spec.split(',').map(str::trim).filter(|s| !s.is_empty()) {
-        let (name, value) = part
-            .split_once('=')
-            .with_context(|| format!("--init: '{part}' is not NAME=VALUE"))?;
-        let name = name.trim();
-        // The first character (any, not a byte) names q or p.
-        let mut chars = name.chars();
-        let kind = chars.next().map_or("", |c| &name[..c.len_utf8()]);
-        let idx = chars.as_str();
-        let i: usize = idx
-            .parse()
-            .ok()
-            .filter(|i| (1..=dof).contains(i))
-            .with_context(|| {
-                format!("--init: unknown coordinate '{name}' (model has q1..q{dof}, p1..p{dof})")
-            })?;
-        let slot = match kind {
-            "q" => i - 1,
-            "p" => dof + i - 1,
-            _ => bail!("--init: unknown coordinate '{name}' (model has q1..q{dof}, p1..p{dof})"),
-        };
-        let v: f32 = value
-            .trim()
-            .parse()
-            .with_context(|| format!("--init: value of {name} '{value}' is not a number"))?;
-        if !v.is_finite() {
-            bail!("--init: value of {name} is not finite");
-        }
+        let (name, v) = init_entry(part)?;
+        let slot = init_slot(name, dof)?;
         if x[slot].replace(v).is_some() {
             bail!("--init: {name} given twice");
         }
     }
-    x.iter()
+    let q = (0..dof)
+        .map(|i| x[i].with_context(|| format!("--init: q{} missing", i + 1)))
+        .collect::<Result<Vec<f32>>>()?;
+    let (p, v) = (&x[dof..2 * dof], &x[2 * dof..]);
+    for i in 0..dof {
+        if p[i].is_some() && v[i].is_some() {
+            bail!(
+                "--init: p{0} and v{0} both given: give the momentum p{0} or the velocity v{0}, \
+                 not both",
+                i + 1
+            );
+        }
+    }
+    let (np, nv) = (p.iter().flatten().count(), v.iter().flatten().count());
+    if np > 0 && nv > 0 {
+        let pk = p.iter().position(Option::is_some).unwrap_or(0) + 1;
+        let vk = v.iter().position(Option::is_some).unwrap_or(0) + 1;
+        bail!("--init: p{pk} and v{vk} mix momenta and velocities: give p1..p{dof} or v1..v{dof}");
+    }
+    let rates = if nv > 0 {
+        Rates::Velocities(all_given(v, "v")?)
+    } else {
+        Rates::Momenta(all_given(p, "p")?)
+    };
+    Ok(InitSpec { q, rates })
+}
+
+/// One `NAME=VALUE` entry: the name and its finite value.
+fn init_entry(part: &str) -> Result<(&str, f32)> {
+    let (name, value) = part
+        .split_once('=')
+        .with_context(|| format!("--init: '{part}' is not NAME=VALUE"))?;
+    let name = name.trim();
+    let v: f32 = value
+        .trim()
+        .parse()
+        .with_context(|| format!("--init: value of {name} '{value}' is not a number"))?;
+    if !v.is_finite() {
+        bail!("--init: value of {name} is not finite");
+    }
+    Ok((name, v))
+}
+
+/// The slot of `q3`, `p3` or `v3` among q1..qn, p1..pn, v1..vn.
+fn init_slot(name: &str, dof: usize) -> Result<usize> {
+    let unknown = || {
+        anyhow::anyhow!(
+            "--init: unknown coordinate '{name}' (model has q1..q{dof}, p1..p{dof} or v1..v{dof})"
+        )
+    };
+    // The first character (any, not a byte) names q, p or v.
+    let mut chars = name.chars();
+    let kind = chars.next().map_or("", |c| &name[..c.len_utf8()]);
+    let i: usize = chars
+        .as_str()
+        .parse()
+        .ok()
+        .filter(|i| (1..=dof).contains(i))
+        .ok_or_else(unknown)?;
+    match kind {
+        "q" => Ok(i - 1),
+        "p" => Ok(dof + i - 1),
+        "v" => Ok(2 * dof + i - 1),
+        _ => Err(unknown()),
+    }
+}
+
+/// Every value of one kind (`p` or `v`), or which is missing.
+fn all_given(values: &[Option<f32>], kind: &str) -> Result<Vec<f32>> {
+    values
+        .iter()
         .enumerate()
-        .map(|(k, v)| {
-            v.with_context(|| {
-                let (kind, i) = if k < dof {
-                    ("q", k + 1)
-                } else {
-                    ("p", k - dof + 1)
-                };
-                format!("--init: {kind}{i} missing")
-            })
-        })
+        .map(|(i, v)| v.with_context(|| format!("--init: {kind}{} missing", i + 1)))
         .collect()
 }
 
@@ -448,7 +560,7 @@ pub fn time_text(k: usize, dt: f32) -> String {
 /// Render a rollout as CSV `t,q1..qn,p1..pn`.
 pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
     let mut out = Vec::new();
-    write_csv_header(&mut out, dof).expect("writing to memory");
+    write_csv_header(&mut out, dof, false).expect("writing to memory");
     for (k, x) in states.iter().enumerate() {
         write_csv_row(&mut out, k, dt, x, bits).expect("writing to memory");
     }
@@ -457,7 +569,30 @@ pub fn to_csv(states: &[Vec<f32>], dof: usize, dt: f32, bits: bool) -> String {
 
 #[cfg(test)]
 mod tests {
-    use super::time_text;
+    use super::{parse_init, parse_init_spec, time_text, InitSpec, Rates};
+
+    #[test]
+    fn init_takes_momenta_or_velocities_one_kind_for_all() {
+        let v = parse_init_spec("v2=0.5, q1=1,q2=2,v1=-0.25", 2).unwrap();
+        assert_eq!(
+            v,
+            InitSpec {
+                q: vec![1.0, 2.0],
+                rates: Rates::Velocities(vec![-0.25, 0.5])
+            }
+        );
+        assert_eq!(parse_init("q1=1,p1=3", 1).unwrap(), vec![1.0, 3.0]);
+        let refusal = |spec: &str, dof: usize| parse_init_spec(spec, dof).unwrap_err().to_string();
+        assert!(refusal("q1=0,p1=1,v1=2", 1).contains("p1 and v1 both given"));
+        assert!(refusal("q1=0,q2=0,p1=1,v2=2", 2).contains("p1 and v2 mix"));
+        assert!(refusal("q1=0,q2=0,v2=2", 2).contains("v1 missing"));
+        assert!(refusal("q1=0,w1=2", 1).contains("p1..p1 or v1..v1"));
+        assert!(refusal("q1=0,v1=2,v1=3", 1).contains("v1 given twice"));
+        // Where no mass matrix converts them (a baseline file), velocities
+        // are refused naming the flag.
+        let e = parse_init("q1=0,v1=2", 1).unwrap_err().to_string();
+        assert!(e.starts_with("--init: velocities"), "{e}");
+    }
 
     #[test]
     fn times_carry_the_step_precision() {

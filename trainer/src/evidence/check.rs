@@ -2,7 +2,8 @@
 //! with the blob's integrator) and the plain baseline (RK4 on its vector
 //! field) from each validation trajectory's first state, and measure
 //! vector-field error, state error over the trajectory, and energy drift over
-//! a long horizon — learned energy always, true energy for built-in systems.
+//! a long horizon — learned energy always, true energy for built-in systems
+//! — and the state errors at chosen horizons ([`crate::evidence::horizons`]).
 //! Damped or driven models get [`check_port`] instead: damping per mode of
 //! the linearization at rest and driven rollouts with the logged inputs.
 
@@ -13,6 +14,9 @@ use visviva_runtime::{Hamiltonian, Integrator};
 use crate::data::dataset::{Dataset, Trajectory};
 use crate::deploy::blob::{HostModel, HOST_MAX_DOF};
 use crate::deploy::rollout::state_of;
+use crate::evidence::horizons::{
+    errors_at, summarize as summarize_horizons, HorizonError, HorizonSummary, DEFAULT_HORIZONS,
+};
 use crate::learn::hnn::BaselineModel;
 use crate::reference::ReferenceSystem;
 
@@ -24,6 +28,8 @@ pub struct CheckSettings {
     pub horizon_steps: Option<usize>,
     /// Largest number of points kept per plotted series.
     pub plot_points: usize,
+    /// Horizons (s) at which the state errors are reported.
+    pub horizons: Vec<f64>,
 }
 
 impl Default for CheckSettings {
@@ -31,6 +37,7 @@ impl Default for CheckSettings {
         Self {
             horizon_steps: None,
             plot_points: 1500,
+            horizons: DEFAULT_HORIZONS.to_vec(),
         }
     }
 }
@@ -74,6 +81,8 @@ pub struct TrajectoryCheck {
     pub model: Metrics,
     /// The baseline, when given.
     pub baseline: Option<Metrics>,
+    /// State errors of model and baseline at the chosen horizons.
+    pub horizons: Vec<HorizonError>,
     /// Plot data: logged, model and baseline (q1, p1) over the trajectory.
     #[serde(skip)]
     pub phase: [Vec<(f64, f64)>; 3],
@@ -96,6 +105,8 @@ pub struct CheckReport {
     pub median_model: Summary,
     /// Medians over trajectories: baseline.
     pub median_baseline: Option<Summary>,
+    /// Medians at each chosen horizon over the trajectories reaching it.
+    pub horizons: Vec<HorizonSummary>,
 }
 
 /// Medians of the per-trajectory numbers.
@@ -414,11 +425,19 @@ pub fn check(
             .into_iter()
             .map(|r| (r[0], r[data.dof]))
             .collect();
+        let horizons = errors_at(
+            &traj.t,
+            dt,
+            &mr.metrics.state_error,
+            br.as_ref().map(|b| b.metrics.state_error.as_slice()),
+            &settings.horizons,
+        );
         out.push(TrajectoryCheck {
             id: traj.id.clone(),
             samples: traj.t.len(),
             dt,
             horizon_steps: horizon,
+            horizons,
             phase: [
                 decimate(data_phase, settings.plot_points),
                 mr.phase,
@@ -437,7 +456,10 @@ pub fn check(
     }
     let median_model = summarize(&out.iter().map(|t| &t.model).collect::<Vec<_>>());
     let bs: Vec<&Metrics> = out.iter().filter_map(|t| t.baseline.as_ref()).collect();
+    let per: Vec<&[HorizonError]> = out.iter().map(|t| t.horizons.as_slice()).collect();
+    let horizons = summarize_horizons(&per, &settings.horizons, baseline.is_some());
     Ok(CheckReport {
+        horizons,
         integrator: crate::deploy::integrator::method_name(model.integrator().method).into(),
         system: system.map(|s| s.name().to_string()),
         median_baseline: (!bs.is_empty()).then(|| summarize(&bs)),
@@ -491,6 +513,42 @@ fn driven_rel_rmse(states: &[Vec<f32>], traj: &Trajectory) -> f64 {
         sum += e / r.max(f64::MIN_POSITIVE);
     }
     (sum / d as f64).sqrt()
+}
+
+/// The driven rollout's error at each logged sample (as many as `states`
+/// reach): sqrt(mean over coordinates of (x_i - logged x_i)^2 /
+/// mean(logged x_i^2)), the per-sample form of [`driven_rel_rmse`].
+fn driven_errors(states: &[Vec<f32>], traj: &Trajectory) -> Vec<f64> {
+    let d = traj.x.ncols();
+    let ms: Vec<f64> = (0..d)
+        .map(|i| {
+            let c = traj.x.column(i);
+            (c.iter().map(|v| v * v).sum::<f64>() / c.len().max(1) as f64).max(f64::MIN_POSITIVE)
+        })
+        .collect();
+    states
+        .iter()
+        .zip(traj.x.rows())
+        .map(|(s, truth)| {
+            let e: f64 = (0..d)
+                .map(|i| (s[i] as f64 - truth[i]).powi(2) / ms[i])
+                .sum();
+            (e / d as f64).sqrt()
+        })
+        .collect()
+}
+
+/// The driven rollouts' state errors (model, and baseline when given) of
+/// one held-out trajectory at the chosen horizons.
+pub fn driven_horizons(
+    traj: &Trajectory,
+    model: &DrivenRollout,
+    baseline: Option<&DrivenRollout>,
+    horizons: &[f64],
+) -> Vec<HorizonError> {
+    let m = driven_errors(&model.states, traj);
+    let b = baseline.map(|b| driven_errors(&b.states, traj));
+    errors_at(&traj.t, trajectory_dt(traj), &m, b.as_deref(), horizons)
 }
 
 /// A trajectory's logged inputs as f32 rows (empty without inputs).

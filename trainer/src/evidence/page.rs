@@ -8,6 +8,7 @@
 use serde_json::Value;
 
 use crate::evidence::check::CheckReport;
+use crate::evidence::horizons::{HorizonError, HorizonSummary};
 use crate::evidence::numfmt::Quantity;
 use crate::evidence::report::{esc, Evidence, Html, PortReport, RunReport};
 
@@ -34,7 +35,22 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     data_section(&mut h, report);
     fit_section(&mut h, report);
     match &report.evidence {
-        Evidence::Check(check) => conservative_section(&mut h, check),
+        Evidence::Check(check) => {
+            conservative_section(&mut h, check);
+            let per: Vec<&[HorizonError]> = check
+                .trajectories
+                .iter()
+                .map(|t| t.horizons.as_slice())
+                .collect();
+            let at = HorizonPaths {
+                traj: "check/trajectories",
+                summary: "check/horizons",
+                measure:
+                    "RMS over the coordinates of rollout minus log, over the trajectory's RMS state",
+            };
+            let base = check.median_baseline.is_some();
+            horizons_section(&mut h, &at, &per, &check.horizons, base);
+        }
         Evidence::Port(port) => port_section(&mut h, port),
     }
     for (title, svg) in charts {
@@ -376,6 +392,102 @@ fn conservative_section(h: &mut Html<'_>, check: &CheckReport) {
     h.p("<p class=\"note\">How to read it: the energy model should match or beat the baseline on vector-field and state error, and its energy drift should stay small and bounded while the baseline's grows. A large state error with a small energy drift usually means a phase error (slightly wrong frequency), which grows linearly with time.</p>");
 }
 
+/// Where one kind of check keeps its horizons in report.json: the
+/// per-trajectory list (`{traj}/{i}/horizons/{j}`, ids at `{traj}/{i}/id`)
+/// and the medians (`{summary}/{j}`), and how its state error is measured.
+struct HorizonPaths<'s> {
+    traj: &'s str,
+    summary: &'s str,
+    measure: &'s str,
+}
+
+/// The state errors at the chosen horizons: per horizon, one row per
+/// trajectory (the logged sample the error is taken at, model, baseline;
+/// "not reached" when the trajectory is shorter), then the median over the
+/// trajectories that reach it.
+fn horizons_section(
+    h: &mut Html<'_>,
+    at: &HorizonPaths<'_>,
+    per: &[&[HorizonError]],
+    summary: &[HorizonSummary],
+    base: bool,
+) {
+    let (hs, n) = (summary.len(), per.len());
+    if hs == 0 {
+        return;
+    }
+    let traj = |i: usize, j: usize, f: &str| format!("{}/{i}/horizons/{j}/{f}", at.traj);
+    let sum = |j: usize, f: &str| format!("{}/{j}/{f}", at.summary);
+    let mut errs = Vec::new();
+    let mut times = Vec::new();
+    for j in 0..hs {
+        for i in 0..n {
+            errs.extend([traj(i, j, "model"), traj(i, j, "baseline")]);
+            times.push(traj(i, j, "at_s"));
+        }
+        errs.extend([sum(j, "median_model"), sum(j, "median_baseline")]);
+        times.push(sum(j, "seconds"));
+    }
+    let err = h.col(&errs, Quantity::Fraction);
+    let secs = h.col(&times, Quantity::Si("s"));
+    let mut rows = Vec::new();
+    for (j, hz) in summary.iter().enumerate() {
+        for (i, t) in per.iter().enumerate() {
+            let Some(e) = t.get(j) else { continue };
+            let id = h.num(&format!("{}/{i}/id", at.traj));
+            let value = |f: &str, v: Option<f64>, none: &str| match v {
+                Some(_) => h.val(&traj(i, j, f), &err),
+                None => format!("<span class=\"nm\">{none}</span>"),
+            };
+            rows.push(if e.reached {
+                let no_base = if base {
+                    "stopped before"
+                } else {
+                    "no baseline"
+                };
+                vec![
+                    h.val(&sum(j, "seconds"), &secs),
+                    id,
+                    h.val(&traj(i, j, "at_s"), &secs),
+                    value("model", e.model, "stopped before"),
+                    value("baseline", e.baseline, no_base),
+                ]
+            } else {
+                let not = "<span class=\"nm\">not reached</span>".to_string();
+                vec![
+                    h.val(&sum(j, "seconds"), &secs),
+                    id,
+                    "<span class=\"nm\">trajectory shorter</span>".into(),
+                    not.clone(),
+                    not,
+                ]
+            });
+        }
+        let median = |f: &str, v: Option<f64>| match v {
+            Some(_) => h.val(&sum(j, f), &err),
+            None => "-".into(),
+        };
+        rows.push(vec![
+            format!("<!--sum-->{}", h.val(&sum(j, "seconds"), &secs)),
+            format!("median of {} reaching", h.num(&sum(j, "reached"))),
+            String::new(),
+            median("median_model", hz.median_model),
+            median("median_baseline", hz.median_baseline),
+        ]);
+    }
+    h.p("<h3>State error at chosen horizons</h3>");
+    h.p(&format!("<p>The relative state error ({}) at the logged sample nearest each horizon after the first state (<code>[check] horizons</code>, <code>visviva check --horizons</code>). A horizon longer than a held-out trajectory is not reached for it: no error is given there, and it is left out of the median.</p>", at.measure));
+    let head = [
+        format!("horizon ({})", secs.unit()),
+        "trajectory".to_string(),
+        format!("sample at ({})", secs.unit()),
+        format!("model ({})", err.unit()),
+        format!("baseline ({})", err.unit()),
+    ];
+    let head: Vec<&str> = head.iter().map(String::as_str).collect();
+    h.table(&head, &rows);
+}
+
 /// A damped or driven model's check: learned damping per mode and the
 /// response to held-out input sequences, model against baseline.
 fn port_section(h: &mut Html<'_>, port: &PortReport) {
@@ -497,6 +609,14 @@ fn driven_section(h: &mut Html<'_>, port: &PortReport) {
         "<p class=\"note\">The golden rollouts kept for the device check replay the inputs of held-out trajectory {} (file golden/&lt;blob&gt;-inputs.csv).</p>",
         h.num("port/golden_input_trajectory")
     ));
+    let per: Vec<&[HorizonError]> = port.driven.iter().map(|d| d.horizons.as_slice()).collect();
+    let at = HorizonPaths {
+        traj: "port/driven",
+        summary: "port/horizons",
+        measure: "the square root of the mean over coordinates of each coordinate's squared error over its mean square along the trajectory",
+    };
+    let base = port.median_baseline_state_rel_rmse.is_some();
+    horizons_section(h, &at, &per, &port.horizons, base);
 }
 
 /// Device blobs: size, cost, the runtime's footprint and the price of

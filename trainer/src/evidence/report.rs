@@ -157,6 +157,8 @@ pub struct DrivenComparison {
     pub model_failure: Option<String>,
     /// Why the baseline's rollout stopped early.
     pub baseline_failure: Option<String>,
+    /// State errors of model and baseline at the chosen horizons.
+    pub horizons: Vec<crate::evidence::horizons::HorizonError>,
 }
 
 /// The evidence of `visviva run`, one kind per model kind.
@@ -193,6 +195,8 @@ pub struct PortReport {
     pub median_baseline_state_rel_rmse: Option<f64>,
     /// Golden rollouts' input sequence: which held-out trajectory's inputs.
     pub golden_input_trajectory: String,
+    /// Medians at each chosen horizon over the trajectories reaching it.
+    pub horizons: Vec<crate::evidence::horizons::HorizonSummary>,
 }
 
 /// Everything `visviva run` found.

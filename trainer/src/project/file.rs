@@ -229,6 +229,8 @@ pub struct CheckSection {
     pub reference_system: Option<String>,
     /// Parameters of that system (default: its defaults).
     pub reference_params: std::collections::BTreeMap<String, f64>,
+    /// Horizons (s) at which state errors are reported (default 1, 5, 20).
+    pub horizons: Vec<f64>,
 }
 
 impl Default for CheckSection {
@@ -239,6 +241,7 @@ impl Default for CheckSection {
             golden_states: 2,
             reference_system: None,
             reference_params: Default::default(),
+            horizons: crate::evidence::horizons::DEFAULT_HORIZONS.to_vec(),
         }
     }
 }

@@ -24,7 +24,10 @@ use crate::deploy::export::{export as export_blob, ExportCheck, ExportReport};
 use crate::deploy::inspect::inspect;
 use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
 use crate::evidence::charts::{charts, driven_charts, loss_chart, model_label, HistoryFile};
-use crate::evidence::check::{check_port, driven_baseline, reference_modes, CheckSettings};
+use crate::evidence::check::{
+    check_port, driven_baseline, driven_horizons, reference_modes, CheckSettings,
+};
+use crate::evidence::horizons::{summarize as summarize_horizons, HorizonError};
 use crate::evidence::provenance::{InputFile, Provenance};
 use crate::evidence::report::{
     CoordinateSummary, DataSummary, DeviceBlob, DrivenComparison, Evidence, FitSummary, PortReport,
@@ -219,7 +222,7 @@ fn check_sizes(project: &Project, dir: &Path, dof: usize) -> Result<()> {
     check_memory("[check] golden_states", states, 24 + 8 * dof as u128)?;
     let rows = (c.golden_steps as u128).saturating_add(1);
     let per_target = rows
-        .saturating_mul(csv_row_bytes(dof, true))
+        .saturating_mul(csv_row_bytes(dof, true, false))
         .saturating_mul(states);
     let targets = project.export_targets().len() as u128;
     let golden = dir.join("out").join("golden").join("x.csv");
@@ -500,6 +503,7 @@ pub fn check(prep: &Prepared, fit: &FitResult) -> Result<Checked> {
             reference.as_deref(),
             &CheckSettings {
                 horizon_steps: Some(prep.project.check.horizon_steps),
+                horizons: prep.project.check.horizons.clone(),
                 ..CheckSettings::default()
             },
         )?;
@@ -608,7 +612,9 @@ fn port_check(
         .enumerate()
         .map(|(k, m)| {
             let b = base.as_ref().map(|b| &b[k]);
+            let traj = &val.trajectories[k];
             DrivenComparison {
+                horizons: driven_horizons(traj, m, b, &prep.project.check.horizons),
                 id: m.id.clone(),
                 samples: val.trajectories[k].t.len(),
                 model_state_rel_rmse: m.state_rel_rmse,
@@ -624,7 +630,10 @@ fn port_check(
         figs = driven_charts(t, &m.states, b, 1500, &prep.data.units);
     }
     figs.push(("loss".into(), loss_chart(history, &model_label(blob))));
+    let per: Vec<&[HorizonError]> = driven.iter().map(|d| d.horizons.as_slice()).collect();
+    let horizons = summarize_horizons(&per, &prep.project.check.horizons, base.is_some());
     let report = PortReport {
+        horizons,
         inputs: val.inputs,
         dissipation: prep.project.model.damped(),
         median_model_state_rel_rmse: median(
@@ -778,7 +787,7 @@ fn write_golden(
             Ok(())
         };
         write_atomic_with(&out.join(&file), |w| {
-            stream_csv(&dev, x0, steps, fill, true, watch, None, w)?.complete()
+            stream_csv(&dev, x0, steps, fill, true, false, watch, None, w)?.complete()
         })
         .with_context(|| format!("golden rollout {k} of {name}"))?;
         golden.push(file);

@@ -62,7 +62,7 @@ fn check_check(p: &Project) -> Result<()> {
     if let Some((k, v)) = c.reference_params.iter().find(|(_, v)| !v.is_finite()) {
         bail!("[check] reference_params.{k} = {v}: must be a finite number");
     }
-    Ok(())
+    crate::evidence::horizons::check_horizons(&c.horizons, "[check] horizons")
 }
 
 /// One `[[export]]` table, the `k`-th (1-based) of the file.
@@ -150,6 +150,11 @@ mod tests {
             ("[model]\ndt = -0.01\n", "[model] dt"),
             ("[fit]\nlr = 0.0\n", "[fit] lr"),
             ("[check]\ngolden_states = 0\n", "[check] golden_states"),
+            ("[check]\nhorizons = [1.0, -5.0]\n", "[check] horizons = -5"),
+            (
+                "[check]\nhorizons = [1.0, 1.0]\n",
+                "[check] horizons: 1 s given twice",
+            ),
             ("[data]\nmasses = [1e-40]\n", "[data] masses"),
             ("[data]\nstep_tolerance = -1.0\n", "[data] step_tolerance"),
         ] {

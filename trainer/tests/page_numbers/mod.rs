@@ -99,3 +99,30 @@ fn reading_back_catches_a_wrong_digit() {
     let wrong = scaled.replace("12.35<", "12.36<");
     assert_eq!(disagreements(&wrong, &json).len(), 2);
 }
+
+/// The number of cells of the first table after `heading`, asserting that
+/// every digit a cell shows is inside a tagged number (as
+/// `cargo xtask browser` demands of every table cell).
+pub fn cells_without_untagged_digits(html: &str, heading: &str) -> usize {
+    let (_, after) = html.split_once(heading).expect("heading on the page");
+    let table = &after[..after.find("</table>").expect("a table after the heading")];
+    let mut cells = 0;
+    for cell in table.split("<td>").skip(1) {
+        let mut text = cell.split("</td>").next().unwrap_or("").to_string();
+        // Drop tagged numbers, then every remaining tag.
+        while let Some(a) = text.find("<span data-k=") {
+            let b = a + text[a..].find("</span>").expect("closed span") + "</span>".len();
+            text.replace_range(a..b, "");
+        }
+        while let Some(a) = text.find('<') {
+            let b = a + text[a..].find('>').expect("closed tag") + 1;
+            text.replace_range(a..b, "");
+        }
+        assert!(
+            !text.chars().any(|c| c.is_ascii_digit()),
+            "untagged digit in {cell}"
+        );
+        cells += 1;
+    }
+    cells
+}

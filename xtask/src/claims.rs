@@ -359,7 +359,7 @@ pub const CLAIMS: &[Claim] = &[
     },
     Claim {
         figure: "1e-6",
-        context: "process-noise scales the tuning",
+        context: "is round-off (about 1e-6 rad)",
         backing: Backing::OneRun,
     },
     Claim {

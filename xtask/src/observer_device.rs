@@ -43,12 +43,11 @@ pub struct ObserverCase {
 /// only, two trajectories) and the flexure sensor (implicit midpoint, whose
 /// Jacobian comes from the implicit function theorem; positions and
 /// velocities, momenta started from the first velocity), each tuned from
-/// logs the project's observer tests tune from; and the servo drivetrain
-/// (damped and driven, discrete-gradient method: the Jacobian through the
-/// port terms, inputs held between rows), tuned from its training log. The
-/// trolley crane is not here: `visviva tune-observer` refuses its
-/// noise-free logs (the f32 covariance loses definiteness at the largest
-/// trial scales).
+/// logs the project's observer tests tune from; and the two damped, driven
+/// demos (discrete-gradient method: the Jacobian through the port terms,
+/// inputs held between rows), tuned from their noise-free logs: the servo
+/// drivetrain (two joints) and the trolley crane (the rope angle, the
+/// trolley's acceleration as the input).
 pub const CASES: &[ObserverCase] = &[
     ObserverCase {
         project: "crane-sway",
@@ -94,6 +93,22 @@ pub const CASES: &[ObserverCase] = &[
                 q_every: (8, 5),
                 v_every: (0, 0),
                 run: (40, 44),
+            },
+        },
+        energy_threshold: None,
+    },
+    ObserverCase {
+        project: "trolley-crane",
+        blob: "trolley-f32-dgrad",
+        tuning: &["data/train.csv", "data/val.csv"],
+        sequence: SeqSource {
+            log: "models-demo/trolley-crane/data/val.csv",
+            take: &[("0", 150), ("1", 100)],
+            velocity_prefix: None,
+            gaps: Gaps {
+                q_every: (6, 1),
+                v_every: (0, 0),
+                run: (70, 75),
             },
         },
         energy_threshold: None,

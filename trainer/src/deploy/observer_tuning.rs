@@ -279,19 +279,43 @@ fn trajectory_level(
         s.process_variance = shape.iter().map(|v| v * scale).collect();
         Ok(mean_nis(model, &s, t)? <= 1.0)
     };
-    let (mut lo, mut hi) = LEVEL_RANGE;
-    if !at(hi)? || at(lo)? {
+    let (lo, top) = LEVEL_RANGE;
+    let (mut hi, reached) = highest_running(top, lo, &at)?;
+    let mut lo = lo;
+    if !reached || at(lo).unwrap_or(false) {
         return Ok(None);
     }
     while hi - lo > 1 {
         let mid = (lo + hi) / 2;
-        if at(mid)? {
+        if at(mid).unwrap_or(false) {
             hi = mid;
         } else {
             lo = mid;
         }
     }
     Ok(Some(2f64.powf(hi as f64 / 2.0)))
+}
+
+/// Exponents between the largest trial and the next one down when the
+/// larger fails to run (a factor of 4 in process noise at the tuning's
+/// quarter powers of two, 2 at the levels' half powers).
+const STEP_DOWN: i32 = 8;
+
+/// The largest exponent from `top` down to `floor` (by [`STEP_DOWN`]) whose
+/// trial runs, with its result. A trial fails to run when the observer
+/// stops, e.g. when the f32 covariance cannot hold that much process noise
+/// beside a tiny measurement noise (noise-free logs) and loses definiteness;
+/// more process noise than that is not a setting anyone can use. The last
+/// error when no trial runs.
+fn highest_running<T>(top: i32, floor: i32, trial: &dyn Fn(i32) -> Result<T>) -> Result<(i32, T)> {
+    let mut e = top;
+    loop {
+        match trial(e) {
+            Ok(r) => return Ok((e, r)),
+            Err(err) if e - STEP_DOWN < floor => return Err(err),
+            Err(_) => e -= STEP_DOWN,
+        }
+    }
 }
 
 /// The line level(e) = a + b e (a, b >= 0) at or above every trajectory's
@@ -385,7 +409,9 @@ pub fn tune(
         settings
     };
     // Smallest scale 2^(e/4) in 2^-10 .. 2^40 meeting the target, by
-    // bisection on the exponent (more process noise, fewer upper flags).
+    // bisection on the exponent (more process noise, fewer upper flags),
+    // below the largest scale the observer runs with; a trial that stops
+    // counts as not meeting it.
     let meets = |e: i32| -> Result<(f64, ObserverSettings, ObserveSummary, bool)> {
         let s = 2f64.powf(e as f64 / 4.0);
         let settings = scaled(s);
@@ -393,19 +419,19 @@ pub fn tune(
         let ok = (counts.nis_high as f64) <= target * counts.full_windows as f64;
         Ok((s, settings, counts, ok))
     };
-    let (mut lo, mut hi) = (-40i32, 160i32);
-    let mut best = meets(hi)?;
+    let mut lo = -40i32;
+    let (mut hi, mut best) = highest_running(160, lo, &meets)?;
+    let top_scale = best.0;
+    let runs_and_meets = |e: i32| meets(e).ok().filter(|r| r.3);
     let chosen = if !best.3 {
         None
     } else {
-        let low = meets(lo)?;
-        if low.3 {
+        if let Some(low) = runs_and_meets(lo) {
             best = low;
         } else {
             while hi - lo > 1 {
                 let mid = (lo + hi) / 2;
-                let r = meets(mid)?;
-                if r.3 {
+                if let Some(r) = runs_and_meets(mid) {
                     hi = mid;
                     best = r;
                 } else {
@@ -416,7 +442,7 @@ pub fn tune(
         Some((best.0, best.1, best.2))
     };
     let (scale, settings, tuning_summary) = chosen.ok_or_else(|| {
-        anyhow!("no process-noise scale up to 2^40 keeps the NIS test quiet on the tuning logs; the model does not match them")
+        anyhow!("no process-noise scale up to {top_scale:.3e} (the largest the observer runs with) keeps the NIS test quiet on the tuning logs; the model does not match them")
     })?;
     Ok(Tuning {
         settings,
@@ -430,7 +456,21 @@ pub fn tune(
 
 #[cfg(test)]
 mod tests {
-    use super::fit_level_line;
+    use super::{fit_level_line, highest_running, STEP_DOWN};
+
+    #[test]
+    fn the_largest_trial_that_runs_is_found_stepping_down() {
+        // Trials above 10 stop (as an overfull covariance does).
+        let trial = |e: i32| -> anyhow::Result<i32> {
+            anyhow::ensure!(e <= 10, "trial {e} stopped");
+            Ok(2 * e)
+        };
+        assert_eq!(highest_running(40, -40, &trial).unwrap(), (8, 16));
+        assert_eq!(highest_running(10, -40, &trial).unwrap(), (10, 20));
+        // None runs: the last trial's error.
+        let err = highest_running(40, 20, &trial).unwrap_err().to_string();
+        assert_eq!(err, format!("trial {} stopped", 40 - 2 * STEP_DOWN));
+    }
 
     #[test]
     fn level_line_covers_every_point_with_the_least_relative_excess() {

@@ -6,6 +6,7 @@
 
 use std::path::PathBuf;
 
+use crate::evidence::structure_fit::underfit;
 use anyhow::{anyhow, Context, Result};
 use visviva_runtime::Hamiltonian;
 
@@ -160,6 +161,12 @@ pub fn run(args: Args) -> Result<()> {
         &settings,
     )?;
     print_table(&r);
+    let blob = crate::deploy::blob::BlobModel::from_bytes(&bytes)
+        .map_err(|e| anyhow!("{}: {e}", args.model.display()))?;
+    let median_baseline = r.median_baseline.as_ref().map(|b| b.state_rel_rmse);
+    if let Some(u) = underfit(&blob, r.median_model.state_rel_rmse, median_baseline) {
+        println!("{}", u.message());
+    }
     if data.derivatives == crate::data::dataset::DerivativeSource::Estimated {
         println!("note: the log has no derivative columns; vector-field errors use Savitzky-Golay estimates");
     }

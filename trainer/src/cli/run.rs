@@ -169,6 +169,9 @@ fn export_step(
 }
 
 fn print_summary(report: &RunReport, started: Instant) {
+    if let Some(u) = &report.underfit {
+        println!("{}", u.message());
+    }
     let verdict = if report.budget_pass {
         "PASS"
     } else {

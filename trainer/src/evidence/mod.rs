@@ -16,6 +16,7 @@ pub mod outliers;
 pub mod page;
 pub mod provenance;
 pub mod report;
+pub mod structure_fit;
 pub mod svgplot;
 pub mod units;
 pub mod verdicts;

@@ -53,6 +53,7 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         }
         Evidence::Port(port) => port_section(&mut h, port),
     }
+    underfit_note(&mut h, report);
     for (title, svg) in charts {
         h.p(&format!(
             "<figure aria-label=\"{}\">{svg}</figure>",
@@ -65,6 +66,20 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
     provenance_section(&mut h, report);
     footer_section(&mut h);
     h.out
+}
+
+/// The structure flag, when the model underfits the baseline.
+fn underfit_note(h: &mut Html<'_>, report: &RunReport) {
+    let Some(u) = &report.underfit else {
+        return;
+    };
+    let ratio = h.one("underfit/ratio", Quantity::Plain("-"));
+    h.p(&format!(
+        "<p class=\"fail\">The {} energy model's held-out state error is {ratio} times the \
+         plain baseline's: this structure underfits the logs. Try {}.</p>",
+        esc(&u.structure),
+        esc(&u.try_instead)
+    ));
 }
 
 /// Paths `prefix/i/field` for i in 0..n.

@@ -233,6 +233,10 @@ pub struct RunReport {
     pub verdicts: Vec<crate::evidence::verdicts::ResourceVerdict>,
     /// All blobs pass the budget.
     pub budget_pass: bool,
+    /// The energy structure underfits the plain baseline by a clear
+    /// margin (`evidence::structure_fit`), with the structure to try.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub underfit: Option<crate::evidence::structure_fit::Underfit>,
     /// The state observer (projects with an `[observer]` section).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub observer: Option<crate::evidence::observer_check::ObserverReport>,

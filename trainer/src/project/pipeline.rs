@@ -836,6 +836,8 @@ pub fn report(
     let observer = observer_stage(prep)?;
     let report_path = prep.out.join("report.json");
     let previous: Option<serde_json::Value> = read_json(&report_path);
+    let underfit =
+        crate::evidence::structure_fit::underfit_evidence(&checked.src, &checked.evidence);
     let mut report = RunReport {
         project: prep.name.clone(),
         visviva_version: env!("CARGO_PKG_VERSION").into(),
@@ -851,6 +853,7 @@ pub fn report(
         budget: prep.project.device.clone(),
         cycles_per_mac_used: crate::deploy::budget::cycles_per_mac(&prep.project.device),
         budget_pass,
+        underfit,
         observer,
         provenance: provenance(prep)?,
         change: None,

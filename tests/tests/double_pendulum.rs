@@ -15,14 +15,15 @@
 //!   pendulum's closed form (Goldstein, Classical Mechanics, 3rd ed., ch. 6;
 //!   from memory) within 1 %.
 
-use visviva_runtime::{Hamiltonian, Integrator, Method, State};
+#[path = "shared/mechanical_fit.rs"]
+mod mechanical_fit;
+
+use mechanical_fit::fit_mechanical;
+use visviva_runtime::{Hamiltonian, State};
 use visviva_tests::{hessian_by_gradient_differences, real_2x2_eigenvalues};
-use visviva_trainer::deploy::blob::{HostModel, WeightKind};
-use visviva_trainer::deploy::fitted_blob::energy_blob;
-use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
+use visviva_trainer::deploy::blob::HostModel;
 use visviva_trainer::reference::linkage::DoublePendulum;
 use visviva_trainer::reference::params::ParamValues;
-use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 
 fn system() -> DoublePendulum {
     let params = ParamValues::new(
@@ -61,46 +62,7 @@ fn fitted_mass_matrix(model: &HostModel<'_>, q: [f32; 2]) -> [[f64; 2]; 2] {
 #[test]
 fn fitted_mechanical_model_has_the_double_pendulum_mass_matrix_and_modes() {
     let sys = system();
-    let spec = |trajectories, seed| SimulationSpec {
-        trajectories,
-        duration: 4.0,
-        rate: 25.0,
-        seed,
-    };
-    let train = simulate(&sys, &spec(40, 21)).unwrap();
-    let val = simulate(&sys, &spec(8, 22)).unwrap();
-    let arch = ArchChoice {
-        separable: false,
-        mechanical: true,
-        hidden: vec![24, 24],
-        ..ArchChoice::default()
-    };
-    let settings = FitSettings {
-        epochs: 300,
-        batch: 64,
-        early_stop: false,
-        quiet: true,
-        seed: 3,
-        ..FitSettings::default()
-    };
-    let fitted = fit_model(
-        &train,
-        Some(&val),
-        &arch.build(2).unwrap(),
-        &Default::default(),
-        &settings,
-    )
-    .unwrap();
-    println!(
-        "fit: val loss {:.3e} after {} steps",
-        fitted.report.best_val, fitted.report.steps
-    );
-    let blob = energy_blob(
-        &fitted.model,
-        Integrator::new(Method::ImplicitMidpoint, 0.01),
-        WeightKind::F32,
-    )
-    .unwrap();
+    let (val, blob) = fit_mechanical(&sys, 21);
     let model = HostModel::from_bytes(&blob).unwrap();
     assert!(!model.is_separable());
 

@@ -12,6 +12,7 @@
 //! M(q) = [[M + m, m l c], [m l c, m l^2]] and
 //! H = 1/2 p^T M(q)^-1 p + m g l (1 - c).
 
+use crate::reference::coupled::CoupledInertia;
 use rand_chacha::ChaCha8Rng;
 use std::f64::consts::PI;
 
@@ -110,9 +111,16 @@ impl CraneCart {
 
     /// The mass matrix M(q) (row-major 2 x 2, q = (x, theta)).
     pub fn mass_matrix(&self, q: &[f64]) -> [[f64; 2]; 2] {
-        let (m, l) = (self.m, self.l);
-        let off = m * l * q[1].cos();
-        [[self.trolley + m, off], [off, m * l * l]]
+        self.inertia().matrix(q[1])
+    }
+
+    /// M(theta) as a coupled inertia: a = M + m, b = m l^2, k = m l.
+    fn inertia(&self) -> CoupledInertia {
+        CoupledInertia {
+            a: self.trolley + self.m,
+            b: self.m * self.l * self.l,
+            k: self.m * self.l,
+        }
     }
 
     /// The angular frequency of small swings about the hanging rest with
@@ -136,29 +144,16 @@ impl ReferenceSystem for CraneCart {
         &self.params
     }
     fn hamiltonian(&self, x: &[f64]) -> f64 {
-        let mm = self.mass_matrix(x);
-        let det = mm[0][0] * mm[1][1] - mm[0][1] * mm[1][0];
-        let (px, pt) = (x[2], x[3]);
-        let kinetic =
-            (mm[1][1] * px * px - 2.0 * mm[0][1] * px * pt + mm[0][0] * pt * pt) / (2.0 * det);
+        let kinetic = self.inertia().kinetic(x[1], [x[2], x[3]]).energy;
         kinetic + self.m * self.g * self.l * (1.0 - x[1].cos())
     }
-    /// dH/dp = M^-1 p; dH/dx = 0 (the rail is level); dH/dtheta from
-    /// T = N / D with N = m l^2 p_x^2 - 2 m l c p_x p_theta + (M + m)
-    /// p_theta^2 and D = 2 det M = 2 m l^2 (M + m s^2).
+    /// dH/dp = M^-1 p; dH/dx = 0 (the rail is level); dH/dtheta = dT/dtheta
+    /// plus the payload's m g l sin theta.
     fn gradient(&self, x: &[f64], g: &mut [f64]) {
-        let (m, l, big) = (self.m, self.l, self.trolley + self.m);
-        let (px, pt) = (x[2], x[3]);
-        let (s, c) = x[1].sin_cos();
-        let (m22, k) = (m * l * l, m * l);
-        let det = big * m22 - k * k * c * c;
-        g[2] = (m22 * px - k * c * pt) / det;
-        g[3] = (big * pt - k * c * px) / det;
-        let num = m22 * px * px - 2.0 * k * c * px * pt + big * pt * pt;
-        let dnum = 2.0 * k * s * px * pt;
-        let (den, dden) = (2.0 * det, 4.0 * k * k * c * s);
+        let t = self.inertia().kinetic(x[1], [x[2], x[3]]);
+        [g[2], g[3]] = t.dp;
         g[0] = 0.0;
-        g[1] = (dnum * den - num * dden) / (den * den) + m * self.g * l * s;
+        g[1] = t.dphi + self.m * self.g * self.l * x[1].sin();
     }
     /// Trolley position uniform in +-0.5 m and speed in
     /// +-max_speed; rope angle uniform in +-max_angle and angular velocity
@@ -171,13 +166,8 @@ impl ReferenceSystem for CraneCart {
             uniform(rng, -self.max_speed, self.max_speed),
             uniform(rng, -w, w),
         ];
-        let mm = self.mass_matrix(&q);
-        vec![
-            q[0],
-            q[1],
-            mm[0][0] * v[0] + mm[0][1] * v[1],
-            mm[1][0] * v[0] + mm[1][1] * v[1],
-        ]
+        let p = self.inertia().momenta(q[1], v);
+        vec![q[0], q[1], p[0], p[1]]
     }
     fn small_amplitude_period(&self) -> Option<f64> {
         Some(2.0 * PI / self.swing_frequency())

@@ -9,6 +9,7 @@
 //! M(q) = [[(m1 + m2) l1^2, m2 l1 l2 c], [m2 l1 l2 c, m2 l2^2]] and
 //! H = 1/2 p^T M(q)^-1 p + V(q), V = -(m1 + m2) g l1 cos q1 - m2 g l2 cos q2.
 
+use crate::reference::coupled::CoupledInertia;
 use rand_chacha::ChaCha8Rng;
 use std::f64::consts::PI;
 
@@ -95,11 +96,17 @@ impl DoublePendulum {
 
     /// The mass matrix M(q) (row-major 2 x 2).
     pub fn mass_matrix(&self, q: &[f64]) -> [[f64; 2]; 2] {
-        let off = self.m2 * self.l1 * self.l2 * (q[0] - q[1]).cos();
-        [
-            [(self.m1 + self.m2) * self.l1 * self.l1, off],
-            [off, self.m2 * self.l2 * self.l2],
-        ]
+        self.inertia().matrix(q[0] - q[1])
+    }
+
+    /// M(q1 - q2) as a coupled inertia: a = (m1 + m2) l1^2, b = m2 l2^2,
+    /// k = m2 l1 l2.
+    fn inertia(&self) -> CoupledInertia {
+        CoupledInertia {
+            a: (self.m1 + self.m2) * self.l1 * self.l1,
+            b: self.m2 * self.l2 * self.l2,
+            k: self.m2 * self.l1 * self.l2,
+        }
     }
 
     /// The small-oscillation angular frequencies (slow, fast) about the
@@ -131,33 +138,19 @@ impl ReferenceSystem for DoublePendulum {
         &self.params
     }
     fn hamiltonian(&self, x: &[f64]) -> f64 {
-        let m = self.mass_matrix(x);
-        let det = m[0][0] * m[1][1] - m[0][1] * m[1][0];
-        let (p1, p2) = (x[2], x[3]);
-        let kinetic =
-            (m[1][1] * p1 * p1 - 2.0 * m[0][1] * p1 * p2 + m[0][0] * p2 * p2) / (2.0 * det);
+        let kinetic = self.inertia().kinetic(x[0] - x[1], [x[2], x[3]]).energy;
         let v = -(self.m1 + self.m2) * self.g * self.l1 * x[0].cos()
             - self.m2 * self.g * self.l2 * x[1].cos();
         kinetic + v
     }
-    /// dH/dp = M^-1 p; dH/dq from T = N / D with N = m22 p1^2 - 2 m12 p1 p2
-    /// + m11 p2^2 and D = 2 det M, both depending on q1 - q2 only.
+    /// dH/dp = M^-1 p; T depends on q1 - q2 only, so dT/dq1 = -dT/dq2 =
+    /// dT/d(q1 - q2), plus each link's gravity term.
     fn gradient(&self, x: &[f64], g: &mut [f64]) {
         let (m1, m2, l1, l2) = (self.m1, self.m2, self.l1, self.l2);
-        let (p1, p2) = (x[2], x[3]);
-        let delta = x[0] - x[1];
-        let (s, c) = delta.sin_cos();
-        let (m11, m22, k) = ((m1 + m2) * l1 * l1, m2 * l2 * l2, m2 * l1 * l2);
-        let det = m11 * m22 - k * k * c * c;
-        g[2] = (m22 * p1 - k * c * p2) / det;
-        g[3] = (m11 * p2 - k * c * p1) / det;
-        let num = m22 * p1 * p1 - 2.0 * k * c * p1 * p2 + m11 * p2 * p2;
-        let dnum = 2.0 * k * s * p1 * p2;
-        let dden = 2.0 * (2.0 * k * k * c * s);
-        let den = 2.0 * det;
-        let dt_ddelta = (dnum * den - num * dden) / (den * den);
-        g[0] = dt_ddelta + (m1 + m2) * self.g * l1 * x[0].sin();
-        g[1] = -dt_ddelta + m2 * self.g * l2 * x[1].sin();
+        let t = self.inertia().kinetic(x[0] - x[1], [x[2], x[3]]);
+        [g[2], g[3]] = t.dp;
+        g[0] = t.dphi + (m1 + m2) * self.g * l1 * x[0].sin();
+        g[1] = -t.dphi + m2 * self.g * l2 * x[1].sin();
     }
     /// Both angles uniform in +-max_angle, angular velocities uniform in
     /// +-max_angle * sqrt(g / l1); p = M(q) q'.
@@ -166,13 +159,8 @@ impl ReferenceSystem for DoublePendulum {
         let q = [uniform(rng, -a, a), uniform(rng, -a, a)];
         let w = a * (self.g / self.l1).sqrt();
         let v = [uniform(rng, -w, w), uniform(rng, -w, w)];
-        let m = self.mass_matrix(&q);
-        vec![
-            q[0],
-            q[1],
-            m[0][0] * v[0] + m[0][1] * v[1],
-            m[1][0] * v[0] + m[1][1] * v[1],
-        ]
+        let p = self.inertia().momenta(q[0] - q[1], v);
+        vec![q[0], q[1], p[0], p[1]]
     }
     fn small_amplitude_period(&self) -> Option<f64> {
         Some(2.0 * PI / self.normal_mode_frequencies().0)

@@ -12,6 +12,7 @@ use std::fmt;
 
 pub mod cart;
 pub mod change;
+pub mod coupled;
 pub mod crane;
 pub mod drivetrain;
 pub mod excitation;

@@ -18,7 +18,7 @@
 #[path = "shared/mechanical_fit.rs"]
 mod mechanical_fit;
 
-use mechanical_fit::fit_mechanical;
+use mechanical_fit::{fit_mechanical, fitted_mass_matrix};
 use visviva_runtime::{Hamiltonian, State};
 use visviva_tests::{hessian_by_gradient_differences, real_2x2_eigenvalues};
 use visviva_trainer::deploy::blob::HostModel;
@@ -36,27 +36,6 @@ fn system() -> DoublePendulum {
     let boxed = DoublePendulum::build(params.clone()).unwrap();
     assert_eq!(boxed.name(), "double-pendulum");
     DoublePendulum::from_params(params)
-}
-
-/// The fitted model's M(q): the inverse of the matrix whose columns are
-/// dH/dp at unit momenta (dH/dp = M(q)^-1 p, exactly linear in p).
-fn fitted_mass_matrix(model: &HostModel<'_>, q: [f32; 2]) -> [[f64; 2]; 2] {
-    let mut inv = [[0.0f64; 2]; 2];
-    for j in 0..2 {
-        let mut p = [0.0f32; 2];
-        p[j] = 1.0;
-        let s = State::new(&q, &p).unwrap();
-        let (mut gq, mut gp) = ([0.0f32; 16], [0.0f32; 16]);
-        model.gradient(&s, &mut gq, &mut gp).unwrap();
-        for i in 0..2 {
-            inv[i][j] = gp[i] as f64;
-        }
-    }
-    let det = inv[0][0] * inv[1][1] - inv[0][1] * inv[1][0];
-    [
-        [inv[1][1] / det, -inv[0][1] / det],
-        [-inv[1][0] / det, inv[0][0] / det],
-    ]
 }
 
 #[test]

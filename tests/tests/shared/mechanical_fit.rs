@@ -2,11 +2,12 @@
 //! mechanical` with hidden layers 24, 24, fitted by the derivative loss for
 //! 300 epochs on 40 simulated trajectories of 4 s at 25 Hz, checked on 8
 //! held-out ones, and exported as an f32 implicit-midpoint blob (the
-//! structure's default integrator) to be read back through the runtime.
+//! structure's default integrator) to be read back through the runtime;
+//! and how they read the fitted M(q) from it.
 
-use visviva_runtime::{Integrator, Method};
+use visviva_runtime::{Hamiltonian, Integrator, Method, State};
 use visviva_trainer::data::dataset::Dataset;
-use visviva_trainer::deploy::blob::WeightKind;
+use visviva_trainer::deploy::blob::{HostModel, WeightKind};
 use visviva_trainer::deploy::fitted_blob::energy_blob;
 use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
@@ -56,4 +57,25 @@ pub fn fit_mechanical(system: &dyn ReferenceSystem, seed: u64) -> (Dataset, Vec<
     )
     .unwrap();
     (val, blob)
+}
+
+/// The fitted model's M(q): the inverse of the matrix whose columns are
+/// dH/dp at unit momenta (dH/dp = M(q)^-1 p, exactly linear in p).
+pub fn fitted_mass_matrix(model: &HostModel<'_>, q: [f32; 2]) -> [[f64; 2]; 2] {
+    let mut inv = [[0.0f64; 2]; 2];
+    for j in 0..2 {
+        let mut p = [0.0f32; 2];
+        p[j] = 1.0;
+        let s = State::new(&q, &p).unwrap();
+        let (mut gq, mut gp) = ([0.0f32; 16], [0.0f32; 16]);
+        model.gradient(&s, &mut gq, &mut gp).unwrap();
+        for i in 0..2 {
+            inv[i][j] = gp[i] as f64;
+        }
+    }
+    let det = inv[0][0] * inv[1][1] - inv[0][1] * inv[1][0];
+    [
+        [inv[1][1] / det, -inv[0][1] / det],
+        [-inv[1][0] / det, inv[0][0] / det],
+    ]
 }

@@ -303,36 +303,49 @@ struct SharedArgs {
     json: String,
 }
 
+impl SharedArgs {
+    /// The flags every implementation takes alike.
+    fn common(&self) -> Vec<String> {
+        [
+            "--data",
+            &self.data,
+            "--hidden",
+            &self.hidden,
+            "--batch",
+            &self.batch,
+            "--optimizer-steps",
+            &self.steps,
+            "--lr",
+            LR,
+            "--threads",
+            &self.threads,
+            "--json",
+            &self.json,
+        ]
+        .map(String::from)
+        .to_vec()
+    }
+}
+
 /// `visviva fit` on the benchmark log: no validation split, no early stop.
 fn visviva_args(work: &Path, a: &SharedArgs) -> Vec<String> {
     let model = work.join("visviva-model.vvb").display().to_string();
-    [
-        "fit",
-        "--data",
-        &a.data,
-        "--val-fraction",
-        "0",
-        "--arch",
-        "general",
-        "--hidden",
-        &a.hidden,
-        "--batch",
-        &a.batch,
-        "--optimizer-steps",
-        &a.steps,
-        "--lr",
-        LR,
-        "--threads",
-        &a.threads,
-        "--no-early-stop",
-        "--quiet",
-        "--out",
-        &model,
-        "--json",
-        &a.json,
-    ]
-    .map(String::from)
-    .to_vec()
+    let mut args = vec!["fit".to_string()];
+    args.extend(a.common());
+    args.extend(
+        [
+            "--val-fraction",
+            "0",
+            "--arch",
+            "general",
+            "--no-early-stop",
+            "--quiet",
+            "--out",
+            &model,
+        ]
+        .map(String::from),
+    );
+    args
 }
 
 /// A reference script (`bench/hnn_<impl>.py`) from the shared initial weights.
@@ -342,25 +355,8 @@ fn reference_args(root: &Path, imp: Impl, a: &SharedArgs, init: Option<&Path>) -
         .join(format!("hnn_{}.py", imp.name()))
         .display()
         .to_string();
-    let mut args: Vec<String> = [
-        script.as_str(),
-        "--data",
-        &a.data,
-        "--hidden",
-        &a.hidden,
-        "--batch",
-        &a.batch,
-        "--optimizer-steps",
-        &a.steps,
-        "--lr",
-        LR,
-        "--threads",
-        &a.threads,
-        "--json",
-        &a.json,
-    ]
-    .map(String::from)
-    .to_vec();
+    let mut args = vec![script];
+    args.extend(a.common());
     if let Some(init) = init {
         args.push("--init".into());
         args.push(init.display().to_string());

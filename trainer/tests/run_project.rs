@@ -102,6 +102,7 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     assert!(html.matches("<svg").count() >= 4);
     assert!(html.contains("exceeds the flash budget"));
     horizons_table_is_tagged(&json, &html);
+    held_out_of_the_f32_blob_is_the_check(&json, &html);
     assert_eq!(json["fit"]["reused"], false);
     provenance_units_and_verdicts(p, &json, &html);
 
@@ -146,6 +147,23 @@ fn horizons_table_is_tagged(json: &serde_json::Value, html: &str) {
     assert_eq!(seconds, [1.0, 5.0, 20.0]);
     let cells = page_numbers::cells_without_untagged_digits(html, "State error at chosen horizons");
     assert!(cells >= 5 * 3, "{cells} cells");
+}
+
+/// An f32 blob with the model's own integrator rolls out exactly as the
+/// fitted model does in the check, so its held-out figures are the check's;
+/// the page's table of them shows every digit tagged.
+fn held_out_of_the_f32_blob_is_the_check(json: &serde_json::Value, html: &str) {
+    let held = &json["devices"][0]["held_out"];
+    let model = &json["check"]["median_model"];
+    assert_eq!(held["state_rel_rmse"], model["state_rel_rmse"]);
+    assert_eq!(held["learned_energy_drift"], model["learned_energy_drift"]);
+    let horizons = json["check"]["horizons"].as_array().unwrap();
+    for (j, h) in horizons.iter().enumerate() {
+        assert_eq!(held["horizons"][j]["seconds"], h["seconds"]);
+        assert_eq!(held["horizons"][j]["state_rel_rmse"], h["median_model"]);
+    }
+    let cells = page_numbers::cells_without_untagged_digits(html, "Each blob on the held-out logs");
+    assert_eq!(cells, 2 * (4 + horizons.len()));
 }
 
 /// Provenance (hashes against sha2's SHA-256 of the files), the units of

@@ -164,8 +164,31 @@ fn export_step(
         for a in &d.budget.advice {
             println!("        {a}");
         }
+        println!("        {}", held_out_line(&d.held_out));
     }
     Ok(exported.into_iter().map(|e| e.device).collect())
+}
+
+/// An exported blob on the held-out logs, for the export lines.
+fn held_out_line(h: &crate::evidence::held_out::HeldOut) -> String {
+    let at: Vec<String> = h
+        .horizons
+        .iter()
+        .map(|x| {
+            let e = x
+                .state_rel_rmse
+                .map_or("not reached".into(), |v| format!("{v:.2e}"));
+            format!("{} s {e}", x.seconds)
+        })
+        .collect();
+    let drift = h
+        .learned_energy_drift
+        .map_or(String::new(), |d| format!(", learned-energy drift {d:.2e}"));
+    format!(
+        "on the held-out logs: state error {:.2e} (at {}){drift}",
+        h.state_rel_rmse,
+        at.join(", ")
+    )
 }
 
 fn print_summary(report: &RunReport, started: Instant) {

@@ -9,6 +9,7 @@ pub mod check;
 pub mod cv_filter;
 pub mod describe;
 pub mod fleet_report;
+pub mod held_out;
 pub mod horizons;
 pub mod numfmt;
 pub mod observer_check;

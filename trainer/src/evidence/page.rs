@@ -705,6 +705,104 @@ fn device_section(h: &mut Html<'_>, report: &RunReport) {
         esc(crate::deploy::footprint::SOURCE)
     ));
     quantization_table(h, n);
+    held_out_table(h, report);
+}
+
+/// Each blob on the held-out logs beside the fitted model it came from.
+fn held_out_table(h: &mut Html<'_>, report: &RunReport) {
+    let n = report.devices.len();
+    let (model, model_horizon, model_drift) = match &report.evidence {
+        Evidence::Check(_) => (
+            "check/median_model/state_rel_rmse",
+            "check/horizons",
+            Some("check/median_model/learned_energy_drift"),
+        ),
+        Evidence::Port(_) => ("port/median_model_state_rel_rmse", "port/horizons", None),
+    };
+    let horizons = report
+        .devices
+        .first()
+        .map_or(0, |d| d.held_out.horizons.len());
+    let mut errs = vec![model.to_string()];
+    errs.extend(paths("devices", n, "held_out/state_rel_rmse"));
+    for j in 0..horizons {
+        errs.push(format!("{model_horizon}/{j}/median_model"));
+        errs.extend(paths(
+            "devices",
+            n,
+            &format!("held_out/horizons/{j}/state_rel_rmse"),
+        ));
+    }
+    let err = h.col(&errs, Quantity::Fraction);
+    let mut drifts: Vec<String> = model_drift.iter().map(|p| p.to_string()).collect();
+    drifts.extend(paths("devices", n, "held_out/learned_energy_drift"));
+    let drift = h.col(&drifts, Quantity::Fraction);
+    let value = |path: &str, fmt, none: &str| {
+        if h.has(path) {
+            h.val(path, fmt)
+        } else {
+            missing(h, path, none)
+        }
+    };
+    let (unreached, undefined) = ("not reached", "damped or driven");
+    let mut rows = Vec::new();
+    let mut first = vec![
+        "fitted model".to_string(),
+        "as fitted".to_string(),
+        value(model, &err, ""),
+    ];
+    first.extend((0..horizons).map(|j| {
+        value(
+            &format!("{model_horizon}/{j}/median_model"),
+            &err,
+            unreached,
+        )
+    }));
+    first.push(
+        model_drift.map_or(format!("<span class=\"nm\">{undefined}</span>"), |p| {
+            value(p, &drift, undefined)
+        }),
+    );
+    rows.push(first);
+    for i in 0..n {
+        let p = |f: &str| format!("devices/{i}/{f}");
+        let mut row = vec![
+            h.num(&p("name")),
+            h.num(&p("export/weights")),
+            value(&p("held_out/state_rel_rmse"), &err, ""),
+        ];
+        row.extend((0..horizons).map(|j| {
+            value(
+                &p(&format!("held_out/horizons/{j}/state_rel_rmse")),
+                &err,
+                unreached,
+            )
+        }));
+        row.push(value(
+            &p("held_out/learned_energy_drift"),
+            &drift,
+            undefined,
+        ));
+        rows.push(row);
+    }
+    let mut head = vec![
+        "rolled out".to_string(),
+        "weights".into(),
+        "median state error".into(),
+    ];
+    if let Some(d) = report.devices.first() {
+        head.extend(
+            d.held_out
+                .horizons
+                .iter()
+                .map(|x| format!("at {} s", x.seconds)),
+        );
+    }
+    head.push("learned-energy drift".into());
+    let head: Vec<&str> = head.iter().map(String::as_str).collect();
+    h.p("<h3>Each blob on the held-out logs</h3>");
+    h.table(&head, &rows);
+    h.p("<p class=\"note\">The blob's own weights and integrator rolled out from the held-out logs' states, as the fitted model is by the check above: what int8 weights or another integrator cost against the data, not only against the f32 model.</p>");
 }
 
 /// The price of int8 weights and of the blob's integrator.

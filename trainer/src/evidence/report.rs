@@ -139,6 +139,9 @@ pub struct DeviceBlob {
     pub golden_inputs: Option<String>,
     /// Budget verdict.
     pub budget: BudgetVerdict,
+    /// The blob itself on the held-out logs (`evidence::held_out`), beside
+    /// the fitted model's figures in `check` or `port`.
+    pub held_out: crate::evidence::held_out::HeldOut,
 }
 
 /// One held-out trajectory driven by its logged inputs: model and baseline.

@@ -25,7 +25,7 @@ use crate::deploy::inspect::inspect;
 use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
 use crate::evidence::charts::{charts, driven_charts, loss_chart, model_label, HistoryFile};
 use crate::evidence::check::{
-    check_port, driven_baseline, driven_horizons, reference_modes, CheckSettings,
+    check_port, driven_baseline, driven_horizons, median, reference_modes, CheckSettings,
 };
 use crate::evidence::horizons::{summarize as summarize_horizons, HorizonError};
 use crate::evidence::provenance::{InputFile, Provenance};
@@ -584,14 +584,6 @@ fn golden_inputs(val: &Dataset, steps: usize) -> (String, Vec<Vec<f32>>) {
     }
 }
 
-fn median(mut v: Vec<f64>) -> f64 {
-    if v.is_empty() {
-        return f64::NAN;
-    }
-    v.sort_by(f64::total_cmp);
-    v[v.len() / 2]
-}
-
 /// The damped or driven model's check: damping per mode, driven rollouts of
 /// the held-out trajectories for model and baseline, and their charts.
 fn port_check(
@@ -727,6 +719,13 @@ fn export_target(
     };
     let bytes = std::fs::read(&blob_path)?;
     let ins = inspect(&bytes)?;
+    let settings = CheckSettings {
+        horizon_steps: Some(check.horizon_steps),
+        horizons: check.horizons.clone(),
+        ..CheckSettings::default()
+    };
+    let held_out = crate::evidence::held_out::held_out(&bytes, &prep.logs.val, None, &settings)
+        .with_context(|| format!("[[export]] '{}': on the held-out logs", t.name))?;
     let (golden, golden_inputs) = write_golden(prep, checked, &t.name, &bytes)?;
     let measured: Option<serde_json::Value> =
         read_json(&out.join(format!("device/{}.json", t.name)));
@@ -752,6 +751,7 @@ fn export_target(
         golden_inputs,
         budget,
         export: report,
+        held_out,
     };
     Ok(Exported { device, reused })
 }

@@ -3,7 +3,7 @@
 //! curves, built from check results, each titled with the model it shows
 //! and labelled with the data's units.
 
-use crate::evidence::check::CheckReport;
+use crate::evidence::check::{CheckReport, TrajectoryCheck};
 use crate::evidence::svgplot::{Chart, Series, PALETTE};
 use crate::evidence::units::Units;
 
@@ -57,17 +57,31 @@ pub fn charts(
     model: &str,
 ) -> Vec<(String, Chart)> {
     let mut out = Vec::new();
-    let Some(t) = r.trajectories.first() else {
-        return history
-            .map(|h| vec![("loss".into(), loss_chart(h, model))])
-            .unwrap_or_default();
-    };
-    let truth = r.system.is_some();
-    let which = if truth {
+    if let Some(t) = r.trajectories.first() {
+        let truth = r.system.is_some();
+        out.push(("drift".into(), drift_chart(t, truth, units, model)));
+        out.push(("phase".into(), phase_chart(t, units, model)));
+        out.push(("energy".into(), energy_chart(t, truth, units, model)));
+        out.push(("state-error".into(), state_error_chart(t, model)));
+    }
+    if let Some(h) = history {
+        out.push(("loss".into(), loss_chart(h, model)));
+    }
+    out
+}
+
+/// Which energy the charts show: the built-in system's when there is one.
+fn energy_name(truth: bool) -> &'static str {
+    if truth {
         "true energy"
     } else {
         "learned energy"
-    };
+    }
+}
+
+/// |H(t) - H(0)| (relative to |H(0)| for the true energy), log scale.
+fn drift_chart(t: &TrajectoryCheck, truth: bool, units: &Units, model: &str) -> Chart {
+    let which = energy_name(truth);
     let mut s = vec![series(
         "energy model",
         drift(&t.energy[0], truth),
@@ -84,25 +98,26 @@ pub fn charts(
             false,
         ));
     }
-    out.push((
-        "drift".into(),
-        Chart {
-            title: format!(
-                "Energy drift of the {model}{} over {} steps, trajectory {}",
-                if truth { " and the baseline" } else { "" },
-                t.horizon_steps,
-                t.id
-            ),
-            x_label: "time (s)".into(),
-            y_label: if truth {
-                format!("|H(t) - H(0)| / |H(0)|, {which} (-)")
-            } else {
-                format!("|H(t) - H(0)|, {which} ({})", units.energy)
-            },
-            log_y: true,
-            series: s,
+    Chart {
+        title: format!(
+            "Energy drift of the {model}{} over {} steps, trajectory {}",
+            if truth { " and the baseline" } else { "" },
+            t.horizon_steps,
+            t.id
+        ),
+        x_label: "time (s)".into(),
+        y_label: if truth {
+            format!("|H(t) - H(0)| / |H(0)|, {which} (-)")
+        } else {
+            format!("|H(t) - H(0)|, {which} ({})", units.energy)
         },
-    ));
+        log_y: true,
+        series: s,
+    }
+}
+
+/// q1 against p1: the log, the model and the baseline.
+fn phase_chart(t: &TrajectoryCheck, units: &Units, model: &str) -> Chart {
     let mut s = vec![
         series("log", t.phase[0].clone(), 0, false, true),
         series("energy model", t.phase[1].clone(), 1, false, false),
@@ -110,43 +125,45 @@ pub fn charts(
     if !t.phase[2].is_empty() {
         s.push(series("baseline", t.phase[2].clone(), 2, true, false));
     }
-    out.push((
-        "phase".into(),
-        Chart {
-            title: format!(
-                "Phase portrait of trajectory {}: log, {model}, baseline",
-                t.id
-            ),
-            x_label: format!("q1 ({})", units.state(0)),
-            y_label: format!("p1 ({})", units.state(units.q.len())),
-            log_y: false,
-            series: s,
-        },
-    ));
+    Chart {
+        title: format!(
+            "Phase portrait of trajectory {}: log, {model}, baseline",
+            t.id
+        ),
+        x_label: format!("q1 ({})", units.state(0)),
+        y_label: format!("p1 ({})", units.state(units.q.len())),
+        log_y: false,
+        series: s,
+    }
+}
+
+/// The energy over the horizon.
+fn energy_chart(t: &TrajectoryCheck, truth: bool, units: &Units, model: &str) -> Chart {
     let mut s = vec![series("energy model", t.energy[0].clone(), 1, false, false)];
     if truth && !t.energy[1].is_empty() {
         s.push(series("baseline", t.energy[1].clone(), 2, true, false));
     }
-    out.push((
-        "energy".into(),
-        Chart {
-            title: format!(
-                "{} over {} steps, trajectory {}: {model}{}",
-                if truth {
-                    "True energy"
-                } else {
-                    "Learned energy"
-                },
-                t.horizon_steps,
-                t.id,
-                if truth { ", baseline" } else { "" }
-            ),
-            x_label: "time (s)".into(),
-            y_label: format!("{which} ({})", units.energy),
-            log_y: false,
-            series: s,
-        },
-    ));
+    Chart {
+        title: format!(
+            "{} over {} steps, trajectory {}: {model}{}",
+            if truth {
+                "True energy"
+            } else {
+                "Learned energy"
+            },
+            t.horizon_steps,
+            t.id,
+            if truth { ", baseline" } else { "" }
+        ),
+        x_label: "time (s)".into(),
+        y_label: format!("{} ({})", energy_name(truth), units.energy),
+        log_y: false,
+        series: s,
+    }
+}
+
+/// State error over state RMS against time, log scale.
+fn state_error_chart(t: &TrajectoryCheck, model: &str) -> Chart {
     let err = |m: &crate::evidence::check::Metrics| -> Vec<(f64, f64)> {
         m.state_error
             .iter()
@@ -158,23 +175,16 @@ pub fn charts(
     if let Some(b) = &t.baseline {
         s.push(series("baseline", err(b), 2, true, false));
     }
-    out.push((
-        "state-error".into(),
-        Chart {
-            title: format!(
-                "State error versus time, trajectory {}: {model}, baseline",
-                t.id
-            ),
-            x_label: "time (s)".into(),
-            y_label: "state error / state RMS (-)".into(),
-            log_y: true,
-            series: s,
-        },
-    ));
-    if let Some(h) = history {
-        out.push(("loss".into(), loss_chart(h, model)));
+    Chart {
+        title: format!(
+            "State error versus time, trajectory {}: {model}, baseline",
+            t.id
+        ),
+        x_label: "time (s)".into(),
+        y_label: "state error / state RMS (-)".into(),
+        log_y: true,
+        series: s,
     }
-    out
 }
 
 /// The loss curves of a fit of `model`.

@@ -24,7 +24,7 @@ use visviva_runtime::monitor::{chi_square_quantile, FalseAlarm};
 use crate::data::dataset::{Dataset, DerivativeSource};
 use crate::deploy::blob::HostModel;
 use crate::deploy::observe::ObserverRun;
-use crate::deploy::observer_settings::{companion_path, parse_false_alarm};
+use crate::deploy::observer_settings::{companion_path, parse_false_alarm, ObserverSettings};
 use crate::deploy::observer_tuning::{noise_estimate, position_rows, tune};
 use crate::evidence::charts::series;
 use crate::evidence::cv_filter::{central_differences, cv_velocities};
@@ -181,79 +181,17 @@ pub fn observer_report(
         })
         .collect();
     let nv = noisy(val, &top_up);
-    let mut run = ObserverRun::new(model, t.settings.clone())?;
-    let (mut ev, mut ep, mut em) = (
-        vec![Vec::new(); n],
-        vec![Vec::new(); n],
-        vec![Vec::new(); n],
-    );
-    let (mut full, mut upper, mut lower) = (0, 0, 0);
-    let mut traces = ObserverTraces::default();
-    let z = alarm.normal_quantile();
-    for (k, (tn, tc)) in nv.trajectories.iter().zip(&val.trajectories).enumerate() {
-        for (j, row) in position_rows(tn, n).enumerate() {
-            let e = run.push(&row)?;
-            full += usize::from(e.window_full);
-            upper += usize::from(e.health.nis_high);
-            lower += usize::from(e.health.nis_low);
-            if k == 0 && e.window_full {
-                let h = &e.health;
-                traces.nis.push((
-                    row.t,
-                    h.nis_sum as f64,
-                    chi_square_quantile(h.dof, -z) as f64,
-                    chi_square_quantile(h.dof, z) as f64,
-                ));
-            }
-            if k == 0 && j >= SKIP {
-                traces.t.push(row.t);
-                traces.velocity_error[0].push(e.v[0] as f64 - tc.dx[[j, 0]]);
-            }
-            if j >= SKIP {
-                for i in 0..n {
-                    ev[i].push(e.v[i] as f64 - tc.dx[[j, i]]);
-                    ep[i].push(e.q[i] as f64 - tc.x[[j, i]]);
-                    em[i].push(row.q[i].unwrap_or(f64::NAN) - tc.x[[j, i]]);
-                }
-            }
-        }
-    }
+    let mut pass = observe_noisy(model, &t.settings, &nv, val, alarm)?;
     let dt = model.integrator().dt as f64;
-    if let (Some(tn), Some(tc)) = (nv.trajectories.first(), val.trajectories.first()) {
-        traces.trajectory = tn.id.clone();
-        let z = tn.x.column(0).to_vec();
-        let s = cv_intensity(train, sigma[0], 0, dt);
-        let estimates = [
-            central_differences(&z, dt),
-            cv_velocities(&z, dt, sigma[0] * sigma[0], s),
-        ];
-        for (slot, v) in traces.velocity_error[1..].iter_mut().zip(estimates) {
-            *slot = (SKIP..v.len()).map(|j| v[j] - tc.dx[[j, 0]]).collect();
-        }
-    }
-    let fd = (0..n)
-        .map(|i| {
-            rms(&velocity_errors(&nv, val, i, &|z| {
-                central_differences(z, dt)
-            }))
-        })
-        .collect();
-    let cv = (0..n)
-        .map(|i| {
-            let s = cv_intensity(train, sigma[i], i, dt);
-            let r = sigma[i] * sigma[i];
-            rms(&velocity_errors(&nv, val, i, &|z| {
-                cv_velocities(z, dt, r, s)
-            }))
-        })
-        .collect();
+    yardstick_traces(&mut pass.traces, &nv, val, train, sigma[0], dt);
+    let (fd, cv) = yardsticks(&nv, val, train, &sigma, dt);
     Ok(ObserverReport {
         settings_file: path
             .file_name()
             .map_or(String::new(), |f| f.to_string_lossy().into_owned()),
         window,
         false_alarm: false_alarm.to_string(),
-        position_noise: sigma.clone(),
+        position_noise: sigma,
         added_noise: top_up,
         process_level: t.level_line.0,
         process_level_per_energy: t.level_line.1,
@@ -262,16 +200,133 @@ pub fn observer_report(
             DerivativeSource::Given => "the log's dq/dt columns".into(),
             DerivativeSource::Estimated => "dq/dt estimated from the log by Savitzky-Golay".into(),
         },
-        velocity_rmse_observer: ev.iter().map(|e| rms(e)).collect(),
+        velocity_rmse_observer: pass.velocity.iter().map(|e| rms(e)).collect(),
         velocity_rmse_finite_differences: fd,
         velocity_rmse_cv_filter: cv,
-        position_rmse_observer: ep.iter().map(|e| rms(e)).collect(),
-        position_rmse_measured: em.iter().map(|e| rms(e)).collect(),
-        full_windows: full,
-        upper_flags: upper,
-        lower_flags: lower,
-        traces: Some(traces),
+        position_rmse_observer: pass.position.iter().map(|e| rms(e)).collect(),
+        position_rmse_measured: pass.measured.iter().map(|e| rms(e)).collect(),
+        full_windows: pass.full,
+        upper_flags: pass.upper,
+        lower_flags: pass.lower,
+        traces: Some(pass.traces),
     })
+}
+
+/// The observer over the noisy validation log: per coordinate its velocity
+/// and position errors and the measurement's own position error (after
+/// the first `SKIP` samples of each trajectory), the monitor's counts, and
+/// the first trajectory's traces.
+struct ObserverPass {
+    velocity: Vec<Vec<f64>>,
+    position: Vec<Vec<f64>>,
+    measured: Vec<Vec<f64>>,
+    full: usize,
+    upper: usize,
+    lower: usize,
+    traces: ObserverTraces,
+}
+
+fn observe_noisy(
+    model: &HostModel<'_>,
+    settings: &ObserverSettings,
+    nv: &Dataset,
+    val: &Dataset,
+    alarm: FalseAlarm,
+) -> Result<ObserverPass> {
+    let n = model.dof();
+    let mut run = ObserverRun::new(model, settings.clone())?;
+    let mut pass = ObserverPass {
+        velocity: vec![Vec::new(); n],
+        position: vec![Vec::new(); n],
+        measured: vec![Vec::new(); n],
+        full: 0,
+        upper: 0,
+        lower: 0,
+        traces: ObserverTraces::default(),
+    };
+    let z = alarm.normal_quantile();
+    for (k, (tn, tc)) in nv.trajectories.iter().zip(&val.trajectories).enumerate() {
+        for (j, row) in position_rows(tn, n).enumerate() {
+            let e = run.push(&row)?;
+            pass.full += usize::from(e.window_full);
+            pass.upper += usize::from(e.health.nis_high);
+            pass.lower += usize::from(e.health.nis_low);
+            if k == 0 && e.window_full {
+                let h = &e.health;
+                pass.traces.nis.push((
+                    row.t,
+                    h.nis_sum as f64,
+                    chi_square_quantile(h.dof, -z) as f64,
+                    chi_square_quantile(h.dof, z) as f64,
+                ));
+            }
+            if k == 0 && j >= SKIP {
+                pass.traces.t.push(row.t);
+                pass.traces.velocity_error[0].push(e.v[0] as f64 - tc.dx[[j, 0]]);
+            }
+            if j >= SKIP {
+                for i in 0..n {
+                    pass.velocity[i].push(e.v[i] as f64 - tc.dx[[j, i]]);
+                    pass.position[i].push(e.q[i] as f64 - tc.x[[j, i]]);
+                    pass.measured[i].push(row.q[i].unwrap_or(f64::NAN) - tc.x[[j, i]]);
+                }
+            }
+        }
+    }
+    Ok(pass)
+}
+
+/// The first trajectory's velocity errors of the two yardsticks (central
+/// differences, the constant-velocity filter), beside the observer's.
+fn yardstick_traces(
+    traces: &mut ObserverTraces,
+    nv: &Dataset,
+    val: &Dataset,
+    train: &Dataset,
+    sigma: f64,
+    dt: f64,
+) {
+    let (Some(tn), Some(tc)) = (nv.trajectories.first(), val.trajectories.first()) else {
+        return;
+    };
+    traces.trajectory = tn.id.clone();
+    let z = tn.x.column(0).to_vec();
+    let s = cv_intensity(train, sigma, 0, dt);
+    let estimates = [
+        central_differences(&z, dt),
+        cv_velocities(&z, dt, sigma * sigma, s),
+    ];
+    for (slot, v) in traces.velocity_error[1..].iter_mut().zip(estimates) {
+        *slot = (SKIP..v.len()).map(|j| v[j] - tc.dx[[j, 0]]).collect();
+    }
+}
+
+/// Velocity RMS errors per coordinate of central differences and of the
+/// constant-velocity filter (its intensity picked on `train`).
+fn yardsticks(
+    nv: &Dataset,
+    val: &Dataset,
+    train: &Dataset,
+    sigma: &[f64],
+    dt: f64,
+) -> (Vec<f64>, Vec<f64>) {
+    let fd = (0..sigma.len())
+        .map(|i| {
+            rms(&velocity_errors(nv, val, i, &|z| {
+                central_differences(z, dt)
+            }))
+        })
+        .collect();
+    let cv = (0..sigma.len())
+        .map(|i| {
+            let s = cv_intensity(train, sigma[i], i, dt);
+            let r = sigma[i] * sigma[i];
+            rms(&velocity_errors(nv, val, i, &|z| {
+                cv_velocities(z, dt, r, s)
+            }))
+        })
+        .collect();
+    (fd, cv)
 }
 
 /// The observer's charts for the model named `label` (`units`: the data's):

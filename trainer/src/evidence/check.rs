@@ -122,7 +122,8 @@ pub struct Summary {
     pub learned_energy_drift: Option<f64>,
 }
 
-fn median(mut v: Vec<f64>) -> f64 {
+/// The median of `v` (the upper middle for an even count; NaN when empty).
+pub fn median(mut v: Vec<f64>) -> f64 {
     if v.is_empty() {
         return f64::NAN;
     }

@@ -6,9 +6,12 @@
 //! structure must win; the flexure is a mass on a spring, H = p^2/(2m) +
 //! k q^2/2 (textbook), which the separable structure holds exactly. Each
 //! printed figure must equal the one `check` reports for the same short fit,
-//! and the model written must be the one `--arch <chosen>` writes.
+//! and the model written must be the one `--arch <chosen>` writes; `run`
+//! with `arch = "auto"` prints the same lines and puts them in report.json
+//! and on the page, every number tagged.
 
 mod cli_support;
+mod page_numbers;
 
 use std::path::Path;
 
@@ -217,4 +220,64 @@ fn auto_without_held_out_trajectories_is_refused() {
         &["--arch auto scores each structure on held-out trajectories"],
     );
     assert!(!d.join("m.vvb").exists(), "{err}");
+}
+
+const PROJECT: &str = r#"
+name = "auto rig"
+[data]
+train = "train.csv"
+validation = "val.csv"
+[model]
+arch = "auto"
+hidden = [8]
+[fit]
+epochs = 15
+[check]
+horizon_steps = 200
+golden_steps = 50
+[[export]]
+name = "tiny-f32"
+"#;
+
+#[test]
+fn run_with_arch_auto_reports_the_choice_on_the_page() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    simulate(d, "flexure", "6", "0.4", "100", "1", "train.csv");
+    simulate(d, "flexure", "2", "0.4", "100", "2", "val.csv");
+    std::fs::write(d.join("visviva.toml"), PROJECT).unwrap();
+    let o = visviva_in(d, &["run", "--quiet", "."]);
+    assert_ok(&o);
+    let out = text(&o).0;
+    assert!(
+        out.contains("fitted for 3 epochs (1/5 of the budget"),
+        "{out}"
+    );
+    let (printed, chosen) = parse(&out);
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.join("out/report.json")).unwrap()).unwrap();
+    let s = &json["structure_choice"];
+    assert_eq!(s["chosen"], chosen.as_str());
+    assert_eq!(s["short_budget"], 3);
+    let mut best = (String::new(), f64::INFINITY);
+    for (k, (name, figure)) in printed.iter().enumerate() {
+        let c = &s["candidates"][k];
+        assert_eq!(c["structure"], name.as_str());
+        let v = c["state_rel_rmse"].as_f64().unwrap();
+        assert_eq!(figure.as_deref(), Some(format!("{v:.4e}").as_str()));
+        if v < best.1 {
+            best = (name.clone(), v);
+        }
+    }
+    assert_eq!(best.0, chosen);
+    // The model written is the chosen structure.
+    let architecture = json["architecture"].as_str().unwrap();
+    assert!(architecture.starts_with(&chosen), "{architecture}");
+    let html = std::fs::read_to_string(d.join("out/report.html")).unwrap();
+    assert_eq!(page_numbers::disagreements(&html, &json), vec![]);
+    assert_eq!(
+        page_numbers::cells_without_untagged_digits(&html, "Structure choice"),
+        9
+    );
+    assert!(html.contains("structure_choice/candidates/0/state_rel_rmse"));
 }

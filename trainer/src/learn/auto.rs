@@ -180,3 +180,38 @@ impl Selection {
         out
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_short_budget_is_a_fifth_and_at_least_one() {
+        let s = FitSettings {
+            epochs: 1000,
+            seed: 7,
+            ..FitSettings::default()
+        };
+        let short = short_settings(&s);
+        assert_eq!((short.epochs, short.steps, short.seed), (200, None, 7));
+        let tiny = short_settings(&FitSettings {
+            epochs: 3,
+            steps: Some(4),
+            ..FitSettings::default()
+        });
+        assert_eq!((tiny.epochs, tiny.steps), (1, Some(1)));
+    }
+
+    #[test]
+    fn every_candidate_names_itself_and_round_trips() {
+        for arch in CANDIDATES {
+            let s = Selection {
+                candidates: vec![],
+                chosen: arch_name(arch).into(),
+                short_budget: 1,
+                short_budget_in_steps: false,
+            };
+            assert_eq!(s.chosen_arch(), arch);
+        }
+    }
+}

@@ -40,7 +40,7 @@ use crate::learn::hnn::BaselineModel;
 use crate::learn::stage::{
     check_method, fit_stage_mode, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
 };
-use crate::learn::structure::arch_choice;
+use crate::learn::structure::{arch_choice, Arch};
 use crate::project::cache::{read_json, sha, write_json};
 use crate::project::file::Project;
 use crate::reference::{build_system, ParamValues, ReferenceSystem, CATALOG};
@@ -83,6 +83,8 @@ pub struct Prepared {
     pub trajectory: Option<crate::learn::mode::TrajectoryPlan>,
     /// The command that reproduces the run (the report's provenance).
     pub command: String,
+    /// With `arch = "auto"`: every candidate's figure and the choice.
+    pub selection: Option<crate::learn::auto::Selection>,
 }
 
 impl Prepared {
@@ -105,36 +107,17 @@ pub fn prepare(dir: &Path) -> Result<Prepared> {
 pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepared> {
     let file = file.to_string();
     let logs = load_logs(dir, &project)?;
-    let m = &project.model;
-    let choice = arch_choice(
-        m.arch,
-        m.kinetic,
-        &m.hidden,
-        m.activation,
-        "[model] activation",
-    )?;
-    let terms = m.port_terms().with_context(|| file.clone())?;
-    let plan = plan_model(
-        &logs.train,
-        choice,
-        terms,
-        m.integrator,
-        m.dt,
-        SettingNames::ProjectKeys,
-    )
-    .with_context(|| file.clone())?;
-    for t in project.export_targets() {
-        if let Some(i) = t.integrator {
-            let setting = format!("[[export]] {}: integrator", t.name);
-            check_method(
-                Method::from(i),
-                plan.choice.separable,
-                plan.has_port_terms(),
-                &setting,
-            )
-            .with_context(|| file.clone())?;
+    let (plan, selection) = match project.model.arch {
+        Arch::Auto => {
+            let s = select_structure(&project, &logs).with_context(|| file.clone())?;
+            let plan = project_plan(&project, &logs, s.chosen_arch());
+            (plan.with_context(|| file.clone())?, Some(s))
         }
-    }
+        arch => (
+            project_plan(&project, &logs, arch).with_context(|| file.clone())?,
+            None,
+        ),
+    };
     let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
     check_sizes(&project, dir, logs.train.dof).with_context(|| file.clone())?;
     let units = Units::resolve(
@@ -161,10 +144,82 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         mode,
         trajectory,
         command: format!("visviva run {} --force", dir.display()),
+        selection,
     };
     check_out_folder(&prep).with_context(|| file.clone())?;
     reference_system(&prep).with_context(|| file.clone())?;
     Ok(prep)
+}
+
+/// The model plan of `[model]` with `arch` as the structure, refused when
+/// an `[[export]]` integrator cannot step it.
+fn project_plan(project: &Project, logs: &Logs, arch: Arch) -> Result<ModelPlan> {
+    let m = &project.model;
+    let choice = arch_choice(
+        arch,
+        m.kinetic,
+        &m.hidden,
+        m.activation,
+        "[model] activation",
+    )?;
+    let terms = m.port_terms()?;
+    let plan = plan_model(
+        &logs.train,
+        choice,
+        terms,
+        m.integrator,
+        m.dt,
+        SettingNames::ProjectKeys,
+    )?;
+    for t in project.export_targets() {
+        if let Some(i) = t.integrator {
+            let setting = format!("[[export]] {}: integrator", t.name);
+            check_method(
+                Method::from(i),
+                plan.choice.separable,
+                plan.has_port_terms(),
+                &setting,
+            )?;
+        }
+    }
+    Ok(plan)
+}
+
+/// `arch = "auto"`: each structure the project permits fitted on the short
+/// budget and scored on the validation logs ([`crate::learn::auto`]).
+fn select_structure(project: &Project, logs: &Logs) -> Result<crate::learn::auto::Selection> {
+    let settings = fit_settings(project, true);
+    crate::learn::auto::select(
+        &logs.val,
+        &settings,
+        |arch| project_plan(project, logs, arch),
+        |plan, short| {
+            let (_, tp) = fit_mode(project, logs, plan)?;
+            fit_stage_mode(
+                &logs.train,
+                Some(&logs.val),
+                plan,
+                short,
+                false,
+                tp.as_ref(),
+            )
+        },
+    )
+}
+
+/// The training settings of `[fit]`.
+fn fit_settings(project: &Project, quiet: bool) -> FitSettings {
+    FitSettings {
+        epochs: project.fit.epochs,
+        batch: project.fit.batch,
+        lr: project.fit.lr,
+        patience: project.fit.patience,
+        seed: project.fit.seed,
+        threads: project.fit.threads,
+        quiet,
+        interrupt: Some(interrupt_flag()),
+        ..FitSettings::default()
+    }
 }
 
 /// `out/` can be written and holds none of the project's logs (`run`
@@ -405,17 +460,7 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         }
         return Ok(FitResult { fit, baseline_fit });
     }
-    let settings = FitSettings {
-        epochs: project.fit.epochs,
-        batch: project.fit.batch,
-        lr: project.fit.lr,
-        patience: project.fit.patience,
-        seed: project.fit.seed,
-        threads: project.fit.threads,
-        quiet,
-        interrupt: Some(interrupt_flag()),
-        ..FitSettings::default()
-    };
+    let settings = fit_settings(project, quiet);
     let done = fit_stage_mode(
         &logs.train,
         Some(&logs.val),
@@ -854,6 +899,7 @@ pub fn report(
         cycles_per_mac_used: crate::deploy::budget::cycles_per_mac(&prep.project.device),
         budget_pass,
         underfit,
+        structure_choice: prep.selection.clone(),
         observer,
         provenance: provenance(prep)?,
         change: None,

@@ -281,3 +281,28 @@ fn run_with_arch_auto_reports_the_choice_on_the_page() {
     );
     assert!(html.contains("structure_choice/candidates/0/state_rel_rmse"));
 }
+
+#[test]
+fn trajectory_matching_skips_the_structures_it_cannot_step() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    simulate(d, "flexure", "4", "0.6", "100", "1", "train.csv");
+    simulate(d, "flexure", "2", "0.6", "100", "2", "val.csv");
+    let out = fit(
+        d,
+        "auto",
+        "5",
+        "auto.vvb",
+        &["--fit-mode", "trajectory", "--trajectory-epochs", "10"],
+    );
+    let (figures, chosen) = parse(&out);
+    assert!(figures[0].1.is_some(), "{out}");
+    for k in [1, 2] {
+        assert!(figures[k].1.is_none(), "{out}");
+    }
+    assert!(
+        out.contains("mechanical skipped: --fit-mode = trajectory needs arch = separable"),
+        "{out}"
+    );
+    assert_eq!(chosen, "separable");
+}

@@ -323,7 +323,7 @@ fn settle_arch(
         &quiet,
         |arch| plan(args, arch, train),
         |p, short| {
-            let tp = candidate_mode(args, rig, train, p)?;
+            let tp = crate::learn::auto::short_trajectory(candidate_mode(args, rig, train, p)?);
             fit_stage_mode(train, Some(val), p, short, false, tp.as_ref())
         },
     )?;

@@ -17,7 +17,8 @@ use crate::learn::structure::Arch;
 use visviva_runtime::Hamiltonian;
 
 /// The short budget is the configured one divided by this (at least one
-/// epoch or step), with the same seed and hidden sizes: our own choice,
+/// epoch or step; trajectory matching's epochs too), with the same seed and
+/// hidden sizes: our own choice,
 /// enough for the structures to separate on the built-in systems.
 pub const SHORT_BUDGET_DIVISOR: usize = 5;
 
@@ -68,6 +69,17 @@ pub fn short_settings(settings: &FitSettings) -> FitSettings {
         steps: settings.steps.map(cut),
         ..settings.clone()
     }
+}
+
+/// Trajectory matching's plan with its epochs cut like
+/// [`short_settings`]'s.
+pub fn short_trajectory(
+    plan: Option<crate::learn::mode::TrajectoryPlan>,
+) -> Option<crate::learn::mode::TrajectoryPlan> {
+    plan.map(|p| crate::learn::mode::TrajectoryPlan {
+        epochs: (p.epochs / SHORT_BUDGET_DIVISOR).max(1),
+        ..p
+    })
 }
 
 /// The figure `check` reports for the fitted `blob` on `val`: the median

@@ -194,7 +194,7 @@ fn select_structure(project: &Project, logs: &Logs) -> Result<crate::learn::auto
         &settings,
         |arch| project_plan(project, logs, arch),
         |plan, short| {
-            let (_, tp) = fit_mode(project, logs, plan)?;
+            let tp = crate::learn::auto::short_trajectory(fit_mode(project, logs, plan)?.1);
             fit_stage_mode(
                 &logs.train,
                 Some(&logs.val),

@@ -94,11 +94,7 @@ fn structure_choice_section(h: &mut Html<'_>, report: &RunReport) {
         Quantity::Fraction,
     );
     let budget = h.one("structure_choice/short_budget", Quantity::Count);
-    let unit = if s.short_budget_in_steps {
-        "optimizer steps"
-    } else {
-        "epochs"
-    };
+    let unit = s.budget_unit();
     h.p("<h2>Structure choice</h2>");
     h.p(&format!(
         "<p>arch = \"auto\": each structure the project permits \

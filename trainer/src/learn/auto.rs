@@ -171,13 +171,19 @@ impl Selection {
             .unwrap_or(Arch::General)
     }
 
+    /// What the short budget counts, in words.
+    pub fn budget_unit(&self) -> &'static str {
+        match (self.short_budget_in_steps, self.short_budget) {
+            (true, 1) => "optimizer step",
+            (true, _) => "optimizer steps",
+            (false, 1) => "epoch",
+            (false, _) => "epochs",
+        }
+    }
+
     /// The command output's lines: the rule, each candidate and the choice.
     pub fn lines(&self) -> Vec<String> {
-        let unit = if self.short_budget_in_steps {
-            "optimizer steps"
-        } else {
-            "epochs"
-        };
+        let unit = self.budget_unit();
         let mut out = vec![format!(
             "arch = auto: each structure the log permits fitted for {} {unit} (1/{} of the \
              budget, same seed and sizes), scored by the median held-out state relative RMSE \

@@ -280,6 +280,12 @@ fn run_with_arch_auto_reports_the_choice_on_the_page() {
         9
     );
     assert!(html.contains("structure_choice/candidates/0/state_rel_rmse"));
+    // A rerun of the same logs and settings reuses the fit and its choice.
+    let again = visviva_in(d, &["run", "--quiet", "."]);
+    assert_ok(&again);
+    let again = text(&again).0;
+    assert!(again.contains("reused from the last fit"), "{again}");
+    assert_eq!(parse(&again), (printed, chosen));
 }
 
 #[test]

@@ -49,6 +49,9 @@ pub struct Selection {
     pub short_budget: usize,
     /// Whether `short_budget` counts optimizer steps.
     pub short_budget_in_steps: bool,
+    /// Read back from the last run's fit of the same logs and settings.
+    #[serde(default)]
+    pub reused: bool,
 }
 
 /// The structure's name in the project file's words.
@@ -139,6 +142,7 @@ pub fn select(
         chosen: best.0.structure.clone(),
         short_budget: short.steps.unwrap_or(short.epochs),
         short_budget_in_steps: short.steps.is_some(),
+        reused: false,
         candidates,
     })
 }
@@ -191,10 +195,18 @@ impl Selection {
             self.short_budget, SHORT_BUDGET_DIVISOR
         )];
         out.extend(self.candidates.iter().map(|c| format!("  {}", c.line())));
-        out.push(format!(
-            "chosen: {} (smallest held-out state error); fitting it with the full budget",
-            self.chosen
-        ));
+        out.push(if self.reused {
+            format!(
+                "chosen: {} (smallest held-out state error; reused from the last fit of the \
+                 same logs and settings)",
+                self.chosen
+            )
+        } else {
+            format!(
+                "chosen: {} (smallest held-out state error); fitting it with the full budget",
+                self.chosen
+            )
+        });
         out
     }
 }
@@ -228,6 +240,7 @@ mod tests {
                 chosen: arch_name(arch).into(),
                 short_budget: 1,
                 short_budget_in_steps: false,
+                reused: false,
             };
             assert_eq!(s.chosen_arch(), arch);
         }

@@ -109,7 +109,10 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
     let logs = load_logs(dir, &project)?;
     let (plan, selection) = match project.model.arch {
         Arch::Auto => {
-            let s = select_structure(&project, &logs).with_context(|| file.clone())?;
+            let s = match last_selection(dir, &project, &logs) {
+                Some(s) => s,
+                None => select_structure(&project, &logs).with_context(|| file.clone())?,
+            };
             let plan = project_plan(&project, &logs, s.chosen_arch());
             (plan.with_context(|| file.clone())?, Some(s))
         }
@@ -183,6 +186,24 @@ fn project_plan(project: &Project, logs: &Logs, arch: Arch) -> Result<ModelPlan>
         }
     }
     Ok(plan)
+}
+
+/// The file in `out/` that keeps `arch = "auto"`'s choice beside the fit.
+const STRUCTURE_CHOICE: &str = "structure_choice.json";
+
+/// The choice recorded with the last fit, when that fit is of the same logs
+/// and settings (the choice is then the same: same seed, same data).
+fn last_selection(
+    dir: &Path,
+    project: &Project,
+    logs: &Logs,
+) -> Option<crate::learn::auto::Selection> {
+    let out = dir.join("out");
+    let recorded = std::fs::read_to_string(out.join("fit.sha256")).ok()?;
+    (recorded == fit_hash(project, logs).ok()?).then_some(())?;
+    let mut s: crate::learn::auto::Selection = read_json(&out.join(STRUCTURE_CHOICE))?;
+    s.reused = true;
+    Some(s)
 }
 
 /// `arch = "auto"`: each structure the project permits fitted on the short
@@ -425,13 +446,9 @@ pub struct FitResult {
     pub baseline_fit: Option<FitSummary>,
 }
 
-/// Fit the model (and the baseline) unless the logs and settings hash to
-/// what the last run recorded; writes `out/model.vvb`,
-/// `out/model.baseline.json`, `out/fit.json` and `out/fit.sha256`.
-pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
-    let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
-    std::fs::create_dir_all(out.join("golden"))
-        .with_context(|| format!("{}: cannot create", out.display()))?;
+/// The hash of what a fit depends on: the logs, `[data]`, `[model]`,
+/// `[fit]`, the version and any column mapping.
+fn fit_hash(project: &Project, logs: &Logs) -> Result<String> {
     let mut settings_json = serde_json::to_vec(&(
         &project.data,
         &project.model,
@@ -443,7 +460,17 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     if let Some(columns) = &project.columns {
         settings_json.extend(serde_json::to_vec(columns)?);
     }
-    let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
+    Ok(sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]))
+}
+
+/// Fit the model (and the baseline) unless the logs and settings hash to
+/// what the last run recorded; writes `out/model.vvb`,
+/// `out/model.baseline.json`, `out/fit.json` and `out/fit.sha256`.
+pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
+    let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
+    std::fs::create_dir_all(out.join("golden"))
+        .with_context(|| format!("{}: cannot create", out.display()))?;
+    let fit_hash = fit_hash(project, logs)?;
     let (model_path, baseline_path) = (out.join("model.vvb"), out.join("model.baseline.json"));
     let (fit_path, hash_path) = (out.join("fit.json"), out.join("fit.sha256"));
     let cached = !force
@@ -490,6 +517,9 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         None => None,
     };
     write_json(&fit_path, &(&fit, &baseline_fit))?;
+    if let Some(selection) = &prep.selection {
+        write_json(&out.join(STRUCTURE_CHOICE), selection)?;
+    }
     write_atomic(&hash_path, fit_hash.as_bytes())?;
     Ok(FitResult { fit, baseline_fit })
 }

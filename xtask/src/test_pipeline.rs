@@ -65,7 +65,7 @@ pub fn run() -> Result<bool> {
             &|| crate::demos::run(true, false),
         ),
         (
-            "cargo test --release: visviva-tests (incl. rig_logs), the trainer's port checks and observer checks (outside references), host-input fuzzing and the 10^7-step rollout's peak memory",
+            "cargo test --release: visviva-tests (incl. rig_logs), the trainer's port checks and observer checks (outside references), host-input fuzzing, arch = auto's choice on the double pendulum and the flexure and the 10^7-step rollout's peak memory",
             &|| {
                 Ok(cargo_stage(&["test", "-p", "visviva-tests", "--release"])?
                     && cargo_stage(&[
@@ -87,6 +87,8 @@ pub fn run() -> Result<bool> {
                         "observer_faults",
                         "--test",
                         "observe_cli",
+                        "--test",
+                        "auto_arch",
                     ])?
                     && cargo_stage(&[
                         "test",

@@ -269,10 +269,10 @@ fn fit_settings(args: &Args) -> FitSettings {
     }
 }
 
-/// The model plan from the flags.
-fn plan(args: &Args, train: &Dataset) -> Result<ModelPlan> {
+/// The model plan from the flags, with `arch` as the structure.
+fn plan(args: &Args, arch: Arch, train: &Dataset) -> Result<ModelPlan> {
     let choice = arch_choice(
-        args.arch,
+        arch,
         args.kinetic,
         &args.hidden,
         args.activation,
@@ -293,6 +293,72 @@ fn plan(args: &Args, train: &Dataset) -> Result<ModelPlan> {
         args.dt,
         SettingNames::Flags,
     )
+}
+
+/// The structure to fit: `--arch`, or with `--arch auto` the candidate
+/// with the smallest held-out state error after a short fit (printed with
+/// every candidate's figure and the skipped ones' reasons).
+fn settle_arch(
+    args: &Args,
+    settings: &FitSettings,
+    rig: Option<&RigSummary>,
+    train: &Dataset,
+    val: Option<&Dataset>,
+) -> Result<Arch> {
+    if args.arch != Arch::Auto {
+        return Ok(args.arch);
+    }
+    let Some(val) = val else {
+        bail!(
+            "--arch auto scores each structure on held-out trajectories: give --validation or \
+             a --val-fraction that holds out at least one trajectory"
+        );
+    };
+    let quiet = FitSettings {
+        quiet: true,
+        ..settings.clone()
+    };
+    let selection = crate::learn::auto::select(
+        val,
+        &quiet,
+        |arch| plan(args, arch, train),
+        |p, short| {
+            let tp = crate::learn::auto::short_trajectory(candidate_mode(args, rig, train, p)?);
+            fit_stage_mode(train, Some(val), p, short, false, tp.as_ref())
+        },
+    )?;
+    selection.lines().iter().for_each(|l| println!("{l}"));
+    Ok(selection.chosen_arch())
+}
+
+/// [`fit_mode`] for a candidate, without printing.
+fn candidate_mode(
+    args: &Args,
+    rig: Option<&RigSummary>,
+    train: &Dataset,
+    plan: &ModelPlan,
+) -> Result<Option<crate::learn::mode::TrajectoryPlan>> {
+    Ok(settled_mode(args, rig, train, plan)?.1)
+}
+
+/// The fit mode in words and trajectory matching's plan, from the flags.
+fn settled_mode(
+    args: &Args,
+    rig: Option<&RigSummary>,
+    train: &Dataset,
+    plan: &ModelPlan,
+) -> Result<(String, Option<crate::learn::mode::TrajectoryPlan>)> {
+    let request = ModeRequest {
+        mode: args.fit_mode,
+        window_steps: args.window_steps,
+        epochs: args.trajectory_epochs,
+        masses: args.mass.clone(),
+    };
+    let names = |key: &str| match key {
+        "mode" => "--fit-mode".to_string(),
+        other => format!("--{}", other.replace('_', "-")),
+    };
+    plan_mode(&request, rig, train, plan, &names)
 }
 
 /// The training and validation data: `--validation`, or whole trajectories
@@ -383,17 +449,7 @@ fn fit_mode(
     if let Some(r) = rig {
         r.lines().iter().for_each(|l| println!("{l}"));
     }
-    let request = ModeRequest {
-        mode: args.fit_mode,
-        window_steps: args.window_steps,
-        epochs: args.trajectory_epochs,
-        masses: args.mass.clone(),
-    };
-    let names = |key: &str| match key {
-        "mode" => "--fit-mode".to_string(),
-        other => format!("--{}", other.replace('_', "-")),
-    };
-    let (words, tp) = plan_mode(&request, rig, train, plan, &names)?;
+    let (words, tp) = settled_mode(args, rig, train, plan)?;
     println!("{words}");
     if let Some(tp) = &tp {
         println!("{}", tp.energy_scale_note());
@@ -448,7 +504,8 @@ pub fn run(args: Args) -> Result<()> {
         all.samples() as f64 / seconds.max(1e-9)
     );
     let (train, val) = split(&args, all, map.as_ref(), &opts)?;
-    let plan = plan(&args, &train)?;
+    let arch = settle_arch(&args, &settings, rig.as_ref(), &train, val.as_ref())?;
+    let plan = plan(&args, arch, &train)?;
     let trajectory = fit_mode(&args, rig.as_ref(), &train, &plan)?;
     println!(
         "fitting {} samples in {} trajectories ({} validation samples), {} parameters{}",

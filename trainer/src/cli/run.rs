@@ -42,6 +42,9 @@ pub fn run(args: Args) -> Result<()> {
     );
     println!("[1/5] data");
     print_data(&prep);
+    if let Some(s) = &prep.selection {
+        s.lines().iter().for_each(|l| println!("{l}"));
+    }
     let fit = fit_step(&prep, &args)?;
     println!(
         "[3/5] check: model vs baseline on {} validation trajectories",

@@ -77,7 +77,7 @@ impl clap::ValueEnum for WeightKind {
 
 impl clap::ValueEnum for Arch {
     fn value_variants<'a>() -> &'a [Self] {
-        &[Arch::Separable, Arch::General, Arch::Mechanical]
+        &[Arch::Separable, Arch::General, Arch::Mechanical, Arch::Auto]
     }
 
     fn to_possible_value(&self) -> Option<PossibleValue> {
@@ -89,6 +89,10 @@ impl clap::ValueEnum for Arch {
             Arch::Mechanical => PossibleValue::new("mechanical").help(
                 "H = 1/2 p^T M(q)^-1 p + V(q): a linkage whose mass matrix depends on the \
                  angles; needs an implicit method on the device",
+            ),
+            Arch::Auto => PossibleValue::new("auto").help(
+                "each structure the log permits fitted on a fifth of the budget; the one with \
+                 the smallest held-out state error is fitted with the full budget",
             ),
         })
     }

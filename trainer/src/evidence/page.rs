@@ -54,6 +54,7 @@ pub fn render_html(report: &RunReport, charts: &[(String, String)]) -> String {
         Evidence::Port(port) => port_section(&mut h, port),
     }
     underfit_note(&mut h, report);
+    structure_choice_section(&mut h, report);
     for (title, svg) in charts {
         h.p(&format!(
             "<figure aria-label=\"{}\">{svg}</figure>",
@@ -80,6 +81,49 @@ fn underfit_note(h: &mut Html<'_>, report: &RunReport) {
         esc(&u.structure),
         esc(&u.try_instead)
     ));
+}
+
+/// With `arch = "auto"`: each candidate's figure and why one was chosen.
+fn structure_choice_section(h: &mut Html<'_>, report: &RunReport) {
+    let Some(s) = &report.structure_choice else {
+        return;
+    };
+    let n = s.candidates.len();
+    let col = h.col(
+        &paths("structure_choice/candidates", n, "state_rel_rmse"),
+        Quantity::Fraction,
+    );
+    let budget = h.one("structure_choice/short_budget", Quantity::Count);
+    let unit = s.budget_unit();
+    h.p("<h2>Structure choice</h2>");
+    h.p(&format!(
+        "<p>arch = \"auto\": each structure the project permits \
+         was fitted for {budget} {unit} (a fifth of the budget, same seed and sizes) and \
+         scored by its held-out state error (the median over the validation trajectories, \
+         as in the check above). The {} structure had the smallest and was fitted with the \
+         full budget.</p>",
+        esc(&s.chosen)
+    ));
+    let rows: Vec<Vec<String>> = s
+        .candidates
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            let path = format!("structure_choice/candidates/{i}/state_rel_rmse");
+            let figure = match &c.skipped {
+                Some(reason) => format!("skipped: {}", esc(reason)),
+                None => h.val(&path, &col),
+            };
+            let mark = if c.structure == s.chosen {
+                "chosen"
+            } else {
+                ""
+            };
+            vec![esc(&c.structure), figure, mark.into()]
+        })
+        .collect();
+    let head = format!("held-out state error ({})", col.unit());
+    h.table(&["structure", &head, ""], &rows);
 }
 
 /// Paths `prefix/i/field` for i in 0..n.

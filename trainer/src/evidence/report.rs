@@ -240,6 +240,10 @@ pub struct RunReport {
     /// margin (`evidence::structure_fit`), with the structure to try.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub underfit: Option<crate::evidence::structure_fit::Underfit>,
+    /// With `arch = "auto"`: each candidate structure's held-out state
+    /// error after the short fit, and the one chosen.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub structure_choice: Option<crate::learn::auto::Selection>,
     /// The state observer (projects with an `[observer]` section).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub observer: Option<crate::evidence::observer_check::ObserverReport>,

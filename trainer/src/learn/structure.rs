@@ -19,6 +19,10 @@ pub enum Arch {
     /// H = 1/2 p^T M(q)^-1 p + V(q): a rigid linkage, whose mass matrix
     /// depends on the angles; needs an implicit method on the device.
     Mechanical,
+    /// Each of the above that the log permits, fitted on a short budget;
+    /// the one with the smallest held-out state error is kept (see
+    /// [`crate::learn::auto`]).
+    Auto,
 }
 
 /// Kinetic term of a separable model.
@@ -66,6 +70,12 @@ pub fn arch_choice(
     activation: ActivationName,
     activation_setting: &str,
 ) -> Result<ArchChoice> {
+    if arch == Arch::Auto {
+        bail!(
+            "arch = \"auto\" names no single structure: it is settled by fitting each \
+             candidate (crate::learn::auto) before a plan is made"
+        );
+    }
     Ok(ArchChoice {
         separable: arch == Arch::Separable,
         quadratic_kinetic: kinetic == KineticKind::Quadratic,

@@ -40,7 +40,7 @@ use crate::learn::hnn::BaselineModel;
 use crate::learn::stage::{
     check_method, fit_stage_mode, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
 };
-use crate::learn::structure::arch_choice;
+use crate::learn::structure::{arch_choice, Arch};
 use crate::project::cache::{read_json, sha, write_json};
 use crate::project::file::Project;
 use crate::reference::{build_system, ParamValues, ReferenceSystem, CATALOG};
@@ -83,6 +83,8 @@ pub struct Prepared {
     pub trajectory: Option<crate::learn::mode::TrajectoryPlan>,
     /// The command that reproduces the run (the report's provenance).
     pub command: String,
+    /// With `arch = "auto"`: every candidate's figure and the choice.
+    pub selection: Option<crate::learn::auto::Selection>,
 }
 
 impl Prepared {
@@ -105,36 +107,20 @@ pub fn prepare(dir: &Path) -> Result<Prepared> {
 pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepared> {
     let file = file.to_string();
     let logs = load_logs(dir, &project)?;
-    let m = &project.model;
-    let choice = arch_choice(
-        m.arch,
-        m.kinetic,
-        &m.hidden,
-        m.activation,
-        "[model] activation",
-    )?;
-    let terms = m.port_terms().with_context(|| file.clone())?;
-    let plan = plan_model(
-        &logs.train,
-        choice,
-        terms,
-        m.integrator,
-        m.dt,
-        SettingNames::ProjectKeys,
-    )
-    .with_context(|| file.clone())?;
-    for t in project.export_targets() {
-        if let Some(i) = t.integrator {
-            let setting = format!("[[export]] {}: integrator", t.name);
-            check_method(
-                Method::from(i),
-                plan.choice.separable,
-                plan.has_port_terms(),
-                &setting,
-            )
-            .with_context(|| file.clone())?;
+    let (plan, selection) = match project.model.arch {
+        Arch::Auto => {
+            let s = match last_selection(dir, &project, &logs) {
+                Some(s) => s,
+                None => select_structure(&project, &logs).with_context(|| file.clone())?,
+            };
+            let plan = project_plan(&project, &logs, s.chosen_arch());
+            (plan.with_context(|| file.clone())?, Some(s))
         }
-    }
+        arch => (
+            project_plan(&project, &logs, arch).with_context(|| file.clone())?,
+            None,
+        ),
+    };
     let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
     check_sizes(&project, dir, logs.train.dof).with_context(|| file.clone())?;
     let units = Units::resolve(
@@ -161,10 +147,100 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         mode,
         trajectory,
         command: format!("visviva run {} --force", dir.display()),
+        selection,
     };
     check_out_folder(&prep).with_context(|| file.clone())?;
     reference_system(&prep).with_context(|| file.clone())?;
     Ok(prep)
+}
+
+/// The model plan of `[model]` with `arch` as the structure, refused when
+/// an `[[export]]` integrator cannot step it.
+fn project_plan(project: &Project, logs: &Logs, arch: Arch) -> Result<ModelPlan> {
+    let m = &project.model;
+    let choice = arch_choice(
+        arch,
+        m.kinetic,
+        &m.hidden,
+        m.activation,
+        "[model] activation",
+    )?;
+    let terms = m.port_terms()?;
+    let plan = plan_model(
+        &logs.train,
+        choice,
+        terms,
+        m.integrator,
+        m.dt,
+        SettingNames::ProjectKeys,
+    )?;
+    for t in project.export_targets() {
+        if let Some(i) = t.integrator {
+            let setting = format!("[[export]] {}: integrator", t.name);
+            check_method(
+                Method::from(i),
+                plan.choice.separable,
+                plan.has_port_terms(),
+                &setting,
+            )?;
+        }
+    }
+    Ok(plan)
+}
+
+/// The file in `out/` that keeps `arch = "auto"`'s choice beside the fit.
+const STRUCTURE_CHOICE: &str = "structure_choice.json";
+
+/// The choice recorded with the last fit, when that fit is of the same logs
+/// and settings (the choice is then the same: same seed, same data).
+fn last_selection(
+    dir: &Path,
+    project: &Project,
+    logs: &Logs,
+) -> Option<crate::learn::auto::Selection> {
+    let out = dir.join("out");
+    let recorded = std::fs::read_to_string(out.join("fit.sha256")).ok()?;
+    (recorded == fit_hash(project, logs).ok()?).then_some(())?;
+    let mut s: crate::learn::auto::Selection = read_json(&out.join(STRUCTURE_CHOICE))?;
+    s.reused = true;
+    Some(s)
+}
+
+/// `arch = "auto"`: each structure the project permits fitted on the short
+/// budget and scored on the validation logs ([`crate::learn::auto`]).
+fn select_structure(project: &Project, logs: &Logs) -> Result<crate::learn::auto::Selection> {
+    let settings = fit_settings(project, true);
+    crate::learn::auto::select(
+        &logs.val,
+        &settings,
+        |arch| project_plan(project, logs, arch),
+        |plan, short| {
+            let tp = crate::learn::auto::short_trajectory(fit_mode(project, logs, plan)?.1);
+            fit_stage_mode(
+                &logs.train,
+                Some(&logs.val),
+                plan,
+                short,
+                false,
+                tp.as_ref(),
+            )
+        },
+    )
+}
+
+/// The training settings of `[fit]`.
+fn fit_settings(project: &Project, quiet: bool) -> FitSettings {
+    FitSettings {
+        epochs: project.fit.epochs,
+        batch: project.fit.batch,
+        lr: project.fit.lr,
+        patience: project.fit.patience,
+        seed: project.fit.seed,
+        threads: project.fit.threads,
+        quiet,
+        interrupt: Some(interrupt_flag()),
+        ..FitSettings::default()
+    }
 }
 
 /// `out/` can be written and holds none of the project's logs (`run`
@@ -370,13 +446,9 @@ pub struct FitResult {
     pub baseline_fit: Option<FitSummary>,
 }
 
-/// Fit the model (and the baseline) unless the logs and settings hash to
-/// what the last run recorded; writes `out/model.vvb`,
-/// `out/model.baseline.json`, `out/fit.json` and `out/fit.sha256`.
-pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
-    let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
-    std::fs::create_dir_all(out.join("golden"))
-        .with_context(|| format!("{}: cannot create", out.display()))?;
+/// The hash of what a fit depends on: the logs, `[data]`, `[model]`,
+/// `[fit]`, the version and any column mapping.
+fn fit_hash(project: &Project, logs: &Logs) -> Result<String> {
     let mut settings_json = serde_json::to_vec(&(
         &project.data,
         &project.model,
@@ -388,7 +460,17 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     if let Some(columns) = &project.columns {
         settings_json.extend(serde_json::to_vec(columns)?);
     }
-    let fit_hash = sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]);
+    Ok(sha(&[&logs.train_bytes, &logs.val_bytes, &settings_json]))
+}
+
+/// Fit the model (and the baseline) unless the logs and settings hash to
+/// what the last run recorded; writes `out/model.vvb`,
+/// `out/model.baseline.json`, `out/fit.json` and `out/fit.sha256`.
+pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
+    let (out, project, logs) = (&prep.out, &prep.project, &prep.logs);
+    std::fs::create_dir_all(out.join("golden"))
+        .with_context(|| format!("{}: cannot create", out.display()))?;
+    let fit_hash = fit_hash(project, logs)?;
     let (model_path, baseline_path) = (out.join("model.vvb"), out.join("model.baseline.json"));
     let (fit_path, hash_path) = (out.join("fit.json"), out.join("fit.sha256"));
     let cached = !force
@@ -405,17 +487,7 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         }
         return Ok(FitResult { fit, baseline_fit });
     }
-    let settings = FitSettings {
-        epochs: project.fit.epochs,
-        batch: project.fit.batch,
-        lr: project.fit.lr,
-        patience: project.fit.patience,
-        seed: project.fit.seed,
-        threads: project.fit.threads,
-        quiet,
-        interrupt: Some(interrupt_flag()),
-        ..FitSettings::default()
-    };
+    let settings = fit_settings(project, quiet);
     let done = fit_stage_mode(
         &logs.train,
         Some(&logs.val),
@@ -445,6 +517,9 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
         None => None,
     };
     write_json(&fit_path, &(&fit, &baseline_fit))?;
+    if let Some(selection) = &prep.selection {
+        write_json(&out.join(STRUCTURE_CHOICE), selection)?;
+    }
     write_atomic(&hash_path, fit_hash.as_bytes())?;
     Ok(FitResult { fit, baseline_fit })
 }
@@ -854,6 +929,7 @@ pub fn report(
         cycles_per_mac_used: crate::deploy::budget::cycles_per_mac(&prep.project.device),
         budget_pass,
         underfit,
+        structure_choice: prep.selection.clone(),
         observer,
         provenance: provenance(prep)?,
         change: None,

@@ -73,15 +73,7 @@ pub struct CraneCart {
 
 impl CraneCart {
     pub fn build(params: ParamValues) -> Result<Box<dyn ReferenceSystem>, SystemError> {
-        let max_deg = params.get("max_angle_deg");
-        if !(max_deg > 0.0 && max_deg < 90.0) {
-            return Err(SystemError::BadParamValue {
-                system: "crane-cart",
-                key: "max_angle_deg".into(),
-                value: max_deg,
-                reason: "must lie in (0, 90)".into(),
-            });
-        }
+        params.quarter_turn_angle("crane-cart")?;
         for key in ["trolley_mass", "m", "l", "g"] {
             let value = params.get(key);
             if !(value > 0.0 && value.is_finite()) {

@@ -69,15 +69,7 @@ pub struct DoublePendulum {
 
 impl DoublePendulum {
     pub fn build(params: ParamValues) -> Result<Box<dyn ReferenceSystem>, SystemError> {
-        let max_deg = params.get("max_angle_deg");
-        if !(max_deg > 0.0 && max_deg < 90.0) {
-            return Err(SystemError::BadParamValue {
-                system: "double-pendulum",
-                key: "max_angle_deg".into(),
-                value: max_deg,
-                reason: "must lie in (0, 90)".into(),
-            });
-        }
+        params.quarter_turn_angle("double-pendulum")?;
         Ok(Box::new(Self::from_params(params)))
     }
 

@@ -76,6 +76,21 @@ impl ParamValues {
         self.values[index]
     }
 
+    /// `max_angle_deg` of a linkage whose sampled states stay within a
+    /// quarter turn: refused unless it lies in (0, 90).
+    pub fn quarter_turn_angle(&self, system: &'static str) -> Result<(), SystemError> {
+        let value = self.get("max_angle_deg");
+        if value > 0.0 && value < 90.0 {
+            return Ok(());
+        }
+        Err(SystemError::BadParamValue {
+            system,
+            key: "max_angle_deg".into(),
+            value,
+            reason: "must lie in (0, 90)".into(),
+        })
+    }
+
     /// `(name, value, unit)` for every parameter, in declaration order.
     pub fn iter(&self) -> impl Iterator<Item = (&'static str, f64, &'static str)> + '_ {
         self.specs

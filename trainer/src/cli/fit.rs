@@ -20,7 +20,7 @@ use crate::learn::stage::{
     check_fit_settings, check_masses, check_time_step, fit_stage_mode, interrupt_flag, plan_model,
     stop_text, FitOutcome, ModelPlan, SettingNames,
 };
-use crate::learn::structure::{arch_choice, ActivationName, Arch, KineticKind};
+use crate::learn::structure::{arch_choice, energy_activation, ActivationName, Arch, KineticKind};
 
 /// Arguments of `visviva fit`.
 #[derive(Debug, clap::Args)]
@@ -108,6 +108,12 @@ pub struct Args {
         value_name = "M1,.."
     )]
     pub mass: Option<Vec<f64>>,
+    /// For joint rates (v columns) without masses: the mean of M11,
+    /// coordinate 1's own inertia, over the training log (kg or kg m^2);
+    /// makes the learned momenta and energies physical (default: 1 by
+    /// normalization).
+    #[arg(long, value_name = "M11")]
+    pub reference_inertia: Option<f64>,
     /// Integration method stored in the model (default: verlet for
     /// separable, midpoint for general models).
     #[arg(long, value_enum)]
@@ -393,6 +399,41 @@ fn split(
     }
 }
 
+/// Joint rates without masses: the momenta from a learned mass matrix
+/// ([`crate::learn::inertia`]), said so; other logs unchanged.
+fn momenta_from_rates(
+    args: &Args,
+    rig: Option<&RigSummary>,
+    train: Dataset,
+    val: Option<Dataset>,
+) -> Result<(Dataset, Option<Dataset>)> {
+    if !rig.is_some_and(|r| r.rates_without_masses) {
+        return Ok((train, val));
+    }
+    let settings = crate::learn::inertia::InertiaSettings {
+        arch: crate::learn::fit::ArchChoice {
+            hidden: args.hidden.clone(),
+            activation: energy_activation(args.activation, "--activation")?,
+            ..Default::default()
+        },
+        epochs: args.epochs,
+        batch: crate::learn::inertia::BATCH,
+        lr: args.lr,
+        seed: args.seed,
+        reference_inertia: args.reference_inertia,
+    };
+    let (train, val, summary) = crate::learn::inertia::momenta_from_rates(
+        &train,
+        val.as_ref(),
+        &settings,
+        &crate::data::derivative::SavitzkyGolay::default(),
+    )?;
+    for line in summary.lines() {
+        println!("{line}");
+    }
+    Ok((train, val))
+}
+
 /// Print the run, write the blob, the loss history and the baseline.
 fn write_outputs(args: &Args, out: &FitOutcome, plan: &ModelPlan) -> Result<()> {
     print_report("energy model", &out.model.report);
@@ -473,6 +514,12 @@ fn check_flags(args: &Args, settings: &FitSettings) -> Result<()> {
     if let Some(m) = &args.mass {
         check_masses(m, "--masses")?;
     }
+    if let Some(m) = args.reference_inertia {
+        check_masses(&[m], "--reference-inertia")?;
+        if args.mass.is_some() {
+            bail!("--reference-inertia is for joint rates without masses; with --masses the momenta are p = m v: give one of the two");
+        }
+    }
     let baseline = baseline_path(&args.out);
     let mut inputs = vec![("--train", args.data.as_path())];
     inputs.extend(args.val.as_deref().map(|v| ("--validation", v)));
@@ -504,6 +551,7 @@ pub fn run(args: Args) -> Result<()> {
         all.samples() as f64 / seconds.max(1e-9)
     );
     let (train, val) = split(&args, all, map.as_ref(), &opts)?;
+    let (train, val) = momenta_from_rates(&args, rig.as_ref(), train, val)?;
     let arch = settle_arch(&args, &settings, rig.as_ref(), &train, val.as_ref())?;
     let plan = plan(&args, arch, &train)?;
     let trajectory = fit_mode(&args, rig.as_ref(), &train, &plan)?;

@@ -88,6 +88,11 @@ fn print_data(prep: &Prepared) {
             println!("      {line}");
         }
     }
+    if let Some(inertia) = &prep.logs.inertia {
+        for line in inertia.lines() {
+            println!("      {line}");
+        }
+    }
     println!("      {}", prep.mode);
     if let Some(tp) = &prep.trajectory {
         println!(

@@ -431,6 +431,10 @@ pub struct RigSummary {
     pub masses: Vec<f64>,
     /// Whether the masses were stated (false: unit masses by normalization).
     pub masses_stated: bool,
+    /// Whether the log holds joint rates without masses: its states are
+    /// (q, v) until a learned mass matrix forms p = M(q) v
+    /// ([`crate::learn::inertia`]).
+    pub rates_without_masses: bool,
 }
 
 impl RigSummary {
@@ -487,13 +491,25 @@ pub struct MappedLog {
 /// velocities, or `None` for any other header (the canonical loader then
 /// reads it). Without a `traj` column the log is one run.
 pub fn positions_only_layout(path: &Path) -> Option<ColumnMap> {
+    canonical_layout(path, false)
+}
+
+/// The identity mapping of a canonical log with positions `q1..qn` and
+/// joint rates `v1..vn` (and maybe inputs) but no momenta, for reading it
+/// without masses ([`RigSummary::rates_without_masses`]); `None` for any
+/// other header.
+pub fn rates_layout(path: &Path) -> Option<ColumnMap> {
+    canonical_layout(path, true)
+}
+
+fn canonical_layout(path: &Path, rates: bool) -> Option<ColumnMap> {
     let mut reader = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
         .from_path(path)
         .ok()?;
     let header: Vec<String> = reader.headers().ok()?.iter().map(str::to_string).collect();
     let has = |name: &str| header.iter().any(|h| h == name);
-    if !has("t") || !has("q1") || has("p1") || has("v1") {
+    if !has("t") || !has("q1") || has("p1") || has("v1") != rates {
         return None;
     }
     let numbered = |prefix: &str| -> Vec<ColumnSpec> {
@@ -507,7 +523,7 @@ pub fn positions_only_layout(path: &Path) -> Option<ColumnMap> {
         t: ColumnSpec::plain("t"),
         traj: has("traj").then(|| "traj".to_string()),
         q: numbered("q"),
-        v: Vec::new(),
+        v: if rates { numbered("v") } else { Vec::new() },
         p: Vec::new(),
         u: numbered("u"),
         gap_factor: default_gap_factor(),
@@ -760,9 +776,8 @@ fn masses(path: &Path, map: &ColumnMap, given: &Option<Vec<f64>>) -> Result<Vec<
         problem: ColumnProblem::Masses(msg),
     };
     match given {
-        None if !map.v.is_empty() => Err(err(
-            "velocity columns need the masses ([data] masses or --masses) to form p = m v".into(),
-        )),
+        // Rates without masses: (q, v) kept as they are; the momenta come
+        // from a learned mass matrix (crate::learn::inertia).
         None => Ok(vec![1.0; n]),
         Some(m) if m.len() != n => {
             Err(err(format!("{} masses given for {n} coordinates", m.len())))
@@ -828,6 +843,7 @@ pub fn load_mapped(
         quantization_declared,
         noise,
         masses_stated: opts.masses.is_some(),
+        rates_without_masses: opts.masses.is_none() && !map.v.is_empty(),
         masses,
     };
     Ok(MappedLog { dataset, rig })
@@ -928,7 +944,8 @@ fn noise_model(map: &ColumnMap, ds: &Dataset) -> NoiseModel {
 
 /// Read a log by whichever loader fits it: through `map` when given,
 /// through the identity mapping when it is a canonical log with positions
-/// only ([`positions_only_layout`]), else by the canonical loader
+/// only ([`positions_only_layout`]) or with joint rates and no masses given
+/// ([`rates_layout`]), else by the canonical loader
 /// ([`crate::data::log::load_csv`]). The summary is `None` for the last.
 pub fn load_any(
     path: &Path,
@@ -939,7 +956,8 @@ pub fn load_any(
     let map = match map {
         Some(m) => Some(m),
         None => {
-            implicit = positions_only_layout(path);
+            implicit = positions_only_layout(path)
+                .or_else(|| opts.masses.is_none().then(|| rates_layout(path)).flatten());
             implicit.as_ref()
         }
     };

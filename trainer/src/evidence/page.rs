@@ -261,6 +261,9 @@ fn data_section(h: &mut Html<'_>, report: &RunReport) {
     if let Some(rig) = &report.data.rig {
         rows.extend(rig_rows(h, rig.noise.len()));
     }
+    if let Some(m) = &report.data.momenta_from_rates {
+        rows.extend(learned_inertia_rows(h, m.diagonal_range.len()));
+    }
     h.table(&["", ""], &rows);
     let n = report.data.coordinates.len();
     let dof = report.data.dof;
@@ -331,6 +334,45 @@ fn rig_rows(h: &Html<'_>, dof: usize) -> Vec<Vec<String>> {
                 "{}, {}",
                 h.num(&format!("data/rig/quantization/{i}")),
                 h.num(&format!("data/rig/noise/{i}"))
+            ),
+        ]);
+    }
+    rows
+}
+
+/// Joint rates without masses: the learned mass matrix that formed the
+/// momenta, its fit and its range over the logged positions.
+fn learned_inertia_rows(h: &Html<'_>, dof: usize) -> Vec<Vec<String>> {
+    let at = |f: &str| format!("data/momenta_from_rates/{f}");
+    let mut rows = vec![
+        vec![
+            "momenta p = M(q) v from a mass matrix learned from the rates: window (samples)".into(),
+            h.one(&at("window_samples"), Quantity::Count),
+        ],
+        vec![
+            "Euler-Lagrange residual share, training / held out".into(),
+            format!(
+                "{} / {}",
+                h.num(&at("train_ratio")),
+                h.num(&at("held_out_ratio"))
+            ),
+        ],
+        vec![
+            "mean M11 (stated; - when normalized to 1)".into(),
+            h.num(&at("reference_inertia")),
+        ],
+        vec![
+            "largest coupling |Mij| / sqrt(Mii Mjj)".into(),
+            h.num(&at("max_coupling")),
+        ],
+    ];
+    for i in 0..dof {
+        rows.push(vec![
+            format!("M{0}{0} over the logged positions (min, max)", i + 1),
+            format!(
+                "{}, {}",
+                h.num(&at(&format!("diagonal_range/{i}/0"))),
+                h.num(&at(&format!("diagonal_range/{i}/1")))
             ),
         ]);
     }

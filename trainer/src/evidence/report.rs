@@ -62,6 +62,10 @@ pub struct DataSummary {
     /// noise model, masses); absent for the canonical layout.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub rig: Option<crate::data::columns::RigSummary>,
+    /// For joint rates without masses: how the momenta were formed from a
+    /// learned mass matrix.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub momenta_from_rates: Option<crate::learn::inertia::InertiaSummary>,
 }
 
 fn is_zero(v: &usize) -> bool {

@@ -4,6 +4,8 @@
 pub mod auto;
 pub mod fit;
 pub mod hnn;
+pub mod inertia;
+pub mod inertia_loss;
 pub mod mechanical;
 pub mod mode;
 pub mod net;

@@ -77,6 +77,10 @@ pub struct DataSection {
     pub val_fraction: f64,
     /// Masses m1..mn when the log has velocity columns `v1..vn` (p = m v).
     pub masses: Option<Vec<f64>>,
+    /// For joint rates without masses: the mean over the training log of
+    /// M11, coordinate 1's own inertia (kg or kg m^2), which makes the
+    /// learned momenta and energies physical (default: 1 by normalization).
+    pub reference_inertia: Option<f64>,
     /// Allowed deviation of a sampling interval from the median, as a
     /// fraction (default 0.01).
     pub step_tolerance: f64,
@@ -94,6 +98,7 @@ impl Default for DataSection {
             validation: None,
             val_fraction: 0.2,
             masses: None,
+            reference_inertia: None,
             step_tolerance: 0.01,
             units: None,
         }

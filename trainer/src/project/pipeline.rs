@@ -40,7 +40,7 @@ use crate::learn::hnn::BaselineModel;
 use crate::learn::stage::{
     check_method, fit_stage_mode, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
 };
-use crate::learn::structure::{arch_choice, Arch};
+use crate::learn::structure::{arch_choice, energy_activation, Arch};
 use crate::project::cache::{read_json, sha, write_json};
 use crate::project::file::Project;
 use crate::reference::{build_system, ParamValues, ReferenceSystem, CATALOG};
@@ -59,6 +59,8 @@ pub struct Logs {
     /// What a mapped or positions-only training log told (gaps, noise
     /// model, units); `None` for a log in the canonical layout.
     pub rig: Option<crate::data::columns::RigSummary>,
+    /// For joint rates without masses: how the momenta were formed.
+    pub inertia: Option<crate::learn::inertia::InertiaSummary>,
 }
 
 /// A project checked and loaded: nothing has been written yet.
@@ -328,13 +330,17 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
         if val.trajectories.is_empty() {
             bail!("no validation trajectories: add [data] validation or more trajectories (val_fraction {frac})");
         }
-        return Ok(Logs {
-            train,
-            val,
-            train_bytes,
-            val_bytes: Vec::new(),
-            rig,
-        });
+        return with_momenta(
+            project,
+            Logs {
+                train,
+                val,
+                train_bytes,
+                val_bytes: Vec::new(),
+                rig,
+                inertia: None,
+            },
+        );
     };
     let p = dir.join(v);
     let val_bytes = std::fs::read(&p).with_context(|| format!("{}: cannot read", p.display()))?;
@@ -356,12 +362,48 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
             all.inputs
         );
     }
+    with_momenta(
+        project,
+        Logs {
+            train: all,
+            val,
+            train_bytes,
+            val_bytes,
+            rig,
+            inertia: None,
+        },
+    )
+}
+
+/// Joint rates without masses: the momenta from a mass matrix learned on
+/// the training log ([`crate::learn::inertia`]); other logs unchanged.
+fn with_momenta(project: &Project, logs: Logs) -> Result<Logs> {
+    if !logs.rig.as_ref().is_some_and(|r| r.rates_without_masses) {
+        return Ok(logs);
+    }
+    let settings = crate::learn::inertia::InertiaSettings {
+        arch: crate::learn::fit::ArchChoice {
+            hidden: project.model.hidden.clone(),
+            activation: energy_activation(project.model.activation, "[model] activation")?,
+            ..Default::default()
+        },
+        epochs: project.fit.epochs,
+        batch: crate::learn::inertia::BATCH,
+        lr: project.fit.lr,
+        seed: project.fit.seed,
+        reference_inertia: project.data.reference_inertia,
+    };
+    let (train, val, summary) = crate::learn::inertia::momenta_from_rates(
+        &logs.train,
+        Some(&logs.val),
+        &settings,
+        &crate::data::derivative::SavitzkyGolay::default(),
+    )?;
     Ok(Logs {
-        train: all,
-        val,
-        train_bytes,
-        val_bytes,
-        rig,
+        train,
+        val: val.expect("validation given"),
+        inertia: Some(summary),
+        ..logs
     })
 }
 
@@ -392,6 +434,7 @@ fn data_summary(train_file: &str, logs: &Logs, units: Units) -> DataSummary {
         units: units.with_columns(logs.rig.as_ref(), train.dof),
         inputs: train.inputs,
         rig: logs.rig.clone(),
+        momenta_from_rates: logs.inertia.clone(),
     }
 }
 

@@ -37,6 +37,15 @@ fn check_data(p: &Project) -> Result<()> {
     if let Some(m) = &p.data.masses {
         check_masses(m, "[data] masses")?;
     }
+    if let Some(m) = p.data.reference_inertia {
+        check_masses(&[m], "[data] reference_inertia")?;
+        if p.data.masses.is_some() {
+            bail!(
+                "[data] reference_inertia is for joint rates without masses; with [data] masses \
+                 the momenta are p = m v and need no other scale: remove one of the two keys"
+            );
+        }
+    }
     Ok(())
 }
 

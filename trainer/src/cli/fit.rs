@@ -445,16 +445,14 @@ fn column_map(args: &Args) -> Result<Option<ColumnMap>> {
     Ok(Some(map))
 }
 
-/// The fit mode (printed with the reason) and trajectory matching's plan.
+/// The fit mode (printed with the reason) and trajectory matching's plan
+/// (the log's summary is printed before, ahead of the structure choice).
 fn fit_mode(
     args: &Args,
     rig: Option<&RigSummary>,
     train: &Dataset,
     plan: &ModelPlan,
 ) -> Result<Option<crate::learn::mode::TrajectoryPlan>> {
-    if let Some(r) = rig {
-        r.lines().iter().for_each(|l| println!("{l}"));
-    }
     let (words, tp) = settled_mode(args, rig, train, plan)?;
     println!("{words}");
     if let Some(tp) = &tp {
@@ -509,6 +507,9 @@ pub fn run(args: Args) -> Result<()> {
         args.data.display(),
         all.samples() as f64 / seconds.max(1e-9)
     );
+    if let Some(r) = &rig {
+        r.lines().iter().for_each(|l| println!("{l}"));
+    }
     let (train, val) = split(&args, all, map.as_ref(), &opts)?;
     let arch = settle_arch(&args, &settings, rig.as_ref(), &train, val.as_ref())?;
     let plan = plan(&args, arch, &train)?;

@@ -354,6 +354,63 @@ mod tests {
     }
 
     #[test]
+    fn one_permitted_structure_is_taken_without_a_fit() {
+        let data = Dataset {
+            dof: 1,
+            inputs: 0,
+            trajectories: vec![],
+            derivatives: crate::data::dataset::DerivativeSource::Given,
+        };
+        let s = select(
+            &data,
+            Basis::HeldOut,
+            &FitSettings::default(),
+            |arch| match arch {
+                Arch::Separable => Ok(()),
+                _ => bail!("needs a separable energy"),
+            },
+            |_, _| panic!("no short fit when one structure is permitted"),
+        )
+        .unwrap();
+        assert_eq!(
+            (s.chosen.as_str(), s.basis),
+            ("separable", Basis::OnlyPermitted)
+        );
+        assert!(s.lines()[1].contains("the only structure permitted"));
+        assert_eq!(
+            s.candidates[2].skipped.as_deref(),
+            Some("needs a separable energy")
+        );
+    }
+
+    #[test]
+    fn a_refusal_every_structure_gives_is_named_alone() {
+        let data = Dataset {
+            dof: 1,
+            inputs: 0,
+            trajectories: vec![],
+            derivatives: crate::data::dataset::DerivativeSource::Given,
+        };
+        let err = select(
+            &data,
+            Basis::HeldOut,
+            &FitSettings::default(),
+            |_| -> Result<()> { bail!("--activation = relu is refused") },
+            |_, _| panic!("nothing planned, nothing fitted"),
+        )
+        .unwrap_err();
+        assert_eq!(format!("{err:#}"), "--activation = relu is refused");
+    }
+
+    #[test]
+    fn a_choice_recorded_before_the_basis_existed_reads_as_held_out() {
+        let json = r#"{"candidates":[],"chosen":"general","short_budget":3,
+            "short_budget_in_steps":false}"#;
+        let s: Selection = serde_json::from_str(json).unwrap();
+        assert_eq!((s.basis, s.reused), (Basis::HeldOut, false));
+    }
+
+    #[test]
     fn every_candidate_names_itself_and_round_trips() {
         for arch in CANDIDATES {
             let s = Selection {

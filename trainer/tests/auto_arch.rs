@@ -8,7 +8,10 @@
 //! printed figure must equal the one `check` reports for the same short fit,
 //! and the model written must be the one `--arch <chosen>` writes; `run`
 //! with `arch = "auto"` prints the same lines and puts them in report.json
-//! and on the page, every number tagged.
+//! and on the page, every number tagged. Auto is the default (a project or a
+//! `fit` that names no structure gets it); without held-out trajectories it
+//! scores on the training ones and says so; when the settings permit one
+//! structure only, nothing is fitted to choose.
 
 mod cli_support;
 mod page_numbers;
@@ -91,17 +94,25 @@ fn checked_figure(dir: &Path, model: &str) -> f64 {
 
 /// Each candidate's printed figure (`None` when skipped) and the choice.
 fn parse(out: &str) -> (Vec<(String, Option<String>)>, String) {
+    parse_figure(out, "held-out state error")
+}
+
+/// [`parse`] with the figure's printed name.
+fn parse_figure(out: &str, figure_name: &str) -> (Vec<(String, Option<String>)>, String) {
     let mut figures = Vec::new();
     for name in ["separable", "mechanical", "general"] {
         let line = out
             .lines()
             .find(|l| {
-                l.trim_start().starts_with(name) && l.contains("held-out state error")
-                    || l.trim_start().starts_with(name) && l.contains("skipped")
+                let l = l.trim_start();
+                l.starts_with(name)
+                    && (l.contains(figure_name)
+                        || l.contains("skipped")
+                        || l.contains("the only structure permitted"))
             })
             .unwrap_or_else(|| panic!("no line for {name}:\n{out}"));
         let figure = line
-            .split("held-out state error ")
+            .split(&format!("{figure_name} "))
             .nth(1)
             .map(|f| f.trim().to_string());
         figures.push((name.to_string(), figure));
@@ -180,10 +191,12 @@ fn a_structure_the_integrator_refuses_is_skipped_with_its_reason() {
     simulate(d, "flexure", "2", "0.2", "100", "2", "val.csv");
     let out = fit(d, "auto", "5", "auto.vvb", &["--integrator", "verlet"]);
     let (figures, chosen) = parse(&out);
-    assert!(figures[0].1.is_some(), "{out}");
-    for k in [1, 2] {
-        assert!(figures[k].1.is_none(), "{out}");
-    }
+    // One structure left: it is chosen without a short fit.
+    assert!(figures.iter().all(|f| f.1.is_none()), "{out}");
+    assert!(
+        out.contains("separable  the only structure permitted (not fitted to choose)"),
+        "{out}"
+    );
     assert!(
         out.contains("mechanical skipped: --integrator = \"verlet\" needs a separable energy"),
         "{out}"
@@ -192,34 +205,98 @@ fn a_structure_the_integrator_refuses_is_skipped_with_its_reason() {
         out.contains("general    skipped: --integrator = \"verlet\" needs a separable energy"),
         "{out}"
     );
+    assert!(out.contains("chosen: separable (the only structure permitted"));
     assert_eq!(chosen, "separable");
+    // The model written is the one the explicit structure writes.
+    fit(
+        d,
+        "separable",
+        "5",
+        "explicit.vvb",
+        &["--integrator", "verlet"],
+    );
+    assert_eq!(
+        std::fs::read(d.join("auto.vvb")).unwrap(),
+        std::fs::read(d.join("explicit.vvb")).unwrap()
+    );
+}
+
+/// `visviva fit` of train.csv alone (no held-out log) with `extra` flags
+/// and no `--arch`; returns standard output.
+fn fit_alone(dir: &Path, extra: &[&str], out: &str) -> String {
+    let mut args = vec![
+        "fit",
+        "--train",
+        "train.csv",
+        "--hidden",
+        "8",
+        "--batch",
+        "32",
+        "--quiet",
+        "--out",
+        out,
+    ];
+    args.extend_from_slice(extra);
+    let o = visviva_in(dir, &args);
+    assert_ok(&o);
+    text(&o).0
 }
 
 #[test]
-fn auto_without_held_out_trajectories_is_refused() {
+fn without_held_out_trajectories_auto_is_the_default_and_says_it_chose_on_the_training_logs() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    simulate(d, "flexure", "1", "0.2", "100", "1", "train.csv");
-    let o = visviva_in(
-        d,
-        &[
-            "fit",
-            "--train",
-            "train.csv",
-            "--arch",
-            "auto",
-            "--epochs",
-            "2",
-            "--out",
-            "m.vvb",
-        ],
+    // One trajectory: the split holds none out.
+    simulate(d, "flexure", "1", "0.3", "100", "1", "train.csv");
+    let out = fit_alone(d, &["--epochs", "10"], "auto.vvb");
+    assert!(out.contains("arch = auto (the default"), "{out}");
+    assert!(
+        out.contains("no held-out logs: this favours the more flexible structure"),
+        "{out}"
     );
-    let err = cli_support::assert_refused(
-        &o,
-        1,
-        &["--arch auto scores each structure on held-out trajectories"],
+    assert!(
+        out.contains("(chosen on the training logs: no held-out logs;"),
+        "{out}"
     );
-    assert!(!d.join("m.vvb").exists(), "{err}");
+    assert!(!out.contains("held-out state error"), "{out}");
+    let (printed, chosen) = parse_figure(&out, "training state error");
+    let mut figures = Vec::new();
+    for (name, figure) in printed {
+        let figure = figure.unwrap_or_else(|| panic!("{name} was skipped:\n{out}"));
+        // The same short fit (10 / 5 = 2 epochs), checked on the training log.
+        let short = format!("{name}.vvb");
+        fit_alone(d, &["--arch", &name, "--epochs", "2"], &short);
+        let report = format!("{name}.check.json");
+        assert_ok(&visviva_in(
+            d,
+            &[
+                "check",
+                "--model",
+                &short,
+                "--validation",
+                "train.csv",
+                "--report",
+                &report,
+            ],
+        ));
+        let r: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(d.join(&report)).unwrap()).unwrap();
+        let checked = r["median_model"]["state_rel_rmse"]
+            .as_f64()
+            .or_else(|| r["check"]["median_model"]["state_rel_rmse"].as_f64())
+            .unwrap();
+        assert_eq!(figure, format!("{checked:.4e}"), "{name}");
+        figures.push((name, checked));
+    }
+    let best = figures.iter().min_by(|a, b| a.1.total_cmp(&b.1)).unwrap();
+    assert_eq!(best.0, chosen, "{figures:?}");
+    // --val-fraction 0 with several trajectories: the same rule, said the same way.
+    simulate(d, "flexure", "3", "0.3", "100", "1", "train.csv");
+    let out = fit_alone(d, &["--epochs", "5", "--val-fraction", "0"], "zero.vvb");
+    assert!(
+        out.contains("(chosen on the training logs: no held-out logs;"),
+        "{out}"
+    );
 }
 
 const PROJECT: &str = r#"
@@ -228,7 +305,6 @@ name = "auto rig"
 train = "train.csv"
 validation = "val.csv"
 [model]
-arch = "auto"
 hidden = [8]
 [fit]
 epochs = 15
@@ -240,7 +316,7 @@ name = "tiny-f32"
 "#;
 
 #[test]
-fn run_with_arch_auto_reports_the_choice_on_the_page() {
+fn run_without_arch_chooses_automatically_and_reports_the_choice_on_the_page() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     simulate(d, "flexure", "6", "0.4", "100", "1", "train.csv");
@@ -280,6 +356,12 @@ fn run_with_arch_auto_reports_the_choice_on_the_page() {
         9
     );
     assert!(html.contains("structure_choice/candidates/0/state_rel_rmse"));
+    assert!(
+        html.contains("The structure was chosen automatically (arch = \"auto\", the default"),
+        "the page says the choice was automatic"
+    );
+    assert!(out.contains("arch = auto (the default"), "{out}");
+    assert_eq!(s["basis"], "held_out");
     // A rerun of the same logs and settings reuses the fit and its choice.
     let again = visviva_in(d, &["run", "--quiet", "."]);
     assert_ok(&again);
@@ -302,13 +384,96 @@ fn trajectory_matching_skips_the_structures_it_cannot_step() {
         &["--fit-mode", "trajectory", "--trajectory-epochs", "10"],
     );
     let (figures, chosen) = parse(&out);
-    assert!(figures[0].1.is_some(), "{out}");
-    for k in [1, 2] {
-        assert!(figures[k].1.is_none(), "{out}");
-    }
+    assert!(figures.iter().all(|f| f.1.is_none()), "{out}");
     assert!(
         out.contains("mechanical skipped: --fit-mode = trajectory needs arch = separable"),
         "{out}"
     );
+    assert!(
+        out.contains("separable  the only structure permitted (not fitted to choose)"),
+        "{out}"
+    );
     assert_eq!(chosen, "separable");
+}
+
+/// The check's figure for a damped or driven `model` on val.csv: the
+/// median (the upper middle, as `check` takes it) of its driven rollouts'
+/// state relative RMSE.
+fn checked_port_figure(dir: &Path, model: &str) -> f64 {
+    let report = format!("{model}.check.json");
+    assert_ok(&visviva_in(
+        dir,
+        &[
+            "check",
+            "--model",
+            model,
+            "--validation",
+            "val.csv",
+            "--report",
+            &report,
+        ],
+    ));
+    let r: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(dir.join(&report)).unwrap()).unwrap();
+    let mut v: Vec<f64> = r["rollouts"]
+        .as_array()
+        .expect("driven rollouts in the port check report")
+        .iter()
+        .map(|t| t["state_rel_rmse"].as_f64().unwrap())
+        .collect();
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+#[test]
+fn a_damped_driven_log_gets_the_default_choice_scored_by_its_driven_rollouts() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    // The servo drivetrain: damped and driven (inputs u1 in the log).
+    simulate(d, "drivetrain", "4", "1", "200", "1", "train.csv");
+    simulate(d, "drivetrain", "3", "1", "200", "2", "val.csv");
+    let common = [
+        "fit",
+        "--train",
+        "train.csv",
+        "--validation",
+        "val.csv",
+        "--dissipation",
+        "--hidden",
+        "8",
+        "--batch",
+        "64",
+        "--quiet",
+    ];
+    let with = |extra: &[&str]| {
+        let mut args = common.to_vec();
+        args.extend_from_slice(extra);
+        let o = visviva_in(d, &args);
+        assert_ok(&o);
+        text(&o).0
+    };
+    let out = with(&["--epochs", "10", "--out", "auto.vvb"]);
+    assert!(out.contains("arch = auto (the default"), "{out}");
+    let (printed, chosen) = parse(&out);
+    let mut figures = Vec::new();
+    for (name, figure) in printed {
+        let Some(figure) = figure else {
+            // A structure the port terms cannot be planned with says why.
+            assert!(out.contains(&format!("{name:<10} skipped: ")), "{out}");
+            continue;
+        };
+        let short = format!("{name}.vvb");
+        with(&["--arch", &name, "--epochs", "2", "--out", &short]);
+        let checked = checked_port_figure(d, &short);
+        assert_eq!(figure, format!("{checked:.4e}"), "{name}");
+        figures.push((name, checked));
+    }
+    assert!(!figures.is_empty(), "{out}");
+    let best = figures.iter().min_by(|a, b| a.1.total_cmp(&b.1)).unwrap();
+    assert_eq!(best.0, chosen, "{figures:?}");
+    with(&["--arch", &chosen, "--epochs", "10", "--out", "explicit.vvb"]);
+    assert_eq!(
+        std::fs::read(d.join("auto.vvb")).unwrap(),
+        std::fs::read(d.join("explicit.vvb")).unwrap()
+    );
 }

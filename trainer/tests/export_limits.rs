@@ -335,8 +335,8 @@ fn budget_advice_for_a_separable_model_names_only_changes_of_the_failing_figure(
     std::fs::write(
         d.join("visviva.toml"),
         "[data]\ntrain = \"data/train.csv\"\nvalidation = \"data/val.csv\"\n[model]\n\
-         hidden = [8]\n[fit]\nepochs = 5\nbaseline = false\n[check]\nhorizon_steps = 200\n\
-         golden_steps = 20\n[device]\nflash_bytes = 100\nclock_hz = 1000000\n\
+         arch = \"separable\"\nhidden = [8]\n[fit]\nepochs = 5\nbaseline = false\n[check]\n\
+         horizon_steps = 200\ngolden_steps = 20\n[device]\nflash_bytes = 100\nclock_hz = 1000000\n\
          control_period_s = 1e-6\n",
     )
     .unwrap();
@@ -446,6 +446,8 @@ fn a_baseline_file_rolls_out_from_any_state_by_rk4() {
             "train.csv",
             "--out",
             "m.vvb",
+            "--arch",
+            "separable",
             "--hidden",
             "16",
             "--epochs",

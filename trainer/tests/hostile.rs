@@ -36,7 +36,7 @@ fn project(d: &Path, extra: &str) {
     simulate_flexure(d, "data/val.csv", "2", "2");
     let text = format!(
         "[data]\ntrain = \"data/train.csv\"\nvalidation = \"data/val.csv\"\n[model]\n\
-         hidden = [8]\n[fit]\nepochs = 5\nbaseline = false\n[check]\nhorizon_steps = 200\n\
+         arch = \"separable\"\nhidden = [8]\n[fit]\nepochs = 5\nbaseline = false\n[check]\nhorizon_steps = 200\n\
          golden_steps = 20\n{extra}"
     );
     std::fs::write(d.join("visviva.toml"), text).unwrap();
@@ -54,6 +54,8 @@ fn class3_untrusted_results_exit_non_zero_with_the_reason() {
             "train.csv",
             "--out",
             "new.vvb",
+            "--arch",
+            "separable",
             "--hidden",
             "8",
             "--quiet",
@@ -214,10 +216,13 @@ fn class3_an_interrupted_fit_exits_non_zero_and_records_nothing() {
             "train.csv",
             "--out",
             "long.vvb",
+            "--arch",
+            "separable",
             "--hidden",
             "8",
             "--epochs",
             "1000000",
+            "--no-early-stop",
             "--quiet",
         ],
         "fitting",
@@ -392,7 +397,7 @@ fn class7_the_whole_project_file_is_checked_before_the_first_stage() {
         project(d, extra);
         if general {
             let t = std::fs::read_to_string(d.join("visviva.toml")).unwrap();
-            let t = t.replace("hidden = [8]", "hidden = [8]\narch = \"general\"");
+            let t = t.replace("arch = \"separable\"", "arch = \"general\"");
             std::fs::write(d.join("visviva.toml"), t).unwrap();
         }
         let before = snapshot(d);

@@ -180,7 +180,10 @@ fn fit_threads_and_project_sizes_are_refused_before_work() {
     ] {
         std::fs::write(
             project.join("visviva.toml"),
-            format!("[data]\ntrain = \"log.csv\"\n\n[check]\n{key} = {value}\n"),
+            format!(
+                "[data]\ntrain = \"log.csv\"\n[model]\narch = \"separable\"\n\n[check]\n\
+                 {key} = {value}\n"
+            ),
         )
         .unwrap();
         let mut c = visviva();

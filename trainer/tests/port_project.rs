@@ -78,6 +78,8 @@ fn fit_writes_the_summary_and_a_baseline_that_takes_the_input() {
         p.join("train.csv").to_str().unwrap(),
         "--dissipation",
         "--baseline",
+        "--arch",
+        "separable",
         "--hidden",
         "16,16",
         "--epochs",
@@ -222,6 +224,7 @@ name = "tiny drivetrain"
 train = "data/train.csv"
 validation = "data/val.csv"
 [model]
+arch = "separable"
 hidden = [8]
 dissipation = true
 [fit]

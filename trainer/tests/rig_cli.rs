@@ -137,7 +137,16 @@ fn a_project_with_columns_reads_the_rig_log_and_chooses_trajectory_matching() {
     // A dropped sample split run 0: 6 pieces, some held out.
     let pieces = prep.logs.train.trajectories.len() + prep.logs.val.trajectories.len();
     assert_eq!(pieces, 6);
-    // The model integrator is the log's step, Verlet (separable default).
+    // The default arch = "auto" finds trajectory matching permits the
+    // separable structure only and takes it without a short fit; the model
+    // integrator is the log's step, Verlet.
+    let choice = prep.selection.as_ref().expect("the default is auto");
+    assert_eq!(choice.chosen, "separable");
+    assert_eq!(
+        choice.basis,
+        visviva_trainer::learn::auto::Basis::OnlyPermitted
+    );
+    assert!(prep.plan.choice.separable);
     assert!((prep.plan.integrator.dt - 0.01).abs() < 1e-6);
 }
 

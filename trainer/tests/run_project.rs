@@ -48,6 +48,7 @@ name = "tiny rig"
 train = "data/train.csv"
 validation = "data/val.csv"
 [model]
+arch = "separable"
 hidden = [8]
 [fit]
 epochs = 15

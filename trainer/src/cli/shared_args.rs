@@ -91,8 +91,9 @@ impl clap::ValueEnum for Arch {
                  angles; needs an implicit method on the device",
             ),
             Arch::Auto => PossibleValue::new("auto").help(
-                "each structure the log permits fitted on a fifth of the budget; the one with \
-                 the smallest held-out state error is fitted with the full budget",
+                "the default: each structure the log permits fitted on a fifth of the budget; \
+                 the one with the smallest held-out state error (training state error, said \
+                 so, when nothing is held out) is fitted with the full budget",
             ),
         })
     }

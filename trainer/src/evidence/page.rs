@@ -97,12 +97,9 @@ fn structure_choice_section(h: &mut Html<'_>, report: &RunReport) {
     let unit = s.budget_unit();
     h.p("<h2>Structure choice</h2>");
     h.p(&format!(
-        "<p>arch = \"auto\": each structure the project permits \
-         was fitted for {budget} {unit} (a fifth of the budget, same seed and sizes) and \
-         scored by its held-out state error (the median over the validation trajectories, \
-         as in the check above). The {} structure had the smallest and was fitted with the \
-         full budget.</p>",
-        esc(&s.chosen)
+        "<p>The structure was chosen automatically (arch = \"auto\", the default; set \
+         [model] arch to fix it). {}</p>",
+        choice_rule(s, &budget, unit)
     ));
     let rows: Vec<Vec<String>> = s
         .candidates
@@ -110,9 +107,10 @@ fn structure_choice_section(h: &mut Html<'_>, report: &RunReport) {
         .enumerate()
         .map(|(i, c)| {
             let path = format!("structure_choice/candidates/{i}/state_rel_rmse");
-            let figure = match &c.skipped {
-                Some(reason) => format!("skipped: {}", esc(reason)),
-                None => h.val(&path, &col),
+            let figure = match (&c.skipped, c.state_rel_rmse) {
+                (Some(reason), _) => format!("skipped: {}", esc(reason)),
+                (None, Some(_)) => h.val(&path, &col),
+                (None, None) => "not fitted: the only structure permitted".into(),
             };
             let mark = if c.structure == s.chosen {
                 "chosen"
@@ -122,8 +120,35 @@ fn structure_choice_section(h: &mut Html<'_>, report: &RunReport) {
             vec![esc(&c.structure), figure, mark.into()]
         })
         .collect();
-    let head = format!("held-out state error ({})", col.unit());
+    let head = format!("{} ({})", s.basis.figure_name(), col.unit());
     h.table(&["structure", &head, ""], &rows);
+}
+
+/// The structure-choice paragraph's rule: what was fitted, what it was
+/// scored on and which structure won.
+fn choice_rule(s: &crate::learn::auto::Selection, budget: &str, unit: &str) -> String {
+    use crate::learn::auto::Basis;
+    let chosen = esc(&s.chosen);
+    let fitted = format!(
+        "Each structure the project permits was fitted for {budget} {unit} (a fifth of the \
+         budget, same seed and sizes) and scored by"
+    );
+    match s.basis {
+        Basis::HeldOut => format!(
+            "{fitted} its held-out state error (the median over the validation trajectories, \
+             as in the check above). The {chosen} structure had the smallest and was fitted \
+             with the full budget."
+        ),
+        Basis::Training => format!(
+            "{fitted} its state error on the training trajectories: there were no held-out \
+             logs, which favours the more flexible structure. The {chosen} structure had the \
+             smallest and was fitted with the full budget."
+        ),
+        Basis::OnlyPermitted => format!(
+            "The logs and settings permit the {chosen} structure only, so none was fitted to \
+             choose."
+        ),
+    }
 }
 
 /// Paths `prefix/i/field` for i in 0..n.

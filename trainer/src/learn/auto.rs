@@ -1,9 +1,13 @@
-//! `arch = "auto"`: fit every energy structure the log permits (separable,
-//! mechanical, general) on a short budget, score each by the figure `check`
-//! reports (the median over the held-out trajectories of the rollout's
-//! state relative RMSE, computed by [`crate::evidence::check`]), and name
-//! the one with the smallest figure. A structure the plan refuses (or whose
-//! short fit fails) is skipped with its reason, never an error.
+//! `arch = "auto"` (the default): fit every energy structure the log
+//! permits (separable, mechanical, general) on a short budget, score each by
+//! the figure `check` reports (the median over the held-out trajectories of
+//! the rollout's state relative RMSE, computed by [`crate::evidence::check`]),
+//! and name the one with the smallest figure. A structure the plan refuses
+//! (or whose short fit fails) is skipped with its reason, never an error.
+//! Without held-out trajectories the same figure is taken on the training
+//! trajectories and the choice says so ([`Basis::Training`]); when the log and
+//! settings permit one structure only, it is chosen without a short fit
+//! ([`Basis::OnlyPermitted`]).
 
 use anyhow::{anyhow, bail, Result};
 use serde::{Deserialize, Serialize};
@@ -12,7 +16,7 @@ use crate::data::dataset::Dataset;
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::evidence::check::{check, check_port, CheckSettings};
 use crate::learn::fit::FitSettings;
-use crate::learn::stage::{FitOutcome, ModelPlan};
+use crate::learn::stage::FitOutcome;
 use crate::learn::structure::Arch;
 use visviva_runtime::Hamiltonian;
 
@@ -37,6 +41,20 @@ pub struct Candidate {
     pub skipped: Option<String>,
 }
 
+/// What the choice rests on.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Basis {
+    /// The held-out trajectories' state error (the check's figure).
+    #[default]
+    HeldOut,
+    /// The training trajectories' state error: there were no held-out
+    /// logs, so the figure favours the more flexible structure.
+    Training,
+    /// Only one structure planned; nothing was fitted to choose.
+    OnlyPermitted,
+}
+
 /// The choice and the evidence for it.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Selection {
@@ -52,6 +70,10 @@ pub struct Selection {
     /// Read back from the last run's fit of the same logs and settings.
     #[serde(default)]
     pub reused: bool,
+    /// What the figures were measured on (or that there was nothing to
+    /// compare).
+    #[serde(default)]
+    pub basis: Basis,
 }
 
 /// The structure's name in the project file's words.
@@ -96,55 +118,113 @@ pub fn held_out_error(blob: &[u8], val: &Dataset) -> Result<f64> {
         let errors = r.rollouts.iter().map(|d| d.state_rel_rmse).collect();
         return Ok(crate::evidence::check::median(errors));
     }
-    let r = check(&model, None, val, None, &CheckSettings::default())?;
+    // The state error is taken over each logged trajectory before the
+    // check's long-horizon drift run, which this figure does not use: one
+    // step of it is enough.
+    let settings = CheckSettings {
+        horizon_steps: Some(1),
+        ..CheckSettings::default()
+    };
+    let r = check(&model, None, val, None, &settings)?;
     Ok(r.median_model.state_rel_rmse)
 }
 
-/// Fit each candidate with `fit` on the short budget and score it on `val`.
-/// `plan` settles a structure's model (a refusal skips it); `fit` runs the
-/// fit stage for a plan and settings.
-pub fn select(
-    val: &Dataset,
+/// Fit each candidate with `fit` on the short budget and score it on
+/// `scoring` (the held-out trajectories, or with `basis` =
+/// [`Basis::Training`] the training ones). `plan` settles a structure's
+/// model (a refusal skips it); `fit` runs the fit stage for a plan and
+/// settings. When one structure plans, it is chosen without a fit.
+pub fn select<P>(
+    scoring: &Dataset,
+    basis: Basis,
     settings: &FitSettings,
-    plan: impl Fn(Arch) -> Result<ModelPlan>,
-    fit: impl Fn(&ModelPlan, &FitSettings) -> Result<FitOutcome>,
+    plan: impl Fn(Arch) -> Result<P>,
+    fit: impl Fn(&P, &FitSettings) -> Result<FitOutcome>,
 ) -> Result<Selection> {
     let short = short_settings(settings);
-    let candidates: Vec<Candidate> = CANDIDATES
-        .iter()
-        .map(|&arch| {
-            let scored = plan(arch)
-                .and_then(|p| fit(&p, &short))
-                .and_then(|out| held_out_error(&out.blob, val));
-            match scored {
-                Ok(e) if e.is_finite() => Candidate {
-                    structure: arch_name(arch).into(),
-                    state_rel_rmse: Some(e),
-                    skipped: None,
-                },
-                Ok(e) => skipped(arch, format!("its held-out state error is {e}")),
-                Err(e) => skipped(arch, format!("{e:#}")),
-            }
+    let plans: Vec<(Arch, Result<P>)> = CANDIDATES.iter().map(|&a| (a, plan(a))).collect();
+    let planned = plans.iter().filter(|(_, p)| p.is_ok()).count();
+    if let Some(e) = common_refusal(&plans) {
+        return Err(e);
+    }
+    let basis = if planned == 1 {
+        Basis::OnlyPermitted
+    } else {
+        basis
+    };
+    let candidates: Vec<Candidate> = plans
+        .into_iter()
+        .map(|(arch, p)| match p {
+            Ok(_) if basis == Basis::OnlyPermitted => Candidate {
+                structure: arch_name(arch).into(),
+                state_rel_rmse: None,
+                skipped: None,
+            },
+            Ok(p) => score(arch, fit(&p, &short), scoring),
+            Err(e) => skipped(arch, format!("{e:#}")),
         })
         .collect();
-    let Some(best) = candidates
-        .iter()
-        .filter_map(|c| c.state_rel_rmse.map(|e| (c, e)))
-        .min_by(|a, b| a.1.total_cmp(&b.1))
-    else {
-        let reasons: Vec<String> = candidates.iter().map(Candidate::line).collect();
-        bail!(
-            "arch = \"auto\": no structure could be fitted:\n  {}",
-            reasons.join("\n  ")
-        );
-    };
+    let chosen = chosen_structure(&candidates, basis)?;
     Ok(Selection {
-        chosen: best.0.structure.clone(),
+        chosen,
         short_budget: short.steps.unwrap_or(short.epochs),
         short_budget_in_steps: short.steps.is_some(),
         reused: false,
+        basis,
         candidates,
     })
+}
+
+/// The refusal every candidate's plan gives, when they all give the same
+/// one (a ReLU activation, masses that do not fit the log): it is the
+/// user's setting, not the structure, that is wrong, so it is named alone.
+fn common_refusal<P>(plans: &[(Arch, Result<P>)]) -> Option<anyhow::Error> {
+    let reasons: Vec<String> = plans
+        .iter()
+        .map(|(_, p)| p.as_ref().err().map(|e| format!("{e:#}")))
+        .collect::<Option<_>>()?;
+    let first = reasons.first()?;
+    reasons
+        .iter()
+        .all(|r| r == first)
+        .then(|| anyhow!("{first}"))
+}
+
+/// A candidate from its short fit's outcome, scored on `scoring`.
+fn score(arch: Arch, fitted: Result<FitOutcome>, scoring: &Dataset) -> Candidate {
+    match fitted.and_then(|out| held_out_error(&out.blob, scoring)) {
+        Ok(e) if e.is_finite() => Candidate {
+            structure: arch_name(arch).into(),
+            state_rel_rmse: Some(e),
+            skipped: None,
+        },
+        Ok(e) => skipped(arch, format!("its state error is {e}")),
+        Err(e) => skipped(arch, format!("{e:#}")),
+    }
+}
+
+/// The structure with the smallest figure (the one planned, for
+/// [`Basis::OnlyPermitted`]); an error naming every reason when none has one.
+fn chosen_structure(candidates: &[Candidate], basis: Basis) -> Result<String> {
+    let best = if basis == Basis::OnlyPermitted {
+        candidates.iter().find(|c| c.skipped.is_none())
+    } else {
+        candidates
+            .iter()
+            .filter_map(|c| c.state_rel_rmse.map(|e| (c, e)))
+            .min_by(|a, b| a.1.total_cmp(&b.1))
+            .map(|(c, _)| c)
+    };
+    match best {
+        Some(c) => Ok(c.structure.clone()),
+        None => {
+            let reasons: Vec<String> = candidates.iter().map(|c| c.line(basis)).collect();
+            bail!(
+                "arch = \"auto\": no structure could be fitted:\n  {}",
+                reasons.join("\n  ")
+            )
+        }
+    }
 }
 
 fn skipped(arch: Arch, reason: String) -> Candidate {
@@ -155,13 +235,28 @@ fn skipped(arch: Arch, reason: String) -> Candidate {
     }
 }
 
+impl Basis {
+    /// The figure's name in the command output and on the page.
+    pub fn figure_name(self) -> &'static str {
+        match self {
+            Basis::Training => "training state error",
+            Basis::HeldOut | Basis::OnlyPermitted => "held-out state error",
+        }
+    }
+}
+
 impl Candidate {
-    /// The command output's line for this candidate.
-    pub fn line(&self) -> String {
+    /// The command output's line for this candidate; `basis` names its
+    /// figure.
+    pub fn line(&self, basis: Basis) -> String {
+        let name = &self.structure;
         match (&self.state_rel_rmse, &self.skipped) {
-            (Some(e), _) => format!("{:<10} held-out state error {e:.4e}", self.structure),
-            (None, Some(r)) => format!("{:<10} skipped: {r}", self.structure),
-            (None, None) => format!("{:<10} skipped", self.structure),
+            (Some(e), _) => format!("{name:<10} {} {e:.4e}", basis.figure_name()),
+            (None, Some(r)) => format!("{name:<10} skipped: {r}"),
+            (None, None) if basis == Basis::OnlyPermitted => {
+                format!("{name:<10} the only structure permitted (not fitted to choose)")
+            }
+            (None, None) => format!("{name:<10} skipped"),
         }
     }
 }
@@ -187,27 +282,53 @@ impl Selection {
 
     /// The command output's lines: the rule, each candidate and the choice.
     pub fn lines(&self) -> Vec<String> {
-        let unit = self.budget_unit();
-        let mut out = vec![format!(
-            "arch = auto: each structure the log permits fitted for {} {unit} (1/{} of the \
-             budget, same seed and sizes), scored by the median held-out state relative RMSE \
-             (the figure check reports):",
-            self.short_budget, SHORT_BUDGET_DIVISOR
-        )];
-        out.extend(self.candidates.iter().map(|c| format!("  {}", c.line())));
-        out.push(if self.reused {
-            format!(
-                "chosen: {} (smallest held-out state error; reused from the last fit of the \
-                 same logs and settings)",
-                self.chosen
-            )
-        } else {
-            format!(
-                "chosen: {} (smallest held-out state error); fitting it with the full budget",
-                self.chosen
-            )
-        });
+        let mut out = vec![self.rule()];
+        out.extend(
+            self.candidates
+                .iter()
+                .map(|c| format!("  {}", c.line(self.basis))),
+        );
+        out.push(format!("chosen: {} ({})", self.chosen, self.why()));
         out
+    }
+
+    /// The first line: how the structures were compared.
+    fn rule(&self) -> String {
+        let head = "arch = auto (the default; set arch to fix the structure)";
+        let (n, unit, div) = (self.short_budget, self.budget_unit(), SHORT_BUDGET_DIVISOR);
+        match self.basis {
+            Basis::OnlyPermitted => format!(
+                "{head}: the log and settings permit one structure, so none was fitted to \
+                 choose:"
+            ),
+            Basis::HeldOut => format!(
+                "{head}: each structure the log permits fitted for {n} {unit} (1/{div} of the \
+                 budget, same seed and sizes), scored by the median held-out state relative \
+                 RMSE (the figure check reports):"
+            ),
+            Basis::Training => format!(
+                "{head}: each structure the log permits fitted for {n} {unit} (1/{div} of the \
+                 budget, same seed and sizes), scored by the median state relative RMSE on the \
+                 training trajectories (no held-out logs: this favours the more flexible \
+                 structure; give held-out logs to choose on them):"
+            ),
+        }
+    }
+
+    /// Why the chosen structure was chosen, and what happens next.
+    fn why(&self) -> String {
+        let reason = match self.basis {
+            Basis::HeldOut => "smallest held-out state error",
+            Basis::Training => {
+                "chosen on the training logs: no held-out logs; smallest training state error"
+            }
+            Basis::OnlyPermitted => "the only structure permitted",
+        };
+        if self.reused {
+            format!("{reason}; reused from the last fit of the same logs and settings")
+        } else {
+            format!("{reason}; fitting it with the full budget")
+        }
     }
 }
 
@@ -233,6 +354,63 @@ mod tests {
     }
 
     #[test]
+    fn one_permitted_structure_is_taken_without_a_fit() {
+        let data = Dataset {
+            dof: 1,
+            inputs: 0,
+            trajectories: vec![],
+            derivatives: crate::data::dataset::DerivativeSource::Given,
+        };
+        let s = select(
+            &data,
+            Basis::HeldOut,
+            &FitSettings::default(),
+            |arch| match arch {
+                Arch::Separable => Ok(()),
+                _ => bail!("needs a separable energy"),
+            },
+            |_, _| panic!("no short fit when one structure is permitted"),
+        )
+        .unwrap();
+        assert_eq!(
+            (s.chosen.as_str(), s.basis),
+            ("separable", Basis::OnlyPermitted)
+        );
+        assert!(s.lines()[1].contains("the only structure permitted"));
+        assert_eq!(
+            s.candidates[2].skipped.as_deref(),
+            Some("needs a separable energy")
+        );
+    }
+
+    #[test]
+    fn a_refusal_every_structure_gives_is_named_alone() {
+        let data = Dataset {
+            dof: 1,
+            inputs: 0,
+            trajectories: vec![],
+            derivatives: crate::data::dataset::DerivativeSource::Given,
+        };
+        let err = select(
+            &data,
+            Basis::HeldOut,
+            &FitSettings::default(),
+            |_| -> Result<()> { bail!("--activation = relu is refused") },
+            |_, _| panic!("nothing planned, nothing fitted"),
+        )
+        .unwrap_err();
+        assert_eq!(format!("{err:#}"), "--activation = relu is refused");
+    }
+
+    #[test]
+    fn a_choice_recorded_before_the_basis_existed_reads_as_held_out() {
+        let json = r#"{"candidates":[],"chosen":"general","short_budget":3,
+            "short_budget_in_steps":false}"#;
+        let s: Selection = serde_json::from_str(json).unwrap();
+        assert_eq!((s.basis, s.reused), (Basis::HeldOut, false));
+    }
+
+    #[test]
     fn every_candidate_names_itself_and_round_trips() {
         for arch in CANDIDATES {
             let s = Selection {
@@ -241,6 +419,7 @@ mod tests {
                 short_budget: 1,
                 short_budget_in_steps: false,
                 reused: false,
+                basis: Basis::HeldOut,
             };
             assert_eq!(s.chosen_arch(), arch);
         }

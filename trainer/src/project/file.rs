@@ -109,7 +109,9 @@ impl Default for DataSection {
 #[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
 #[serde(deny_unknown_fields, default)]
 pub struct ModelSection {
-    /// `separable` (default) or `general`.
+    /// `auto` (default: each structure the logs permit fitted on a fifth of
+    /// the budget, the smallest held-out state error kept), `separable`,
+    /// `mechanical` or `general`.
     pub arch: Arch,
     /// `quadratic` (default) or `network`.
     pub kinetic: KineticKind,
@@ -159,7 +161,7 @@ impl ModelSection {
 impl Default for ModelSection {
     fn default() -> Self {
         Self {
-            arch: Arch::Separable,
+            arch: Arch::Auto,
             kinetic: KineticKind::Quadratic,
             hidden: vec![64, 64],
             activation: ActivationName::Tanh,

@@ -109,20 +109,13 @@ pub fn prepare(dir: &Path) -> Result<Prepared> {
 pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepared> {
     let file = file.to_string();
     let logs = load_logs(dir, &project)?;
-    let (plan, selection) = match project.model.arch {
-        Arch::Auto => {
-            let s = match last_selection(dir, &project, &logs) {
-                Some(s) => s,
-                None => select_structure(&project, &logs).with_context(|| file.clone())?,
-            };
-            let plan = project_plan(&project, &logs, s.chosen_arch());
-            (plan.with_context(|| file.clone())?, Some(s))
-        }
-        arch => (
-            project_plan(&project, &logs, arch).with_context(|| file.clone())?,
-            None,
-        ),
+    let auto = project.model.arch == Arch::Auto;
+    let arch = if auto {
+        provisional_arch(&project, &logs)
+    } else {
+        project.model.arch
     };
+    let plan = project_plan(&project, &logs, arch).with_context(|| file.clone())?;
     let (mode, trajectory) = fit_mode(&project, &logs, &plan).with_context(|| file.clone())?;
     check_sizes(&project, dir, logs.train.dof).with_context(|| file.clone())?;
     let units = Units::resolve(
@@ -138,7 +131,7 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    let prep = Prepared {
+    let mut prep = Prepared {
         dir: dir.to_path_buf(),
         out: dir.join("out"),
         name,
@@ -149,11 +142,39 @@ pub fn prepare_project(dir: &Path, project: Project, file: &str) -> Result<Prepa
         mode,
         trajectory,
         command: format!("visviva run {} --force", dir.display()),
-        selection,
+        selection: None,
     };
     check_out_folder(&prep).with_context(|| file.clone())?;
     reference_system(&prep).with_context(|| file.clone())?;
+    if auto {
+        settle_structure(&mut prep).with_context(|| file.clone())?;
+    }
     Ok(prep)
+}
+
+/// With `arch = "auto"`, the structure every check before the choice plans
+/// with: the first candidate the project permits (the port terms, which the
+/// checks look at, are the same for every candidate); separable when none
+/// is, so that its refusal is the one named.
+fn provisional_arch(project: &Project, logs: &Logs) -> Arch {
+    crate::learn::auto::CANDIDATES
+        .into_iter()
+        .find(|&a| project_plan(project, logs, a).is_ok())
+        .unwrap_or(Arch::Separable)
+}
+
+/// `arch = "auto"`, after every check: the last run's choice when its fit
+/// is of the same logs and settings, else each candidate's short fit; the
+/// plan and fit mode become the chosen structure's.
+fn settle_structure(prep: &mut Prepared) -> Result<()> {
+    let s = match last_selection(&prep.dir, &prep.project, &prep.logs) {
+        Some(s) => s,
+        None => select_structure(&prep.project, &prep.logs)?,
+    };
+    prep.plan = project_plan(&prep.project, &prep.logs, s.chosen_arch())?;
+    (prep.mode, prep.trajectory) = fit_mode(&prep.project, &prep.logs, &prep.plan)?;
+    prep.selection = Some(s);
+    Ok(())
 }
 
 /// The model plan of `[model]` with `arch` as the structure, refused when
@@ -214,10 +235,14 @@ fn select_structure(project: &Project, logs: &Logs) -> Result<crate::learn::auto
     let settings = fit_settings(project, true);
     crate::learn::auto::select(
         &logs.val,
+        crate::learn::auto::Basis::HeldOut,
         &settings,
-        |arch| project_plan(project, logs, arch),
-        |plan, short| {
-            let tp = crate::learn::auto::short_trajectory(fit_mode(project, logs, plan)?.1);
+        |arch| {
+            let plan = project_plan(project, logs, arch)?;
+            let tp = crate::learn::auto::short_trajectory(fit_mode(project, logs, &plan)?.1);
+            Ok((plan, tp))
+        },
+        |(plan, tp), short| {
             fit_stage_mode(
                 &logs.train,
                 Some(&logs.val),

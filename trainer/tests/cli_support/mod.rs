@@ -72,12 +72,24 @@ pub fn simulate_flexure(cwd: &Path, out: &str, seed: &str, n: &str) {
     ));
 }
 
-/// A quick `visviva fit` of `log` into `out` (8 hidden units, 3 epochs).
+/// A quick `visviva fit` of `log` into `out` (separable, 8 hidden units,
+/// 3 epochs).
 pub fn quick_fit(cwd: &Path, log: &str, out: &str) {
     assert_ok(&visviva_in(
         cwd,
         &[
-            "fit", "--train", log, "--out", out, "--hidden", "8", "--epochs", "3", "--quiet",
+            "fit",
+            "--train",
+            log,
+            "--out",
+            out,
+            "--arch",
+            "separable",
+            "--hidden",
+            "8",
+            "--epochs",
+            "3",
+            "--quiet",
         ],
     ));
 }

@@ -111,8 +111,8 @@ fn mass_matrix_learned_from_joint_rates_matches_the_double_pendulum() {
     assert!(worst <= 0.02, "M(q) off by {:.2} %", 100.0 * worst);
 }
 
-/// A project that states nothing but its logs (and, until the default
-/// changes, the structure choice): angles and rates logged at 100 Hz,
+/// A project that states nothing but its logs: angles and rates logged at
+/// 100 Hz,
 /// 20 runs of 4 s, checked on 3 held-out runs of 25 s.
 fn default_project(dir: &Path) {
     let sys = system();
@@ -126,7 +126,7 @@ fn default_project(dir: &Path) {
     let _ = rates_log_spec(&sys, &spec(3, 25.0, 42), &dir.join("val.csv"));
     std::fs::write(
         dir.join("visviva.toml"),
-        "[data]\ntrain = \"train.csv\"\nvalidation = \"val.csv\"\n\n[model]\narch = \"auto\"\n",
+        "[data]\ntrain = \"train.csv\"\nvalidation = \"val.csv\"\n",
     )
     .unwrap();
 }
@@ -146,9 +146,13 @@ fn default_settings_on_angles_and_rates_beat_the_baseline_at_1_5_and_20_s() {
     }
     if let Some(s) = &prep.selection {
         for c in &s.candidates {
-            println!("{}", c.line());
+            println!("{}", c.line(s.basis));
         }
         println!("structure chosen: {}", s.chosen);
+        assert_eq!(
+            s.chosen, "mechanical",
+            "a linkage needs the mechanical structure"
+        );
     }
     let fit = pipeline::fit(&prep, true, true).unwrap();
     let checked = pipeline::check(&prep, &fit).unwrap();

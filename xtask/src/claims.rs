@@ -123,6 +123,46 @@ pub const CLAIMS: &[Claim] = &[
         backing: Backing::OneRun,
     },
     Claim {
+        figure: "2 %",
+        context: "learned from the rates within",
+        backing: Backing::Test("tests/tests/joint_rates.rs::mass_matrix_learned_from_joint_rates_matches_the_double_pendulum"),
+    },
+    Claim {
+        figure: "0.86 %",
+        context: "0.86 %), and with default settings",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "5.9e-3",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1.8e-2",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "2.2e-2",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "9.5e-2",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "1.1e-1",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
+        figure: "5.7e-1",
+        context: "(one run, model vs baseline:",
+        backing: Backing::OneRun,
+    },
+    Claim {
         figure: "0.05 %",
         context: "logarithmic decrement",
         backing: Backing::Test("trainer/tests/port_checks.rs::damped_flexure_log_decrement_gives_the_simulated_damping_ratio"),

@@ -6,3 +6,4 @@ pub mod dataset;
 pub mod derivative;
 pub mod log;
 pub mod measure_log;
+pub mod rates;

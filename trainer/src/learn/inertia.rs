@@ -20,7 +20,7 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use crate::data::dataset::{Dataset, DerivativeSource, Trajectory};
+use crate::data::dataset::{Dataset, Trajectory};
 use crate::data::derivative::SavitzkyGolay;
 use crate::learn::fit::ArchChoice;
 use crate::learn::hnn::{EnergyArch, HnnObjective, HnnWork, Normalization};
@@ -412,45 +412,15 @@ impl InertiaModel {
     /// `ds` (states (q, v)) with momenta p = M(q) v and dp/dt estimated
     /// from them by `filter`.
     pub fn with_momenta(&self, ds: &Dataset, filter: &SavitzkyGolay) -> Result<Dataset> {
-        let trajectories = ds
-            .trajectories
-            .iter()
-            .map(|t| self.trajectory_with_momenta(t, ds.dof, filter))
-            .collect::<Result<_>>()?;
-        Ok(Dataset {
-            trajectories,
-            derivatives: DerivativeSource::Estimated,
-            ..ds.clone()
+        let n = ds.dof;
+        crate::data::rates::with_momenta(ds, filter, |t| {
+            let masses = self.mass_matrices(&t.x.slice(s![.., ..n]).to_owned());
+            let mut p = Array2::zeros((t.x.nrows(), n));
+            for (k, m) in masses.iter().enumerate() {
+                p.row_mut(k).assign(&m.dot(&t.x.slice(s![k, n..])));
+            }
+            Ok(p)
         })
-    }
-
-    fn trajectory_with_momenta(
-        &self,
-        t: &Trajectory,
-        n: usize,
-        filter: &SavitzkyGolay,
-    ) -> Result<Trajectory> {
-        let masses = self.mass_matrices(&t.x.slice(s![.., ..n]).to_owned());
-        let mut x = t.x.clone();
-        for (k, m) in masses.iter().enumerate() {
-            let v = t.x.slice(s![k, n..]);
-            x.slice_mut(s![k, n..]).assign(&m.dot(&v));
-        }
-        let dt = (t.t[t.t.len() - 1] - t.t[0]) / (t.t.len().max(2) - 1) as f64;
-        let mut dx = t.dx.clone();
-        for i in 0..n {
-            let p: Vec<f64> = x.column(n + i).to_vec();
-            let Some(dp) = filter.derivative(&p, dt) else {
-                bail!(
-                    "trajectory '{}' has {} samples, fewer than the derivative filter's {}",
-                    t.id,
-                    p.len(),
-                    filter.window()
-                );
-            };
-            dx.column_mut(n + i).assign(&ndarray::Array1::from(dp));
-        }
-        Ok(Trajectory { x, dx, ..t.clone() })
     }
 }
 

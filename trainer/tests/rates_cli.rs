@@ -2,7 +2,8 @@
 //! `t,traj,q1,v1` without `--masses`, says the momenta come from a learned
 //! mass matrix and how it is normalized; `visviva check` turns a held-out
 //! rates log into momenta with the model's own mass matrix; a model
-//! without one (a general energy H(q, p)) is refused naming the log. The
+//! without one (a general energy H(q, p)) is refused naming the log; masses
+//! with the mechanical structure are refused naming the flag. The
 //! log: a mass on a spring, q = A cos(w t + phi), v = -A w sin(w t + phi)
 //! (the harmonic oscillator's closed form, any mechanics text).
 
@@ -80,4 +81,48 @@ fn rates_without_masses_fit_check_and_refuse_a_model_without_mass_matrix() {
     fit(d, "general", "g.vvb");
     let o = visviva_in(d, &["check", "--model", "g.vvb", "--validation", "val.csv"]);
     assert_refused(&o, 1, &["val.csv", "no mass matrix"]);
+    // Masses with the mechanical structure: p = m v would not be its
+    // momenta; refused naming the flag, and skipped by the automatic choice.
+    let o = visviva_in(
+        d,
+        &[
+            "fit",
+            "--train",
+            "train.csv",
+            "--arch",
+            "mechanical",
+            "--masses",
+            "2",
+            "--quiet",
+            "--out",
+            "x.vvb",
+        ],
+    );
+    assert_refused(&o, 1, &["--masses", "depends on the positions"]);
+    assert!(!d.join("x.vvb").exists());
+    let o = visviva_in(
+        d,
+        &[
+            "fit",
+            "--train",
+            "train.csv",
+            "--validation",
+            "val.csv",
+            "--masses",
+            "2",
+            "--hidden",
+            "16",
+            "--epochs",
+            "10",
+            "--quiet",
+            "--out",
+            "a.vvb",
+        ],
+    );
+    assert_ok(&o);
+    let out = text(&o).0;
+    assert!(
+        out.contains("mechanical skipped: --masses form the momenta"),
+        "{out}"
+    );
 }

@@ -295,6 +295,12 @@ fn plan(args: &Args, arch: Arch, train: &Dataset) -> Result<ModelPlan> {
         args.input_net.as_ref().unwrap_or(&none),
         |name| format!("--{name}-net"),
     )?;
+    let map = column_map(args)?;
+    crate::learn::stage::check_masses_for_structure(
+        choice.mechanical,
+        columns::masses_form_momenta(&args.data, map.as_ref(), args.mass.is_some()),
+        "--masses",
+    )?;
     plan_model(
         train,
         choice,

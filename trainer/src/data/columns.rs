@@ -530,6 +530,24 @@ fn canonical_layout(path: &Path, rates: bool) -> Option<ColumnMap> {
     })
 }
 
+/// Whether stated masses form the momenta (p = m v) of the log at `path`:
+/// masses given and no momentum columns (`p` in `map`, or `p1` in a
+/// canonical header).
+pub fn masses_form_momenta(path: &Path, map: Option<&ColumnMap>, masses_given: bool) -> bool {
+    if !masses_given {
+        return false;
+    }
+    match map {
+        Some(m) => m.p.is_empty(),
+        None => csv::ReaderBuilder::new()
+            .trim(csv::Trim::All)
+            .from_path(path)
+            .ok()
+            .and_then(|mut r| r.headers().ok().map(|h| !h.iter().any(|c| c == "p1")))
+            .unwrap_or(false),
+    }
+}
+
 /// One row read: trajectory id, line, time and the scaled values of the
 /// mapped q, v-or-p and u columns in that order.
 struct Row {

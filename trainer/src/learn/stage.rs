@@ -111,6 +111,28 @@ pub fn check_masses(masses: &[f64], setting: &str) -> Result<()> {
     Ok(())
 }
 
+/// Refuse stated masses for the mechanical structure: masses form the
+/// momenta as p = m v, a constant diagonal inertia, while that structure's
+/// inertia M(q) depends on the positions, so those momenta would not be
+/// its momenta (the fit would learn a wrong energy). `setting` names the
+/// masses.
+pub fn check_masses_for_structure(
+    mechanical: bool,
+    masses_form_momenta: bool,
+    setting: &str,
+) -> Result<()> {
+    if mechanical && masses_form_momenta {
+        bail!(
+            "{setting} form the momenta as p = m v, a constant diagonal inertia, but the \
+             mechanical structure's inertia M(q) depends on the positions, so those momenta \
+             would not be its momenta: leave the masses out (with joint rates the mass matrix \
+             is then learned from the log; a known mean of M11 makes it physical) or log the \
+             momenta p"
+        );
+    }
+    Ok(())
+}
+
 /// Refuse a fit whose result cannot be trusted: interrupted (Ctrl-C), or
 /// whose loss was NaN or infinite before any epoch finished (the weights
 /// would be the untrained start). `what` names the fitted model.

@@ -61,6 +61,8 @@ pub struct Logs {
     pub rig: Option<crate::data::columns::RigSummary>,
     /// For joint rates without masses: how the momenta were formed.
     pub inertia: Option<crate::learn::inertia::InertiaSummary>,
+    /// Whether `[data] masses` formed the training log's momenta (p = m v).
+    pub masses_form_momenta: bool,
 }
 
 /// A project checked and loaded: nothing has been written yet.
@@ -189,6 +191,11 @@ fn project_plan(project: &Project, logs: &Logs, arch: Arch) -> Result<ModelPlan>
         "[model] activation",
     )?;
     let terms = m.port_terms()?;
+    crate::learn::stage::check_masses_for_structure(
+        choice.mechanical,
+        logs.masses_form_momenta,
+        "[data] masses",
+    )?;
     let plan = plan_model(
         &logs.train,
         choice,
@@ -349,6 +356,8 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
         .with_context(|| format!("{}: cannot read", train_path.display()))?;
     let map = project.columns.as_ref();
     let (all, rig) = crate::data::columns::load_any(&train_path, map, &opts)?;
+    let masses_form_momenta =
+        crate::data::columns::masses_form_momenta(&train_path, map, project.data.masses.is_some());
     let Some(v) = &project.data.validation else {
         let (frac, seed) = (project.data.val_fraction, project.fit.seed);
         let (train, val) = split_owned(all, frac, seed);
@@ -364,6 +373,7 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
                 val_bytes: Vec::new(),
                 rig,
                 inertia: None,
+                masses_form_momenta,
             },
         );
     };
@@ -396,6 +406,7 @@ fn load_logs(dir: &Path, project: &Project) -> Result<Logs> {
             val_bytes,
             rig,
             inertia: None,
+            masses_form_momenta,
         },
     )
 }

@@ -205,10 +205,6 @@ pub enum StepError {
     /// An explicit symplectic method was asked to step a damped or driven
     /// model; it would silently drop R and G.
     MethodIgnoresPortTerms,
-    /// Second derivatives of H (Hessian-vector products, the observer's
-    /// exact step Jacobian) asked of a model kind that does not give them
-    /// yet (the mechanical energy).
-    NoSecondDerivatives,
 }
 
 impl fmt::Display for StepError {
@@ -235,11 +231,6 @@ impl fmt::Display for StepError {
             Self::MethodIgnoresPortTerms => f.write_str(
                 "Stormer-Verlet and Yoshida-4 step only the conservative part; use the \
                  discrete-gradient method (or implicit midpoint) for a damped or driven model",
-            ),
-            Self::NoSecondDerivatives => f.write_str(
-                "the observer needs second derivatives of the energy, which this runtime does \
-                 not compute for a mechanical model (mass matrix M(q)) yet; use a separable or \
-                 general model with the observer",
             ),
         }
     }

@@ -12,15 +12,15 @@
 //!   Lubich & Wanner, Geometric Numerical Integration, 2nd ed., ch. II and
 //!   V — from memory), and the discrete-gradient method conserves H up to
 //!   round-off (Gonzalez 1996: H(x1) = H(x0) by construction);
-//! * the observer refuses it with `StepError::NoSecondDerivatives`.
+//! * the observer steps it exactly as its integrator does.
 
 mod common;
 
 use common::*;
 use visviva_runtime::error::Section;
 use visviva_runtime::format::{self, Activation};
-use visviva_runtime::observer::{Observer, ObserverError};
-use visviva_runtime::{BlobError, Hamiltonian, Integrator, Method, Model, State, StepError};
+use visviva_runtime::observer::Observer;
+use visviva_runtime::{BlobError, Hamiltonian, Integrator, Method, Model, State};
 
 type M<'a> = Model<'a, 4, 32>;
 
@@ -212,7 +212,10 @@ fn implicit_methods_converge_at_order_two_and_discrete_gradient_conserves_h() {
 }
 
 #[test]
-fn the_observer_refuses_a_mechanical_model_with_a_typed_error() {
+fn the_observer_steps_a_mechanical_model_as_its_integrator_does() {
+    // Its step Jacobian is checked against num-dual in `step_jacobian.rs`;
+    // here the observer's prediction is the integrator's own step, bit for
+    // bit, and its covariance stays symmetric and finite.
     let mut rng = XorShift64Star(15);
     let blob = fixture(&mut rng, Method::ImplicitMidpoint, 0.0)
         .blob()
@@ -220,15 +223,20 @@ fn the_observer_refuses_a_mechanical_model_with_a_typed_error() {
     let m = M::from_bytes(&blob).unwrap();
     let x0 = State::<4>::new(&[0.1, 0.2], &[0.0, 0.1]).unwrap();
     let mut obs = Observer::<_, 4, 8>::new(&m, m.integrator(), x0, &[1e-2; 4], &[0.0; 4]).unwrap();
+    obs.predict(&[]).unwrap();
+    let mut direct = x0;
+    m.integrator().step(&m, &mut direct).unwrap();
     assert_eq!(
-        obs.predict(&[]),
-        Err(ObserverError::Step(StepError::NoSecondDerivatives))
+        *obs.state(),
+        direct,
+        "prediction differs from the integrator's step"
     );
-    assert_eq!(
-        obs.state().q[0],
-        0.1,
-        "a refused prediction changes nothing"
-    );
+    let p = obs.covariance();
+    for i in 0..4 {
+        for j in 0..4 {
+            assert!(p[i][j].is_finite() && p[i][j] == p[j][i], "P[{i}][{j}]");
+        }
+    }
     assert!(m
         .momentum_from_velocity(&[0.1, 0.1], &mut [0.0; 2])
         .is_none());

@@ -5,7 +5,9 @@
 //! integrator's formula, written once over generic dual numbers; the
 //! gradient inside the step is itself a nested dual derivative, and the
 //! Jacobian column j is the step's dual part for the seed e_j. Every
-//! integrator, f32 and int8 weights, conservative and port models.
+//! integrator, f32 and int8 weights, conservative and port models, and the
+//! mechanical energy (M(q)^-1 = L(q) L(q)^T + eps I) with the methods it
+//! takes.
 
 mod common;
 
@@ -83,9 +85,47 @@ fn energy_ref<T: DualNum<Primitive = f64> + Copy>(m: &OwnedModel, x: &[T]) -> T 
             };
             v + t
         }
-        OwnedEnergy::Mechanical { .. } => unreachable!("the observer refuses mechanical models"),
+        OwnedEnergy::Mechanical {
+            factor,
+            floor,
+            potential,
+        } => mechanical_ref(factor, *floor, potential, &z[..n], &z[n..]),
     };
     e * c::<T>(m.energy_scale)
+}
+
+/// E = 1/2 z_p^T (L L^T + eps I) z_p + V(z_q), L from the factor network
+/// (softplus on the diagonal), as `runtime/src/energy/mechanical.rs`
+/// defines it.
+fn mechanical_ref<T: DualNum<Primitive = f64> + Copy>(
+    factor: &OwnedMlp,
+    floor: f32,
+    potential: &OwnedMlp,
+    zq: &[T],
+    zp: &[T],
+) -> T {
+    let n = zq.len();
+    let raw = mlp_ref(factor, zq);
+    let l = |i: usize, j: usize| {
+        let r = raw[i * (i + 1) / 2 + j];
+        if i == j {
+            r.exp().ln_1p()
+        } else {
+            r
+        }
+    };
+    let mut t: T = c(0.0);
+    for j in 0..n {
+        let mut u: T = c(0.0);
+        for i in j..n {
+            u += zp[i] * l(i, j);
+        }
+        t += u * u;
+    }
+    for z in zp {
+        t += *z * *z * c::<T>(floor);
+    }
+    t * c::<T>(0.5) + mlp_ref(potential, zq)[0]
 }
 
 /// dH/dx by a nested dual pass per coordinate.
@@ -423,6 +463,29 @@ fn port_models_constant_and_network_terms() {
                 .with_port_networks(&mut rng, 0.5, 1, 6, precision);
             let label = format!("network R(q), G(q) {precision:?} {act:?} {method:?}");
             report(&label, worst_error(&owned, &mut rng, 1, 4), limit);
+        }
+    }
+}
+
+#[test]
+fn mechanical_models_every_method_they_take() {
+    let mut rng = XorShift64Star(0x0b5e_0006);
+    for (precision, act) in KINDS {
+        for method in [
+            Method::Rk4,
+            Method::ImplicitMidpoint,
+            Method::DiscreteGradient,
+        ] {
+            let limit = if method == Method::Rk4 {
+                EXPLICIT
+            } else {
+                IMPLICIT
+            };
+            for floor in [0.0, 0.05] {
+                let owned = mechanical(&mut rng, 2, &[8], act, precision, method, 0.05, floor);
+                let label = format!("mechanical {precision:?} {act:?} {method:?} eps {floor}");
+                report(&label, worst_error(&owned, &mut rng, 1, 4), limit);
+            }
         }
     }
 }

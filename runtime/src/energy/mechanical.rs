@@ -154,6 +154,101 @@ impl<'a, const W: usize> Mechanical<'a, W> {
         self.kinetic(&u, zp, n) + v
     }
 
+    /// The Hessian-vector product of E along (dz_q, dz_p): into `hq`, `hp`
+    /// (length n each). Forward over reverse, with u = L^T z_p and
+    /// a_ij = z_p,i u_j s_ij (the factor network's seed, s = dL/draw):
+    /// * d(dE/dz_p) = dL u + L du + eps dz_p, du = dL^T z_p + L^T dz_p;
+    /// * d(dE/dz_q) = d(J^T a) + V'' dz_q, the factor network's pullback
+    ///   with the seed moving at da_ij = (dz_p,i u_j + z_p,i du_j) s_ij +
+    ///   z_p,i u_j ds_ij, where dL_ij = s_ij draw_ij, ds_ii = s_ii (1 - s_ii)
+    ///   draw_ii (0 off the diagonal) and draw = J dz_q.
+    #[cfg(feature = "observer")]
+    pub fn hessian_vector(
+        &self,
+        zq: &[f32],
+        zp: &[f32],
+        dzq: &[f32],
+        dzp: &[f32],
+        hq: &mut [f32],
+        hp: &mut [f32],
+    ) {
+        let n = zq.len().min(zp.len()).min(CAP).min(hq.len()).min(hp.len());
+        if n * (n + 1) / 2 > W {
+            hq.iter_mut()
+                .chain(hp.iter_mut())
+                .for_each(|v| *v = f32::NAN);
+            return; // refused at validation (the factor is too wide)
+        }
+        let (mut raw, mut draw) = ([0.0f32; W], [0.0f32; W]);
+        self.factor.evaluate_tangent(zq, dzq, &mut raw, &mut draw);
+        let (mut l, mut slope) = ([0.0f32; W], [0.0f32; W]);
+        Self::factor_from_raw(&raw, n, &mut l, &mut slope);
+        let mut dl = [0.0f32; W];
+        for k in 0..n * (n + 1) / 2 {
+            dl[k] = slope[k] * draw[k];
+        }
+        let u = Self::project(&l, zp, n);
+        let (du_l, du_p) = (Self::project(&dl, zp, n), Self::project(&l, dzp, n));
+        let mut du = [0.0f32; CAP];
+        for j in 0..n {
+            du[j] = du_l[j] + du_p[j];
+        }
+        for i in 0..n {
+            let mut acc = 0.0f32;
+            for j in 0..=i {
+                acc += dl[at(i, j)] * u[j] + l[at(i, j)] * du[j];
+            }
+            hp[i] = acc + self.floor * dzp[i];
+        }
+        let (seed, dseed) = self.moving_seed(zp, dzp, &u, &du, &slope, &draw, n);
+        let k = n * (n + 1) / 2;
+        let (mut g, mut hv) = ([0.0f32; CAP], [0.0f32; CAP]);
+        self.factor.pullback_and_tangent(
+            zq,
+            dzq,
+            &seed[..k],
+            &dseed[..k],
+            &mut g[..n],
+            &mut hv[..n],
+        );
+        let (mut gv, mut hvv) = ([0.0f32; CAP], [0.0f32; CAP]);
+        self.potential
+            .gradient_and_hvp(zq, dzq, &mut gv[..n], &mut hvv[..n]);
+        for i in 0..n {
+            hq[i] = hv[i] + hvv[i];
+        }
+    }
+
+    /// The factor network's seed a_ij = z_p,i u_j s_ij and its tangent
+    /// (see [`Self::hessian_vector`]).
+    #[cfg(feature = "observer")]
+    #[allow(clippy::too_many_arguments)]
+    fn moving_seed(
+        &self,
+        zp: &[f32],
+        dzp: &[f32],
+        u: &[f32; CAP],
+        du: &[f32; CAP],
+        slope: &[f32; W],
+        draw: &[f32; W],
+        n: usize,
+    ) -> ([f32; W], [f32; W]) {
+        let (mut seed, mut dseed) = ([0.0f32; W], [0.0f32; W]);
+        for i in 0..n {
+            for j in 0..=i {
+                let k = at(i, j);
+                let ds = if i == j {
+                    slope[k] * (1.0 - slope[k]) * draw[k]
+                } else {
+                    0.0
+                };
+                seed[k] = zp[i] * u[j] * slope[k];
+                dseed[k] = (dzp[i] * u[j] + zp[i] * du[j]) * slope[k] + zp[i] * u[j] * ds;
+            }
+        }
+        (seed, dseed)
+    }
+
     /// The inverse mass matrix A = L(z_q) L(z_q)^T + eps I in normalized
     /// coordinates (dE/dz_p = A z_p) into the leading n x n block of `a`;
     /// `false` when the factor is too wide for W (refused at validation).

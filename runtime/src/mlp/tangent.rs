@@ -1,7 +1,9 @@
 //! Second-order and tangent passes through a network, for the observer's
 //! exact step Jacobian: the Hessian-vector product of a scalar network
 //! (forward-mode tangent of the reverse-mode gradient, "forward over
-//! reverse"), and the forward tangent of a many-output network (the port
+//! reverse"), its generalization to a many-output network's
+//! vector-Jacobian product with a moving seed (the mechanical energy's
+//! factor network), and the forward tangent of a many-output network (the port
 //! terms L(q), G(q)). Plain loops, index-order sums, no finite differences.
 
 use super::{Layer, Mlp};
@@ -99,16 +101,38 @@ impl<const W: usize> Mlp<'_, W> {
     /// derivative along `dx` (the Hessian-vector product) into `hv`, both
     /// of length `inputs`.
     pub fn gradient_and_hvp(&self, x: &[f32], dx: &[f32], grad: &mut [f32], hv: &mut [f32]) {
+        self.pullback_and_tangent(x, dx, &[1.0], &[0.0], grad, hv);
+    }
+
+    /// The vector-Jacobian product J(x)^T `seed` into `grad` and its
+    /// directional derivative along `dx` with the seed moving at `dseed`,
+    /// (dJ)^T seed + J^T dseed, into `hv` (forward over reverse; a scalar
+    /// network with seed 1, dseed 0 gives the gradient and the
+    /// Hessian-vector product). Outputs beyond `seed` get seed 0.
+    pub fn pullback_and_tangent(
+        &self,
+        x: &[f32],
+        dx: &[f32],
+        seed: &[f32],
+        dseed: &[f32],
+        grad: &mut [f32],
+        hv: &mut [f32],
+    ) {
         let mut tape = Tape {
             d1: [[0.0; W]; MAX_LAYERS],
             d2: [[0.0; W]; MAX_LAYERS],
             da: [[0.0; W]; MAX_LAYERS],
         };
-        let (mut out, mut dout) = ([0.0f32; 1], [0.0f32; 1]);
+        let (mut out, mut dout) = ([0.0f32; W], [0.0f32; W]);
         self.forward_tangent(x, dx, &mut tape, &mut out, &mut dout);
         // g: adjoint of the layer output, dg: its tangent.
         let (mut g, mut dg) = ([0.0f32; W], [0.0f32; W]);
-        g[0] = 1.0;
+        for (k, s) in seed.iter().enumerate().take(W) {
+            g[k] = *s;
+        }
+        for (k, s) in dseed.iter().enumerate().take(W) {
+            dg[k] = *s;
+        }
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
             if k + 1 < self.count {

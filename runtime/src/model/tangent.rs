@@ -3,9 +3,9 @@
 //! quadratic kinetic term) and the coordinate tangent of network port terms
 //! L(q), G(q). With z_i = (x_i - o_i) / s_i and H = e E(z):
 //! (H'' dx)_i = e (E''(z) dz)_i / s_i with dz_i = dx_i / s_i.
-//! A mechanical model (M(q) from a network) has no Hessian-vector product
-//! here yet: it is refused with `StepError::NoSecondDerivatives`, so the
-//! observer and the exact step Jacobian do not take it.
+//! A mechanical model (M(q) from a network) gets its product from
+//! `energy/mechanical.rs` (forward over reverse through the factor
+//! network with a moving seed).
 //! Momenta from velocities: p = M v for the energies whose velocity dH/dp
 //! is linear in p (a quadratic kinetic term, and the mechanical energy at
 //! a given q, where M(q)^-1 = L L^T + eps I is solved by pivoted
@@ -166,8 +166,14 @@ impl<const D: usize, const W: usize> Tangent<D> for Model<'_, D, W> {
                 hq[..n].copy_from_slice(&hz[..n]);
                 hp[..n].copy_from_slice(&hz[n..2 * n]);
             }
-            // Not yet: the observer refuses a mechanical model.
-            Energy::Mechanical(_) => return Err(StepError::NoSecondDerivatives),
+            Energy::Mechanical(m) => m.hessian_vector(
+                &zq[..n],
+                &zp[..n],
+                &dzq[..n],
+                &dzp[..n],
+                &mut hq[..n],
+                &mut hp[..n],
+            ),
             Energy::Separable { potential, kinetic } => {
                 potential.gradient_and_hvp(&zq[..n], &dzq[..n], &mut g[..n], &mut hq[..n]);
                 match kinetic {

@@ -13,16 +13,25 @@ use visviva_trainer::learn::fit::{fit_model, ArchChoice, FitSettings};
 use visviva_trainer::reference::simulate::{simulate, SimulationSpec};
 use visviva_trainer::reference::ReferenceSystem;
 
-/// The held-out log (simulated with seed `seed + 1`) and the blob fitted
-/// to the training log (seed `seed`).
-pub fn fit_mechanical(system: &dyn ReferenceSystem, seed: u64) -> (Dataset, Vec<u8>) {
-    let spec = |trajectories, seed| SimulationSpec {
+/// `trajectories` runs of 4 s at 25 Hz.
+fn spec(trajectories: usize, seed: u64) -> SimulationSpec {
+    SimulationSpec {
         trajectories,
         duration: 4.0,
         rate: 25.0,
         seed,
-    };
-    let train = simulate(system, &spec(40, seed)).unwrap();
+    }
+}
+
+/// The training log of [`fit_mechanical`] for `seed`.
+pub fn training_log(system: &dyn ReferenceSystem, seed: u64) -> Dataset {
+    simulate(system, &spec(40, seed)).unwrap()
+}
+
+/// The held-out log (simulated with seed `seed + 1`) and the blob fitted
+/// to the training log (seed `seed`).
+pub fn fit_mechanical(system: &dyn ReferenceSystem, seed: u64) -> (Dataset, Vec<u8>) {
+    let train = training_log(system, seed);
     let val = simulate(system, &spec(8, seed + 1)).unwrap();
     let arch = ArchChoice {
         separable: false,

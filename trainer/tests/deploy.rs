@@ -108,7 +108,10 @@ fn the_training_envelope_survives_export_and_inspect_prints_it() {
     });
     let bytes = m.to_bytes().unwrap();
     // f32 weights aligned: version 6 (the envelope alone needs 4).
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), visviva_runtime::format::ALIGNED_VERSION);
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
     // int8 export keeps the bounds as stored.
     let (int8, _) =
@@ -132,7 +135,10 @@ fn the_training_envelope_survives_export_and_inspect_prints_it() {
     // aligned f32 weights).
     let plain = fixture(false).to_bytes().unwrap();
     let r = visviva_trainer::deploy::inspect::inspect(&plain).unwrap();
-    assert_eq!((r.format_version, r.envelope), (visviva_runtime::format::ALIGNED_VERSION, None));
+    assert_eq!(
+        (r.format_version, r.envelope),
+        (visviva_runtime::format::ALIGNED_VERSION, None)
+    );
 }
 
 #[test]
@@ -145,7 +151,10 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     let bytes = m.to_bytes().unwrap();
     // Constant port terms need format version 2; f32 weights aligned make
     // it 6.
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), visviva_runtime::format::ALIGNED_VERSION);
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
 
     // G(q) as a network of q: version 3, round trip exact, and int8
@@ -154,7 +163,10 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     let mut net = m.clone();
     net.input = Some((1, PortTerm::Network(mlp(&mut rng, &[1, 6, 2]))));
     let net_bytes = net.to_bytes().unwrap();
-    assert_eq!(u16::from_le_bytes([net_bytes[4], net_bytes[5]]), visviva_runtime::format::ALIGNED_VERSION);
+    assert_eq!(
+        u16::from_le_bytes([net_bytes[4], net_bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
     let (net_i8, r) = export_checked(

@@ -162,7 +162,10 @@ fn a_fitted_blob_carries_its_training_range_widened_by_a_tenth() {
     .unwrap();
     let bytes = std::fs::read(&out).unwrap();
     // f32 weights are written aligned (version 6; the envelope needs 4).
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), visviva_runtime::format::ALIGNED_VERSION);
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     let model = Model::<8, 128>::from_bytes(&bytes).unwrap();
     let env = model.envelope().expect("a fitted blob has an envelope");
     let (mut lo, mut hi) = ([f64::INFINITY; 2], [f64::NEG_INFINITY; 2]);

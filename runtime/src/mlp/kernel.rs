@@ -2,34 +2,31 @@
 //! y = W x + b and gx = W^T g. Each output keeps its own accumulator and
 //! sums in index order, exactly as the byte-decoding kernels in `mlp.rs`
 //! do, so both give the same bits. Rows go [`ROWS`] at a time (one load of
-//! `x[i]` or of `gx[i]` serves that many weights) and the inputs [`UNROLL`]
-//! at a time (one pointer step per row serves that many weights; see
-//! bench/README.md, device cost).
+//! `x[i]`, or one load and one store of `gx[i]`, serves that many weights)
+//! and the inputs [`UNROLL`] at a time as fixed-size chunks (one pointer
+//! step per row serves that many weights, and no bounds check is left in
+//! the inner loop; see bench/README.md, device cost).
 
 use crate::format::F32Bytes;
 
 /// Rows per block.
-const ROWS: usize = 4;
+const ROWS: usize = 8;
 /// Inputs per unrolled inner step.
-const UNROLL: usize = 4;
+const UNROLL: usize = 8;
 
-/// The four rows of a block of `4 ni` weights.
+/// The rows of a block of `ROWS ni` weights (empty past its end).
 #[inline(always)]
 fn rows(block: &[f32], ni: usize) -> [&[f32]; ROWS] {
-    let (r0, rest) = block.split_at(ni.min(block.len()));
-    let (r1, rest) = rest.split_at(ni.min(rest.len()));
-    let (r2, r3) = rest.split_at(ni.min(rest.len()));
-    [r0, r1, r2, r3]
+    core::array::from_fn(|b| block.get(b * ni..(b + 1) * ni).unwrap_or(&[]))
 }
 
-/// `acc[b] += r[b][i] * x[i]` for every i of the step, in index order.
+/// The leading `m` whole chunks of each row. Every row of a block holds
+/// `ni` weights and the callers' `m` chunks cover at most `ni` inputs, so
+/// the slice is in range (and its known length lets the compiler drop the
+/// inner loop's bounds checks).
 #[inline(always)]
-fn forward_step(acc: &mut [f32; ROWS], r: [&[f32]; ROWS], x: &[f32]) {
-    for (i, xi) in x.iter().enumerate() {
-        for (a, row) in acc.iter_mut().zip(r) {
-            *a += row[i] * xi;
-        }
-    }
+fn chunked(r: [&[f32]; ROWS], m: usize) -> [&[[f32; UNROLL]]; ROWS] {
+    r.map(|row| &row.as_chunks::<UNROLL>().0[..m])
 }
 
 /// y = W x + b, W row-major `[y.len()][ni]`, each row summed in index
@@ -38,18 +35,26 @@ fn forward_step(acc: &mut [f32; ROWS], r: [&[f32]; ROWS], x: &[f32]) {
 #[inline]
 pub(super) fn dense(w: &[f32], ni: usize, bias: F32Bytes<'_>, x: &[f32], y: &mut [f32]) {
     let ni = ni.max(1);
-    let n = x.len().min(ni);
-    let (xs, xt) = x[..n].split_at(n - n % UNROLL);
+    let x = x.get(..ni).unwrap_or(x);
+    let (head, tail) = x.as_chunks::<UNROLL>();
+    let at = head.len() * UNROLL;
     let mut done = 0;
     for (block, ys) in w.chunks_exact(ROWS * ni).zip(y.chunks_exact_mut(ROWS)) {
         let r = rows(block, ni);
+        let rc = chunked(r, head.len());
         let mut acc = [0.0f32; ROWS];
-        for (k, xc) in xs.chunks_exact(UNROLL).enumerate() {
-            let at = k * UNROLL;
-            forward_step(&mut acc, r.map(|row| &row[at..at + UNROLL]), xc);
+        for (k, xc) in head.iter().enumerate() {
+            for (i, xi) in xc.iter().enumerate() {
+                for (a, row) in acc.iter_mut().zip(&rc) {
+                    *a += row[k][i] * xi;
+                }
+            }
         }
-        let at = xs.len();
-        forward_step(&mut acc, r.map(|row| &row[at..at + xt.len()]), xt);
+        for (i, xi) in tail.iter().enumerate() {
+            for (a, row) in acc.iter_mut().zip(&r) {
+                *a += row.get(at + i).copied().unwrap_or(0.0) * xi;
+            }
+        }
         for (b, (yj, a)) in ys.iter_mut().zip(acc).enumerate() {
             *yj = a + bias.get(done + b);
         }
@@ -57,23 +62,10 @@ pub(super) fn dense(w: &[f32], ni: usize, bias: F32Bytes<'_>, x: &[f32], y: &mut
     }
     for (j, (row, yj)) in w.chunks_exact(ni).zip(y.iter_mut()).enumerate().skip(done) {
         let mut acc = 0.0f32;
-        for (c, xi) in row.iter().zip(&x[..n]) {
+        for (c, xi) in row.iter().zip(x) {
             acc += c * xi;
         }
         *yj = acc + bias.get(j);
-    }
-}
-
-/// `gx[i] += r[0][i] g[0] + ... + r[3][i] g[3]`, added in row order, for
-/// every i of the step.
-#[inline(always)]
-fn transpose_step(gx: &mut [f32], r: [&[f32]; ROWS], g: [f32; ROWS]) {
-    for (i, o) in gx.iter_mut().enumerate() {
-        let mut v = *o;
-        for (row, gb) in r.iter().zip(g) {
-            v += row[i] * gb;
-        }
-        *o = v;
     }
 }
 
@@ -84,17 +76,29 @@ pub(super) fn dense_transpose(w: &[f32], ni: usize, g: &[f32], gx: &mut [f32]) {
     let ni = ni.max(1);
     let n = gx.len().min(ni);
     let gx = &mut gx[..n];
-    let split = n - n % UNROLL;
     let mut done = 0;
     for (block, gs) in w.chunks_exact(ROWS * ni).zip(g.chunks_exact(ROWS)) {
         let r = rows(block, ni);
-        let gb = [gs[0], gs[1], gs[2], gs[3]];
-        let (head, tail) = gx.split_at_mut(split);
-        for (k, oc) in head.chunks_exact_mut(UNROLL).enumerate() {
-            let at = k * UNROLL;
-            transpose_step(oc, r.map(|row| &row[at..at + UNROLL]), gb);
+        let gb: [f32; ROWS] = core::array::from_fn(|b| gs.get(b).copied().unwrap_or(0.0));
+        let (head, tail) = gx.as_chunks_mut::<UNROLL>();
+        let at = head.len() * UNROLL;
+        let rc = chunked(r, head.len());
+        for (k, oc) in head.iter_mut().enumerate() {
+            for (i, o) in oc.iter_mut().enumerate() {
+                let mut v = *o;
+                for (row, gj) in rc.iter().zip(gb) {
+                    v += row[k][i] * gj;
+                }
+                *o = v;
+            }
         }
-        transpose_step(tail, r.map(|row| &row[split..split + tail.len()]), gb);
+        for (i, o) in tail.iter_mut().enumerate() {
+            let mut v = *o;
+            for (row, gj) in r.iter().zip(gb) {
+                v += row.get(at + i).copied().unwrap_or(0.0) * gj;
+            }
+            *o = v;
+        }
         done += ROWS;
     }
     for (gj, row) in g.iter().zip(w.chunks_exact(ni)).skip(done) {

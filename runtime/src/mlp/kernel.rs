@@ -4,8 +4,8 @@
 //! do, so both give the same bits. Rows go [`ROWS`] at a time (one load of
 //! `x[i]`, or one load and one store of `gx[i]`, serves that many weights)
 //! and the inputs [`UNROLL`] at a time as fixed-size chunks (one pointer
-//! step per row serves that many weights, and no bounds check is left in
-//! the inner loop; see bench/README.md, device cost).
+//! step per row serves that many weights; see bench/README.md, device cost
+//! on the emulated Cortex-M4F).
 
 use crate::format::F32Bytes;
 
@@ -22,8 +22,8 @@ fn rows(block: &[f32], ni: usize) -> [&[f32]; ROWS] {
 
 /// The leading `m` whole chunks of each row. Every row of a block holds
 /// `ni` weights and the callers' `m` chunks cover at most `ni` inputs, so
-/// the slice is in range (and its known length lets the compiler drop the
-/// inner loop's bounds checks).
+/// the slice is in range (and its known length lets the compiler drop
+/// most of the inner loop's bounds checks).
 #[inline(always)]
 fn chunked(r: [&[f32]; ROWS], m: usize) -> [&[[f32; UNROLL]]; ROWS] {
     r.map(|row| &row.as_chunks::<UNROLL>().0[..m])

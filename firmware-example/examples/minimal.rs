@@ -12,7 +12,8 @@ use visviva_runtime::{blob_len, Model, State};
 const DOF: usize = 4; // most degrees of freedom this firmware accepts
 const WIDTH: usize = 64; // widest network layer it accepts
 
-// The blob named by VISVIVA_BLOB, placed at the start of the model region.
+// The blob named by VISVIVA_BLOB, placed at the start of the model region
+// (4-byte aligned, asserted in memory.x: f32 weights are then read in place).
 #[used]
 #[link_section = ".vv_model"]
 static BLOB: [u8; include_bytes!(env!("VISVIVA_BLOB")).len()] =

@@ -5,6 +5,8 @@
 //! array, so a board can be re-flashed with other weights (written at the
 //! region's address) without rebuilding. The blob's length comes from its own
 //! header; erased or foreign bytes are refused by the runtime's checks.
+//! The region starts at a 4-byte-aligned address (`memory.x` asserts it),
+//! so the runtime reads the blob's f32 weight matrices in place.
 
 use visviva_runtime::BlobError;
 

@@ -6,8 +6,8 @@
 //! Run: `cargo run -p visviva-runtime --example model_cost`
 
 use visviva_runtime::format::{
-    self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, LayerDesc, MlpDesc,
-    ModelDesc, WeightsDesc,
+    self, Activation, AlignedF32, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, LayerDesc,
+    MlpDesc, ModelDesc, WeightsDesc,
 };
 use visviva_runtime::{Integrator, Method, Model};
 
@@ -36,7 +36,7 @@ fn main() {
                     scales: F32Bytes(scales),
                 }
             } else {
-                WeightsDesc::F32(F32Bytes(weights))
+                WeightsDesc::F32Aligned(AlignedF32::new(weights))
             };
             let layer = LayerDesc {
                 inputs: *ni as u16,

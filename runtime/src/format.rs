@@ -7,7 +7,8 @@
 //! 4       2     format version (u16): 1; 2 with constant port terms;
 //!                3 with port terms that are networks of q; 4 with a
 //!                training envelope; 5 with a mechanical energy (mass
-//!                matrix M(q))
+//!                matrix M(q)); 6 with 4-byte-aligned f32 weight
+//!                matrices
 //! 6       4     payload length L (u32)
 //! 10      L     payload: postcard encoding of [`ModelDesc`]
 //! 10+L    4     CRC-32 (ISO-HDLC, the common "CRC-32") over bytes 4..10+L
@@ -18,6 +19,25 @@
 //! straight from the blob (flash) with no copy. Enum variants are encoded by
 //! index: new variants are appended, never reordered, and any change a reader
 //! of the current version cannot skip bumps [`FORMAT_VERSION`].
+//!
+//! Aligned weights (version 6): a weight matrix written as
+//! [`WeightsDesc::F32Aligned`] is a postcard byte string of `p` zero bytes
+//! followed by the little-endian `f32` values, where `p` (0..=3) is the
+//! string's length mod 4 (so a reader finds it without knowing where the
+//! string sits) and is chosen by [`encode`] so that the values start at an
+//! offset from the blob's first byte that is a multiple of 4. The reader
+//! refuses such an array at any other offset as malformed. A firmware must
+//! place the blob at a 4-byte-aligned address (e.g. a linker section with
+//! `ALIGN(4)` or a `#[repr(align(4))]` wrapper): then every aligned matrix
+//! is read in place as `&[f32]`, one load per weight. A blob at an
+//! unaligned address still parses and steps to the same bits, through the
+//! byte-decoding path that versions 1 to 5 use ([`WeightsDesc::F32`], whose
+//! values follow the length directly at any offset). The writers
+//! (`visviva-blob-support`, the trainer) write every f32 weight matrix
+//! aligned, so every blob with f32 weights is version 6; int8 blobs need no
+//! alignment (their weights are single bytes) and keep their older version
+//! and bytes. Biases, scales and offsets stay byte strings at any offset:
+//! they are read once per output, not once per multiply-accumulate.
 //!
 //! Optional trailing sections (version 4 on): after the port terms the
 //! payload may end, or go on with one postcard `Option` per trailing section
@@ -66,14 +86,21 @@ pub const MAGIC: [u8; 4] = *b"VVMB";
 /// The newest format version this runtime reads and writes. Version 2 added
 /// the dissipation and input sections, version 3 their network variants
 /// (R and G as functions of q), version 4 the training envelope, version 5
-/// the mechanical energy ([`EnergyDesc::Mechanical`]). A blob is always
+/// the mechanical energy ([`EnergyDesc::Mechanical`]), version 6 the
+/// aligned weight matrices ([`WeightsDesc::F32Aligned`]). A blob is always
 /// written with the oldest version that can express it, so older firmware
 /// keeps reading the blobs it understands.
-pub const FORMAT_VERSION: u16 = 5;
+pub const FORMAT_VERSION: u16 = 6;
 /// The format version that added the training envelope section.
 pub const ENVELOPE_VERSION: u16 = 4;
 /// The version that added [`EnergyDesc::Mechanical`].
 pub const MECHANICAL_VERSION: u16 = 5;
+/// The version that added [`WeightsDesc::F32Aligned`].
+pub const ALIGNED_VERSION: u16 = 6;
+/// Most networks in one blob (energy: two; damping and input: one each).
+const MAX_NETWORKS: usize = 4;
+/// Most aligned weight matrices in one blob (one per layer).
+const MAX_WEIGHT_ARRAYS: usize = MAX_NETWORKS * MAX_LAYERS;
 /// The oldest format version this runtime reads.
 pub const OLDEST_READABLE_VERSION: u16 = 1;
 /// Bytes before the payload: magic, version, length.
@@ -147,6 +174,81 @@ impl<'a> F32Bytes<'a> {
     }
 }
 
+/// Little-endian `f32` values stored at a 4-byte-aligned offset from the
+/// blob's start (format version 6): on the wire a byte string of `pad`
+/// zero bytes, `pad` = its length mod 4, then the values (see the module's
+/// layout comment). `values` holds the values alone; two are equal when
+/// their values are (the padding is where the writer put them, not what
+/// they are).
+#[derive(Debug, Clone, Copy)]
+pub struct AlignedF32<'a> {
+    /// The values (length a multiple of 4).
+    pub values: F32Bytes<'a>,
+    /// Zero bytes written before the values (0..=3), chosen by [`encode`].
+    pad: u8,
+}
+
+impl<'a> AlignedF32<'a> {
+    /// The values `bytes` (little-endian `f32`, length a multiple of 4),
+    /// to be aligned by [`encode`].
+    pub fn new(bytes: &'a [u8]) -> Self {
+        Self {
+            values: F32Bytes(bytes),
+            pad: 0,
+        }
+    }
+
+    /// The zero bytes before the values in the blob this was read from
+    /// (0..=3).
+    pub fn pad(&self) -> usize {
+        usize::from(self.pad)
+    }
+
+    /// The values as `&[f32]` when they sit at a 4-byte-aligned address on
+    /// a little-endian target (a checked cast, no copy); `None` otherwise.
+    pub fn as_f32s(&self) -> Option<&'a [f32]> {
+        if cfg!(target_endian = "big") {
+            return None;
+        }
+        bytemuck::try_cast_slice::<u8, f32>(self.values.0).ok()
+    }
+}
+
+impl PartialEq for AlignedF32<'_> {
+    fn eq(&self, other: &Self) -> bool {
+        self.values == other.values
+    }
+}
+
+impl Eq for AlignedF32<'_> {}
+
+impl Serialize for AlignedF32<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeSeq;
+        // The same bytes as a postcard byte string: length, then the bytes.
+        let pad = usize::from(self.pad % 4);
+        let mut seq = s.serialize_seq(Some(pad + self.values.0.len()))?;
+        for b in [0u8; 3][..pad.min(3)].iter().chain(self.values.0) {
+            seq.serialize_element(b)?;
+        }
+        seq.end()
+    }
+}
+
+impl<'de: 'a, 'a> Deserialize<'de> for AlignedF32<'a> {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        let raw = <&'de [u8]>::deserialize(d)?;
+        let (pad, values) = raw.split_at(raw.len() % 4);
+        if pad.iter().any(|b| *b != 0) {
+            return Err(serde::de::Error::custom("non-zero padding"));
+        }
+        Ok(Self {
+            values: F32Bytes(values),
+            pad: pad.len() as u8,
+        })
+    }
+}
+
 /// Activation functions of hidden layers. ReLU is representable so that a
 /// blob using it can be refused with an explanation rather than as garbage.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -163,7 +265,8 @@ pub enum Activation {
 /// Weights of one dense layer, row-major `[outputs][inputs]`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub enum WeightsDesc<'a> {
-    /// Full-precision weights.
+    /// Full-precision weights at any offset (format versions 1 to 5; read
+    /// through the byte-decoding path).
     F32(#[serde(borrow)] F32Bytes<'a>),
     /// Symmetric int8 weights, `w[j][i] = scales[j] * values[j][i]`.
     Int8 {
@@ -173,6 +276,9 @@ pub enum WeightsDesc<'a> {
         #[serde(borrow)]
         scales: F32Bytes<'a>,
     },
+    /// Full-precision weights at a 4-byte-aligned offset from the blob's
+    /// start (format version 6), read in place as `&[f32]`.
+    F32Aligned(#[serde(borrow)] AlignedF32<'a>),
 }
 
 /// One dense layer y = W x + b.
@@ -323,21 +429,118 @@ impl TrainingEnvelope<'_> {
     }
 }
 
-impl ModelDesc<'_> {
+impl<'a> ModelDesc<'a> {
     /// The oldest format version that can express this model.
     pub fn needed_version(&self) -> u16 {
         version_for(&self.dissipation, &self.input)
             .max(energy_version(&self.energy))
             .max(envelope_version(&self.envelope))
+            .max(weights_version(&port_networks(
+                &self.dissipation,
+                &self.input,
+            )))
     }
+
+    /// Every network in the order the payload holds them (energy, then
+    /// damping, then input), mutable, for the encoder's alignment.
+    fn networks_mut(&mut self) -> [Option<&mut MlpDesc<'a>>; MAX_NETWORKS] {
+        let (e0, e1) = match &mut self.energy {
+            EnergyDesc::General(m) => (Some(m), None),
+            EnergyDesc::Separable { potential, kinetic } => (
+                Some(potential),
+                match kinetic {
+                    KineticDesc::Network(m) => Some(m),
+                    KineticDesc::Quadratic { .. } => None,
+                },
+            ),
+            EnergyDesc::Mechanical {
+                factor, potential, ..
+            } => (Some(factor), Some(potential)),
+        };
+        let d = match &mut self.dissipation {
+            DissipationDesc::Network(m) => Some(m),
+            _ => None,
+        };
+        let i = match &mut self.input {
+            InputDesc::Network { net, .. } => Some(net),
+            _ => None,
+        };
+        [e0, e1, d, i]
+    }
+}
+
+/// The energy's networks (one or two), in payload order.
+fn energy_networks<'d, 'a>(energy: &'d EnergyDesc<'a>) -> [Option<&'d MlpDesc<'a>>; 2] {
+    match energy {
+        EnergyDesc::General(m) => [Some(m), None],
+        EnergyDesc::Separable { potential, kinetic } => [
+            Some(potential),
+            match kinetic {
+                KineticDesc::Network(m) => Some(m),
+                KineticDesc::Quadratic { .. } => None,
+            },
+        ],
+        EnergyDesc::Mechanical {
+            factor, potential, ..
+        } => [Some(factor), Some(potential)],
+    }
+}
+
+/// The port terms' networks (none to two), in payload order.
+fn port_networks<'d, 'a>(
+    dissipation: &'d DissipationDesc<'a>,
+    input: &'d InputDesc<'a>,
+) -> [Option<&'d MlpDesc<'a>>; 2] {
+    let d = match dissipation {
+        DissipationDesc::Network(m) => Some(m),
+        _ => None,
+    };
+    let i = match input {
+        InputDesc::Network { net, .. } => Some(net),
+        _ => None,
+    };
+    [d, i]
+}
+
+/// The aligned weight matrices of `nets`, in payload order.
+fn aligned_arrays<'d, 'a>(
+    nets: &'d [Option<&'d MlpDesc<'a>>],
+) -> impl Iterator<Item = &'d AlignedF32<'a>> + 'd {
+    nets.iter()
+        .flatten()
+        .flat_map(|m| m.layers.iter())
+        .filter_map(|l| match &l.weights {
+            WeightsDesc::F32Aligned(a) => Some(a),
+            _ => None,
+        })
+}
+
+/// The oldest format version that can express the weights of `nets`.
+fn weights_version(nets: &[Option<&MlpDesc<'_>>]) -> u16 {
+    match aligned_arrays(nets).next() {
+        Some(_) => ALIGNED_VERSION,
+        None => OLDEST_READABLE_VERSION,
+    }
+}
+
+/// Whether every aligned matrix of `nets` starts at a multiple of 4 bytes
+/// from `base`, the address of the blob's first byte.
+fn aligned_from(nets: &[Option<&MlpDesc<'_>>], base: usize) -> bool {
+    aligned_arrays(nets).all(|a| misalignment(a, base) == 0)
+}
+
+/// How far (0..=3 bytes) past a multiple of 4 from `base` `a`'s values start.
+fn misalignment(a: &AlignedF32<'_>, base: usize) -> usize {
+    (a.values.0.as_ptr() as usize).wrapping_sub(base) % 4
 }
 
 /// The oldest format version that can express this energy.
 fn energy_version(energy: &EnergyDesc<'_>) -> u16 {
-    match energy {
+    let kind = match energy {
         EnergyDesc::Mechanical { .. } => MECHANICAL_VERSION,
         EnergyDesc::General(_) | EnergyDesc::Separable { .. } => OLDEST_READABLE_VERSION,
-    }
+    };
+    kind.max(weights_version(&energy_networks(energy)))
 }
 
 /// The oldest format version that can carry this training envelope.
@@ -395,8 +598,68 @@ pub struct ModelDesc<'a> {
 }
 
 /// Write `desc` as a complete blob into `out`; returns the bytes used.
-/// Fails with [`BlobError::Truncated`] when `out` is too small.
+/// Fails with [`BlobError::Truncated`] when `out` is too small. Weight
+/// matrices given as [`WeightsDesc::F32Aligned`] are padded to start at a
+/// multiple of 4 bytes from the blob's start (each padding fixed in payload
+/// order: a matrix's padding moves only what follows it, and the length
+/// prefix keeps its size across paddings 0..=3 since its varint steps come
+/// at multiples of 128); [`WeightsDesc::F32`] matrices are written packed,
+/// as versions 1 to 5 hold them.
 pub fn encode(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> {
+    let mut desc = desc.clone();
+    for _ in 0..=MAX_WEIGHT_ARRAYS {
+        let len = write_blob(&desc, out)?;
+        match first_misaligned(out.get(..len).unwrap_or(&[]))? {
+            None => return Ok(len),
+            Some((k, past)) => pad_array(&mut desc, k, past),
+        }
+    }
+    Err(BlobError::Malformed)
+}
+
+/// All networks of `desc` in payload order.
+fn all_networks<'d, 'a>(desc: &'d ModelDesc<'a>) -> [Option<&'d MlpDesc<'a>>; MAX_NETWORKS] {
+    let [e0, e1] = energy_networks(&desc.energy);
+    let [d, i] = port_networks(&desc.dissipation, &desc.input);
+    [e0, e1, d, i]
+}
+
+/// The first aligned matrix of the blob `bytes` that does not start at a
+/// multiple of 4 bytes from the blob's start: its index in payload order
+/// and how many bytes past the multiple it starts.
+fn first_misaligned(bytes: &[u8]) -> Result<Option<(usize, usize)>, BlobError> {
+    let base = bytes.as_ptr() as usize;
+    let payload = bytes.get(HEADER_LEN..).unwrap_or(&[]);
+    let (desc, _) =
+        postcard::take_from_bytes::<ModelDesc<'_>>(payload).map_err(|_| BlobError::Malformed)?;
+    let nets = all_networks(&desc);
+    let first = aligned_arrays(&nets)
+        .map(|a| misalignment(a, base))
+        .enumerate()
+        .find(|(_, m)| *m != 0);
+    Ok(first)
+}
+
+/// Move the values of aligned matrix `k` (payload order) forward so that
+/// they no longer start `past` bytes after a multiple of 4.
+fn pad_array(desc: &mut ModelDesc<'_>, k: usize, past: usize) {
+    let target = desc
+        .networks_mut()
+        .into_iter()
+        .flatten()
+        .flat_map(|m| m.layers.iter_mut())
+        .filter_map(|l| match &mut l.weights {
+            WeightsDesc::F32Aligned(a) => Some(a),
+            _ => None,
+        })
+        .nth(k);
+    if let Some(a) = target {
+        a.pad = (a.pad + 4 - (past % 4) as u8) % 4;
+    }
+}
+
+/// One pass of [`encode`]: header, payload as `desc` holds it, CRC.
+fn write_blob(desc: &ModelDesc<'_>, out: &mut [u8]) -> Result<usize, BlobError> {
     let room = out.len() as u32;
     if out.len() < HEADER_LEN + TRAILER_LEN {
         return Err(BlobError::Truncated {
@@ -528,7 +791,13 @@ pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
     let (env, payload) = open(bytes)?;
     let (mut desc, rest) =
         postcard::take_from_bytes::<ModelDesc<'_>>(payload).map_err(|_| BlobError::Malformed)?;
-    let mut trailing = Fields { rest };
+    // Aligned weights off their alignment: malformed, reported before the
+    // trailing sections as `check_fields` reports it.
+    let base = bytes.as_ptr() as usize;
+    if !aligned_from(&all_networks(&desc), base) {
+        return Err(BlobError::Malformed);
+    }
+    let mut trailing = Fields { rest, base };
     desc.envelope = trailing.take_trailing::<TrainingEnvelope<'_>>()?;
     if !trailing.rest.is_empty() {
         return Err(BlobError::TrailingBytes);
@@ -550,6 +819,8 @@ pub fn decode(bytes: &[u8]) -> Result<ModelDesc<'_>, BlobError> {
 #[derive(Debug, Clone, Copy)]
 pub struct Fields<'a> {
     rest: &'a [u8],
+    /// Address of the blob's first byte, for the alignment check.
+    base: usize,
 }
 
 impl<'a> Fields<'a> {
@@ -577,17 +848,27 @@ impl<'a> Fields<'a> {
     }
 
     /// Read the energy field; return the format version it needs.
+    /// Aligned weights off their alignment are malformed.
     #[inline(never)]
     fn energy_version(&mut self) -> Result<u16, BlobError> {
-        Ok(energy_version(&self.take::<EnergyDesc<'a>>()?))
+        let energy = self.take::<EnergyDesc<'a>>()?;
+        if !aligned_from(&energy_networks(&energy), self.base) {
+            return Err(BlobError::Malformed);
+        }
+        Ok(energy_version(&energy))
     }
 
     /// Read the two port-term fields; return the format version they need.
+    /// Aligned weights off their alignment are malformed.
     #[inline(never)]
     fn port_version(&mut self) -> Result<u16, BlobError> {
         let dissipation = self.take::<DissipationDesc<'a>>()?;
         let input = self.take::<InputDesc<'a>>()?;
-        Ok(version_for(&dissipation, &input))
+        let nets = port_networks(&dissipation, &input);
+        if !aligned_from(&nets, self.base) {
+            return Err(BlobError::Malformed);
+        }
+        Ok(version_for(&dissipation, &input).max(weights_version(&nets)))
     }
 }
 
@@ -596,7 +877,10 @@ impl<'a> Fields<'a> {
 /// keeping the description; returns the payload's fields to read again.
 pub fn check_fields(bytes: &[u8]) -> Result<Fields<'_>, BlobError> {
     let (env, payload) = open(bytes)?;
-    let start = Fields { rest: payload };
+    let start = Fields {
+        rest: payload,
+        base: bytes.as_ptr() as usize,
+    };
     let mut f = start;
     f.skip::<u8>()?;
     f.skip::<F32Bytes<'_>>()?;

@@ -55,6 +55,7 @@ pub fn expm1(x: f32) -> f32 {
 
 /// Taylor series of `e^r - 1` to degree 9 (truncation error below 1e-10
 /// relative for |r| <= ln 2 / 2).
+#[inline(always)]
 fn expm1_series(r: f32) -> f32 {
     const C: [f32; 9] = [
         1.0,
@@ -77,20 +78,44 @@ fn expm1_series(r: f32) -> f32 {
 }
 
 /// `2^k` for `-126 <= k <= 127`, exactly, by building the exponent field.
+#[inline(always)]
 fn pow2(k: i32) -> f32 {
     let k = k.clamp(-126, 127);
     f32::from_bits(((k + 127) as u32) << 23)
 }
 
 /// Hyperbolic tangent.
+#[inline]
 pub fn tanh(x: f32) -> f32 {
     let a = x.abs();
-    if a > 9.0 {
-        // tanh(9) = 1 - 3.05e-8 rounds to 1.0 in f32.
-        return 1.0f32.copysign(x);
+    // One comparison for both exits: tanh(9) = 1 - 3.05e-8 rounds to 1.0
+    // in f32, and NaN stays NaN.
+    match a.partial_cmp(&9.0) {
+        Some(core::cmp::Ordering::Greater) => return 1.0f32.copysign(x),
+        None => return x,
+        _ => {}
     }
-    let e = expm1(2.0 * a);
+    let e = expm1_tanh(2.0 * a);
     (e / (e + 2.0)).copysign(x)
+}
+
+/// [`expm1`] for `0 <= y <= 18`, the range [`tanh`] reaches, with the same
+/// operations and bits: there `exp`'s range checks never fire and the
+/// rounding `floor(y / ln 2 + 1/2)` of a positive number equals its
+/// truncation to an integer, which is one conversion instead of
+/// `micromath`'s bit-level `floor` (`tests/activation_accuracy.rs` checks
+/// the two agree bit for bit).
+#[inline(always)]
+fn expm1_tanh(y: f32) -> f32 {
+    if y < HALF_LN2 {
+        return expm1_series(y);
+    }
+    let k = (y * INV_LN2 + 0.5) as i32;
+    let kf = k as f32;
+    let r = (y - kf * LN2_HI) - kf * LN2_LO;
+    let er = 1.0 + expm1_series(r);
+    // 0 <= k <= 26 here: 2^k without `pow2`'s clamp, the same bits.
+    er * f32::from_bits(((k + 127) as u32) << 23) - 1.0
 }
 
 /// Logistic sigmoid `1 / (1 + e^-x)`, the derivative of softplus.

@@ -5,14 +5,49 @@
 //! terms R(q), G(q) have several and are only evaluated forward; the mass
 //! factor L(q) of a mechanical model has several and is pulled back
 //! (vector-Jacobian product). `W` bounds
-//! every layer width and sizes the stack buffers.
+//! every layer width and sizes the stack buffers. Aligned f32 weights
+//! (format version 6, blob at a 4-byte-aligned address) are read in place
+//! as `&[f32]`; other f32 weights are decoded from their bytes, to the same
+//! bits.
 
 use crate::error::{BlobError, Section};
-use crate::format::{Activation, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS};
+use crate::format::{
+    Activation, AlignedF32, F32Bytes, LayerDesc, MlpDesc, WeightsDesc, MAX_LAYERS,
+};
 use crate::math;
 
+mod kernel;
 #[cfg(feature = "observer")]
 mod tangent;
+
+/// A layer's weights as the kernels read them.
+#[derive(Debug, Clone, Copy)]
+enum Weights<'a> {
+    /// f32 values in place: one load per weight.
+    Aligned(&'a [f32]),
+    /// Little-endian f32 bytes at any address (format versions 1 to 5, or
+    /// an aligned matrix of a blob placed at an unaligned address).
+    Bytes(F32Bytes<'a>),
+    /// int8 values and their per-row scales.
+    Int8 {
+        values: &'a [u8],
+        scales: F32Bytes<'a>,
+    },
+}
+
+impl<'a> Weights<'a> {
+    /// The kernels' view of validated weights.
+    fn of(desc: WeightsDesc<'a>) -> Self {
+        match desc {
+            WeightsDesc::F32Aligned(a) => match a.as_f32s() {
+                Some(w) => Self::Aligned(w),
+                None => Self::Bytes(a.values),
+            },
+            WeightsDesc::F32(w) => Self::Bytes(w),
+            WeightsDesc::Int8 { values, scales } => Self::Int8 { values, scales },
+        }
+    }
+}
 
 /// A validated layer. Widths are stored as the blob stores them (`u16`),
 /// which keeps a parsed model (and every copy of it on the stack) small.
@@ -20,7 +55,7 @@ mod tangent;
 struct Layer<'a> {
     inputs: u16,
     outputs: u16,
-    weights: WeightsDesc<'a>,
+    weights: Weights<'a>,
     bias: F32Bytes<'a>,
 }
 
@@ -93,7 +128,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
             layers[i] = Some(Layer {
                 inputs: l.inputs,
                 outputs: l.outputs,
-                weights: l.weights,
+                weights: Weights::of(l.weights),
                 bias: l.bias,
             });
             width = no;
@@ -230,7 +265,7 @@ fn check_layer(
         return Err(shape);
     }
     match l.weights {
-        WeightsDesc::F32(w) => {
+        WeightsDesc::F32(w) | WeightsDesc::F32Aligned(AlignedF32 { values: w, .. }) => {
             if w.0.len() != 4 * ni * no {
                 return Err(shape);
             }
@@ -297,7 +332,8 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
     let ni = l.ni();
     let x = &x[..ni.min(x.len())];
     match l.weights {
-        WeightsDesc::F32(w) => {
+        Weights::Aligned(w) => kernel::dense(w, ni, l.bias, x, y),
+        Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
                 let base = 4 * ni * j;
@@ -331,8 +367,8 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
             }
         }
         // Refused at validation when left out of the build.
-        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
-        WeightsDesc::Int8 { values, scales } => {
+        Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
+        Weights::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
                 let base = ni * j;
@@ -372,7 +408,8 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
     gx.iter_mut().for_each(|v| *v = 0.0);
     let no = g.len();
     match l.weights {
-        WeightsDesc::F32(w) => {
+        Weights::Aligned(w) => kernel::dense_transpose(w, ni, g, gx),
+        Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= no {
                 let base = 4 * ni * j;
@@ -400,8 +437,8 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
                 }
             }
         }
-        WeightsDesc::Int8 { .. } if !cfg!(feature = "int8") => {}
-        WeightsDesc::Int8 { values, scales } => {
+        Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
+        Weights::Int8 { values, scales } => {
             let mut j = 0;
             while j + BLOCK <= no {
                 let base = ni * j;

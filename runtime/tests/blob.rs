@@ -40,7 +40,9 @@ fn round_trip_and_zero_copy() {
     let EnergyDesc::Separable { potential, .. } = &desc.energy else {
         panic!()
     };
-    let format::WeightsDesc::F32(w) = potential.layers[0].weights else {
+    let format::WeightsDesc::F32Aligned(format::AlignedF32 { values: w, .. }) =
+        potential.layers[0].weights
+    else {
         panic!()
     };
     let range = blob.as_ptr_range();

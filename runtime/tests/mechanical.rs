@@ -52,9 +52,24 @@ fn claim_version(b: &mut [u8], v: u16) {
 #[test]
 fn mechanical_blobs_are_version_5_and_older_headers_are_refused() {
     let mut rng = XorShift64Star(11);
-    let blob = fixture(&mut rng, Method::ImplicitMidpoint, 0.01)
+    // f32 weights are aligned (version 6); int8 weights need no alignment,
+    // so an int8 mechanical blob shows the version the energy needs.
+    let f32_blob = fixture(&mut rng, Method::ImplicitMidpoint, 0.01)
         .blob()
         .unwrap();
+    assert_eq!(version(&f32_blob), format::ALIGNED_VERSION);
+    let blob = mechanical(
+        &mut rng,
+        2,
+        &[12],
+        Activation::Tanh,
+        Precision::Int8,
+        Method::ImplicitMidpoint,
+        0.01,
+        0.01,
+    )
+    .blob()
+    .unwrap();
     assert_eq!(version(&blob), format::MECHANICAL_VERSION);
     assert_eq!(format::MECHANICAL_VERSION, 5);
     assert!(M::from_bytes(&blob).is_ok());
@@ -69,7 +84,7 @@ fn mechanical_blobs_are_version_5_and_older_headers_are_refused() {
         2,
         &[8],
         Activation::Tanh,
-        Precision::F32,
+        Precision::Int8,
         Method::StormerVerlet,
         0.01,
     );

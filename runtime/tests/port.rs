@@ -297,12 +297,14 @@ fn port_networks_give_the_port_hamiltonian_field() {
 #[test]
 fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
     let mut rng = XorShift64Star(5);
+    // int8 weights keep the versions the port terms need (f32 weights are
+    // aligned, version 6, whatever else the blob holds).
     let plain = general(
         &mut rng,
         1,
         &[8],
         Activation::Tanh,
-        Precision::F32,
+        Precision::Int8,
         Method::DiscreteGradient,
         0.01,
     );
@@ -316,7 +318,7 @@ fn port_blobs_are_versioned_validated_and_refuse_explicit_methods() {
     // Port networks need version 3; a version-2 header cannot carry them.
     let networked = plain
         .clone()
-        .with_port_networks(&mut rng, 0.5, 1, 6, Precision::F32);
+        .with_port_networks(&mut rng, 0.5, 1, 6, Precision::Int8);
     let mut v3 = networked.blob().unwrap();
     assert_eq!(u16::from_le_bytes([v3[4], v3[5]]), 3);
     assert!(Model::<4, 16>::from_bytes(&v3).is_ok());

@@ -107,14 +107,18 @@ fn the_training_envelope_survives_export_and_inspect_prints_it() {
         upper: vec![0.75, 2.25],
     });
     let bytes = m.to_bytes().unwrap();
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 4);
+    // f32 weights aligned: version 6 (the envelope alone needs 4).
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
     // int8 export keeps the bounds as stored.
     let (int8, _) =
         export_checked(&m, WeightKind::Int8, &IntegratorOverrides::default(), 20, 2).unwrap();
     assert_eq!(BlobModel::from_bytes(&int8).unwrap().envelope, m.envelope);
     let r = visviva_trainer::deploy::inspect::inspect(&bytes).unwrap();
-    assert_eq!(r.format_version, 4);
+    assert_eq!(r.format_version, visviva_runtime::format::ALIGNED_VERSION);
     let rows = r.envelope.unwrap();
     let named: Vec<(&str, f32, f32)> = rows
         .iter()
@@ -127,10 +131,14 @@ fn the_training_envelope_survives_export_and_inspect_prints_it() {
         .any(|(n, b)| n == "training envelope" && *b == 19));
     let total: usize = r.sections.iter().map(|(_, b)| b).sum();
     assert_eq!(total, bytes.len());
-    // A blob without the section: version 1, no envelope rows.
+    // A blob without the section: no envelope rows (version 6 for its
+    // aligned f32 weights).
     let plain = fixture(false).to_bytes().unwrap();
     let r = visviva_trainer::deploy::inspect::inspect(&plain).unwrap();
-    assert_eq!((r.format_version, r.envelope), (1, None));
+    assert_eq!(
+        (r.format_version, r.envelope),
+        (visviva_runtime::format::ALIGNED_VERSION, None)
+    );
 }
 
 #[test]
@@ -141,8 +149,12 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     m.dissipation = Some(PortTerm::Constant(vec![0.0, 0.0, 0.3]));
     m.input = Some((1, PortTerm::Constant(vec![0.0, 1.0])));
     let bytes = m.to_bytes().unwrap();
-    // Constant port terms: format version 2 (older readers keep working).
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 2);
+    // Constant port terms need format version 2; f32 weights aligned make
+    // it 6.
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&bytes).unwrap(), m);
 
     // G(q) as a network of q: version 3, round trip exact, and int8
@@ -151,7 +163,10 @@ fn damped_driven_models_keep_their_port_terms_through_export() {
     let mut net = m.clone();
     net.input = Some((1, PortTerm::Network(mlp(&mut rng, &[1, 6, 2]))));
     let net_bytes = net.to_bytes().unwrap();
-    assert_eq!(u16::from_le_bytes([net_bytes[4], net_bytes[5]]), 3);
+    assert_eq!(
+        u16::from_le_bytes([net_bytes[4], net_bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     assert_eq!(BlobModel::from_bytes(&net_bytes).unwrap(), net);
     assert_eq!(net.parameters(), m.parameters() - 2 + (6 + 6 + 12 + 2));
     let (net_i8, r) = export_checked(

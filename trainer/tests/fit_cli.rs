@@ -165,7 +165,11 @@ fn a_fitted_blob_carries_its_training_range_widened_by_a_tenth() {
     ])
     .unwrap();
     let bytes = std::fs::read(&out).unwrap();
-    assert_eq!(u16::from_le_bytes([bytes[4], bytes[5]]), 4);
+    // f32 weights are written aligned (version 6; the envelope needs 4).
+    assert_eq!(
+        u16::from_le_bytes([bytes[4], bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     let model = Model::<8, 128>::from_bytes(&bytes).unwrap();
     let env = model.envelope().expect("a fitted blob has an envelope");
     let (mut lo, mut hi) = ([f64::INFINITY; 2], [f64::NEG_INFINITY; 2]);
@@ -235,7 +239,10 @@ fn a_fitted_blob_carries_its_training_range_widened_by_a_tenth() {
     let mut plain = visviva_trainer::deploy::blob::BlobModel::from_bytes(&bytes).unwrap();
     plain.envelope = None;
     let plain_bytes = plain.to_bytes().unwrap();
-    assert_eq!(u16::from_le_bytes([plain_bytes[4], plain_bytes[5]]), 1);
+    assert_eq!(
+        u16::from_le_bytes([plain_bytes[4], plain_bytes[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     let host = visviva_trainer::deploy::blob::HostModel::from_bytes(&plain_bytes).unwrap();
     let mut obs = ObserverRun::new(&host, settings).unwrap();
     assert_eq!(obs.envelope_source(), EnvelopeSource::Settings);

@@ -441,8 +441,10 @@ fn write_initial_weights(tools: &Tools, work: &Path, data: &Path) -> Result<Path
         |it: &mut dyn Iterator<Item = f32>| it.map(|v| v.to_string()).collect::<Vec<_>>().join(" ");
     let mut text = String::new();
     for layer in &mlp.layers {
-        let visviva_runtime::format::WeightsDesc::F32(w) = layer.weights else {
-            bail!("{}: expected f32 weights", blob.display());
+        let w = match layer.weights {
+            visviva_runtime::format::WeightsDesc::F32(w) => w,
+            visviva_runtime::format::WeightsDesc::F32Aligned(a) => a.values,
+            _ => bail!("{}: expected f32 weights", blob.display()),
         };
         let _ = writeln!(text, "{} {}", layer.outputs, layer.inputs);
         let _ = writeln!(text, "{}", join(&mut w.iter()));

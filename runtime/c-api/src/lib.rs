@@ -171,6 +171,8 @@ unsafe fn inner<'m>(model: *const VvModel) -> Result<&'m Inner, VvStatus> {
 
 /// Parse and check the blob at `blob` (`len` bytes) into `model`. The blob
 /// is not copied: it must stay unchanged for as long as `model` is used.
+/// Place it at a 4-byte-aligned address: its f32 weights are then read in
+/// place (anywhere else they are decoded byte by byte, to the same bits).
 /// On any error `model` is left uninitialised.
 ///
 /// # Safety

@@ -142,7 +142,11 @@ fn blobs_with_a_training_envelope_are_accepted_and_bad_ones_refused() {
         upper: visviva_runtime::format::F32Bytes(&upper),
     });
     let blob = visviva_blob_support::encode(&with).unwrap();
-    assert_eq!(u16::from_le_bytes([blob[4], blob[5]]), 4);
+    // f32 weights aligned: version 6 (the envelope alone needs 4).
+    assert_eq!(
+        u16::from_le_bytes([blob[4], blob[5]]),
+        visviva_runtime::format::ALIGNED_VERSION
+    );
     let (mut a, mut b) = (VvModel::new(), VvModel::new());
     assert_eq!(init(&mut a, &blob), VvStatus::Ok);
     assert_eq!(init(&mut b, &plain), VvStatus::Ok);

@@ -6,8 +6,9 @@
 //! factor network), and the forward tangent of a many-output network (the port
 //! terms L(q), G(q)). Plain loops, index-order sums, no finite differences.
 
+use super::Weights;
 use super::{Layer, Mlp};
-use crate::format::{Activation, WeightsDesc, MAX_LAYERS};
+use crate::format::{Activation, MAX_LAYERS};
 use crate::math;
 
 /// Weight (row `j`, column `i`) of a layer as the runtime evaluates it
@@ -16,8 +17,9 @@ use crate::math;
 fn weight(l: &Layer<'_>, j: usize, i: usize) -> f32 {
     let k = j * l.ni() + i;
     match l.weights {
-        WeightsDesc::F32(w) => w.get(k),
-        WeightsDesc::Int8 { values, scales } => {
+        Weights::Aligned(w) => w.get(k).copied().unwrap_or(f32::NAN),
+        Weights::Bytes(w) => w.get(k),
+        Weights::Int8 { values, scales } => {
             values.get(k).map_or(f32::NAN, |v| (*v as i8) as f32) * scales.get(j)
         }
     }

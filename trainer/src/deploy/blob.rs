@@ -6,8 +6,8 @@
 use anyhow::{anyhow, bail, Context, Result};
 use visviva_blob_support::quantize::quantize_rows;
 use visviva_runtime::format::{
-    self, Activation, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc, LayerDesc,
-    MlpDesc, ModelDesc, TrainingEnvelope, WeightsDesc,
+    self, Activation, AlignedF32, DissipationDesc, EnergyDesc, F32Bytes, InputDesc, KineticDesc,
+    LayerDesc, MlpDesc, ModelDesc, TrainingEnvelope, WeightsDesc,
 };
 use visviva_runtime::{Integrator, Model};
 
@@ -210,7 +210,9 @@ impl Mlp {
                 inputs: l.inputs as usize,
                 outputs: l.outputs as usize,
                 weights: match l.weights {
-                    WeightsDesc::F32(w) => Weights::F32(f32s(w)),
+                    WeightsDesc::F32(w) | WeightsDesc::F32Aligned(AlignedF32 { values: w, .. }) => {
+                        Weights::F32(f32s(w))
+                    }
                     WeightsDesc::Int8 { values, scales } => Weights::Int8 {
                         values: values.iter().map(|v| *v as i8).collect(),
                         scales: f32s(scales),
@@ -316,7 +318,7 @@ impl Bytes {
         let mut layers = heapless::Vec::new();
         for (l, (w, s, b)) in m.layers.iter().zip(&self.layers) {
             let weights = match l.weights {
-                Weights::F32(_) => WeightsDesc::F32(F32Bytes(w)),
+                Weights::F32(_) => WeightsDesc::F32Aligned(AlignedF32::new(w)),
                 Weights::Int8 { .. } => WeightsDesc::Int8 {
                     values: w,
                     scales: F32Bytes(s),

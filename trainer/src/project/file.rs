@@ -276,6 +276,21 @@ pub struct ExportTarget {
     /// left out of the serialized target when not set, as above.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub tolerance: Option<f32>,
+    /// For int8 weights: quantization-aware fine-tuning of the f32 fit
+    /// before rounding (`learn::qat`; default [`QAT_DEFAULT`]). Left out
+    /// of the serialized target when not set, as above.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub qat: Option<bool>,
+}
+
+/// Whether an int8 `[[export]]` without a `qat` key is fine-tuned.
+pub const QAT_DEFAULT: bool = true;
+
+impl ExportTarget {
+    /// Whether this target's blob is quantized from fine-tuned weights.
+    pub fn fine_tuned(&self) -> bool {
+        self.weights == WeightKind::Int8 && self.qat.unwrap_or(QAT_DEFAULT)
+    }
 }
 
 fn default_weights() -> WeightKind {
@@ -368,6 +383,7 @@ impl Project {
                 substeps: None,
                 max_iterations: None,
                 tolerance: None,
+                qat: None,
             }]
         } else {
             self.exports.clone()

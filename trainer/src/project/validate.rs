@@ -75,6 +75,9 @@ fn check_export(k: usize, e: &ExportTarget) -> Result<()> {
             e.name
         );
     }
+    if e.qat == Some(true) && e.weights != crate::deploy::blob::WeightKind::Int8 {
+        bail!("{table}: qat = true fine-tunes weights for int8 storage; this table stores f32 (weights = \"int8\" or drop qat)");
+    }
     export_overrides(e).check(|key| format!("{table}: {key}"))
 }
 

@@ -468,6 +468,12 @@ fn fit_summary(r: &TrainReport, parameters: usize) -> FitSummary {
 /// start of the int8 targets' quantization-aware fine-tuning.
 pub const MODEL_PARAMS: &str = "model.params.json";
 
+/// Whether an export target fine-tunes the fit's parameters (so a cached
+/// fit without [`MODEL_PARAMS`] is redone).
+fn needs_parameters(project: &Project) -> bool {
+    project.export_targets().iter().any(|t| t.fine_tuned())
+}
+
 /// What the fit stage leaves for the later stages.
 pub struct FitResult {
     /// The energy model's fit.
@@ -506,7 +512,7 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     let cached = !force
         && std::fs::read_to_string(&hash_path).ok().as_deref() == Some(fit_hash.as_str())
         && model_path.exists()
-        && out.join(MODEL_PARAMS).exists()
+        && (!needs_parameters(project) || out.join(MODEL_PARAMS).exists())
         && (!project.fit.baseline || baseline_path.exists());
     if let Some((mut fit, mut baseline_fit)) = cached
         .then(|| read_json::<(FitSummary, Option<FitSummary>)>(&fit_path))

@@ -143,6 +143,10 @@ mod tests {
             ),
             ("[[export]]\nname = \"model\"\n", "name = \"model\""),
             (
+                "[[export]]\nname = \"a\"\nqat = true\n",
+                "'a' (table 1): qat = true fine-tunes weights for int8 storage",
+            ),
+            (
                 "[device]\ncontrol_period_s = -0.001\n",
                 "[device] control_period_s",
             ),

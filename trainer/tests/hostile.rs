@@ -430,7 +430,7 @@ fn class7_out_never_holds_blobs_of_another_model() {
     let left: Vec<String> = cli_support::snapshot_names(&d.join("out"));
     assert_eq!(
         left,
-        ["fit.json", "fit.sha256", "model.vvb"],
+        ["fit.json", "fit.sha256", "model.params.json", "model.vvb"],
         "out/ after the refused export"
     );
 }

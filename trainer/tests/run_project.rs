@@ -110,7 +110,7 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
     // Edit only the export section: the fit is reused, the blob redone.
     let edited = PROJECT.replace(
         "name = \"tiny-f32\"",
-        "name = \"tiny-int8\"\nweights = \"int8\"",
+        "name = \"tiny-int8\"\nweights = \"int8\"\nqat = true",
     );
     std::fs::write(p.join("visviva.toml"), edited).unwrap();
     let o = visviva(&["run", "--quiet"], p);
@@ -120,6 +120,16 @@ fn report_matches_json_and_reruns_reuse_the_fit() {
         serde_json::from_slice(&std::fs::read(p.join("out/report.json")).unwrap()).unwrap();
     assert_eq!(json["fit"]["reused"], true);
     assert_eq!(json["devices"][0]["export"]["weights"], "int8");
+    // The int8 blob was quantized after quantization-aware fine-tuning of
+    // the reused fit's parameters; the export says so.
+    let qat = &json["devices"][0]["export"]["qat"];
+    assert_eq!(qat["steps"], visviva_trainer::learn::qat::STEPS);
+    let rounded = qat["loss_rounded"].as_f64().unwrap();
+    let tuned = qat["loss_fine_tuned"].as_f64().unwrap();
+    assert!(tuned <= rounded && tuned.is_finite(), "{qat}");
+    assert!(
+        String::from_utf8_lossy(&o.stdout).contains("quantization-aware fine-tuning: 300 steps")
+    );
     // The second run compares itself with the first: the same fit, so the
     // state error is unchanged; the page shows the block, tagged.
     let change = &json["change"];

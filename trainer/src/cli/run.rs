@@ -169,12 +169,28 @@ fn export_step(
             d.export.max_state_deviation,
             if d.budget.pass { "pass" } else { "FAIL" }
         );
+        if let Some(q) = &d.export.qat {
+            println!("        {}", qat_line(q));
+        }
         for a in &d.budget.advice {
             println!("        {a}");
         }
         println!("        {}", held_out_line(&d.held_out));
     }
     Ok(exported.into_iter().map(|e| e.device).collect())
+}
+
+/// What the quantization-aware fine-tuning of an int8 blob did.
+fn qat_line(q: &crate::learn::qat::QatSummary) -> String {
+    let outcome = if q.kept {
+        "fine-tuned weights quantized"
+    } else {
+        "not better: the f32 fit's weights quantized"
+    };
+    format!(
+        "quantization-aware fine-tuning: {} steps (lr {:e}, seed {}), validation loss rounded f32 fit {:.3e} -> fine-tuned {:.3e} (f32 {:.3e}); {outcome}",
+        q.steps, q.learning_rate, q.seed, q.loss_rounded, q.loss_fine_tuned, q.loss_f32
+    )
 }
 
 /// An exported blob on the held-out logs, for the export lines.

@@ -52,6 +52,10 @@ pub struct ExportReport {
     /// range (the largest iteration count its steps needed).
     #[serde(default)]
     pub convergence: Option<ConvergenceProof>,
+    /// For an int8 blob quantized from quantization-aware fine-tuned
+    /// weights: what the fine-tuning did (`learn::qat`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub qat: Option<crate::learn::qat::QatSummary>,
 }
 
 /// What the check rollouts of an export are: `steps` steps from `states`
@@ -79,8 +83,20 @@ pub fn export(
     ia: &IntegratorOverrides,
     check: &ExportCheck<'_>,
 ) -> Result<(Vec<u8>, ExportReport)> {
+    export_from(src, src, kind, ia, check)
+}
+
+/// [`export`] of `weights` (the same model with other weights, e.g.
+/// fine-tuned for int8), measured against the f32 model `src`.
+pub fn export_from(
+    src: &BlobModel,
+    weights: &BlobModel,
+    kind: WeightKind,
+    ia: &IntegratorOverrides,
+    check: &ExportCheck<'_>,
+) -> Result<(Vec<u8>, ExportReport)> {
     let (steps, states) = (check.steps, check.states);
-    let mut out = src.converted(kind);
+    let mut out = weights.converted(kind);
     out.integrator = ia.apply(src.integrator);
     let bytes = out.to_bytes()?;
     let reference_bytes = BlobModel {
@@ -120,6 +136,7 @@ pub fn export(
         energy_drift_exported: drift_exp,
         failed_rollouts: failed,
         convergence,
+        qat: None,
     };
     Ok((bytes, report))
 }

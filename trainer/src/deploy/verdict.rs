@@ -83,6 +83,7 @@ mod tests {
             energy_drift_exported: drift,
             failed_rollouts: failed,
             convergence: None,
+            qat: None,
         }
     }
 

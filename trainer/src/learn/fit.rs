@@ -574,7 +574,7 @@ struct RunPlan {
 }
 
 /// [`run`] on normalized arrays (rows of inputs `z` and targets `t`).
-fn run_arrays<O: Objective>(
+pub(crate) fn run_arrays<O: Objective>(
     obj: &O,
     params: Vec<f32>,
     z: Array2<f32>,

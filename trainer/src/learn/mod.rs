@@ -12,6 +12,7 @@ pub mod net;
 pub mod optim;
 pub mod pool;
 pub mod port;
+pub mod qat;
 pub mod rollout_loss;
 pub(crate) mod rows;
 pub mod stage;

@@ -20,7 +20,7 @@ use crate::data::log::{split_owned, LoadOptions};
 use crate::deploy::blob::{BlobModel, HostModel};
 use crate::deploy::budget::{budget_verdict, Choices};
 use crate::deploy::convergence::TrainingRange;
-use crate::deploy::export::{export as export_blob, ExportCheck, ExportReport};
+use crate::deploy::export::{export as export_blob, export_from, ExportCheck, ExportReport};
 use crate::deploy::inspect::inspect;
 use crate::deploy::rollout::{csv_row_bytes, sample_states, stream_csv};
 use crate::evidence::charts::{charts, driven_charts, loss_chart, model_label, HistoryFile};
@@ -37,6 +37,7 @@ use crate::evidence::units::Units;
 use crate::interrupt::Watch;
 use crate::learn::fit::{FitSettings, TrainReport};
 use crate::learn::hnn::BaselineModel;
+use crate::learn::qat;
 use crate::learn::stage::{
     check_method, fit_stage_mode, interrupt_flag, plan_model, stop_text, ModelPlan, SettingNames,
 };
@@ -517,6 +518,16 @@ fn fit_summary(r: &TrainReport, parameters: usize) -> FitSummary {
     }
 }
 
+/// The fitted model's parameters in `out/` (the trainer's own JSON), the
+/// start of the int8 targets' quantization-aware fine-tuning.
+pub const MODEL_PARAMS: &str = "model.params.json";
+
+/// Whether an export target fine-tunes the fit's parameters (so a cached
+/// fit without [`MODEL_PARAMS`] is redone).
+fn needs_parameters(project: &Project) -> bool {
+    project.export_targets().iter().any(|t| t.fine_tuned())
+}
+
 /// What the fit stage leaves for the later stages.
 pub struct FitResult {
     /// The energy model's fit.
@@ -555,6 +566,7 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     let cached = !force
         && std::fs::read_to_string(&hash_path).ok().as_deref() == Some(fit_hash.as_str())
         && model_path.exists()
+        && (!needs_parameters(project) || out.join(MODEL_PARAMS).exists())
         && (!project.fit.baseline || baseline_path.exists());
     if let Some((mut fit, mut baseline_fit)) = cached
         .then(|| read_json::<(FitSummary, Option<FitSummary>)>(&fit_path))
@@ -585,6 +597,7 @@ pub fn fit(prep: &Prepared, force: bool, quiet: bool) -> Result<FitResult> {
     let spared: Vec<&Path> = inputs.iter().map(PathBuf::as_path).collect();
     crate::project::stale::remove_derived(out, &spared)?;
     write_atomic(&model_path, &done.blob)?;
+    write_json(&out.join(MODEL_PARAMS), &done.model.model)?;
     let m = &done.model.model;
     let params = m.params.len() + m.port.as_ref().map_or(0, |p| p.params.len());
     let fit = fit_summary(&done.model.report, params);
@@ -841,7 +854,16 @@ fn export_target(
     let overrides = crate::project::validate::export_overrides(t);
     let blob_path = out.join(format!("{}.vvb", t.name));
     let meta_path = out.join(format!("{}.export.json", t.name));
-    let target_json = serde_json::to_vec(&(t, &check.golden_steps, &check.golden_states))?;
+    let mut target_json = serde_json::to_vec(&(t, &check.golden_steps, &check.golden_states))?;
+    if t.fine_tuned() {
+        let q = (
+            qat::STEPS,
+            qat::LEARNING_RATE,
+            qat::BATCH,
+            prep.project.fit.threads,
+        );
+        target_json.extend(serde_json::to_vec(&q)?);
+    }
     let hash = sha(&[&checked.model_bytes, &target_json]);
     let hash_path = out.join(format!("{}.sha256", t.name));
     let reuse = !force
@@ -861,7 +883,7 @@ fn export_target(
                 range: &range,
                 key: &|k: &str| k.to_string(),
             };
-            let (bytes, r) = export_blob(&checked.src, t.weights, &overrides, &export_check)
+            let (bytes, r) = export_weights(prep, checked, t, &overrides, &export_check)
                 .with_context(|| format!("[[export]] '{}'", t.name))?;
             crate::deploy::verdict::refuse_untrusted(&r, prep.port())
                 .with_context(|| format!("[[export]] '{}'", t.name))?;
@@ -908,6 +930,41 @@ fn export_target(
         held_out,
     };
     Ok(Exported { device, reused })
+}
+
+/// Export `t`: an int8 target with quantization-aware fine-tuning is
+/// quantized from the fit's parameters fine-tuned on the training logs
+/// (`learn::qat`), every other from the fitted model as it is; measured
+/// against the fitted f32 model either way.
+fn export_weights(
+    prep: &Prepared,
+    checked: &Checked,
+    t: &crate::project::file::ExportTarget,
+    overrides: &crate::deploy::integrator::IntegratorOverrides,
+    export_check: &ExportCheck<'_>,
+) -> Result<(Vec<u8>, ExportReport)> {
+    if !t.fine_tuned() {
+        return export_blob(&checked.src, t.weights, overrides, export_check);
+    }
+    let path = prep.out.join(MODEL_PARAMS);
+    let model: crate::learn::hnn::EnergyModel = read_json(&path)
+        .with_context(|| format!("{}: cannot read the fitted parameters", path.display()))?;
+    let mut fitted = crate::deploy::fitted_blob::blob_model(&model, checked.src.integrator);
+    fitted.envelope = checked.src.envelope.clone();
+    if fitted != checked.src {
+        bail!(
+            "{} does not hold the parameters of out/model.vvb; run with --force to refit",
+            path.display()
+        );
+    }
+    let settings = qat::QatSettings::new(prep.project.fit.seed, prep.project.fit.threads);
+    let (tuned, summary) =
+        qat::fine_tune(&model, &prep.logs.train, Some(&prep.logs.val), &settings)?;
+    let mut weights = crate::deploy::fitted_blob::blob_model(&tuned, checked.src.integrator);
+    weights.envelope = checked.src.envelope.clone();
+    let (bytes, mut r) = export_from(&checked.src, &weights, t.weights, overrides, export_check)?;
+    r.qat = Some(summary);
+    Ok((bytes, r))
 }
 
 /// The golden rollouts of one blob from states spread over half the

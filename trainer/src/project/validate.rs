@@ -84,6 +84,9 @@ fn check_export(k: usize, e: &ExportTarget) -> Result<()> {
             e.name
         );
     }
+    if e.qat == Some(true) && e.weights != crate::deploy::blob::WeightKind::Int8 {
+        bail!("{table}: qat = true fine-tunes weights for int8 storage; this table stores f32 (weights = \"int8\" or drop qat)");
+    }
     export_overrides(e).check(|key| format!("{table}: {key}"))
 }
 
@@ -148,6 +151,10 @@ mod tests {
                 "'a' (table 1): tolerance = 0",
             ),
             ("[[export]]\nname = \"model\"\n", "name = \"model\""),
+            (
+                "[[export]]\nname = \"a\"\nqat = true\n",
+                "'a' (table 1): qat = true fine-tunes weights for int8 storage",
+            ),
             (
                 "[device]\ncontrol_period_s = -0.001\n",
                 "[device] control_period_s",

@@ -4,9 +4,11 @@
 //! against blobs of the build before it (workers spawned per optimizer
 //! step, same row partition and reduction order); the activation's change
 //! to the runtime's tanh, evaluated branch-free over whole rows
-//! (`learn/activation.rs`), moved every weight in its last bits, so the
-//! blobs in `fixtures/threads/` were rewritten once by that build (same
-//! pool). They come from the log beside them (the textbook mass-spring
+//! (`learn/activation.rs`), and the products' move to the `gemm` crate
+//! (`learn/matmul.rs`) moved every weight in its last bits, so the blobs in
+//! `fixtures/threads/` were rewritten once by that build (same pool, on an
+//! x86_64 CPU with AVX2 and FMA: like matrixmultiply before, gemm picks its
+//! kernel by the CPU, so the bits are those of such a CPU). They come from the log beside them (the textbook mass-spring
 //! solution q = r cos(t + phi), p = -r sin(t + phi), dq/dt = p,
 //! dp/dt = -q, 10 trajectories x 30 samples) with the command line of
 //! `fit_blob`, compared without the training envelope.

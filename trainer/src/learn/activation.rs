@@ -53,33 +53,11 @@ impl Activation {
 }
 
 /// The tanh row loop compiled for the widest vector unit the CPU has
-/// (checked at run time). Only `+ - * /`, comparisons, selects and bit
-/// operations, which round the same at every vector width, so every
-/// variant gives the same bits.
+/// (picked at run time by the `multiversion` crate, so no `unsafe` here).
+/// Only `+ - * /`, comparisons, selects and bit operations, which round the
+/// same at every vector width, so every variant gives the same bits.
+#[multiversion::multiversion(targets("x86_64+avx512f", "x86_64+avx2"))]
 fn tanh_rows(z: &[f32], v: &mut [f32], d1: &mut [f32], d2: &mut [f32]) {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::arch::is_x86_feature_detected!("avx512f") {
-            // SAFETY: the CPU has AVX-512F, checked just above.
-            return unsafe { tanh_rows_avx512(z, v, d1, d2) };
-        }
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the CPU has AVX2, checked just above.
-            return unsafe { tanh_rows_avx2(z, v, d1, d2) };
-        }
-    }
-    rows_with(z, v, d1, d2, tanh_and_derivatives)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-fn tanh_rows_avx512(z: &[f32], v: &mut [f32], d1: &mut [f32], d2: &mut [f32]) {
-    rows_with(z, v, d1, d2, tanh_and_derivatives)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-fn tanh_rows_avx2(z: &[f32], v: &mut [f32], d1: &mut [f32], d2: &mut [f32]) {
     rows_with(z, v, d1, d2, tanh_and_derivatives)
 }
 

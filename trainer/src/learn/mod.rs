@@ -5,7 +5,6 @@ pub mod activation;
 pub mod auto;
 pub mod fit;
 pub mod hnn;
-pub mod matmul;
 pub mod mechanical;
 pub mod mode;
 pub mod net;

@@ -23,7 +23,7 @@
 //!   + d_k (.) zdot_{k-1} (.) s''(z_{k-1});
 //! * dl/dW_k = zbar_k^T a_k + g_k^T adot_k, dl/db_k = sum over rows of zbar_k.
 
-use super::matmul::mat_mul;
+use ndarray::linalg::general_mat_mul;
 use ndarray::{Array2, ArrayView1, ArrayView2, ArrayViewMut1, ArrayViewMut2, Axis};
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
@@ -186,7 +186,7 @@ pub fn forward(shape: &MlpShape, p: &[f32], x: ArrayView2<'_, f32>, work: &mut M
     for k in 0..l {
         let (w, b) = shape.layer(p, k);
         let z = &mut work.z[k];
-        mat_mul(1.0, &work.a[k], &w.t(), 0.0, z);
+        general_mat_mul(1.0, &work.a[k], &w.t(), 0.0, z);
         *z += &b;
         if k + 1 < l {
             shape.activation.eval_rows(
@@ -234,7 +234,7 @@ fn input_pullback(shape: &MlpShape, p: &[f32], work: &mut MlpWork) {
     let l = shape.layers();
     for k in (0..l).rev() {
         let (w, _) = shape.layer(p, k);
-        mat_mul(1.0, &work.g[k], &w, 0.0, &mut work.d[k]);
+        general_mat_mul(1.0, &work.g[k], &w, 0.0, &mut work.d[k]);
         if k > 0 {
             ndarray::Zip::from(&mut work.g[k - 1])
                 .and(&work.d[k])
@@ -259,7 +259,7 @@ pub fn backprop_input_gradient_loss(
     work.adot[0].assign(&r);
     for k in 0..l {
         let (w, _) = shape.layer(p, k);
-        mat_mul(1.0, &work.adot[k], &w.t(), 0.0, &mut work.zdot[k]);
+        general_mat_mul(1.0, &work.adot[k], &w.t(), 0.0, &mut work.zdot[k]);
         if k + 1 < l {
             ndarray::Zip::from(&mut work.adot[k + 1])
                 .and(&work.zdot[k])
@@ -274,16 +274,16 @@ pub fn backprop_input_gradient_loss(
         {
             let (mut gw, mut gb) = shape.layer_mut(grad, k);
             if k + 1 < l {
-                mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
+                general_mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
                 gb += &work.zbar[k].sum_axis(Axis(0));
             }
-            mat_mul(1.0, &work.g[k].t(), &work.adot[k], 1.0, &mut gw);
+            general_mat_mul(1.0, &work.g[k].t(), &work.adot[k], 1.0, &mut gw);
         }
         if k > 0 {
             let (lo, hi) = work.zbar.split_at_mut(k);
             let zb_prev = &mut lo[k - 1];
             if k + 1 < l {
-                mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
+                general_mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
             } else {
                 work.abar[k].fill(0.0);
             }
@@ -313,12 +313,12 @@ pub fn backprop_output_loss(
         let (w, _) = shape.layer(p, k);
         {
             let (mut gw, mut gb) = shape.layer_mut(grad, k);
-            mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
+            general_mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
             gb += &work.zbar[k].sum_axis(Axis(0));
         }
         if k > 0 {
             let (lo, hi) = work.zbar.split_at_mut(k);
-            mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
+            general_mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
             ndarray::Zip::from(&mut lo[k - 1])
                 .and(&work.abar[k])
                 .and(&work.d1[k - 1])

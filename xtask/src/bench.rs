@@ -304,8 +304,10 @@ struct SharedArgs {
 }
 
 impl SharedArgs {
-    /// The flags every implementation takes alike.
-    fn common(&self) -> Vec<String> {
+    /// The flags every implementation takes alike; only the name of the
+    /// step count differs (`visviva fit --optimizer-steps`, the reference
+    /// scripts' `--steps`).
+    fn common(&self, steps_flag: &str) -> Vec<String> {
         [
             "--data",
             &self.data,
@@ -313,7 +315,7 @@ impl SharedArgs {
             &self.hidden,
             "--batch",
             &self.batch,
-            "--optimizer-steps",
+            steps_flag,
             &self.steps,
             "--lr",
             LR,
@@ -331,7 +333,7 @@ impl SharedArgs {
 fn visviva_args(work: &Path, a: &SharedArgs) -> Vec<String> {
     let model = work.join("visviva-model.vvb").display().to_string();
     let mut args = vec!["fit".to_string()];
-    args.extend(a.common());
+    args.extend(a.common("--optimizer-steps"));
     args.extend(
         [
             "--val-fraction",
@@ -356,7 +358,7 @@ fn reference_args(root: &Path, imp: Impl, a: &SharedArgs, init: Option<&Path>) -
         .display()
         .to_string();
     let mut args = vec![script];
-    args.extend(a.common());
+    args.extend(a.common("--steps"));
     if let Some(init) = init {
         args.push("--init".into());
         args.push(init.display().to_string());

@@ -1,6 +1,7 @@
 //! Learning: the networks, the energy model and its port terms, the plain
 //! baseline, the optimizer and the training loop.
 
+pub mod activation;
 pub mod auto;
 pub mod fit;
 pub mod hnn;

@@ -29,47 +29,7 @@ use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
-/// Hidden-layer activations usable in energy networks (smooth ones only).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
-pub enum Activation {
-    /// Hyperbolic tangent.
-    Tanh,
-    /// Softplus ln(1 + e^x).
-    Softplus,
-}
-
-impl Activation {
-    /// The runtime's matching activation.
-    pub fn to_runtime(self) -> visviva_runtime::format::Activation {
-        match self {
-            Self::Tanh => visviva_runtime::format::Activation::Tanh,
-            Self::Softplus => visviva_runtime::format::Activation::Softplus,
-        }
-    }
-
-    /// Value, first and second derivative at `a`.
-    #[inline]
-    pub fn eval(self, a: f32) -> (f32, f32, f32) {
-        match self {
-            Self::Tanh => {
-                let t = a.tanh();
-                let d = 1.0 - t * t;
-                (t, d, -2.0 * t * d)
-            }
-            Self::Softplus => {
-                // max(a, 0) + ln(1 + e^-|a|): no overflow for large |a|.
-                let v = a.max(0.0) + (-a.abs()).exp().ln_1p();
-                let s = if a >= 0.0 {
-                    1.0 / (1.0 + (-a).exp())
-                } else {
-                    let e = a.exp();
-                    e / (1.0 + e)
-                };
-                (v, s, s * (1.0 - s))
-            }
-        }
-    }
-}
+pub use super::activation::Activation;
 
 /// Layer widths and activation of one network; the parameters are separate.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -229,19 +189,24 @@ pub fn forward(shape: &MlpShape, p: &[f32], x: ArrayView2<'_, f32>, work: &mut M
         general_mat_mul(1.0, &work.a[k], &w.t(), 0.0, z);
         *z += &b;
         if k + 1 < l {
-            let act = shape.activation;
-            ndarray::Zip::from(&mut work.a[k + 1])
-                .and(&mut work.d1[k])
-                .and(&mut work.d2[k])
-                .and(&*z)
-                .for_each(|a, d1, d2, &zz| {
-                    let (v, s1, s2) = act.eval(zz);
-                    *a = v;
-                    *d1 = s1;
-                    *d2 = s2;
-                });
+            shape.activation.eval_rows(
+                standard(z),
+                standard_mut(&mut work.a[k + 1]),
+                standard_mut(&mut work.d1[k]),
+                standard_mut(&mut work.d2[k]),
+            );
         }
     }
+}
+
+/// The elements of a work buffer (always in standard layout) as one slice.
+fn standard(m: &Array2<f32>) -> &[f32] {
+    m.as_slice().expect("work buffers are in standard layout")
+}
+
+fn standard_mut(m: &mut Array2<f32>) -> &mut [f32] {
+    m.as_slice_mut()
+        .expect("work buffers are in standard layout")
 }
 
 /// Gradient of the scalar output with respect to the input, for the rows of

@@ -162,6 +162,7 @@ impl<'a, const W: usize> Mechanical<'a, W> {
     ///   with the seed moving at da_ij = (dz_p,i u_j + z_p,i du_j) s_ij +
     ///   z_p,i u_j ds_ij, where dL_ij = s_ij draw_ij, ds_ii = s_ii (1 - s_ii)
     ///   draw_ii (0 off the diagonal) and draw = J dz_q.
+    ///
     /// Kept out of line: its buffers then occupy the stack only while a
     /// mechanical model is differentiated, not in every caller's frame.
     #[cfg(feature = "observer")]

@@ -9,7 +9,7 @@ use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use visviva_trainer::learn::hnn::{EnergyArch, HnnObjective, HnnWork};
-use visviva_trainer::learn::inertia_loss::{Chunk, InertiaLoss};
+use visviva_trainer::learn::inertia_loss::{Batch, Chunk, InertiaLoss};
 use visviva_trainer::learn::net::{Activation, MlpShape};
 
 fn setup(act: Activation) -> (InertiaLoss, Vec<Chunk>, Vec<f32>) {
@@ -41,8 +41,8 @@ fn setup(act: Activation) -> (InertiaLoss, Vec<Chunk>, Vec<f32>) {
 }
 
 fn loss_at(loss: &InertiaLoss, p: &[f32], chunks: &[Chunk]) -> f64 {
-    let refs: Vec<&Chunk> = chunks.iter().collect();
-    loss.loss(p, &refs, &mut HnnWork::default(), None)
+    let batch = Batch::of(&chunks.iter().collect::<Vec<_>>());
+    loss.loss(p, &batch, &mut HnnWork::default(), None)
 }
 
 #[test]
@@ -50,9 +50,9 @@ fn inertia_loss_gradient_matches_central_differences() {
     for act in [Activation::Tanh, Activation::Softplus] {
         let (loss, chunks, p) = setup(act);
         assert_eq!(p.len(), loss.param_count());
-        let refs: Vec<&Chunk> = chunks.iter().collect();
+        let batch = Batch::of(&chunks.iter().collect::<Vec<_>>());
         let mut grad = vec![0.0f32; p.len()];
-        loss.loss(&p, &refs, &mut HnnWork::default(), Some(&mut grad));
+        loss.loss(&p, &batch, &mut HnnWork::default(), Some(&mut grad));
         let mut rng = ChaCha8Rng::seed_from_u64(9);
         for trial in 0..4 {
             let d: Vec<f32> = (0..p.len()).map(|_| rng.random_range(-1.0..1.0)).collect();

@@ -24,7 +24,7 @@ use crate::data::dataset::{Dataset, Trajectory};
 use crate::data::derivative::SavitzkyGolay;
 use crate::learn::fit::ArchChoice;
 use crate::learn::hnn::{EnergyArch, HnnObjective, HnnWork, Normalization};
-use crate::learn::inertia_loss::{Chunk, InertiaLoss};
+use crate::learn::inertia_loss::{Batch, Chunk, InertiaLoss};
 use crate::learn::mechanical;
 use crate::learn::net::{self, MlpWork};
 use crate::learn::optim::{clip_global_norm, Adam, Schedule};
@@ -151,15 +151,17 @@ pub fn fit_inertia(
         window,
         inputs: train.inputs,
     };
-    let chunks = chunks(train, &norm, &input_scale, window)?;
+    let train_batches = training_batches(train, &norm, &input_scale, window, settings.batch)?;
     let held_out = match val {
-        Some(v) if !v.trajectories.is_empty() => Some(chunks_of(v, &norm, &input_scale, window)?),
+        Some(v) if !v.trajectories.is_empty() => {
+            Some(batches(v, &norm, &input_scale, window, settings.batch))
+        }
         _ => None,
     };
     let mut params = arch.init(n, settings.seed);
     params.extend(std::iter::repeat_n(0.0, n * (train.inputs + 1)));
     let (params, train_ratio, held_out_ratio) =
-        optimize(&loss, params, &chunks, held_out.as_deref(), settings)?;
+        optimize(&loss, params, &train_batches, held_out.as_deref(), settings)?;
     let mut model = InertiaModel {
         loss,
         params,
@@ -230,9 +232,16 @@ fn input_scales(ds: &Dataset) -> Vec<f32> {
         .collect()
 }
 
-/// The training chunks; an error when no trajectory holds one window.
-fn chunks(ds: &Dataset, norm: &Normalization, us: &[f32], window: usize) -> Result<Vec<Chunk>> {
-    let out = chunks_of(ds, norm, us, window)?;
+/// The training mini-batches; an error when no trajectory holds one
+/// window.
+fn training_batches(
+    ds: &Dataset,
+    norm: &Normalization,
+    us: &[f32],
+    window: usize,
+    rows: usize,
+) -> Result<Vec<Batch>> {
+    let out = batches(ds, norm, us, window, rows);
     if out.is_empty() {
         bail!(
             "learning the mass matrix needs trajectories of at least {window} samples \
@@ -242,22 +251,40 @@ fn chunks(ds: &Dataset, norm: &Normalization, us: &[f32], window: usize) -> Resu
     Ok(out)
 }
 
-/// Chunks of `CHUNK_WINDOWS` windows, overlapping by one window less one
-/// sample so every window lies in exactly one chunk.
-fn chunks_of(ds: &Dataset, norm: &Normalization, us: &[f32], window: usize) -> Result<Vec<Chunk>> {
+/// Chunks of `CHUNK_WINDOWS` windows (overlapping by one window less one
+/// sample, so every window lies in exactly one chunk), stacked into
+/// mini-batches of at least `rows` samples.
+fn batches(
+    ds: &Dataset,
+    norm: &Normalization,
+    us: &[f32],
+    window: usize,
+    rows: usize,
+) -> Vec<Batch> {
     let len = window * CHUNK_WINDOWS;
     let stride = len - (window - 1);
     let mut out = Vec::new();
+    let mut pending: Vec<Chunk> = Vec::new();
+    let mut filled = 0;
     for t in &ds.trajectories {
-        let rows = t.t.len();
+        let samples = t.t.len();
         let mut start = 0;
-        while start + window <= rows {
-            let end = (start + len).min(rows);
-            out.push(chunk(t, norm, us, start..end));
+        while start + window <= samples {
+            let end = (start + len).min(samples);
+            let c = chunk(t, norm, us, start..end);
+            filled += c.z.nrows();
+            pending.push(c);
+            if filled >= rows.max(1) {
+                out.push(Batch::of(&pending.iter().collect::<Vec<_>>()));
+                (pending, filled) = (Vec::new(), 0);
+            }
             start += stride;
         }
     }
-    Ok(out)
+    if !pending.is_empty() {
+        out.push(Batch::of(&pending.iter().collect::<Vec<_>>()));
+    }
+    out
 }
 
 /// One chunk: normalized states and inputs, and the steps.
@@ -287,12 +314,11 @@ fn chunk(t: &Trajectory, norm: &Normalization, us: &[f32], rows: std::ops::Range
 fn optimize(
     loss: &InertiaLoss,
     mut params: Vec<f32>,
-    train: &[Chunk],
-    held_out: Option<&[Chunk]>,
+    train: &[Batch],
+    held_out: Option<&[Batch]>,
     settings: &InertiaSettings,
 ) -> Result<(Vec<f32>, f64, Option<f64>)> {
-    let batches = batches(train, settings.batch);
-    let total = settings.epochs.max(1) * batches.len();
+    let total = settings.epochs.max(1) * train.len();
     let schedule = Schedule {
         peak: settings.lr,
         warmup: (total / 50).max(1),
@@ -304,14 +330,13 @@ fn optimize(
     let mut work = HnnWork::default();
     let mut grad = vec![0.0f32; params.len()];
     let mut best = (f64::INFINITY, params.clone());
-    let mut order: Vec<usize> = (0..batches.len()).collect();
+    let mut order: Vec<usize> = (0..train.len()).collect();
     let mut step = 0;
     for _ in 0..settings.epochs.max(1) {
         order.shuffle(&mut rng);
         for &b in &order {
-            let refs: Vec<&Chunk> = batches[b].iter().map(|&c| &train[c]).collect();
             grad.fill(0.0);
-            let l = loss.loss(&params, &refs, &mut work, Some(&mut grad));
+            let l = loss.loss(&params, &train[b], &mut work, Some(&mut grad));
             if !l.is_finite() {
                 bail!("learning the mass matrix diverged (loss {l}) at step {step}");
             }
@@ -332,25 +357,13 @@ fn optimize(
     Ok((params, train_ratio, held))
 }
 
-/// Chunk indices grouped into mini-batches of at least `rows` samples.
-fn batches(chunks: &[Chunk], rows: usize) -> Vec<Vec<usize>> {
-    let mut out = vec![Vec::new()];
-    let mut filled = 0;
-    for (i, c) in chunks.iter().enumerate() {
-        if filled >= rows.max(1) {
-            out.push(Vec::new());
-            filled = 0;
-        }
-        out.last_mut().expect("one batch").push(i);
-        filled += c.z.nrows();
-    }
-    out
-}
-
-/// The loss over all `chunks` as one batch.
-fn mean_loss(loss: &InertiaLoss, params: &[f32], chunks: &[Chunk], work: &mut HnnWork) -> f64 {
-    let refs: Vec<&Chunk> = chunks.iter().collect();
-    loss.loss(params, &refs, work, None)
+/// The loss over all `batches`: sum |r|^2 over sum |dp|^2 of them all.
+fn mean_loss(loss: &InertiaLoss, params: &[f32], batches: &[Batch], work: &mut HnnWork) -> f64 {
+    let (num, den) = batches.iter().fold((0.0, 0.0), |acc, b| {
+        let (n, d) = loss.sums_of(params, b, work);
+        (acc.0 + n, acc.1 + d)
+    });
+    num / den.max(1e-30)
 }
 
 impl InertiaModel {

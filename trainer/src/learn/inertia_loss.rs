@@ -30,7 +30,9 @@
 //! its trapezoid weight (minus sign), and from pi and phi the energy
 //! gradient's cotangent that [`HnnObjective::backprop`] takes.
 
-use ndarray::{s, Array2, ArrayView2};
+use std::ops::Range;
+
+use ndarray::{concatenate, s, Array2, ArrayView2, Axis};
 
 use crate::learn::hnn::{HnnObjective, HnnWork};
 
@@ -43,6 +45,40 @@ pub struct Chunk {
     pub u: Array2<f32>,
     /// Step before each sample (s); `h[0]` unused.
     pub h: Vec<f32>,
+}
+
+/// Chunks stacked for one pass of the networks over all their rows; every
+/// window stays inside its own chunk (`segments`).
+#[derive(Debug, Clone)]
+pub struct Batch {
+    /// The chunks' rows, one after another.
+    pub rows: Chunk,
+    /// Each chunk's rows in `rows`.
+    pub segments: Vec<Range<usize>>,
+}
+
+impl Batch {
+    /// `chunks` stacked in order.
+    pub fn of(chunks: &[&Chunk]) -> Self {
+        let mut segments = Vec::with_capacity(chunks.len());
+        let mut start = 0;
+        for c in chunks {
+            segments.push(start..start + c.z.nrows());
+            start += c.z.nrows();
+        }
+        let stack = |f: fn(&Chunk) -> ArrayView2<'_, f32>| {
+            let views: Vec<ArrayView2<'_, f32>> = chunks.iter().map(|c| f(c)).collect();
+            concatenate(Axis(0), &views).expect("chunks of one log have equal widths")
+        };
+        Self {
+            rows: Chunk {
+                z: stack(|c| c.z.view()),
+                u: stack(|c| c.u.view()),
+                h: chunks.iter().flat_map(|c| c.h.iter().copied()).collect(),
+            },
+            segments,
+        }
+    }
 }
 
 /// The loss's fixed settings.
@@ -58,7 +94,7 @@ pub struct InertiaLoss {
     pub inputs: usize,
 }
 
-/// Per-sample momentum and generalized force of one chunk.
+/// Per-sample momentum and generalized force of a batch.
 struct Terms {
     pi: Array2<f32>,
     phi: Array2<f32>,
@@ -75,27 +111,34 @@ impl InertiaLoss {
         self.objective.arch.param_count(self.dof()) + self.dof() * (self.inputs + 1)
     }
 
-    /// The loss over `chunks` (one mini-batch) and, with `grad`, its
+    /// The loss over `batch` (one mini-batch) and, with `grad`, its
     /// gradient added to `grad`.
     pub fn loss(
         &self,
         p: &[f32],
-        chunks: &[&Chunk],
+        batch: &Batch,
         work: &mut HnnWork,
         grad: Option<&mut [f32]>,
     ) -> f64 {
-        let terms: Vec<Terms> = chunks.iter().map(|c| self.terms(p, c, work)).collect();
-        let (num, den) = self.sums(chunks, &terms);
+        let terms = self.terms(p, &batch.rows, work);
+        let (num, den) = self.sums(batch, &terms);
         let den = den.max(1e-30);
         if let Some(grad) = grad {
-            for (c, t) in chunks.iter().zip(&terms) {
-                self.backprop_chunk(p, c, t, (num, den), work, grad);
-            }
+            let (c_pi, c_phi) = self.cotangents(batch, &terms, (num, den));
+            self.pull_back(p, &batch.rows, c_pi.view(), c_phi.view(), work, grad);
         }
         num / den
     }
 
-    /// pi and phi at every sample of a chunk.
+    /// Sum |r|^2 and sum |dp|^2 of `batch`, for a loss over several
+    /// batches (their ratio).
+    pub fn sums_of(&self, p: &[f32], batch: &Batch, work: &mut HnnWork) -> (f64, f64) {
+        let terms = self.terms(p, &batch.rows, work);
+        self.sums(batch, &terms)
+    }
+
+    /// pi and phi at every row; leaves the energy gradient of those rows in
+    /// `work` for [`Self::pull_back`].
     fn terms(&self, p: &[f32], c: &Chunk, work: &mut HnnWork) -> Terms {
         let n = self.dof();
         let np = self.objective.arch.param_count(n);
@@ -114,7 +157,7 @@ impl InertiaLoss {
         Terms { pi, phi }
     }
 
-    /// Residual and momentum change of the window starting at `k`.
+    /// Residual and momentum change of the window starting at row `k`.
     fn window(&self, c: &Chunk, t: &Terms, k: usize, i: usize) -> (f64, f64) {
         let last = k + self.window - 1;
         let dp = (t.pi[[last, i]] - t.pi[[k, i]]) as f64;
@@ -124,40 +167,39 @@ impl InertiaLoss {
         (dp - integral, dp)
     }
 
-    /// Window starts of a chunk.
-    fn starts(&self, c: &Chunk) -> std::ops::Range<usize> {
-        0..(c.z.nrows() + 1).saturating_sub(self.window)
+    /// Window starts of every segment of a batch.
+    fn starts<'a>(&'a self, batch: &'a Batch) -> impl Iterator<Item = usize> + 'a {
+        batch
+            .segments
+            .iter()
+            .flat_map(|seg| seg.start..(seg.end + 1).saturating_sub(self.window).max(seg.start))
     }
 
     /// Sum r^2 and sum dp^2 over every window and coordinate.
-    fn sums(&self, chunks: &[&Chunk], terms: &[Terms]) -> (f64, f64) {
+    fn sums(&self, batch: &Batch, terms: &Terms) -> (f64, f64) {
         let (mut num, mut den) = (0.0, 0.0);
-        for (c, t) in chunks.iter().zip(terms) {
-            for k in self.starts(c) {
-                for i in 0..self.dof() {
-                    let (r, dp) = self.window(c, t, k, i);
-                    num += r * r;
-                    den += dp * dp;
-                }
+        for k in self.starts(batch) {
+            for i in 0..self.dof() {
+                let (r, dp) = self.window(&batch.rows, terms, k, i);
+                num += r * r;
+                den += dp * dp;
             }
         }
         (num, den)
     }
 
-    /// Cotangents on pi and phi, then through the networks and B, D.
-    fn backprop_chunk(
+    /// Cotangents on pi and phi of every row.
+    fn cotangents(
         &self,
-        p: &[f32],
-        c: &Chunk,
+        batch: &Batch,
         t: &Terms,
         (num, den): (f64, f64),
-        work: &mut HnnWork,
-        grad: &mut [f32],
-    ) {
+    ) -> (Array2<f64>, Array2<f64>) {
         let n = self.dof();
+        let c = &batch.rows;
         let rows = c.z.nrows();
         let (mut c_pi, mut c_phi) = (Array2::<f64>::zeros((rows, n)), Array2::zeros((rows, n)));
-        for k in self.starts(c) {
+        for k in self.starts(batch) {
             let last = k + self.window - 1;
             for i in 0..n {
                 let (r, dp) = self.window(c, t, k, i);
@@ -172,10 +214,11 @@ impl InertiaLoss {
                 }
             }
         }
-        self.pull_back(p, c, c_pi.view(), c_phi.view(), work, grad);
+        (c_pi, c_phi)
     }
 
-    /// From cotangents on pi and phi to the parameter gradient.
+    /// From cotangents on pi and phi to the parameter gradient, through the
+    /// energy gradient [`Self::terms`] left in `work`.
     fn pull_back(
         &self,
         p: &[f32],
@@ -189,7 +232,6 @@ impl InertiaLoss {
         let np = self.objective.arch.param_count(n);
         let (g_net, g_rest) = grad.split_at_mut(np);
         let (g_b, g_d) = g_rest.split_at_mut(n * self.inputs);
-        self.objective.energy_gradient(&p[..np], c.z.view(), work);
         for k in 0..c.z.nrows() {
             for i in 0..n {
                 let cphi = c_phi[[k, i]];

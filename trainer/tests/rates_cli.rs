@@ -1,10 +1,10 @@
 //! Joint-rate logs without masses through the binary: `visviva fit` reads
 //! `t,traj,q1,v1` without `--masses`, says the momenta come from a learned
-//! mass matrix and how it is normalized; `visviva check` turns a held-out
-//! rates log into momenta with the model's own mass matrix; a model
-//! without one (a general energy H(q, p)) is refused naming the log; masses
-//! with the mechanical structure are refused naming the flag. The
-//! log: a mass on a spring, q = A cos(w t + phi), v = -A w sin(w t + phi)
+//! mass matrix and how it is normalized; `visviva check` and `visviva
+//! tune-observer` turn a rates log into momenta with the model's own mass
+//! matrix; a model without one (a general energy H(q, p)) is refused
+//! naming the log; masses with the mechanical structure are refused naming
+//! the flag. The log: a mass on a spring, q = A cos(w t + phi), v = -A w sin(w t + phi)
 //! (the harmonic oscillator's closed form, any mechanics text).
 
 mod cli_support;
@@ -78,6 +78,26 @@ fn rates_without_masses_fit_check_and_refuse_a_model_without_mass_matrix() {
         check.contains("momenta p = M(q) v from the model's own mass matrix"),
         "{check}"
     );
+    // The observer's tuning reads the same logs the same way.
+    let o = visviva_in(
+        d,
+        &[
+            "tune-observer",
+            "--model",
+            "m.vvb",
+            "--train",
+            "train.csv",
+            "--out",
+            "m.observer.toml",
+        ],
+    );
+    assert_ok(&o);
+    let err = text(&o).1;
+    assert!(
+        err.contains("momenta p = M(q) v from the model's own mass matrix"),
+        "{err}"
+    );
+    assert!(d.join("m.observer.toml").exists());
     fit(d, "general", "g.vvb");
     let o = visviva_in(d, &["check", "--model", "g.vvb", "--validation", "val.csv"]);
     assert_refused(&o, 1, &["val.csv", "no mass matrix"]);

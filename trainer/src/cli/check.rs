@@ -12,8 +12,9 @@ use visviva_runtime::Hamiltonian;
 
 use crate::atomic::write_atomic;
 use crate::cli::tables::{print_horizons, print_table, sci};
-use crate::data::log::{load_csv, LoadOptions};
+use crate::data::log::LoadOptions;
 use crate::deploy::blob::HostModel;
+use crate::deploy::model_log;
 use crate::evidence::charts::{charts, HistoryFile};
 use crate::evidence::check::driven_horizons;
 use crate::evidence::check::{check, CheckSettings};
@@ -208,63 +209,18 @@ struct PortJson<'a> {
     horizons: Vec<HorizonSummary>,
 }
 
-/// The held-out log: by the canonical loader, or, for joint rates without
-/// masses (a `t,q1..,v1..` log and no `--masses`), read as (q, v) and
-/// turned into momenta by the model's own mass matrix p = M(q) v (the one
-/// its fit learned), said so; a model without a mass matrix is refused.
+/// The held-out log ([`model_log::load`]), saying when its joint rates
+/// were turned into momenta by the model's own mass matrix.
 fn load_log(
     path: &std::path::Path,
     model: &HostModel<'_>,
     opts: &LoadOptions,
 ) -> Result<crate::data::dataset::Dataset> {
-    if opts.masses.is_some() || crate::data::columns::rates_layout(path).is_none() {
-        return Ok(load_csv(path, opts)?);
+    let (data, converted) = model_log::load(path, model, opts)?;
+    if converted {
+        println!("{}: {}", path.display(), model_log::CONVERTED);
     }
-    let (rates, _) = crate::data::columns::load_any(path, None, opts)?;
-    let n = rates.dof;
-    if n != model.dof() {
-        anyhow::bail!(
-            "{}: {n} degrees of freedom, but the model has {}",
-            path.display(),
-            model.dof()
-        );
-    }
-    let data = crate::data::rates::with_momenta(&rates, &opts.filter, |t| {
-        model_momenta(model, t, n).with_context(|| format!("{}", path.display()))
-    })?;
-    println!(
-        "{}: joint rates without masses: momenta p = M(q) v from the model's own mass matrix",
-        path.display()
-    );
     Ok(data)
-}
-
-/// p = M(q) v at every sample of `t` by the model's mass matrix.
-fn model_momenta(
-    model: &HostModel<'_>,
-    t: &crate::data::dataset::Trajectory,
-    n: usize,
-) -> Result<ndarray::Array2<f64>> {
-    let mut out = ndarray::Array2::zeros((t.x.nrows(), n));
-    for (k, row) in t.x.rows().into_iter().enumerate() {
-        let q: Vec<f32> = row.iter().take(n).map(|v| *v as f32).collect();
-        let v: Vec<f32> = row.iter().skip(n).map(|v| *v as f32).collect();
-        let mut p = vec![0.0f32; n];
-        model
-            .momentum_from_velocity_at(&q, &v, &mut p)
-            .with_context(|| {
-                format!(
-                    "trajectory '{}', sample {}: the joint rates cannot be turned into momenta: \
-                 the model has no mass matrix (a network kinetic term or a general energy \
-                 H(q, p)), or the state is not finite; give the masses or a log with p columns",
-                    t.id,
-                    k + 1
-                )
-            })?;
-        out.row_mut(k)
-            .assign(&ndarray::Array1::from_iter(p.iter().map(|v| *v as f64)));
-    }
-    Ok(out)
 }
 
 /// `run` for a damped or driven model (`baseline`: a plain network taking

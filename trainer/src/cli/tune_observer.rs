@@ -8,8 +8,9 @@ use std::path::PathBuf;
 
 use anyhow::{anyhow, Result};
 
-use crate::data::log::{load_csv, LoadOptions};
+use crate::data::log::LoadOptions;
 use crate::deploy::blob::HostModel;
+use crate::deploy::model_log;
 use crate::deploy::observer_settings::{companion_path, parse_false_alarm, WINDOWS};
 use crate::deploy::observer_tuning::tune;
 
@@ -57,9 +58,13 @@ pub fn run(args: Args) -> Result<()> {
     inputs.extend(args.validation.as_deref().map(|p| ("--validation", p)));
     crate::outputs::check_outputs(&inputs, &[("--out", out.as_path())])?;
     let opts = LoadOptions::default();
-    let mut logs = vec![load_csv(&args.train, &opts)?];
-    if let Some(v) = &args.validation {
-        logs.push(load_csv(v, &opts)?);
+    let mut logs = Vec::new();
+    for path in std::iter::once(&args.train).chain(args.validation.as_ref()) {
+        let (log, converted) = model_log::load(path, &model, &opts)?;
+        if converted {
+            eprintln!("{}: {}", path.display(), model_log::CONVERTED);
+        }
+        logs.push(log);
     }
     let refs: Vec<_> = logs.iter().collect();
     let t = tune(&model, &refs, alarm, args.window)?;

@@ -13,6 +13,7 @@ pub mod fitted_blob;
 pub mod footprint;
 pub mod inspect;
 pub mod integrator;
+pub mod model_log;
 pub mod observe;
 pub mod observer_settings;
 pub mod observer_tuning;

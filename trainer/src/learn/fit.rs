@@ -93,10 +93,12 @@ pub struct ArchChoice {
 }
 
 impl Default for ArchChoice {
-    /// Separable with a quadratic kinetic term, 64-64 tanh: the kinetic
-    /// energy of every built-in system is quadratic in p with a constant
-    /// mass matrix, so this structure is exact there, has the fewest
-    /// parameters, and is stepped by explicit Stormer-Verlet on the device.
+    /// Separable with a quadratic kinetic term, 64-64 tanh: exact for a
+    /// kinetic energy quadratic in p with a constant mass matrix (every
+    /// built-in system but the linkages, `double-pendulum` and `crane-cart`),
+    /// the fewest parameters, stepped by explicit Stormer-Verlet on the
+    /// device. The library's default; `visviva fit` and projects default to
+    /// `arch = "auto"`, which tries the others too.
     fn default() -> Self {
         Self {
             separable: true,

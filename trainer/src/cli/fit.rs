@@ -422,18 +422,12 @@ fn momenta_from_rates(
     if !rig.is_some_and(|r| r.rates_without_masses) {
         return Ok((train, val));
     }
-    let settings = crate::learn::inertia::InertiaSettings {
-        arch: crate::learn::fit::ArchChoice {
-            hidden: args.hidden.clone(),
-            activation: energy_activation(args.activation, "--activation")?,
-            ..Default::default()
-        },
-        epochs: args.epochs,
-        batch: crate::learn::inertia::BATCH,
-        lr: args.lr,
-        seed: args.seed,
-        reference_inertia: args.reference_inertia,
-    };
+    let settings = crate::learn::inertia::InertiaSettings::for_fit(
+        &args.hidden,
+        energy_activation(args.activation, "--activation")?,
+        (args.epochs, args.lr, args.seed),
+        args.reference_inertia,
+    );
     let (train, val, summary) = crate::learn::inertia::momenta_from_rates(
         &train,
         val.as_ref(),

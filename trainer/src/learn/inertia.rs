@@ -61,6 +61,31 @@ pub struct InertiaSettings {
     pub reference_inertia: Option<f64>,
 }
 
+impl InertiaSettings {
+    /// The settings `visviva fit` and `visviva run` use: the energy model's
+    /// hidden widths and activation, its epochs, learning rate and seed, and
+    /// the stage's own mini-batch ([`BATCH`]).
+    pub fn for_fit(
+        hidden: &[usize],
+        activation: crate::learn::net::Activation,
+        (epochs, lr, seed): (usize, f32, u64),
+        reference_inertia: Option<f64>,
+    ) -> Self {
+        Self {
+            arch: ArchChoice {
+                hidden: hidden.to_vec(),
+                activation,
+                ..ArchChoice::default()
+            },
+            epochs,
+            batch: BATCH,
+            lr,
+            seed,
+            reference_inertia,
+        }
+    }
+}
+
 /// What the stage found, for the command output and the report.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct InertiaSummary {

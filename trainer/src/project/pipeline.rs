@@ -418,18 +418,12 @@ fn with_momenta(project: &Project, logs: Logs) -> Result<Logs> {
     if !logs.rig.as_ref().is_some_and(|r| r.rates_without_masses) {
         return Ok(logs);
     }
-    let settings = crate::learn::inertia::InertiaSettings {
-        arch: crate::learn::fit::ArchChoice {
-            hidden: project.model.hidden.clone(),
-            activation: energy_activation(project.model.activation, "[model] activation")?,
-            ..Default::default()
-        },
-        epochs: project.fit.epochs,
-        batch: crate::learn::inertia::BATCH,
-        lr: project.fit.lr,
-        seed: project.fit.seed,
-        reference_inertia: project.data.reference_inertia,
-    };
+    let settings = crate::learn::inertia::InertiaSettings::for_fit(
+        &project.model.hidden,
+        energy_activation(project.model.activation, "[model] activation")?,
+        (project.fit.epochs, project.fit.lr, project.fit.seed),
+        project.data.reference_inertia,
+    );
     let (train, val, summary) = crate::learn::inertia::momenta_from_rates(
         &logs.train,
         Some(&logs.val),

@@ -7,11 +7,24 @@
 //! `floor`, an exact bit-level operation, called through its trait explicitly:
 //! in a crate that links `std`, `x.floor()` would silently pick std's method.
 //!
+//! `tanh` is a rational half-angle value and the double-angle formula (see
+//! [`tanh`]); its coefficients come from `runtime/tools/fit_tanh.py`
+//! (numpy): a weighted minimax fit of the half-angle correction, by
+//! linearised least squares iterated towards equal ripple
+//! (Sanathanan-Koerner with Lawson's weights), 1.5e-8 relative in tanh
+//! before rounding, then rounded to f32 and adjusted by a few ulp to
+//! minimise the f32 program's own worst error over every f32 in [0.5, 9].
+//! 25 emulated Cortex-M4F instructions per call against the
+//! 51 of the `expm1` form it replaced (bench/README.md).
+//!
 //! Accuracy (measured by `tests/activation_accuracy.rs` against `f64` from
-//! Rust's standard library, 2,000,001 points each): `tanh` within 8.9e-8
-//! absolute over [-12, 12] (about one f32 ulp near 1); `exp` within 9.3e-8
-//! relative over [-80, 80]; `softplus` and `sigmoid` within 2.4e-7 relative
-//! over [-30, 30].
+//! Rust's standard library, 2,000,001 points each): `tanh` within 1.08e-7
+//! absolute over [-12, 12] (1.80 f32 ulp near 1; over every f32 in [0, 9.5]
+//! 1.94 ulp, by a float32 simulation in numpy) and within 1.8e-7
+//! relative for 0 < |x| <= 1; odd bit for bit, |tanh| <= 1; not monotone at
+//! the last bit (neither was the `expm1` form): some consecutive f32 inputs
+//! step down by up to 2 ulp. `exp` within 9.3e-8 relative over [-80, 80];
+//! `softplus` and `sigmoid` within 2.4e-7 relative over [-30, 30].
 //! `micromath`'s own `exp` was not used: it truncates its series after four
 //! terms (about 1e-3 relative error) and is discontinuous where the binary
 //! exponent changes, which would make the learned vector field jump.
@@ -84,38 +97,39 @@ fn pow2(k: i32) -> f32 {
     f32::from_bits(((k + 127) as u32) << 23)
 }
 
+/// Coefficients of `tanh`'s rational part N(y) / D(y), y = x^2, lowest
+/// power first (D's leading 1 is implicit). Derived by
+/// `runtime/tools/fit_tanh.py` (a weighted minimax fit, see the module doc).
+const TANH_N: [f32; 3] = [-79.244_934, -0.926_881, -6.621_441e-5];
+const TANH_D: [f32; 2] = [950.94, 106.215_836];
+/// 9^2: for |x| > 9, tanh x rounds to +-1 in f32 (tanh 9 = 1 - 3.05e-8).
+const TANH_SATURATION_SQ: f32 = 81.0;
+
 /// Hyperbolic tangent.
+///
+/// For 0 < x^2 <= 81: u = x + x^3 N(x^2) / D(x^2) is 2 tanh(x / 2) (the
+/// rational part only carries the small correction tanh(x/2) - x/2), and
+/// tanh x = u / (1 + u^2 / 4), the double-angle formula 2T / (1 + T^2),
+/// which damps the error of T by (1 - T^2) / (1 + T^2) where tanh
+/// saturates and is at most 1 in magnitude for any u (1 + T^2 >= 2|T|, and
+/// rounding keeps it so). Odd bit for bit: every step flips sign exactly
+/// with x.
 #[inline]
 pub fn tanh(x: f32) -> f32 {
-    let a = x.abs();
-    // One comparison for both exits: tanh(9) = 1 - 3.05e-8 rounds to 1.0
-    // in f32, and NaN stays NaN.
-    match a.partial_cmp(&9.0) {
-        Some(core::cmp::Ordering::Greater) => return 1.0f32.copysign(x),
-        None => return x,
-        _ => {}
+    let y = x * x;
+    // One unsigned comparison sends y = 0 (x = +-0 or tiny, tanh x = x),
+    // y > 81 (infinities too) and NaN (all above +inf's bits) aside.
+    if y.to_bits().wrapping_sub(1) >= TANH_SATURATION_SQ.to_bits() {
+        return if y > TANH_SATURATION_SQ {
+            1.0f32.copysign(x)
+        } else {
+            x
+        };
     }
-    let e = expm1_tanh(2.0 * a);
-    (e / (e + 2.0)).copysign(x)
-}
-
-/// [`expm1`] for `0 <= y <= 18`, the range [`tanh`] reaches, with the same
-/// operations and bits: there `exp`'s range checks never fire and the
-/// rounding `floor(y / ln 2 + 1/2)` of a positive number equals its
-/// truncation to an integer, which is one conversion instead of
-/// `micromath`'s bit-level `floor` (`tests/activation_accuracy.rs` checks
-/// the two agree bit for bit).
-#[inline(always)]
-fn expm1_tanh(y: f32) -> f32 {
-    if y < HALF_LN2 {
-        return expm1_series(y);
-    }
-    let k = (y * INV_LN2 + 0.5) as i32;
-    let kf = k as f32;
-    let r = (y - kf * LN2_HI) - kf * LN2_LO;
-    let er = 1.0 + expm1_series(r);
-    // 0 <= k <= 26 here: 2^k without `pow2`'s clamp, the same bits.
-    er * f32::from_bits(((k + 127) as u32) << 23) - 1.0
+    let num = TANH_N[0] + y * (TANH_N[1] + y * TANH_N[2]);
+    let den = TANH_D[0] + y * (TANH_D[1] + y);
+    let u = x + (x * y) * (num / den);
+    u / (1.0 + (u * 0.25) * u)
 }
 
 /// Logistic sigmoid `1 / (1 + e^-x)`, the derivative of softplus.

@@ -117,9 +117,9 @@ const TANH_SATURATION_SQ: f32 = 81.0;
 #[inline]
 pub fn tanh(x: f32) -> f32 {
     let y = x * x;
-    // One unsigned comparison sends y = 0 (x = +-0 or tiny, tanh x = x),
-    // y > 81 (infinities too) and NaN (all above +inf's bits) aside.
-    if y.to_bits().wrapping_sub(1) >= TANH_SATURATION_SQ.to_bits() {
+    // Aside: y = 0 (x = +-0 or tiny, tanh x = x), y > 81 (infinities
+    // too) and NaN.
+    if !(y > 0.0 && y <= TANH_SATURATION_SQ) {
         return if y > TANH_SATURATION_SQ {
             1.0f32.copysign(x)
         } else {

@@ -119,10 +119,10 @@ pub fn tanh(x: f32) -> f32 {
     } else {
         x
     };
-    if y.to_bits().wrapping_sub(1) >= TANH_SATURATION_SQ.to_bits() {
-        edge
-    } else {
+    if y > 0.0 && y <= TANH_SATURATION_SQ {
         t
+    } else {
+        edge
     }
 }
 

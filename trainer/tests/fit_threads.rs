@@ -8,7 +8,10 @@
 //! (`learn/matmul.rs`) moved every weight in its last bits, so the blobs in
 //! `fixtures/threads/` were rewritten once by that build (same pool, on an
 //! x86_64 CPU with AVX2 and FMA: like matrixmultiply before, gemm picks its
-//! kernel by the CPU, so the bits are those of such a CPU). They come from the log beside them (the textbook mass-spring
+//! kernel by the CPU, so the bits are those of such a CPU). The rational
+//! tanh (`runtime/src/math.rs`, new bits) moved the weights again, and the
+//! blobs were rewritten once more by that build, on the same kind of CPU.
+//! They come from the log beside them (the textbook mass-spring
 //! solution q = r cos(t + phi), p = -r sin(t + phi), dq/dt = p,
 //! dp/dt = -q, 10 trajectories x 30 samples) with the command line of
 //! `fit_blob`, compared without the training envelope.
@@ -82,9 +85,10 @@ fn blobs_equal_the_reference_blobs_for_one_two_and_three_threads() {
             threads,
             &dir.path().join(format!("t{threads}.vvb")),
         ));
-        // The earlier build wrote format version 1 (packed f32 weights);
-        // its model written in today's layout (version 6, aligned weights)
-        // must be the same bytes.
+        // The reference blobs are read and written again in today's
+        // layout (version 6, aligned weights): the earlier builds wrote
+        // format version 1 (packed f32 weights), the rational-tanh build
+        // version 6.
         let before =
             std::fs::read(fixtures().join(format!("threads_before_t{threads}.vvb"))).unwrap();
         let want = BlobModel::from_bytes(&before).unwrap().to_bytes().unwrap();

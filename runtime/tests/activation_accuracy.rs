@@ -13,9 +13,10 @@ fn sweep(lo: f64, hi: f64, n: usize) -> impl Iterator<Item = f32> {
 const ULP_BELOW_ONE: f64 = 5.960_464_477_539_063e-8;
 
 /// The goal for `math::tanh`: within 2 f32 ulp of f64 `tanh` near 1, where
-/// the error is largest in absolute terms. Measured 1.09e-7 (1.83 ulp) at
-/// x = -1.8325 (`runtime/tools/fit_tanh.py` predicts the same figure from
-/// its float32 simulation). The expm1 form it replaced measured 8.9e-8.
+/// the error is largest in absolute terms. Measured 1.075e-7 (1.80 ulp) at
+/// x = -1.8345 (`runtime/tools/fit_tanh.py` predicts the same figure from
+/// its float32 simulation, and 1.94 ulp over every f32 in [0.5, 9]). The
+/// expm1 form it replaced measured 8.9e-8.
 #[test]
 fn tanh_max_abs_error_over_its_range() {
     let mut worst = (0.0f64, 0.0f32);

@@ -93,6 +93,9 @@ pub(super) fn dense<T: Stored>(
 ) {
     let ni = ni.max(1);
     let x = x.get(..ni).unwrap_or(x);
+    if let ([x0], true) = (x, ni == 1) {
+        return dense_one_input(w, *x0, scale, bias, y);
+    }
     let (head, tail) = x.as_chunks::<UNROLL>();
     let at = head.len() * UNROLL;
     let mut done = 0;
@@ -126,6 +129,35 @@ pub(super) fn dense<T: Stored>(
     }
 }
 
+/// [`dense`] of a one-input layer (a one-coordinate network's first
+/// layer): y_j = (0 + w_j x) scaled plus b_j, the block path's operations
+/// row by row without its set-up.
+#[inline(always)]
+fn dense_one_input<T: Stored>(
+    w: &[T],
+    x: f32,
+    scale: RowScale<'_>,
+    bias: F32Bytes<'_>,
+    y: &mut [f32],
+) {
+    for (j, (yj, c)) in y.iter_mut().zip(w).enumerate() {
+        let mut acc = 0.0f32;
+        acc += c.value() * x;
+        *yj = scale.output(j, acc, bias);
+    }
+}
+
+/// [`dense_transpose`] of a one-input layer: `start` plus sum_j w_j g_j,
+/// accumulated in index order.
+#[inline(always)]
+fn transpose_one_input<T: Stored>(w: &[T], scale: RowScale<'_>, g: &[f32], start: f32) -> f32 {
+    let mut acc = start;
+    for (j, (c, gj)) in w.iter().zip(g).enumerate() {
+        acc += c.value() * scale.adjoint(j, *gj);
+    }
+    acc
+}
+
 /// gx += W^T g, accumulated over the rows j in index order for every
 /// input (the caller zeroes `gx`).
 #[inline]
@@ -139,6 +171,10 @@ pub(super) fn dense_transpose<T: Stored>(
     let ni = ni.max(1);
     let n = gx.len().min(ni);
     let gx = &mut gx[..n];
+    if let ([gx0], true) = (&mut *gx, ni == 1) {
+        *gx0 = transpose_one_input(w, scale, g, *gx0);
+        return;
+    }
     let mut done = 0;
     for (block, gs) in w.chunks_exact(ROWS * ni).zip(g.chunks_exact(ROWS)) {
         let r = rows(block, ni);

@@ -201,12 +201,8 @@ impl<'a, const W: usize> Mlp<'a, W> {
                 for (o, v) in out.iter_mut().zip(&next[..l.no()]) {
                     *o = *v;
                 }
-            } else {
-                for j in 0..l.no() {
-                    let (a, d) = activate(self.activation, next[j]);
-                    cur[j] = a;
-                    deriv[k][j] = d;
-                }
+            } else if let Some(tape) = deriv.get_mut(k) {
+                activate_row(self.activation, &next[..l.no()], &mut cur, tape);
             }
         }
     }
@@ -236,9 +232,9 @@ impl<'a, const W: usize> Mlp<'a, W> {
         }
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
-            if k + 1 < self.count {
-                for j in 0..l.no() {
-                    g[j] *= deriv[k][j];
+            if let (true, Some(tape)) = (k + 1 < self.count, deriv.get(k)) {
+                for (gj, d) in g.iter_mut().zip(&tape[..l.no()]) {
+                    *gj *= d;
                 }
             }
             let target: &mut [f32] = if k == 0 {
@@ -292,6 +288,27 @@ fn check_layer(
         return Err(BlobError::NonFinite { section });
     }
     Ok(())
+}
+
+/// Activation values `a` and derivatives `d` of the pre-activations `z`,
+/// one match for the whole row (same values as [`activate`] element by
+/// element).
+#[inline]
+fn activate_row(act: Activation, z: &[f32], a: &mut [f32], d: &mut [f32]) {
+    let outputs = a.iter_mut().zip(d.iter_mut());
+    match act {
+        Activation::Tanh => {
+            for (zj, (aj, dj)) in z.iter().zip(outputs) {
+                let t = math::tanh(*zj);
+                (*aj, *dj) = (t, 1.0 - t * t);
+            }
+        }
+        _ => {
+            for (zj, (aj, dj)) in z.iter().zip(outputs) {
+                (*aj, *dj) = activate(act, *zj);
+            }
+        }
+    }
 }
 
 /// Activation value and derivative at pre-activation `a`.

@@ -162,7 +162,8 @@ fn by_layout<const R: usize, const W: usize, const T: usize>(
 }
 
 /// All of C, k block by k block, then column panels of `W`, 16, 8 and 1
-/// columns, each over all rows.
+/// columns, each over all rows (single columns T rows at a time, or 64
+/// where A's column is contiguous).
 #[inline(always)]
 fn drive<const R: usize, const W: usize, const T: usize, A: Column>(
     ops: Operands<'_, A>,
@@ -311,10 +312,14 @@ mod tests {
     }
 
     /// Shapes of the trainer's products (batch x 64 x 64, the first layer's
-    /// 2 inputs, the output layer's single row, the weight gradient with
-    /// the batch as inner dimension, longer than one k block) and widths
-    /// that are not a multiple of the vector width.
-    const SHAPES: [(usize, usize, usize); 9] = [
+    /// 2 inputs, the output layer's single row, the weight gradients with
+    /// the batch as inner dimension, longer than one k block, the first
+    /// layer's with 2 columns), widths that are not a multiple of the
+    /// vector width, and an empty inner dimension.
+    const SHAPES: [(usize, usize, usize); 12] = [
+        (64, 256, 2),
+        (70, 300, 1),
+        (4, 0, 16),
         (256, 64, 64),
         (13, 64, 64),
         (256, 2, 64),

@@ -201,12 +201,8 @@ impl<'a, const W: usize> Mlp<'a, W> {
                 for (o, v) in out.iter_mut().zip(&next[..l.no()]) {
                     *o = *v;
                 }
-            } else {
-                for j in 0..l.no() {
-                    let (a, d) = activate(self.activation, next[j]);
-                    cur[j] = a;
-                    deriv[k][j] = d;
-                }
+            } else if let Some(tape) = deriv.get_mut(k) {
+                activate_row(self.activation, &next[..l.no()], &mut cur, tape);
             }
         }
     }
@@ -227,16 +223,18 @@ impl<'a, const W: usize> Mlp<'a, W> {
     /// was recorded at (`seed` holds the leading outputs' weights; the rest
     /// count as 0).
     pub fn pullback(&self, deriv: &[[f32; W]; MAX_LAYERS], seed: &[f32], grad: &mut [f32]) {
-        let mut g = [0.0f32; W];
-        let mut gp = [0.0f32; W];
+        // The adjoint of the current layer's output and of its input; they
+        // trade places after each layer (a swap of references, no copy).
+        let mut buffers = ([0.0f32; W], [0.0f32; W]);
+        let (mut g, mut gp) = (&mut buffers.0, &mut buffers.1);
         for (gj, s) in g.iter_mut().zip(seed) {
             *gj = *s;
         }
         for k in (0..self.count).rev() {
             let Some(l) = self.layers[k] else { continue };
-            if k + 1 < self.count {
-                for j in 0..l.no() {
-                    g[j] *= deriv[k][j];
+            if let (true, Some(tape)) = (k + 1 < self.count, deriv.get(k)) {
+                for (gj, d) in g.iter_mut().zip(&tape[..l.no()]) {
+                    *gj *= d;
                 }
             }
             let target: &mut [f32] = if k == 0 {
@@ -245,9 +243,7 @@ impl<'a, const W: usize> Mlp<'a, W> {
                 &mut gp[..l.ni()]
             };
             dense_transpose(&l, &g[..l.no()], target);
-            if k > 0 {
-                g[..l.ni()].copy_from_slice(&gp[..l.ni()]);
-            }
+            core::mem::swap(&mut g, &mut gp);
         }
     }
 }
@@ -294,6 +290,27 @@ fn check_layer(
     Ok(())
 }
 
+/// Activation values `a` and derivatives `d` of the pre-activations `z`,
+/// one match for the whole row (same values as [`activate`] element by
+/// element).
+#[inline]
+fn activate_row(act: Activation, z: &[f32], a: &mut [f32], d: &mut [f32]) {
+    let outputs = a.iter_mut().zip(d.iter_mut());
+    match act {
+        Activation::Tanh => {
+            for (zj, (aj, dj)) in z.iter().zip(outputs) {
+                let t = math::tanh(*zj);
+                (*aj, *dj) = (t, 1.0 - t * t);
+            }
+        }
+        _ => {
+            for (zj, (aj, dj)) in z.iter().zip(outputs) {
+                (*aj, *dj) = activate(act, *zj);
+            }
+        }
+    }
+}
+
 /// Activation value and derivative at pre-activation `a`.
 #[inline]
 fn activate(act: Activation, a: f32) -> (f32, f32) {
@@ -320,6 +337,9 @@ fn activate(act: Activation, a: f32) -> (f32, f32) {
 /// accumulator) serve four weights (see DEVELOPERS.md, device cost).
 const BLOCK: usize = 4;
 
+/// The row scale of f32 weights: none.
+const NO_SCALE: kernel::RowScale<'static> = kernel::RowScale { scales: None };
+
 /// A little-endian f32 from a 4-byte chunk (from `chunks_exact(4)`).
 #[inline(always)]
 fn le_f32(c: &[u8]) -> f32 {
@@ -332,7 +352,7 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
     let ni = l.ni();
     let x = &x[..ni.min(x.len())];
     match l.weights {
-        Weights::Aligned(w) => kernel::dense(w, ni, l.bias, x, y),
+        Weights::Aligned(w) => kernel::dense(w, ni, NO_SCALE, l.bias, x, y),
         Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
@@ -369,33 +389,10 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
         // Refused at validation when left out of the build.
         Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
         Weights::Int8 { values, scales } => {
-            let mut j = 0;
-            while j + BLOCK <= y.len() {
-                let base = ni * j;
-                let r = |b: usize| &values[base + b * ni..base + (b + 1) * ni];
-                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
-                let mut acc = [0.0f32; BLOCK];
-                let quads = r0.iter().zip(r1).zip(r2).zip(r3);
-                for ((((v0, v1), v2), v3), xi) in quads.zip(x) {
-                    acc[0] += (*v0 as i8) as f32 * xi;
-                    acc[1] += (*v1 as i8) as f32 * xi;
-                    acc[2] += (*v2 as i8) as f32 * xi;
-                    acc[3] += (*v3 as i8) as f32 * xi;
-                }
-                for (b, a) in acc.iter().enumerate() {
-                    y[j + b] = a * scales.get(j + b) + l.bias.get(j + b);
-                }
-                j += BLOCK;
-            }
-            for (jj, row) in values.chunks_exact(ni).enumerate().skip(j) {
-                let mut acc = 0.0f32;
-                for (v, xi) in row.iter().zip(x) {
-                    acc += (*v as i8) as f32 * xi;
-                }
-                if let Some(yj) = y.get_mut(jj) {
-                    *yj = acc * scales.get(jj) + l.bias.get(jj);
-                }
-            }
+            let scale = kernel::RowScale {
+                scales: Some(scales),
+            };
+            kernel::dense(values, ni, scale, l.bias, x, y)
         }
     }
 }
@@ -408,7 +405,7 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
     gx.iter_mut().for_each(|v| *v = 0.0);
     let no = g.len();
     match l.weights {
-        Weights::Aligned(w) => kernel::dense_transpose(w, ni, g, gx),
+        Weights::Aligned(w) => kernel::dense_transpose(w, ni, NO_SCALE, g, gx),
         Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= no {
@@ -439,30 +436,10 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
         }
         Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
         Weights::Int8 { values, scales } => {
-            let mut j = 0;
-            while j + BLOCK <= no {
-                let base = ni * j;
-                let r = |b: usize| &values[base + ni * b..base + ni * (b + 1)];
-                let (r0, r1, r2, r3) = (r(0), r(1), r(2), r(3));
-                let gs = |b: usize| g[j + b] * scales.get(j + b);
-                let (g0, g1, g2, g3) = (gs(0), gs(1), gs(2), gs(3));
-                let quads = r0.iter().zip(r1).zip(r2).zip(r3);
-                for ((((v0, v1), v2), v3), o) in quads.zip(gx.iter_mut()) {
-                    let mut v = *o;
-                    v += (*v0 as i8) as f32 * g0;
-                    v += (*v1 as i8) as f32 * g1;
-                    v += (*v2 as i8) as f32 * g2;
-                    v += (*v3 as i8) as f32 * g3;
-                    *o = v;
-                }
-                j += BLOCK;
-            }
-            for (jj, (gj, row)) in g.iter().zip(values.chunks_exact(ni)).enumerate().skip(j) {
-                let gs = gj * scales.get(jj);
-                for (v, o) in row.iter().zip(gx.iter_mut()) {
-                    *o += (*v as i8) as f32 * gs;
-                }
-            }
+            let scale = kernel::RowScale {
+                scales: Some(scales),
+            };
+            kernel::dense_transpose(values, ni, scale, g, gx)
         }
     }
 }

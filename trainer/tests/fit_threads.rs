@@ -2,19 +2,22 @@
 //! count give the same blob byte for byte, and the blobs equal reference
 //! blobs written earlier for 1, 2 and 3 threads. The pool was first checked
 //! against blobs of the build before it (workers spawned per optimizer
-//! step, same row partition and reduction order); the activation's change
-//! to the runtime's tanh, evaluated branch-free over whole rows
-//! (`learn/activation.rs`), and the products' move to the `gemm` crate
-//! (`learn/matmul.rs`) moved every weight in its last bits, so the blobs in
-//! `fixtures/threads/` were rewritten once by that build (same pool, on an
-//! x86_64 CPU with AVX2 and FMA: like matrixmultiply before, gemm picks its
-//! kernel by the CPU, so the bits are those of such a CPU). The rational
-//! tanh (`runtime/src/math.rs`, new bits) moved the weights again, and the
-//! blobs were rewritten once more by that build, on the same kind of CPU.
-//! They come from the log beside them (the textbook mass-spring
-//! solution q = r cos(t + phi), p = -r sin(t + phi), dq/dt = p,
-//! dp/dt = -q, 10 trajectories x 30 samples) with the command line of
-//! `fit_blob`, compared without the training envelope.
+//! step, same row partition and reduction order). Three later changes moved
+//! every weight in its last bits, and the blobs in `fixtures/threads/` were
+//! rewritten once after each: the activation's change to the runtime's
+//! tanh, evaluated branch-free over whole rows (`learn/activation.rs`),
+//! the networks' products' move from ndarray's `general_mat_mul`
+//! (matrixmultiply, whose kernel and so whose bits depend on the CPU) to
+//! the trainer's own kernel (`learn/product.rs`), and the rational tanh
+//! (`runtime/src/math.rs`). The blobs now in the directory were written by
+//! the build with both the kernel and the rational tanh; each product element is
+//! one chain of fused multiply-adds in a fixed order on every CPU (AVX-512,
+//! AVX2+FMA or the portable variant, see that module), so these bits do not
+//! depend on the CPU's vector features. They were written on an x86_64 CPU
+//! with AVX-512. They come from the log beside them (the textbook
+//! mass-spring solution q = r cos(t + phi), p = -r sin(t + phi),
+//! dq/dt = p, dp/dt = -q, 10 trajectories x 30 samples) with the command
+//! line of `fit_blob`, compared without the training envelope.
 
 use clap::Parser;
 use std::path::{Path, PathBuf};
@@ -85,10 +88,8 @@ fn blobs_equal_the_reference_blobs_for_one_two_and_three_threads() {
             threads,
             &dir.path().join(format!("t{threads}.vvb")),
         ));
-        // The reference blobs are read and written again in today's
-        // layout (version 6, aligned weights): the earlier builds wrote
-        // format version 1 (packed f32 weights), the rational-tanh build
-        // version 6.
+        // The reference blob, decoded and written again (the format
+        // version today's writer picks), must be the same bytes.
         let before =
             std::fs::read(fixtures().join(format!("threads_before_t{threads}.vvb"))).unwrap();
         let want = BlobModel::from_bytes(&before).unwrap().to_bytes().unwrap();

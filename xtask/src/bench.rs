@@ -518,6 +518,8 @@ struct Cpu {
     mhz: f64,
     fma: bool,
     avx2: bool,
+    /// AVX-512 with the extensions the `multiversion` crate requires before
+    /// it picks the trainer's AVX-512 product kernel (the Ice Lake set).
     avx512: bool,
 }
 
@@ -537,7 +539,24 @@ fn cpu_info() -> Cpu {
         mhz: field("cpu MHz").parse().unwrap_or(0.0),
         fma: has("fma"),
         avx2: has("avx2"),
-        avx512: has("avx512f"),
+        avx512: [
+            "avx512f",
+            "avx512bw",
+            "avx512cd",
+            "avx512dq",
+            "avx512vl",
+            "avx512ifma",
+            "avx512vbmi",
+            "avx512_vbmi2",
+            "avx512_vnni",
+            "avx512_bitalg",
+            "avx512_vpopcntdq",
+            "gfni",
+            "vaes",
+            "vpclmulqdq",
+        ]
+        .iter()
+        .all(|f| has(f)),
     }
 }
 
@@ -813,24 +832,32 @@ fn print_flops(m: &Measured<'_>, k: usize, cpu: &Cpu) {
     let (per_sample, per_step) = flops_per_sample(&sizes);
     // Peak per core: vector lanes x 2 (fused multiply-add) x 2 FMA units
     // per core (common practice for recent x86 server cores; an
-    // assumption, not measured). ndarray's matrix products use 256-bit
-    // AVX2 + FMA kernels, so the AVX2 peak is the relevant one.
-    let lanes = if cpu.avx2 { 8.0 } else { 4.0 };
+    // assumption, not measured). The trainer's products run on its widest
+    // kernel the CPU allows (`trainer/src/learn/product.rs`): AVX-512 or
+    // AVX2 + FMA.
+    let lanes = if cpu.avx512 {
+        16.0
+    } else if cpu.avx2 {
+        8.0
+    } else {
+        4.0
+    };
     let fma = if cpu.fma { 2.0 } else { 1.0 };
     let peak = cpu.mhz / 1000.0 * lanes * fma * 2.0;
     println!(
         "flops: visviva step = {per_sample:.0} FLOP per sample + {per_step:.0} FLOP per step \
          (Adam, clipping); peak assumption {peak:.1} GFLOP/s per core = {:.2} GHz x {} f32 \
-         lanes ({}) x {} (FMA) x 2 FMA units{}",
+         lanes ({}) x {} (FMA) x 2 FMA units",
         cpu.mhz / 1000.0,
         lanes,
-        if cpu.avx2 { "AVX2" } else { "SSE" },
-        fma,
         if cpu.avx512 {
-            "; AVX-512 would double it, but the matrix kernels in use are AVX2"
+            "AVX-512, the trainer's product kernel"
+        } else if cpu.avx2 {
+            "AVX2"
         } else {
-            ""
-        }
+            "SSE"
+        },
+        fma,
     );
     for (ci, cfg) in m.configs.iter().enumerate() {
         let rate = m.median_rate(ci, k);

@@ -13,6 +13,7 @@ pub mod net;
 pub mod optim;
 pub mod pool;
 pub mod port;
+pub mod product;
 pub mod qat;
 pub mod rollout_loss;
 pub(crate) mod rows;

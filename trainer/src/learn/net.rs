@@ -3,7 +3,7 @@
 //! (or the vector-Jacobian product of a many-output one, seed g_{L-1}),
 //! and parameter gradients of (a) a loss on the outputs and (b) a loss on the
 //! *input gradient* (double backpropagation), all as matrix products over the
-//! batch with buffers kept in a reusable [`MlpWork`].
+//! batch (`learn/product.rs`) with buffers kept in a reusable [`MlpWork`].
 //!
 //! Parameters live in one flat `f32` slice so the optimizer sees a single
 //! vector. Layout, layer by layer from the input: the weight matrix `W`
@@ -23,7 +23,7 @@
 //!   + d_k (.) zdot_{k-1} (.) s''(z_{k-1});
 //! * dl/dW_k = zbar_k^T a_k + g_k^T adot_k, dl/db_k = sum over rows of zbar_k.
 
-use ndarray::linalg::general_mat_mul;
+use super::product::{mat_mul, Store};
 use ndarray::{Array2, ArrayView1, ArrayView2, ArrayViewMut1, ArrayViewMut2, Axis};
 use rand::Rng;
 use rand_chacha::ChaCha8Rng;
@@ -136,6 +136,10 @@ pub struct MlpWork {
     zbar: Vec<Array2<f32>>,
     /// Adjoint w.r.t. layer inputs (scratch).
     abar: Vec<Array2<f32>>,
+    /// W_k^T (inputs x outputs), packed by [`forward`] once per parameter
+    /// vector for it and the tangent pass (the product kernel reads B's
+    /// rows whole).
+    wt: Vec<Array2<f32>>,
 }
 
 impl MlpWork {
@@ -158,6 +162,9 @@ impl MlpWork {
         self.g = (0..l).map(outs).collect();
         self.zdot = (0..l).map(outs).collect();
         self.zbar = (0..l).map(outs).collect();
+        self.wt = (0..l)
+            .map(|k| Array2::zeros((shape.sizes[k], shape.sizes[k + 1])))
+            .collect();
     }
 
     /// The output of the last [`forward`] (rows x outputs).
@@ -185,8 +192,14 @@ pub fn forward(shape: &MlpShape, p: &[f32], x: ArrayView2<'_, f32>, work: &mut M
     work.a[0].assign(&x);
     for k in 0..l {
         let (w, b) = shape.layer(p, k);
+        work.wt[k].assign(&w.t());
         let z = &mut work.z[k];
-        general_mat_mul(1.0, &work.a[k], &w.t(), 0.0, z);
+        mat_mul(
+            work.a[k].view(),
+            work.wt[k].view(),
+            Store::Overwrite,
+            &mut z.view_mut(),
+        );
         *z += &b;
         if k + 1 < l {
             shape.activation.eval_rows(
@@ -234,7 +247,12 @@ fn input_pullback(shape: &MlpShape, p: &[f32], work: &mut MlpWork) {
     let l = shape.layers();
     for k in (0..l).rev() {
         let (w, _) = shape.layer(p, k);
-        general_mat_mul(1.0, &work.g[k], &w, 0.0, &mut work.d[k]);
+        mat_mul(
+            work.g[k].view(),
+            w,
+            Store::Overwrite,
+            &mut work.d[k].view_mut(),
+        );
         if k > 0 {
             ndarray::Zip::from(&mut work.g[k - 1])
                 .and(&work.d[k])
@@ -246,7 +264,7 @@ fn input_pullback(shape: &MlpShape, p: &[f32], work: &mut MlpWork) {
 
 /// Add to `grad` the parameter gradient of a loss on the input gradient,
 /// given `r` = d(loss)/d(input gradient) (rows x inputs). Needs
-/// [`forward`] and [`input_gradient`] on the same rows first.
+/// [`forward`] and [`input_gradient`] on the same rows and parameters first.
 pub fn backprop_input_gradient_loss(
     shape: &MlpShape,
     p: &[f32],
@@ -255,11 +273,16 @@ pub fn backprop_input_gradient_loss(
     grad: &mut [f32],
 ) {
     let l = shape.layers();
-    // Tangent pass along r.
+    // Tangent pass along r, with the W_k^T that `forward` packed.
     work.adot[0].assign(&r);
     for k in 0..l {
-        let (w, _) = shape.layer(p, k);
-        general_mat_mul(1.0, &work.adot[k], &w.t(), 0.0, &mut work.zdot[k]);
+        let zdot = &mut work.zdot[k].view_mut();
+        mat_mul(
+            work.adot[k].view(),
+            work.wt[k].view(),
+            Store::Overwrite,
+            zdot,
+        );
         if k + 1 < l {
             ndarray::Zip::from(&mut work.adot[k + 1])
                 .and(&work.zdot[k])
@@ -274,16 +297,21 @@ pub fn backprop_input_gradient_loss(
         {
             let (mut gw, mut gb) = shape.layer_mut(grad, k);
             if k + 1 < l {
-                general_mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
+                mat_mul(work.zbar[k].t(), work.a[k].view(), Store::Add, &mut gw);
                 gb += &work.zbar[k].sum_axis(Axis(0));
             }
-            general_mat_mul(1.0, &work.g[k].t(), &work.adot[k], 1.0, &mut gw);
+            mat_mul(work.g[k].t(), work.adot[k].view(), Store::Add, &mut gw);
         }
         if k > 0 {
             let (lo, hi) = work.zbar.split_at_mut(k);
             let zb_prev = &mut lo[k - 1];
             if k + 1 < l {
-                general_mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
+                mat_mul(
+                    hi[0].view(),
+                    w,
+                    Store::Overwrite,
+                    &mut work.abar[k].view_mut(),
+                );
             } else {
                 work.abar[k].fill(0.0);
             }
@@ -313,12 +341,17 @@ pub fn backprop_output_loss(
         let (w, _) = shape.layer(p, k);
         {
             let (mut gw, mut gb) = shape.layer_mut(grad, k);
-            general_mat_mul(1.0, &work.zbar[k].t(), &work.a[k], 1.0, &mut gw);
+            mat_mul(work.zbar[k].t(), work.a[k].view(), Store::Add, &mut gw);
             gb += &work.zbar[k].sum_axis(Axis(0));
         }
         if k > 0 {
             let (lo, hi) = work.zbar.split_at_mut(k);
-            general_mat_mul(1.0, &hi[0], &w, 0.0, &mut work.abar[k]);
+            mat_mul(
+                hi[0].view(),
+                w,
+                Store::Overwrite,
+                &mut work.abar[k].view_mut(),
+            );
             ndarray::Zip::from(&mut lo[k - 1])
                 .and(&work.abar[k])
                 .and(&work.d1[k - 1])

@@ -3,13 +3,16 @@
 //! boundaries, part k on worker k (part 0 on the calling thread), and the
 //! parts' losses and gradients added in part order, so a seed gives a
 //! bit-identical fit for a given thread count. The workers start once per
-//! fit and wait on a condition variable between steps; a step copies the
+//! fit and wait on a condition variable between steps (after spinning for
+//! up to [`SPIN`], so a busy fit's workers never sleep); a step copies the
 //! parameters and the row indices into buffers sized once, so it allocates
 //! nothing (the objective's own buffers are sized once per row count). A
 //! part longer than [`CHUNK_ROWS`] is evaluated chunk by chunk.
 //! Rows come from a [`RowSource`] (see [`crate::learn::rows`]).
 
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::{Condvar, Mutex, MutexGuard, PoisonError, RwLock};
+use std::time::{Duration, Instant};
 
 use ndarray::{s, Array2};
 
@@ -87,6 +90,31 @@ struct Shared<'d, O: Objective> {
     control: Mutex<Control>,
     start: Condvar,
     done: Condvar,
+    /// Lock-free copies of `control`'s generation, stop flag and pending
+    /// count, for the short spin before a wait ([`spin_until`]); the mutex
+    /// and condition variables stay the authority.
+    posted: AtomicU64,
+    stopping: AtomicBool,
+    unfinished: AtomicUsize,
+}
+
+/// How long a thread spins on the lock-free copies before it waits on a
+/// condition variable: longer than the calling thread's work between two
+/// steps (reduction, optimizer update), so a busy fit's workers never
+/// sleep, and short enough to cost little when the machine is shared.
+const SPIN: Duration = Duration::from_micros(100);
+
+/// Spin until `ready` holds or [`SPIN`] has passed.
+fn spin_until(ready: impl Fn() -> bool) {
+    let started = Instant::now();
+    while !ready() {
+        for _ in 0..32 {
+            std::hint::spin_loop();
+        }
+        if started.elapsed() > SPIN {
+            return;
+        }
+    }
 }
 
 fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
@@ -147,6 +175,9 @@ pub(crate) fn with_pool<'d, O: Objective, R>(
         }),
         lanes: (0..threads).map(lane).collect(),
         control: Mutex::new(Control::default()),
+        posted: AtomicU64::new(0),
+        stopping: AtomicBool::new(false),
+        unfinished: AtomicUsize::new(0),
         start: Condvar::new(),
         done: Condvar::new(),
     };
@@ -161,6 +192,7 @@ pub(crate) fn with_pool<'d, O: Objective, R>(
         impl<O: Objective> Drop for StopOnDrop<'_, '_, O> {
             fn drop(&mut self) {
                 lock(&self.0.control).stop = true;
+                self.0.stopping.store(true, Ordering::Release);
                 self.0.start.notify_all();
             }
         }
@@ -173,6 +205,9 @@ pub(crate) fn with_pool<'d, O: Objective, R>(
 fn worker<O: Objective>(shared: &Shared<'_, O>, k: usize) {
     let mut seen = 0u64;
     loop {
+        spin_until(|| {
+            shared.posted.load(Ordering::Acquire) != seen || shared.stopping.load(Ordering::Acquire)
+        });
         {
             let mut c = lock(&shared.control);
             while c.generation == seen && !c.stop {
@@ -197,6 +232,7 @@ impl<O: Objective> Drop for Finished<'_, '_, O> {
         let mut c = lock(&self.0.control);
         c.failed |= std::thread::panicking();
         c.pending -= 1;
+        self.0.unfinished.fetch_sub(1, Ordering::Release);
         if c.pending == 0 {
             self.0.done.notify_one();
         }
@@ -285,10 +321,13 @@ impl<O: Objective> Pool<'_, '_, O> {
             let mut c = lock(&shared.control);
             c.generation += 1;
             c.pending = workers;
+            shared.unfinished.store(workers, Ordering::Release);
+            shared.posted.store(c.generation, Ordering::Release);
             shared.start.notify_all();
         }
         run_part(shared, 0);
         if workers > 0 {
+            spin_until(|| shared.unfinished.load(Ordering::Acquire) == 0);
             let mut c = lock(&shared.control);
             while c.pending > 0 {
                 c = shared.done.wait(c).unwrap_or_else(PoisonError::into_inner);

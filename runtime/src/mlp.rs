@@ -17,6 +17,7 @@ use crate::format::{
 use crate::math;
 
 mod kernel;
+use kernel::RowScale;
 #[cfg(feature = "observer")]
 mod tangent;
 
@@ -290,24 +291,12 @@ fn check_layer(
     Ok(())
 }
 
-/// Activation values `a` and derivatives `d` of the pre-activations `z`,
-/// one match for the whole row (same values as [`activate`] element by
-/// element).
+/// Activation values `a` and derivatives `d` of the pre-activations `z`
+/// ([`activate`] element by element).
 #[inline]
 fn activate_row(act: Activation, z: &[f32], a: &mut [f32], d: &mut [f32]) {
-    let outputs = a.iter_mut().zip(d.iter_mut());
-    match act {
-        Activation::Tanh => {
-            for (zj, (aj, dj)) in z.iter().zip(outputs) {
-                let t = math::tanh(*zj);
-                (*aj, *dj) = (t, 1.0 - t * t);
-            }
-        }
-        _ => {
-            for (zj, (aj, dj)) in z.iter().zip(outputs) {
-                (*aj, *dj) = activate(act, *zj);
-            }
-        }
+    for (zj, (aj, dj)) in z.iter().zip(a.iter_mut().zip(d.iter_mut())) {
+        (*aj, *dj) = activate(act, *zj);
     }
 }
 
@@ -337,9 +326,6 @@ fn activate(act: Activation, a: f32) -> (f32, f32) {
 /// accumulator) serve four weights (see DEVELOPERS.md, device cost).
 const BLOCK: usize = 4;
 
-/// The row scale of f32 weights: none.
-const NO_SCALE: kernel::RowScale<'static> = kernel::RowScale { scales: None };
-
 /// A little-endian f32 from a 4-byte chunk (from `chunks_exact(4)`).
 #[inline(always)]
 fn le_f32(c: &[u8]) -> f32 {
@@ -352,7 +338,7 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
     let ni = l.ni();
     let x = &x[..ni.min(x.len())];
     match l.weights {
-        Weights::Aligned(w) => kernel::dense(w, ni, NO_SCALE, l.bias, x, y),
+        Weights::Aligned(w) => kernel::dense(w, ni, RowScale::NONE, l.bias, x, y),
         Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= y.len() {
@@ -389,10 +375,7 @@ fn dense(l: &Layer<'_>, x: &[f32], y: &mut [f32]) {
         // Refused at validation when left out of the build.
         Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
         Weights::Int8 { values, scales } => {
-            let scale = kernel::RowScale {
-                scales: Some(scales),
-            };
-            kernel::dense(values, ni, scale, l.bias, x, y)
+            kernel::dense(values, ni, RowScale::int8(scales), l.bias, x, y)
         }
     }
 }
@@ -405,7 +388,7 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
     gx.iter_mut().for_each(|v| *v = 0.0);
     let no = g.len();
     match l.weights {
-        Weights::Aligned(w) => kernel::dense_transpose(w, ni, NO_SCALE, g, gx),
+        Weights::Aligned(w) => kernel::dense_transpose(w, ni, RowScale::NONE, g, gx),
         Weights::Bytes(w) => {
             let mut j = 0;
             while j + BLOCK <= no {
@@ -436,10 +419,7 @@ fn dense_transpose(l: &Layer<'_>, g: &[f32], gx: &mut [f32]) {
         }
         Weights::Int8 { .. } if !cfg!(feature = "int8") => {}
         Weights::Int8 { values, scales } => {
-            let scale = kernel::RowScale {
-                scales: Some(scales),
-            };
-            kernel::dense_transpose(values, ni, scale, g, gx)
+            kernel::dense_transpose(values, ni, RowScale::int8(scales), g, gx)
         }
     }
 }

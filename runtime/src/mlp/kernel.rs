@@ -44,7 +44,17 @@ pub(super) struct RowScale<'a> {
     pub scales: Option<F32Bytes<'a>>,
 }
 
-impl RowScale<'_> {
+impl<'a> RowScale<'a> {
+    /// f32 weights: no scale.
+    pub const NONE: Self = Self { scales: None };
+
+    /// int8 weights with these per-row scales.
+    pub fn int8(scales: F32Bytes<'a>) -> Self {
+        Self {
+            scales: Some(scales),
+        }
+    }
+
     /// Row `j`'s output from its sum.
     #[inline(always)]
     fn output(self, j: usize, sum: f32, bias: F32Bytes<'_>) -> f32 {
